@@ -1,0 +1,3 @@
+//! holdout-ledger
+#![deny(missing_docs)]
+pub mod stats;

@@ -1,0 +1,1 @@
+//! Statistics and accounting core (placeholder, being written).
