@@ -1,1 +1,20 @@
-//! Statistics and accounting core (placeholder, being written).
+//! Statistics and accounting core: pure functions, no I/O, no clock, no randomness.
+//!
+//! | concept | module |
+//! |---|---|
+//! | `ln I_x(a, b)` in log space and its inversion | [`beta`] |
+//! | one-query intervals (Clopper-Pearson, KL, Hoeffding) | [`interval`] |
+//! | how the budget is split over queries and analysts | [`schedule`] |
+//! | answer rules, their symbols and codes | [`rules`] |
+//! | the accountant the daemon and the audit share | [`accounting`] |
+//! | paired comparison of two models | [`paired`] |
+//! | planning: queries that fit, rows needed | [`plan`] |
+
+pub mod beta;
+pub mod interval;
+mod kl;
+
+/// Version of the accounting core, recorded in every holdout's genesis entry so that an audit
+/// can tell which rules produced a ledger. Bump it whenever any number this module computes
+/// for the same inputs could change.
+pub const CORE_VERSION: &str = "1";

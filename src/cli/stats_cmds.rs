@@ -1,0 +1,1 @@
+//! The `bound` and `plan` commands (being written).

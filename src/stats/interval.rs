@@ -1,0 +1,334 @@
+//! Confidence intervals for one query: `n` rows, a loss in [0, 1], a level `d` given as
+//! `level_nats = ln(1/d)` (DESIGN 3).
+//!
+//! * [`Method::Exact`]: Clopper-Pearson for 0-1 loss. Lower limit `BetaInv(a; k, n-k+1)`, upper
+//!   limit from the upper tail directly (`1 - BetaInv(a; n-k, k+1)` computed on the small side),
+//!   with `a = d/2` two-sided and `a = d` one-sided. Solved in log space with
+//!   [`ln_incomplete_beta`](super::beta::ln_incomplete_beta); where a limit is not representable
+//!   (below the normal range of f64), the KL limit at the same level is used instead, which
+//!   always contains the Clopper-Pearson one, so the result stays valid.
+//! * [`Method::Kl`]: KL (Chernoff) inversion, `kl(mean || q) = ln(1/a) / n`, any loss in [0, 1].
+//! * [`Method::Hoeffding`]: `mean -+ sqrt(ln(1/a) / (2n))`, clamped to [0, 1].
+//!
+//! Every function here is deterministic: the same inputs give bit-identical outputs on the same
+//! build and platform (the audit relies on it).
+//!
+//! ```
+//! use holdout_ledger::stats::interval::{errors_interval, Method, Sides};
+//! // 30 errors in 1000 rows at d = 0.05, two-sided (scipy 1.17.1: beta.ppf / beta.isf give
+//! // 0.020302..., 0.042597...).
+//! let ci = errors_interval(Method::Exact, 1000, 30, (1.0f64 / 0.05).ln(), Sides::Two).unwrap();
+//! assert!((ci.lower - 0.020302).abs() < 1e-5 && (ci.upper - 0.042597).abs() < 1e-5);
+//! ```
+
+use serde::{Deserialize, Serialize};
+use std::fmt;
+use std::str::FromStr;
+
+use super::beta::solve_ln_beta_reg;
+use super::kl;
+
+/// How an interval is computed.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Method {
+    /// Clopper-Pearson (exact binomial); 0-1 loss only.
+    Exact,
+    /// KL (Chernoff) inversion; any loss in [0, 1].
+    Kl,
+    /// Hoeffding; any loss in [0, 1].
+    Hoeffding,
+}
+
+impl fmt::Display for Method {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Method::Exact => "exact",
+            Method::Kl => "kl",
+            Method::Hoeffding => "hoeffding",
+        })
+    }
+}
+
+impl FromStr for Method {
+    type Err = IntervalError;
+    fn from_str(s: &str) -> Result<Method, IntervalError> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "exact" | "clopper-pearson" => Ok(Method::Exact),
+            "kl" => Ok(Method::Kl),
+            "hoeffding" => Ok(Method::Hoeffding),
+            _ => Err(IntervalError::UnknownMethod(s.to_string())),
+        }
+    }
+}
+
+/// Which limits an interval has.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Sides {
+    /// Both limits, the level split evenly between the two tails.
+    Two,
+    /// A one-sided upper bound at the full level; the lower limit is 0.
+    Upper,
+    /// A one-sided lower bound at the full level; the upper limit is 1.
+    Lower,
+}
+
+/// A closed interval inside [0, 1].
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Interval {
+    /// Lower limit.
+    pub lower: f64,
+    /// Upper limit.
+    pub upper: f64,
+}
+
+impl Interval {
+    /// The trivial interval [0, 1], which certifies nothing.
+    pub const FULL: Interval = Interval {
+        lower: 0.0,
+        upper: 1.0,
+    };
+
+    /// Half of the width.
+    pub fn half_width(&self) -> f64 {
+        0.5 * (self.upper - self.lower)
+    }
+
+    /// Whether `value` lies in the closed interval.
+    pub fn contains(&self, value: f64) -> bool {
+        self.lower <= value && value <= self.upper
+    }
+}
+
+/// Bad input to an interval computation.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum IntervalError {
+    /// No rows.
+    #[error("the number of rows must be at least 1")]
+    NoRows,
+    /// More errors than rows.
+    #[error("{errors} errors is more than the {rows} rows")]
+    ErrorsExceedRows {
+        /// Errors given.
+        errors: u64,
+        /// Rows given.
+        rows: u64,
+    },
+    /// A level that is not a positive number of nats.
+    #[error("level must be ln(1/d) > 0 nats (d in (0, 1)), got {0}")]
+    BadLevel(f64),
+    /// A mean loss outside [0, 1].
+    #[error("mean loss must lie in [0, 1], got {0}")]
+    MeanOutOfRange(f64),
+    /// Clopper-Pearson asked for a non-binary loss.
+    #[error("method 'exact' (Clopper-Pearson) needs a 0-1 loss (an error count); use 'kl' or 'hoeffding' for other losses")]
+    ExactNeedsBinary,
+    /// Unknown method name.
+    #[error("unknown method '{0}': expected exact, kl or hoeffding")]
+    UnknownMethod(String),
+}
+
+fn check(n: u64, level_nats: f64) -> Result<(), IntervalError> {
+    if n == 0 {
+        return Err(IntervalError::NoRows);
+    }
+    if level_nats.is_nan() || level_nats <= 0.0 {
+        return Err(IntervalError::BadLevel(level_nats));
+    }
+    Ok(())
+}
+
+/// Nats of one tail: `ln(1/a)` with `a = d/2` (two-sided) or `a = d` (one-sided).
+fn tail_nats(level_nats: f64, sides: Sides) -> f64 {
+    match sides {
+        Sides::Two => level_nats + std::f64::consts::LN_2,
+        Sides::Upper | Sides::Lower => level_nats,
+    }
+}
+
+/// Clopper-Pearson lower limit for `k` errors, tail `exp(-tail)`.
+fn cp_lower(n: u64, k: u64, tail: f64) -> f64 {
+    let nf = n as f64;
+    if k == 0 || tail.is_infinite() {
+        return 0.0;
+    }
+    if k == n {
+        // P(X >= n | p) = p^n = a.
+        return (-tail / nf).exp();
+    }
+    let kf = k as f64;
+    solve_ln_beta_reg(kf, nf - kf + 1.0, -tail)
+        .map(|p| p.x)
+        .unwrap_or_else(|| kl::lower(kf / nf, tail / nf))
+}
+
+/// Clopper-Pearson upper limit for `k` errors, tail `exp(-tail)`.
+fn cp_upper(n: u64, k: u64, tail: f64) -> f64 {
+    let nf = n as f64;
+    if k == n || tail.is_infinite() {
+        return 1.0;
+    }
+    if k == 0 {
+        // P(X <= 0 | p) = (1-p)^n = a.
+        return -(-tail / nf).exp_m1();
+    }
+    let kf = k as f64;
+    // P(X <= k | p) = I_{1-p}(n-k, k+1); the root's y is the upper limit.
+    solve_ln_beta_reg(nf - kf, kf + 1.0, -tail)
+        .map(|p| p.y)
+        .unwrap_or_else(|| kl::upper(kf / nf, tail / nf))
+}
+
+fn mean_limits(method: Method, n: u64, lo: f64, hi: f64, tail: f64) -> (f64, f64) {
+    let nf = n as f64;
+    match method {
+        Method::Hoeffding => {
+            let h = (tail / (2.0 * nf)).sqrt();
+            ((lo - h).max(0.0), (hi + h).min(1.0))
+        }
+        // Exact is excluded by the callers; KL serves both.
+        Method::Kl | Method::Exact => (kl::lower(lo, tail / nf), kl::upper(hi, tail / nf)),
+    }
+}
+
+fn assemble(sides: Sides, lower: impl FnOnce() -> f64, upper: impl FnOnce() -> f64) -> Interval {
+    let (lower, upper) = match sides {
+        Sides::Two => (lower(), upper()),
+        Sides::Upper => (0.0, upper()),
+        Sides::Lower => (lower(), 1.0),
+    };
+    Interval {
+        lower: lower.clamp(0.0, 1.0),
+        upper: upper.clamp(0.0, 1.0),
+    }
+}
+
+/// Interval for the error rate of a 0-1 loss with `k` errors in `n` rows.
+///
+/// # Failure
+/// `k > n`, `n = 0`, or a level that is not positive.
+///
+/// # Example
+/// ```
+/// use holdout_ledger::stats::interval::{errors_interval, Method, Sides};
+/// // Zero errors, one-sided at d = 0.05: 1 - 0.05^(1/1000) = 0.0029914 (rule of three: 3/n).
+/// let ci = errors_interval(Method::Exact, 1000, 0, (20.0f64).ln(), Sides::Upper).unwrap();
+/// assert!((ci.upper - 0.0029914).abs() < 1e-7);
+/// // Hoeffding at n = 1000, d = 0.05 two-sided: half-width sqrt(ln 40 / 2000) = 0.04295.
+/// let h = errors_interval(Method::Hoeffding, 1000, 500, (20.0f64).ln(), Sides::Two).unwrap();
+/// assert!((h.half_width() - 0.04295).abs() < 5e-6);
+/// ```
+pub fn errors_interval(
+    method: Method,
+    n: u64,
+    k: u64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    errors_range_interval(method, n, k, k, level_nats, sides)
+}
+
+/// The worst case over error counts `k_lo..=k_hi`: the lower limit at `k_lo`, the upper at
+/// `k_hi` (both limits increase in `k`). This is the interval of a released rounded cell.
+pub fn errors_range_interval(
+    method: Method,
+    n: u64,
+    k_lo: u64,
+    k_hi: u64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    check(n, level_nats)?;
+    for k in [k_lo, k_hi] {
+        if k > n {
+            return Err(IntervalError::ErrorsExceedRows { errors: k, rows: n });
+        }
+    }
+    let (k_lo, k_hi) = (k_lo.min(k_hi), k_lo.max(k_hi));
+    let tail = tail_nats(level_nats, sides);
+    Ok(match method {
+        Method::Exact => assemble(
+            sides,
+            || cp_lower(n, k_lo, tail),
+            || cp_upper(n, k_hi, tail),
+        ),
+        Method::Kl | Method::Hoeffding => {
+            let nf = n as f64;
+            let (lo, hi) = mean_limits(method, n, k_lo as f64 / nf, k_hi as f64 / nf, tail);
+            assemble(sides, || lo, || hi)
+        }
+    })
+}
+
+/// Interval for a mean loss in [0, 1] over `n` rows (KL or Hoeffding; Exact is an error).
+///
+/// ```
+/// use holdout_ledger::stats::interval::{mean_interval, Method, Sides};
+/// let kl = mean_interval(Method::Kl, 1000, 0.1, (20.0f64).ln(), Sides::Two).unwrap();
+/// let h = mean_interval(Method::Hoeffding, 1000, 0.1, (20.0f64).ln(), Sides::Two).unwrap();
+/// // Away from 1/2 the KL interval is much tighter than Hoeffding's.
+/// assert!(kl.upper - kl.lower < 0.6 * (h.upper - h.lower));
+/// ```
+pub fn mean_interval(
+    method: Method,
+    n: u64,
+    mean: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    mean_range_interval(method, n, mean, mean, level_nats, sides)
+}
+
+/// The worst case over means in `[lo, hi]`: the lower limit at `lo`, the upper at `hi`.
+pub fn mean_range_interval(
+    method: Method,
+    n: u64,
+    lo: f64,
+    hi: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    check(n, level_nats)?;
+    if method == Method::Exact {
+        return Err(IntervalError::ExactNeedsBinary);
+    }
+    for m in [lo, hi] {
+        if !(0.0..=1.0).contains(&m) {
+            return Err(IntervalError::MeanOutOfRange(m));
+        }
+    }
+    let tail = tail_nats(level_nats, sides);
+    let (l, u) = mean_limits(method, n, lo.min(hi), lo.max(hi), tail);
+    Ok(assemble(sides, || l, || u))
+}
+
+/// The worst-case (widest) half-width a query of `n` rows can get at this level: the interval
+/// at mean 1/2 (`k = n/2`, rounded down, for Clopper-Pearson). Two-sided: half the width;
+/// one-sided upper: `upper - 1/2`.
+pub fn reference_half_width(
+    method: Method,
+    n: u64,
+    reference_mean: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<f64, IntervalError> {
+    let nf = n.max(1) as f64;
+    let ci = match method {
+        Method::Exact => {
+            let k = ((reference_mean.clamp(0.0, 1.0) * nf).round() as u64).min(n);
+            let ci = errors_interval(method, n, k, level_nats, sides)?;
+            return Ok(spread(ci, k as f64 / nf, sides));
+        }
+        _ => mean_interval(method, n, reference_mean, level_nats, sides)?,
+    };
+    Ok(spread(ci, reference_mean, sides))
+}
+
+fn spread(ci: Interval, center: f64, sides: Sides) -> f64 {
+    match sides {
+        Sides::Two => ci.half_width(),
+        Sides::Upper => ci.upper - center,
+        Sides::Lower => center - ci.lower,
+    }
+}
