@@ -1,0 +1,165 @@
+//! Connecting to the daemon: the endpoint, the bearer token, and turning statuses into errors.
+
+use std::time::Duration;
+
+use tonic::metadata::{Ascii, MetadataValue};
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Channel, Endpoint};
+use tonic::{Request, Status};
+
+use crate::error::Error;
+use crate::proto::v1::holdouts_client::HoldoutsClient;
+use crate::proto::v1::submissions_client::SubmissionsClient;
+use crate::proto::v1::users_client::UsersClient;
+
+/// Default daemon address.
+pub const DEFAULT_SERVER: &str = "http://127.0.0.1:7361";
+
+/// Flow-control windows: large enough that 8192-row chunks stream without stalls.
+const WINDOW_BYTES: u32 = 4 << 20;
+/// Largest reply accepted (declarations and listings can be long).
+const MAX_REPLY_BYTES: usize = 256 << 20;
+/// Largest request message (one chunk).
+const MAX_REQUEST_BYTES: usize = 64 << 20;
+
+/// Where the daemon is and who is asking.
+#[derive(Debug, Clone, clap::Args)]
+pub struct ServerArgs {
+    /// Address of the daemon (http://HOST:PORT; "http://" is added when missing).
+    #[arg(long, env = "HOLDOUT_SERVER", default_value = DEFAULT_SERVER, value_name = "URL")]
+    pub server: String,
+    /// Bearer token (from `holdout init --token-out` or `holdout user add`).
+    #[arg(
+        long,
+        env = "HOLDOUT_TOKEN",
+        hide_env_values = true,
+        value_name = "TOKEN"
+    )]
+    pub token: Option<String>,
+}
+
+/// Adds `authorization: Bearer TOKEN` to every request.
+#[derive(Debug, Clone)]
+pub struct Auth {
+    header: Option<MetadataValue<Ascii>>,
+}
+
+impl tonic::service::Interceptor for Auth {
+    fn call(&mut self, mut request: Request<()>) -> Result<Request<()>, Status> {
+        if let Some(h) = &self.header {
+            request.metadata_mut().insert("authorization", h.clone());
+        }
+        Ok(request)
+    }
+}
+
+/// A channel that carries the caller's token.
+pub type AuthChannel = InterceptedService<Channel, Auth>;
+
+/// An open connection to the daemon.
+#[derive(Debug, Clone)]
+pub struct Conn {
+    /// The address connected to, as shown in messages.
+    pub url: String,
+    channel: Channel,
+    auth: Auth,
+}
+
+impl Conn {
+    /// Connects eagerly, so an unreachable daemon is reported before any work is done.
+    ///
+    /// # Errors
+    /// Bad input for a malformed URL or token; a transport error (exit code 6) naming the URL
+    /// when the daemon cannot be reached.
+    pub async fn open(args: &ServerArgs) -> anyhow::Result<Conn> {
+        let url = if args.server.contains("://") {
+            args.server.clone()
+        } else {
+            format!("http://{}", args.server)
+        };
+        let header = match args.token.as_deref().map(str::trim) {
+            None | Some("") => None,
+            Some(t) => Some(
+                format!("Bearer {t}")
+                    .parse::<MetadataValue<Ascii>>()
+                    .map_err(|_| {
+                        Error::invalid(
+                            "--token",
+                            "the token holds characters a header cannot carry",
+                        )
+                    })?,
+            ),
+        };
+        let endpoint = Endpoint::from_shared(url.clone())
+            .map_err(|e| Error::invalid("--server", format!("{url:?} is not a valid URL: {e}")))?
+            .connect_timeout(Duration::from_secs(5))
+            .initial_stream_window_size(WINDOW_BYTES)
+            .initial_connection_window_size(WINDOW_BYTES)
+            .tcp_nodelay(true);
+        let channel = endpoint.connect().await.map_err(|e| {
+            anyhow::Error::new(e).context(format!("cannot reach the daemon at {url}"))
+        })?;
+        Ok(Conn {
+            url,
+            channel,
+            auth: Auth { header },
+        })
+    }
+
+    /// The holdout service.
+    pub fn holdouts(&self) -> HoldoutsClient<AuthChannel> {
+        HoldoutsClient::with_interceptor(self.channel.clone(), self.auth.clone())
+            .max_decoding_message_size(MAX_REPLY_BYTES)
+            .max_encoding_message_size(MAX_REQUEST_BYTES)
+    }
+
+    /// The submission service.
+    pub fn submissions(&self) -> SubmissionsClient<AuthChannel> {
+        SubmissionsClient::with_interceptor(self.channel.clone(), self.auth.clone())
+            .max_decoding_message_size(MAX_REPLY_BYTES)
+            .max_encoding_message_size(MAX_REQUEST_BYTES)
+    }
+
+    /// The user service.
+    pub fn users(&self) -> UsersClient<AuthChannel> {
+        UsersClient::with_interceptor(self.channel.clone(), self.auth.clone())
+            .max_decoding_message_size(MAX_REPLY_BYTES)
+            .max_encoding_message_size(MAX_REQUEST_BYTES)
+    }
+
+    /// Wraps a failed call; a lost connection names the URL.
+    pub fn fail(&self, status: Status) -> anyhow::Error {
+        let lost = matches!(
+            status.code(),
+            tonic::Code::Unavailable | tonic::Code::DeadlineExceeded
+        );
+        let err = anyhow::Error::new(status);
+        if lost {
+            err.context(format!("lost the daemon at {}", self.url))
+        } else {
+            err
+        }
+    }
+}
+
+/// The message printed after `error: `: contexts, then a status's own message (not its debug
+/// form), then the causes of anything else.
+pub fn describe(err: &anyhow::Error) -> String {
+    let mut parts: Vec<String> = Vec::new();
+    for cause in err.chain() {
+        if let Some(status) = cause.downcast_ref::<Status>() {
+            let message = if status.message().is_empty() {
+                status.code().description().to_string()
+            } else {
+                status.message().to_string()
+            };
+            parts.push(message);
+            break;
+        }
+        let text = cause.to_string();
+        if parts.last() != Some(&text) {
+            parts.push(text);
+        }
+    }
+    parts.join(": ")
+}

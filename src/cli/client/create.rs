@@ -1,0 +1,485 @@
+//! `holdout create`: reading labels, declaring their public domain, showing what the policy buys,
+//! and streaming everything to the daemon.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::str::FromStr;
+
+use clap::{Args, ValueEnum};
+use serde_json::json;
+
+use super::conn::{Conn, ServerArgs};
+use super::{CHUNK_ROWS, show};
+use crate::error::{Error, Result};
+use crate::files::{self, DEFAULT_MAX_FILE_BYTES, Table, TableSpec};
+use crate::metric::{self, Metric};
+use crate::proto::v1::{
+    CreateHoldoutChunk, HoldoutSpec, LabelColumn, LabelRows, Policy, Target,
+    create_holdout_chunk::Part,
+};
+
+/// Sharing assumption.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum Sharing {
+    /// Anyone may see every answer: one transcript for the holdout.
+    Shared,
+    /// Each team only ever sees its own answers: one transcript and budget share per team.
+    Isolated,
+}
+
+/// Public reference score for the tolerance decision.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ToleranceReference {
+    /// The widest interval any score could get.
+    WorstCase,
+    /// The team's last released score (intervals may then come out somewhat wider).
+    LastReleased,
+}
+
+/// `holdout create`.
+#[derive(Debug, Args)]
+pub struct CreateArgs {
+    /// Name of the new holdout: letters, digits, '-', '_' and '.', at most 64 characters.
+    pub name: String,
+    /// Labels file: CSV with a header row, or JSON Lines (.jsonl/.ndjson).
+    #[arg(long, value_name = "FILE")]
+    pub labels: PathBuf,
+    /// Column of the row ids (unique; they become public).
+    #[arg(long, default_value = "id")]
+    pub id_column: String,
+    /// A target NAME:COLUMN:METRIC[:METHOD]; repeat for several label columns of the same rows
+    /// (one holdout, one budget). METRIC is error, brier, abs_error:B, sq_error:B or
+    /// log_loss:FLOOR; METHOD is exact, kl or hoeffding (default exact for error, kl otherwise).
+    /// Example: --target defect:defect:error --target cost:cost:abs_error:500:hoeffding
+    #[arg(long = "target", value_name = "NAME:COLUMN:METRIC[:METHOD]")]
+    pub targets: Vec<String>,
+    /// Metric of the single label column (--label-column), instead of --target; the target is
+    /// named after the column.
+    #[arg(long, required_unless_present = "targets", conflicts_with = "targets")]
+    pub metric: Option<String>,
+    /// Interval method with --metric: exact, kl or hoeffding [default: exact for error, kl
+    /// otherwise].
+    #[arg(long, requires = "metric")]
+    pub method: Option<String>,
+    /// The label column, with --metric.
+    #[arg(long, default_value = "label")]
+    pub label_column: String,
+    /// Declared classes of `error` targets (comma-separated) [default: the classes observed in
+    /// the file]. Brier and log_loss labels are always 0 and 1.
+    #[arg(long, value_delimiter = ',', value_name = "A,B,...")]
+    pub classes: Option<Vec<String>>,
+    /// Total failure probability of every interval this holdout will ever report.
+    #[arg(long, default_value_t = 0.05)]
+    pub delta: f64,
+    /// How the budget is spread over queries: "series" (open-ended) or "even:K".
+    #[arg(long, default_value = "series")]
+    pub schedule: String,
+    /// Answer rule: rounded:ETA, threshold:TAU, ladder:ETA, best-of:ETA or sealed.
+    #[arg(long, default_value = "rounded:0.01")]
+    pub answers: String,
+    /// Widest half-width still worth answering; beyond it the holdout refuses.
+    #[arg(long, default_value_t = 0.05)]
+    pub tolerance: f64,
+    /// Sharing assumption the guarantee rests on.
+    #[arg(long, value_enum, default_value_t = Sharing::Shared)]
+    pub sharing: Sharing,
+    /// Reference score for the tolerance decision.
+    #[arg(long, value_enum, default_value_t = ToleranceReference::WorstCase)]
+    pub tolerance_reference: ToleranceReference,
+    /// Budget shares per team: none, roster:N[:RESERVE] or on-arrival.
+    #[arg(long, default_value = "none")]
+    pub shares: String,
+    /// Most answered queries per team per UTC day (0: no quota).
+    #[arg(long, default_value_t = 0)]
+    pub daily_quota: u32,
+    /// What the rows are and where they came from (shown in listings).
+    #[arg(long, default_value = "")]
+    pub description: String,
+    /// Error rate at which the plan table also shows half-widths (besides the worst case).
+    #[arg(long, default_value_t = 0.1, value_name = "RATE")]
+    pub expected_error: f64,
+    /// Only print what the policy buys for this file; send nothing.
+    #[arg(long)]
+    pub preview: bool,
+    /// Print one JSON object (the plan, and the created holdout unless --preview).
+    #[arg(long)]
+    pub json: bool,
+    /// Refuse label files larger than this many bytes.
+    #[arg(long, default_value_t = DEFAULT_MAX_FILE_BYTES, value_name = "BYTES")]
+    pub max_file_bytes: u64,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub server: ServerArgs,
+}
+
+/// A target as asked for on the command line.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TargetSpec {
+    /// Target name.
+    pub name: String,
+    /// Label column.
+    pub column: String,
+    /// Metric.
+    pub metric: Metric,
+    /// Interval method.
+    pub method: String,
+}
+
+const METHODS: [&str; 3] = ["exact", "kl", "hoeffding"];
+
+/// Parses NAME:COLUMN:METRIC[:METHOD], where METRIC may carry its own `:PARAM`.
+///
+/// # Errors
+/// [`Error::InvalidArgument`] on `--target` for a malformed spec, an unknown metric or method,
+/// or `exact` with a metric other than `error`.
+pub fn parse_target(s: &str) -> Result<TargetSpec> {
+    let parts: Vec<&str> = s.split(':').map(str::trim).collect();
+    let bad = |why: String| Error::invalid("--target", format!("{s:?}: {why}"));
+    if parts.len() < 3 || parts[0].is_empty() || parts[1].is_empty() {
+        return Err(bad("expected NAME:COLUMN:METRIC[:METHOD]".into()));
+    }
+    let with_param = matches!(parts[2], "abs_error" | "sq_error" | "log_loss");
+    let metric_end = if with_param { 4 } else { 3 };
+    if parts.len() < metric_end {
+        return Err(bad(format!(
+            "metric {} needs a parameter, e.g. {}:1",
+            parts[2], parts[2]
+        )));
+    }
+    if parts.len() > metric_end + 1 {
+        return Err(bad("too many ':' parts".into()));
+    }
+    let metric =
+        Metric::from_str(&parts[2..metric_end].join(":")).map_err(|e| bad(e.to_string()))?;
+    let method = parts.get(metric_end).map(|m| m.to_string());
+    Ok(TargetSpec {
+        name: parts[0].to_string(),
+        column: parts[1].to_string(),
+        method: check_method(&metric, method).map_err(bad)?,
+        metric,
+    })
+}
+
+fn check_method(metric: &Metric, method: Option<String>) -> std::result::Result<String, String> {
+    let method = method.unwrap_or_else(|| metric.default_method().to_string());
+    if !METHODS.contains(&method.as_str()) {
+        return Err(format!(
+            "unknown method {method:?}; use exact, kl or hoeffding"
+        ));
+    }
+    if method == "exact" && !metric.is_binary() {
+        return Err(format!(
+            "method exact (Clopper-Pearson) needs 0-1 loss; metric {metric} takes kl or hoeffding"
+        ));
+    }
+    Ok(method)
+}
+
+/// The targets of a command line: the --target list, or the single --metric column.
+///
+/// # Errors
+/// Bad specs, duplicate target names.
+pub fn targets_of(args: &CreateArgs) -> Result<Vec<TargetSpec>> {
+    let targets = if args.targets.is_empty() {
+        let spec = args
+            .metric
+            .as_deref()
+            .ok_or_else(|| Error::invalid("--metric", "give --metric or at least one --target"))?;
+        let metric =
+            Metric::from_str(spec).map_err(|e| Error::invalid("--metric", e.to_string()))?;
+        vec![TargetSpec {
+            name: args.label_column.clone(),
+            column: args.label_column.clone(),
+            method: check_method(&metric, args.method.clone())
+                .map_err(|e| Error::invalid("--method", e))?,
+            metric,
+        }]
+    } else {
+        args.targets
+            .iter()
+            .map(|t| parse_target(t))
+            .collect::<Result<Vec<_>>>()?
+    };
+    for (i, t) in targets.iter().enumerate() {
+        if targets[..i].iter().any(|u| u.name == t.name) {
+            return Err(Error::invalid(
+                "--target",
+                format!("target {:?} is named twice", t.name),
+            ));
+        }
+    }
+    Ok(targets)
+}
+
+/// Declares each target's public label domain and checks every label against it, naming the
+/// file line and id of the first label that does not fit.
+///
+/// # Errors
+/// [`Error::InvalidArgument`] naming `file:line`.
+pub fn declare(
+    table: &Table,
+    targets: &[TargetSpec],
+    classes: Option<&[String]>,
+) -> Result<Vec<Target>> {
+    targets
+        .iter()
+        .map(|t| {
+            let k = table.column_index(&t.column).ok_or_else(|| {
+                Error::invalid(table.source.clone(), format!("no column {:?}", t.column))
+            })?;
+            let values: Vec<String> = table.rows.iter().map(|r| r.values[k].clone()).collect();
+            let declared: Vec<String> = if t.metric.uses_classes() {
+                match classes {
+                    Some(c) => c.iter().map(|x| x.trim().to_string()).collect(),
+                    None => metric::observed_classes(&values),
+                }
+            } else {
+                t.metric.fixed_classes().unwrap_or_default()
+            };
+            for r in &table.rows {
+                let v = &r.values[k];
+                let ok = if declared.is_empty() {
+                    v.parse::<f64>().is_ok_and(f64::is_finite)
+                } else {
+                    declared.contains(v)
+                };
+                if !ok {
+                    let domain = if declared.is_empty() {
+                        "a finite number".to_string()
+                    } else {
+                        format!("one of {}", declared.join(","))
+                    };
+                    return Err(Error::invalid(
+                        format!("{}:{}", table.source, r.line),
+                        format!(
+                            "label {v:?} of id `{}` (column {}, target {}, metric {}) is not {domain}",
+                            r.id, t.column, t.name, t.metric
+                        ),
+                    ));
+                }
+            }
+            Ok(Target {
+                name: t.name.clone(),
+                column: t.column.clone(),
+                metric: t.metric.to_string(),
+                method: t.method.clone(),
+                classes: declared,
+            })
+        })
+        .collect()
+}
+
+fn policy_of(args: &CreateArgs) -> Policy {
+    Policy {
+        delta: args.delta,
+        schedule: args.schedule.clone(),
+        answers: args.answers.clone(),
+        tolerance: args.tolerance,
+        sharing: match args.sharing {
+            Sharing::Shared => "shared",
+            Sharing::Isolated => "isolated",
+        }
+        .to_string(),
+        tolerance_reference: match args.tolerance_reference {
+            ToleranceReference::WorstCase => "worst-case",
+            ToleranceReference::LastReleased => "last-released",
+        }
+        .to_string(),
+        shares: args.shares.clone(),
+        daily_quota: args.daily_quota,
+        canonical_json: String::new(),
+    }
+}
+
+/// Runs `holdout create`.
+///
+/// # Errors
+/// Bad arguments or labels (nothing sent), connection, permission and daemon refusals.
+pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
+    if !(args.delta > 0.0 && args.delta < 1.0) {
+        return Err(
+            Error::invalid("--delta", format!("must lie in (0, 1), got {}", args.delta)).into(),
+        );
+    }
+    if !(args.tolerance > 0.0 && args.tolerance.is_finite()) {
+        return Err(Error::invalid(
+            "--tolerance",
+            format!("must be positive, got {}", args.tolerance),
+        )
+        .into());
+    }
+    let specs = targets_of(args)?;
+    let mut columns: Vec<String> = Vec::new();
+    for s in &specs {
+        if !columns.contains(&s.column) {
+            columns.push(s.column.clone());
+        }
+    }
+    let table = files::read_table(
+        &args.labels,
+        &TableSpec::new(&args.id_column, columns).max_bytes(args.max_file_bytes),
+    )?;
+    let targets = declare(&table, &specs, args.classes.as_deref())?;
+    let policy = policy_of(args);
+    let plan = super::plan::describe(table.len() as u64, &policy, &targets, args.expected_error);
+    if args.json && args.preview {
+        show::print_json(&json!({
+            "preview": true,
+            "rows": table.len(),
+            "policy": show::policy_json(&policy),
+            "targets": targets.iter().map(show::target_json).collect::<Vec<_>>(),
+            "plan": plan.json,
+        }));
+        return Ok(ExitCode::SUCCESS);
+    }
+    if !args.json {
+        println!("{}", plan.text);
+    }
+    if args.preview {
+        println!("preview only: nothing was sent");
+        return Ok(ExitCode::SUCCESS);
+    }
+    let conn = Conn::open(&args.server).await?;
+    let spec = HoldoutSpec {
+        name: args.name.clone(),
+        policy: Some(policy),
+        targets: targets.clone(),
+        description: args.description.clone(),
+    };
+    let positions: Vec<usize> = specs
+        .iter()
+        .map(|s| table.column_index(&s.column).unwrap_or(0))
+        .collect();
+    let first = std::iter::once(CreateHoldoutChunk {
+        part: Some(Part::Spec(spec)),
+    });
+    let rows = table.rows;
+    let mut it = rows.into_iter();
+    let chunks = std::iter::from_fn(move || {
+        let piece: Vec<files::Row> = it.by_ref().take(CHUNK_ROWS).collect();
+        if piece.is_empty() {
+            return None;
+        }
+        let columns = positions
+            .iter()
+            .map(|&k| LabelColumn {
+                values: piece.iter().map(|r| r.values[k].clone()).collect(),
+            })
+            .collect();
+        let ids = piece.into_iter().map(|r| r.id).collect();
+        Some(CreateHoldoutChunk {
+            part: Some(Part::Rows(LabelRows { ids, columns })),
+        })
+    });
+    let info = conn
+        .holdouts()
+        .create_holdout(tokio_stream::iter(first.chain(chunks)))
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    if args.json {
+        let mut v = show::holdout_json(&info);
+        v["plan"] = plan.json;
+        show::print_json(&v);
+    } else {
+        println!("\ncreated\n{}", show::holdout_text(&info));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn target_specs() {
+        let t = parse_target("defect:defect_col:error").expect("error target");
+        assert_eq!(
+            (t.name.as_str(), t.column.as_str(), t.method.as_str()),
+            ("defect", "defect_col", "exact")
+        );
+        let t = parse_target("cost:cost:abs_error:500:hoeffding").expect("abs target");
+        assert_eq!(t.metric, Metric::AbsError { bound: 500.0 });
+        assert_eq!(t.method, "hoeffding");
+        let t = parse_target("p:y:log_loss:0.001").expect("log loss");
+        assert_eq!(t.method, "kl");
+        let t = parse_target("q:y:brier:hoeffding").expect("brier");
+        assert_eq!(t.method, "hoeffding");
+        for bad in [
+            "a:b",
+            "a:b:abs_error",
+            "a:b:brier:exact",
+            "a:b:error:fast",
+            "a:b:nope",
+            "a:b:sq_error:2:kl:extra",
+            ":b:error",
+        ] {
+            assert!(
+                matches!(parse_target(bad), Err(Error::InvalidArgument { .. })),
+                "{bad} should be refused"
+            );
+        }
+    }
+
+    fn table(rows: &[(&str, &str)]) -> Table {
+        Table {
+            source: "labels.csv".into(),
+            format: files::Format::Csv,
+            id_column: "id".into(),
+            columns: vec!["y".into()],
+            rows: rows
+                .iter()
+                .enumerate()
+                .map(|(i, (id, y))| files::Row {
+                    line: i as u64 + 2,
+                    id: id.to_string(),
+                    values: vec![y.to_string()],
+                })
+                .collect(),
+        }
+    }
+
+    fn spec(metric: Metric) -> TargetSpec {
+        TargetSpec {
+            name: "t".into(),
+            column: "y".into(),
+            method: metric.default_method().into(),
+            metric,
+        }
+    }
+
+    #[test]
+    fn label_domains() {
+        let t = table(&[("a", "dog"), ("b", "cat"), ("c", "dog")]);
+        let d = declare(&t, &[spec(Metric::Error)], None).expect("observed");
+        assert_eq!(d[0].classes, ["cat", "dog"]);
+        let given = vec!["cat".to_string(), "dog".to_string(), "eel".to_string()];
+        let d = declare(&t, &[spec(Metric::Error)], Some(&given)).expect("declared");
+        assert_eq!(d[0].classes, given);
+        let narrow = vec!["dog".to_string()];
+        match declare(&t, &[spec(Metric::Error)], Some(&narrow)) {
+            Err(Error::InvalidArgument { field, message }) => {
+                assert_eq!(field, "labels.csv:3");
+                assert!(message.contains("`b`"), "{message}");
+            }
+            other => panic!("expected a label error, got {other:?}"),
+        }
+        let b = table(&[("a", "1"), ("b", "0")]);
+        assert_eq!(
+            declare(&b, &[spec(Metric::Brier)], None).expect("brier")[0].classes,
+            ["0", "1"]
+        );
+        assert!(declare(&t, &[spec(Metric::Brier)], None).is_err());
+        let n = table(&[("a", "3.5"), ("b", "-2")]);
+        let d = declare(&n, &[spec(Metric::SqError { bound: 4.0 })], None).expect("numeric");
+        assert!(d[0].classes.is_empty());
+        assert!(
+            declare(
+                &table(&[("a", "x")]),
+                &[spec(Metric::SqError { bound: 4.0 })],
+                None
+            )
+            .is_err()
+        );
+    }
+}

@@ -1,0 +1,469 @@
+//! Rendering replies: JSON objects for scripts, short aligned text for people.
+
+use serde_json::{Value, json};
+
+use crate::proto::v1::{
+    Answer, Budget, HistoryEntry, HoldoutInfo, Policy, Quote, Receipt, Refusal, Target, UserInfo,
+};
+
+/// Prints a JSON value on one line of stdout.
+pub fn print_json(value: &Value) {
+    println!("{value}");
+}
+
+/// A number for people: four decimals for ordinary sizes, scientific notation for tiny ones.
+pub fn num(x: f64) -> String {
+    if x == 0.0 || !x.is_finite() {
+        format!("{x}")
+    } else if x.abs() >= 1e-3 && x.abs() < 1e6 {
+        let s = format!("{x:.4}");
+        let s = s.trim_end_matches('0').trim_end_matches('.');
+        s.to_string()
+    } else {
+        format!("{x:.3e}")
+    }
+}
+
+/// Text columns padded to their widest cell.
+pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
+    let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
+    for row in rows {
+        for (w, cell) in widths.iter_mut().zip(row) {
+            *w = (*w).max(cell.chars().count());
+        }
+    }
+    let line = |cells: Vec<&str>| {
+        let padded: Vec<String> = cells
+            .iter()
+            .zip(&widths)
+            .map(|(c, w)| format!("{c:<w$}"))
+            .collect();
+        padded.join("  ").trim_end().to_string()
+    };
+    let mut out = line(header.to_vec());
+    for row in rows {
+        out.push('\n');
+        out.push_str(&line(row.iter().map(String::as_str).collect()));
+    }
+    out
+}
+
+/// A budget as JSON.
+pub fn budget_json(b: &Budget) -> Value {
+    json!({
+        "delta": b.delta,
+        "spent": b.spent,
+        "remaining": b.remaining,
+        "transcript_nats": b.transcript_nats,
+        "next_half_width": b.next_half_width,
+        "queries_left": b.queries_left,
+        "answered": b.answered,
+        "refused": b.refused,
+        "open": b.open,
+        "quota_resets_at": b.quota_resets_at,
+        "quota_left_today": b.quota_left_today,
+    })
+}
+
+/// Budget lines for people.
+pub fn budget_text(b: &Budget) -> String {
+    let mut s = format!(
+        "budget     spent {} of delta {}, remaining {}\n\
+         transcript {} nats released so far\n\
+         next       half-width {} at the reference score; {} more queries fit within the tolerance\n\
+         queries    {} answered, {} refused; {}",
+        num(b.spent),
+        num(b.delta),
+        num(b.remaining),
+        num(b.transcript_nats),
+        num(b.next_half_width),
+        b.queries_left,
+        b.answered,
+        b.refused,
+        if b.open { "open" } else { "closed" }
+    );
+    if !b.quota_resets_at.is_empty() {
+        s.push_str(&format!(
+            "\nquota      {} left today, resets at {}",
+            b.quota_left_today, b.quota_resets_at
+        ));
+    }
+    s
+}
+
+/// A receipt as JSON (null when absent).
+pub fn receipt_json(r: Option<&Receipt>) -> Value {
+    match r {
+        Some(r) if !r.entry_hash.is_empty() => json!({
+            "holdout": r.holdout,
+            "entry": r.entry,
+            "entry_hash": r.entry_hash,
+            "salt": r.salt,
+        }),
+        _ => Value::Null,
+    }
+}
+
+/// An answer as JSON: the flat fields scripts read, plus the whole budget.
+pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
+    let b = a.budget.clone().unwrap_or_default();
+    let (lower, upper) = a.interval.as_ref().map_or((Value::Null, Value::Null), |i| {
+        (json!(i.lower), json!(i.upper))
+    });
+    let best_name = a
+        .best_model
+        .and_then(|m| model_names.get(m as usize))
+        .map_or(Value::Null, |n| json!(n));
+    json!({
+        "refused": false,
+        "query": a.query,
+        "target": a.target,
+        "symbol": a.symbol,
+        "score": a.score,
+        "lower": lower,
+        "upper": upper,
+        "delta_i": a.delta_i,
+        "level_nats": a.level_nats,
+        "code_nats": a.code_nats,
+        "spent": b.spent,
+        "remaining": b.remaining,
+        "transcript_nats": b.transcript_nats,
+        "next_half_width": b.next_half_width,
+        "queries_left": b.queries_left,
+        "budget": budget_json(&b),
+        "receipt": receipt_json(a.receipt.as_ref()),
+        "guarantee": a.guarantee,
+        "statement": a.statement,
+        "digest": a.digest,
+        "replayed": a.replayed,
+        "best_model": a.best_model,
+        "best_model_name": best_name,
+    })
+}
+
+/// An answer for people.
+pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
+    let mut s = format!("answer {} (target {})", a.query, a.target);
+    if a.replayed {
+        s.push_str(", replayed from the ledger: nothing charged");
+    }
+    s.push_str(&format!("\nsymbol     {}", a.symbol));
+    if let Some(m) = a.best_model {
+        let name = model_names.get(m as usize).map_or("", String::as_str);
+        s.push_str(&format!("\nbest model {m} {name}"));
+    }
+    if let Some(i) = &a.interval {
+        s.push_str(&format!(
+            "\ninterval   [{}, {}]",
+            num(i.lower),
+            num(i.upper)
+        ));
+    }
+    s.push_str(&format!(
+        "\nlevel      ln(1/d) = {} nats; share delta_i = {}; this answer's code {} nats",
+        num(a.level_nats),
+        num(a.delta_i),
+        num(a.code_nats)
+    ));
+    if let Some(b) = &a.budget {
+        s.push('\n');
+        s.push_str(&budget_text(b));
+    }
+    if let Some(r) = &a.receipt {
+        s.push_str(&format!(
+            "\nreceipt    entry {} hash {} salt {}",
+            r.entry, r.entry_hash, r.salt
+        ));
+    }
+    if !a.statement.is_empty() {
+        s.push_str(&format!("\nstatement  {}", a.statement));
+    }
+    s.push_str(&format!("\ndigest     {}", a.digest));
+    if !a.guarantee.is_empty() {
+        s.push_str("\n\n");
+        s.push_str(&a.guarantee);
+    }
+    s
+}
+
+/// A refusal as JSON.
+pub fn refusal_json(r: &Refusal) -> Value {
+    let b = r.budget.clone().unwrap_or_default();
+    json!({
+        "refused": true,
+        "reason": r.reason,
+        "message": r.message,
+        "remaining": b.remaining,
+        "budget": budget_json(&b),
+        "receipt": receipt_json(r.receipt.as_ref()),
+    })
+}
+
+/// A refusal for people.
+pub fn refusal_text(r: &Refusal) -> String {
+    let mut s = format!("refused ({}): {}", r.reason, r.message);
+    if let Some(b) = &r.budget {
+        s.push('\n');
+        s.push_str(&budget_text(b));
+    }
+    match &r.receipt {
+        Some(rc) if !rc.entry_hash.is_empty() => s.push_str(&format!(
+            "\nreceipt    entry {} hash {} salt {}",
+            rc.entry, rc.entry_hash, rc.salt
+        )),
+        _ => s.push_str("\nnothing was recorded"),
+    }
+    s
+}
+
+/// A quote as JSON.
+pub fn quote_json(q: &Quote) -> Value {
+    json!({
+        "dry_run": true,
+        "query": q.query,
+        "delta_i": q.delta_i,
+        "level_nats": q.level_nats,
+        "half_width": q.half_width,
+        "worst_code_nats": q.worst_code_nats,
+        "would_refuse": if q.would_refuse.is_empty() { Value::Null } else { json!(q.would_refuse) },
+        "budget": q.budget.as_ref().map_or(Value::Null, budget_json),
+    })
+}
+
+/// A quote for people.
+pub fn quote_text(q: &Quote) -> String {
+    let mut s = format!(
+        "dry run: nothing scored, charged or recorded\n\
+         query      {} would be answered at ln(1/d) = {} nats (share delta_i = {})\n\
+         half-width {} at the reference score\n\
+         cost       at most {} nats of code",
+        q.query,
+        num(q.level_nats),
+        num(q.delta_i),
+        num(q.half_width),
+        num(q.worst_code_nats)
+    );
+    if !q.would_refuse.is_empty() {
+        s.push_str(&format!("\nwould be refused: {}", q.would_refuse));
+    }
+    if let Some(b) = &q.budget {
+        s.push('\n');
+        s.push_str(&budget_text(b));
+    }
+    s
+}
+
+/// A policy as JSON.
+pub fn policy_json(p: &Policy) -> Value {
+    json!({
+        "delta": p.delta,
+        "schedule": p.schedule,
+        "answers": p.answers,
+        "tolerance": p.tolerance,
+        "sharing": p.sharing,
+        "tolerance_reference": p.tolerance_reference,
+        "shares": p.shares,
+        "daily_quota": p.daily_quota,
+    })
+}
+
+/// A policy on one line.
+pub fn policy_text(p: &Policy) -> String {
+    format!(
+        "delta {}, schedule {}, answers {}, tolerance {} ({}), sharing {}, shares {}, daily quota {}",
+        num(p.delta),
+        p.schedule,
+        p.answers,
+        num(p.tolerance),
+        p.tolerance_reference,
+        p.sharing,
+        p.shares,
+        if p.daily_quota == 0 {
+            "none".to_string()
+        } else {
+            p.daily_quota.to_string()
+        }
+    )
+}
+
+/// A target as JSON.
+pub fn target_json(t: &Target) -> Value {
+    json!({
+        "name": t.name,
+        "column": t.column,
+        "metric": t.metric,
+        "method": t.method,
+        "classes": t.classes,
+    })
+}
+
+/// A target on one line.
+pub fn target_text(t: &Target) -> String {
+    let classes = if t.classes.is_empty() {
+        "numeric labels".to_string()
+    } else {
+        format!("classes {}", t.classes.join(","))
+    };
+    format!(
+        "{} (column {}): metric {}, method {}, {}",
+        t.name, t.column, t.metric, t.method, classes
+    )
+}
+
+/// Holdout facts as JSON.
+pub fn holdout_json(h: &HoldoutInfo) -> Value {
+    json!({
+        "name": h.name,
+        "description": h.description,
+        "rows": h.rows,
+        "open": h.open,
+        "created_at": h.created_at,
+        "policy": h.policy.as_ref().map_or(Value::Null, policy_json),
+        "targets": h.targets.iter().map(target_json).collect::<Vec<_>>(),
+        "budget": h.budget.as_ref().map_or(Value::Null, budget_json),
+        "genesis_hash": h.genesis_hash,
+        "guarantee": h.guarantee,
+    })
+}
+
+/// Holdout facts for people.
+pub fn holdout_text(h: &HoldoutInfo) -> String {
+    let mut s = format!(
+        "holdout    {}{}\nrows       {}\ncreated    {}\n",
+        h.name,
+        if h.open { "" } else { " (closed)" },
+        h.rows,
+        h.created_at
+    );
+    if !h.description.is_empty() {
+        s.push_str(&format!("about      {}\n", h.description));
+    }
+    if let Some(p) = &h.policy {
+        s.push_str(&format!("policy     {}\n", policy_text(p)));
+    }
+    for t in &h.targets {
+        s.push_str(&format!("target     {}\n", target_text(t)));
+    }
+    s.push_str(&format!("genesis    {}", h.genesis_hash));
+    if let Some(b) = &h.budget {
+        s.push('\n');
+        s.push_str(&budget_text(b));
+    }
+    if !h.guarantee.is_empty() {
+        s.push_str("\n\n");
+        s.push_str(&h.guarantee);
+    }
+    s
+}
+
+/// A history entry as one JSON object.
+pub fn history_json(e: &HistoryEntry) -> Value {
+    json!({
+        "entry": e.entry,
+        "kind": e.kind,
+        "team": e.team,
+        "at": e.at,
+        "note": e.note,
+        "answer": e.answer.as_ref().map_or(Value::Null, |a| answer_json(a, &[])),
+        "refusal": e.refusal.as_ref().map_or(Value::Null, refusal_json),
+        "exact_scores": e.exact_scores,
+    })
+}
+
+/// A history entry as a table row: entry, time, team, kind, what was released.
+pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
+    let (query, what, interval) = match (&e.answer, &e.refusal) {
+        (Some(a), _) => (
+            a.query.to_string(),
+            format!("{} {}", a.target, a.symbol),
+            a.interval.as_ref().map_or(String::new(), |i| {
+                format!("[{}, {}]", num(i.lower), num(i.upper))
+            }),
+        ),
+        (None, Some(r)) => (
+            String::new(),
+            format!("refused: {}", r.reason),
+            String::new(),
+        ),
+        (None, None) => (String::new(), String::new(), String::new()),
+    };
+    let mut row = vec![
+        e.entry.to_string(),
+        e.at.clone(),
+        e.team.clone(),
+        query,
+        what,
+        interval,
+    ];
+    if exact {
+        row.push(
+            e.exact_scores
+                .iter()
+                .map(|x| format!("{x}"))
+                .collect::<Vec<_>>()
+                .join(" "),
+        );
+    }
+    row.push(e.note.clone());
+    row
+}
+
+/// A user as JSON.
+pub fn user_json(u: &UserInfo) -> Value {
+    json!({
+        "name": u.name,
+        "roles": u.roles,
+        "team": u.team,
+        "created_at": u.created_at,
+        "revoked": u.revoked,
+    })
+}
+
+/// A user as a table row: name, roles, team, created, state.
+pub fn user_row(u: &UserInfo) -> Vec<String> {
+    vec![
+        u.name.clone(),
+        u.roles.join(","),
+        u.team.clone(),
+        u.created_at.clone(),
+        if u.revoked { "revoked" } else { "active" }.to_string(),
+    ]
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn numbers_for_people() {
+        assert_eq!(num(0.05), "0.05");
+        assert_eq!(num(0.12345), "0.1235");
+        assert_eq!(num(1.0), "1");
+        assert_eq!(num(0.0), "0");
+        assert_eq!(num(2.5e-7), "2.500e-7");
+    }
+
+    #[test]
+    fn table_pads_columns() {
+        let t = table(&["a", "bb"], &[vec!["xxx".into(), "y".into()]]);
+        assert_eq!(t, "a    bb\nxxx  y");
+    }
+
+    #[test]
+    fn refusal_json_has_the_documented_keys() {
+        let r = Refusal {
+            reason: "budget-spent".into(),
+            message: "spent".into(),
+            budget: Some(Budget {
+                remaining: 0.0,
+                ..Default::default()
+            }),
+            receipt: None,
+        };
+        let v = refusal_json(&r);
+        assert_eq!(v["refused"], json!(true));
+        assert_eq!(v["reason"], json!("budget-spent"));
+        assert_eq!(v["remaining"], json!(0.0));
+        assert!(v["receipt"].is_null());
+    }
+}
