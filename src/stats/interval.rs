@@ -15,10 +15,10 @@
 //!
 //! ```
 //! use holdout_ledger::stats::interval::{errors_interval, Method, Sides};
-//! // 30 errors in 1000 rows at d = 0.05, two-sided (scipy 1.17.1: beta.ppf / beta.isf give
-//! // 0.020302..., 0.042597...).
+//! // 30 errors in 1000 rows at d = 0.05, two-sided (scipy 1.17.1 beta.ppf(0.025, 30, 971) and
+//! // beta.isf(0.025, 31, 970) give 0.0203305, 0.0425514).
 //! let ci = errors_interval(Method::Exact, 1000, 30, (1.0f64 / 0.05).ln(), Sides::Two).unwrap();
-//! assert!((ci.lower - 0.020302).abs() < 1e-5 && (ci.upper - 0.042597).abs() < 1e-5);
+//! assert!((ci.lower - 0.0203305).abs() < 1e-7 && (ci.upper - 0.0425514).abs() < 1e-7);
 //! ```
 
 use serde::{Deserialize, Serialize};
@@ -122,7 +122,9 @@ pub enum IntervalError {
     #[error("mean loss must lie in [0, 1], got {0}")]
     MeanOutOfRange(f64),
     /// Clopper-Pearson asked for a non-binary loss.
-    #[error("method 'exact' (Clopper-Pearson) needs a 0-1 loss (an error count); use 'kl' or 'hoeffding' for other losses")]
+    #[error(
+        "method 'exact' (Clopper-Pearson) needs a 0-1 loss (an error count); use 'kl' or 'hoeffding' for other losses"
+    )]
     ExactNeedsBinary,
     /// Unknown method name.
     #[error("unknown method '{0}': expected exact, kl or hoeffding")]
@@ -212,9 +214,9 @@ fn assemble(sides: Sides, lower: impl FnOnce() -> f64, upper: impl FnOnce() -> f
 /// # Example
 /// ```
 /// use holdout_ledger::stats::interval::{errors_interval, Method, Sides};
-/// // Zero errors, one-sided at d = 0.05: 1 - 0.05^(1/1000) = 0.0029914 (rule of three: 3/n).
+/// // Zero errors, one-sided at d = 0.05: 1 - 0.05^(1/1000) = 0.0029912 (rule of three: 3/n).
 /// let ci = errors_interval(Method::Exact, 1000, 0, (20.0f64).ln(), Sides::Upper).unwrap();
-/// assert!((ci.upper - 0.0029914).abs() < 1e-7);
+/// assert!((ci.upper - 0.0029912).abs() < 1e-7);
 /// // Hoeffding at n = 1000, d = 0.05 two-sided: half-width sqrt(ln 40 / 2000) = 0.04295.
 /// let h = errors_interval(Method::Hoeffding, 1000, 500, (20.0f64).ln(), Sides::Two).unwrap();
 /// assert!((h.half_width() - 0.04295).abs() < 5e-6);

@@ -89,9 +89,9 @@ mod tests {
 
     #[test]
     fn small_means_keep_relative_precision() {
-        // kl(0.001 || q) = 1e-3 has a root near 0.0025; computed without cancellation.
+        // kl(0.001 || q) = 1e-3 has its root near 0.00314; solved without cancellation.
         let q = upper(0.001, 1e-3);
-        assert!(q > 0.002 && q < 0.003, "{q}");
+        assert!(q > 0.003 && q < 0.0033, "{q}");
         let k = kl(0.001, Point::from_x(q));
         assert!((k / 1e-3 - 1.0).abs() < 1e-10);
     }

@@ -10,9 +10,13 @@
 //! | paired comparison of two models | [`paired`] |
 //! | planning: queries that fit, rows needed | [`plan`] |
 
+pub mod accounting;
 pub mod beta;
 pub mod interval;
 mod kl;
+pub mod policy;
+pub mod rules;
+pub mod schedule;
 
 /// Version of the accounting core, recorded in every holdout's genesis entry so that an audit
 /// can tell which rules produced a ledger. Bump it whenever any number this module computes

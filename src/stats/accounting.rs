@@ -1,0 +1,962 @@
+//! The accountant: the one function the daemon and the offline audit both call, so that a
+//! replay of the ledger recomputes exactly what was answered (DESIGN 4, 5).
+//!
+//! Protocol, per query:
+//! 1. [`Accountant::quote`] decides from public facts only (counts, earlier symbols, the
+//!    policy; never the score being answered) whether to refuse, and otherwise returns the
+//!    [`Charge`]: schedule index, `delta_i`, `level_nats = ln(1/delta_i) + L`, the reference
+//!    half-width. Nothing changes yet.
+//! 2. The caller scores the submission, then [`Accountant::answer`] with the exact
+//!    [`Outcome`]s: symbol, interval (from the symbol only), code; the transcript advances.
+//!    Under the `sealed` rule, [`Accountant::seal`] takes the share instead, and
+//!    [`Accountant::close_round`] releases every sealed model at once.
+//!
+//! Pools. With `shares: none` every analyst draws on one pool (global schedule index). With
+//! roster or on-arrival shares each analyst has a pool `delta_a` and their own schedule index.
+//! The transcript cost `L` is global under `shared` sharing and per analyst under `isolated`,
+//! where nothing an analyst sees depends on other analysts' queries.
+//!
+//! Determinism: the same policy and the same sequence of calls give bit-identical results on
+//! the same build and platform (f64 `ln`/`exp` come from the platform's math library).
+//!
+//! ```
+//! use holdout_ledger::stats::accounting::{Accountant, Outcome, QueryRequest};
+//! use holdout_ledger::stats::policy::Policy;
+//! let policy: Policy = serde_json::from_str(r#"{"delta": 0.05, "schedule": "series",
+//!     "rule": "rounded:0.01", "tolerance": 0.05, "rows": 10000,
+//!     "targets": [{"name": "y", "binary": true, "method": "exact"}]}"#).unwrap();
+//! let mut acc = Accountant::new(policy).unwrap();
+//! let req = QueryRequest { analyst: "team-a".into(), target: 0, models: 1 };
+//! let charge = acc.quote(&req).unwrap();
+//! // First query: delta_1 = 0.05 / 2, level ln(40) with no transcript yet.
+//! assert!((charge.level_nats - 40f64.ln()).abs() < 1e-12);
+//! let ans = acc.answer(&req, &charge, &[Outcome::Errors(1234)]).unwrap();
+//! assert_eq!(ans.released_score, Some(0.12));
+//! assert!((ans.code_nats - 101f64.ln()).abs() < 1e-12); // uniform over 101 cells
+//! assert!(ans.interval.contains(0.1234));
+//! ```
+
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+use super::interval::reference_half_width;
+use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
+use super::policy::{Policy, PolicyError, Sharing, ToleranceReference};
+use super::rules::{KtCounts, Past, Rule, Symbol};
+use super::schedule::Shares;
+
+/// A request to answer `models` predictions of one analyst on one target.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct QueryRequest {
+    /// The accounting identity (a team is one analyst).
+    pub analyst: String,
+    /// Index of the target in the policy.
+    pub target: usize,
+    /// Number of models; more than 1 only for `best-of`.
+    pub models: u32,
+}
+
+/// The exact loss of one model: what the scorer measured.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Outcome {
+    /// 0-1 loss: number of errors among the rows.
+    Errors(u64),
+    /// Bounded loss: sum over rows of the loss in [0, 1].
+    LossSum(f64),
+}
+
+/// Why a query is refused; decided from public facts only.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, thiserror::Error)]
+#[serde(tag = "reason", rename_all = "snake_case")]
+pub enum Refusal {
+    /// The schedule has no share left (`even:K` after K queries of the pool).
+    #[error("the schedule is exhausted after {answered} queries")]
+    ScheduleExhausted {
+        /// Queries already funded by the pool.
+        answered: u64,
+    },
+    /// The next interval would be wider than the tolerance at the public reference score.
+    #[error("the next half-width {half_width:.4} would exceed the tolerance {tolerance}")]
+    ToleranceExceeded {
+        /// Half-width the query would get at the reference score.
+        half_width: f64,
+        /// The policy's tolerance.
+        tolerance: f64,
+    },
+    /// The analyst has no share of delta (not on the roster and no reserve).
+    #[error("analyst '{analyst}' has no share of this holdout's budget")]
+    NoShare {
+        /// The analyst.
+        analyst: String,
+    },
+    /// The request does not fit the policy.
+    #[error("bad request: {0}")]
+    BadRequest(String),
+}
+
+/// Misuse of the accountant by its caller (not something an analyst causes).
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum AccountingError {
+    /// The charge was quoted for another state or another request.
+    #[error("stale or mismatched charge: quote again")]
+    StaleCharge,
+    /// Outcomes do not fit the request or the target.
+    #[error("bad outcome: {0}")]
+    BadOutcome(String),
+    /// The call does not fit the policy's rule.
+    #[error("{0}")]
+    WrongRule(&'static str),
+    /// An invalid policy.
+    #[error(transparent)]
+    Policy(#[from] PolicyError),
+}
+
+/// What a query will be charged; returned by [`Accountant::quote`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Charge {
+    /// Accountant state this charge was quoted at (a later call makes it stale).
+    pub sequence: u64,
+    /// The request quoted.
+    pub request: QueryRequest,
+    /// Schedule index of the (first) share: global with one pool, else the analyst's own.
+    pub query_number: u64,
+    /// Shares of the schedule taken (the batch size; 1 otherwise).
+    pub shares: u32,
+    /// `delta_i` of the share the reported interval uses (the smallest of a batch).
+    pub delta_i: f64,
+    /// `ln(1/delta_i)`.
+    pub ln_inv_delta_i: f64,
+    /// `ln(1/d_i) = ln(1/delta_i) + L_{i-1}`: the level of the reported interval.
+    pub level_nats: f64,
+    /// Transcript cost `L_{i-1}` the level includes.
+    pub transcript_nats: f64,
+    /// Sum of `delta_i` over the shares taken: what the budget is charged.
+    pub delta_charged: f64,
+    /// Half-width at the public reference score, compared with the tolerance.
+    pub reference_half_width: f64,
+}
+
+/// What an answer reports (DESIGN 4.4).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Answer {
+    /// The released symbol.
+    pub symbol: Symbol,
+    /// The released grid value, where the symbol carries one.
+    pub released_score: Option<f64>,
+    /// The interval, computed from the symbol only.
+    pub interval: Interval,
+    /// A plain sentence saying what the symbol certifies.
+    pub statement: String,
+    /// Schedule index of the (first) share.
+    pub query_number: u64,
+    /// `delta_i` of the interval.
+    pub delta_i: f64,
+    /// `ln(1/d_i)` of the interval.
+    pub level_nats: f64,
+    /// `-ln p(symbol | past)` added to the transcript.
+    pub code_nats: f64,
+    /// Budget the pool has used (sum of `delta_i`).
+    pub spent: f64,
+    /// Budget the pool has left.
+    pub remaining: f64,
+    /// Transcript cost `L` after this answer.
+    pub transcript_nats: f64,
+    /// Worst-case half-width of this analyst's next query on this target.
+    pub next_half_width: f64,
+    /// How many more queries fit within the tolerance if every later answer costs the worst case.
+    pub queries_left: u64,
+}
+
+/// Budget status of a pool (DESIGN 4.4).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Status {
+    /// The analyst asked about (`None`: the whole holdout, organizer view).
+    pub analyst: Option<String>,
+    /// The pool's budget (`delta` or the analyst's share `delta_a`; 0 if none yet).
+    pub budget: f64,
+    /// Used.
+    pub spent: f64,
+    /// Left.
+    pub remaining: f64,
+    /// Transcript cost `L` the next query pays.
+    pub transcript_nats: f64,
+    /// Answers released in the transcript.
+    pub answers: u64,
+    /// Schedule index of the next query.
+    pub next_query_number: u64,
+    /// `ln(1/d)` of the next query, if the schedule has a share left.
+    pub next_level_nats: Option<f64>,
+    /// Per target: worst-case half-width of the next query and queries left.
+    pub targets: Vec<TargetStatus>,
+}
+
+/// Per-target part of a [`Status`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TargetStatus {
+    /// Target name.
+    pub name: String,
+    /// Half-width of the next query at the reference score (`None` when exhausted).
+    pub next_half_width: Option<f64>,
+    /// Queries that still fit within the tolerance, every answer costing the worst case.
+    pub queries_left: u64,
+}
+
+/// Receipt of a sealed submission: its share is taken, its answer waits for the close.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SealedReceipt {
+    /// Position in the round (0-based); outcomes at the close come in this order.
+    pub ticket: usize,
+    /// The charge taken.
+    pub charge: Charge,
+}
+
+#[derive(Debug, Clone, Default)]
+struct Transcript {
+    nats: f64,
+    answers: u64,
+    threshold: Vec<KtCounts>,
+}
+
+impl Transcript {
+    fn kt(&self, target: usize) -> KtCounts {
+        self.threshold.get(target).copied().unwrap_or_default()
+    }
+}
+
+#[derive(Debug, Clone)]
+struct AnalystState {
+    /// `ln(1/w_a)`: `None` with one pool.
+    ln_inv_weight: Option<f64>,
+    queries: u64,
+    spent: f64,
+    transcript: Transcript,
+    ladder: Vec<KtCounts>,
+    best_cell: Vec<u64>,
+    last_value: Vec<Option<f64>>,
+}
+
+/// The accounting state of one holdout. See the module documentation for the protocol.
+#[derive(Debug, Clone)]
+pub struct Accountant {
+    policy: Policy,
+    ln_inv_delta: f64,
+    sequence: u64,
+    pool_queries: u64,
+    spent: f64,
+    arrivals: u64,
+    transcript: Transcript,
+    analysts: BTreeMap<String, AnalystState>,
+    pending: Vec<SealedReceipt>,
+}
+
+/// One pool's public facts, gathered for a quote or a forecast.
+struct PoolView<'a> {
+    ln_inv_weight: f64,
+    used: u64,
+    transcript: &'a Transcript,
+    past_ladder: KtCounts,
+    best_cell: u64,
+    last_value: Option<f64>,
+}
+
+impl Accountant {
+    /// A fresh accountant; validates the policy.
+    pub fn new(policy: Policy) -> Result<Accountant, AccountingError> {
+        policy.validate()?;
+        let targets = policy.targets.len();
+        Ok(Accountant {
+            ln_inv_delta: -policy.delta.ln(),
+            sequence: 0,
+            pool_queries: 0,
+            spent: 0.0,
+            arrivals: 0,
+            transcript: Transcript {
+                threshold: vec![KtCounts::default(); targets],
+                ..Transcript::default()
+            },
+            analysts: BTreeMap::new(),
+            pending: Vec::new(),
+            policy,
+        })
+    }
+
+    /// The policy.
+    pub fn policy(&self) -> &Policy {
+        &self.policy
+    }
+
+    /// Sealed submissions waiting for the close.
+    pub fn pending(&self) -> &[SealedReceipt] {
+        &self.pending
+    }
+
+    fn per_analyst_pool(&self) -> bool {
+        self.policy.shares != Shares::None
+    }
+
+    fn new_analyst_weight(&self, analyst: &str) -> Option<f64> {
+        let shares = &self.policy.shares;
+        let on_roster = shares.on_roster(analyst);
+        shares.ln_inv_weight(on_roster, if on_roster { 0 } else { self.arrivals + 1 })
+    }
+
+    fn fresh_analyst(&self, ln_inv_weight: Option<f64>) -> AnalystState {
+        let t = self.policy.targets.len();
+        let start = Past::start(&self.policy.rule, self.policy.rows);
+        AnalystState {
+            ln_inv_weight,
+            queries: 0,
+            spent: 0.0,
+            transcript: Transcript {
+                threshold: vec![KtCounts::default(); t],
+                ..Transcript::default()
+            },
+            ladder: vec![KtCounts::default(); t],
+            best_cell: vec![start.best_cell; t],
+            last_value: vec![None; t],
+        }
+    }
+
+    /// The pool of `analyst` as the next query would see it; `Err` if it has no share.
+    fn view(&self, analyst: &str, target: usize) -> Result<PoolView<'_>, Refusal> {
+        let fresh;
+        let state = match self.analysts.get(analyst) {
+            Some(s) => s,
+            None => {
+                let w = if self.per_analyst_pool() {
+                    Some(
+                        self.new_analyst_weight(analyst)
+                            .ok_or_else(|| Refusal::NoShare {
+                                analyst: analyst.to_string(),
+                            })?,
+                    )
+                } else {
+                    None
+                };
+                fresh = self.fresh_analyst(w);
+                &fresh
+            }
+        };
+        let isolated = self.policy.sharing == Sharing::Isolated;
+        let view = PoolView {
+            ln_inv_weight: state.ln_inv_weight.unwrap_or(0.0),
+            used: if self.per_analyst_pool() {
+                state.queries
+            } else {
+                self.pool_queries
+            },
+            transcript: if isolated {
+                // Borrow from the stored state when present; a fresh analyst has an empty one.
+                self.analysts
+                    .get(analyst)
+                    .map_or(&EMPTY_TRANSCRIPT, |s| &s.transcript)
+            } else {
+                &self.transcript
+            },
+            past_ladder: state.ladder[target],
+            best_cell: state.best_cell[target],
+            last_value: state.last_value[target],
+        };
+        Ok(view)
+    }
+
+    fn reference_mean(&self, view: &PoolView<'_>) -> f64 {
+        match self.policy.tolerance_reference {
+            ToleranceReference::WorstCase => 0.5,
+            ToleranceReference::LastReleased => view.last_value.unwrap_or(0.5),
+        }
+    }
+
+    fn half_width(&self, target: usize, reference: f64, level_nats: f64) -> f64 {
+        let t = &self.policy.targets[target];
+        let method = effective_method(t.binary, t.method);
+        reference_half_width(
+            method,
+            self.policy.rows,
+            reference,
+            level_nats,
+            self.policy.rule.sides(),
+        )
+        .unwrap_or(f64::INFINITY)
+    }
+
+    /// Decides whether the query is answered and at what charge; changes nothing.
+    pub fn quote(&self, req: &QueryRequest) -> Result<Charge, Refusal> {
+        let policy = &self.policy;
+        if req.target >= policy.targets.len() {
+            return Err(Refusal::BadRequest(format!(
+                "target {} does not exist (the holdout has {})",
+                req.target,
+                policy.targets.len()
+            )));
+        }
+        if req.models == 0 {
+            return Err(Refusal::BadRequest(
+                "a query needs at least one model".into(),
+            ));
+        }
+        if req.models > 1 && !matches!(policy.rule, Rule::BestOf(_)) {
+            return Err(Refusal::BadRequest(format!(
+                "batches of models are answered only under best-of; this holdout's rule is {}",
+                policy.rule
+            )));
+        }
+        let view = self.view(&req.analyst, req.target)?;
+        let base = self.ln_inv_delta + view.ln_inv_weight;
+        let mut delta_charged = 0.0;
+        let mut ln_inv_last = 0.0;
+        for b in 0..u64::from(req.models) {
+            let frac = policy.schedule.ln_inv_fraction(view.used + 1 + b).ok_or(
+                Refusal::ScheduleExhausted {
+                    answered: view.used,
+                },
+            )?;
+            ln_inv_last = base + frac;
+            delta_charged += (-ln_inv_last).exp();
+        }
+        let transcript_nats = view.transcript.nats;
+        let level_nats = ln_inv_last + transcript_nats;
+        let reference = self.reference_mean(&view);
+        let h = self.half_width(req.target, reference, level_nats);
+        if h > policy.tolerance {
+            return Err(Refusal::ToleranceExceeded {
+                half_width: h,
+                tolerance: policy.tolerance,
+            });
+        }
+        Ok(Charge {
+            sequence: self.sequence,
+            request: req.clone(),
+            query_number: view.used + 1,
+            shares: req.models,
+            delta_i: (-ln_inv_last).exp(),
+            ln_inv_delta_i: ln_inv_last,
+            level_nats,
+            transcript_nats,
+            delta_charged,
+            reference_half_width: h,
+        })
+    }
+
+    fn check_charge(&self, req: &QueryRequest, charge: &Charge) -> Result<(), AccountingError> {
+        if charge.sequence != self.sequence || &charge.request != req {
+            return Err(AccountingError::StaleCharge);
+        }
+        Ok(())
+    }
+
+    fn check_outcomes(
+        &self,
+        req: &QueryRequest,
+        outcomes: &[Outcome],
+    ) -> Result<(), AccountingError> {
+        if outcomes.len() != req.models as usize {
+            return Err(AccountingError::BadOutcome(format!(
+                "{} outcomes for {} models",
+                outcomes.len(),
+                req.models
+            )));
+        }
+        let n = self.policy.rows;
+        let binary = self.policy.targets[req.target].binary;
+        for o in outcomes {
+            match (*o, binary) {
+                (Outcome::Errors(k), true) if k <= n => {}
+                (Outcome::LossSum(s), false) if (0.0..=n as f64).contains(&s) => {}
+                _ => {
+                    return Err(AccountingError::BadOutcome(format!(
+                        "{o:?} does not fit a {} target of {n} rows",
+                        if binary { "0-1 loss" } else { "bounded loss" }
+                    )));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// Takes the charge's shares and registers a new analyst; returns the analyst's state.
+    fn take_shares(&mut self, charge: &Charge) -> &mut AnalystState {
+        let analyst = &charge.request.analyst;
+        if !self.analysts.contains_key(analyst) {
+            let w = if self.per_analyst_pool() {
+                if !self.policy.shares.on_roster(analyst) {
+                    self.arrivals += 1;
+                }
+                let on_roster = self.policy.shares.on_roster(analyst);
+                self.policy
+                    .shares
+                    .ln_inv_weight(on_roster, if on_roster { 0 } else { self.arrivals })
+            } else {
+                None
+            };
+            let fresh = self.fresh_analyst(w);
+            self.analysts.insert(analyst.clone(), fresh);
+        }
+        self.sequence += 1;
+        self.pool_queries += u64::from(charge.shares);
+        self.spent += charge.delta_charged;
+        let state = self.analysts.get_mut(analyst).expect("inserted above");
+        state.queries += u64::from(charge.shares);
+        state.spent += charge.delta_charged;
+        state
+    }
+
+    /// Answers a quoted query from the exact outcomes (one per model): computes the symbol,
+    /// the interval from the symbol alone, the code, and advances the transcript.
+    pub fn answer(
+        &mut self,
+        req: &QueryRequest,
+        charge: &Charge,
+        outcomes: &[Outcome],
+    ) -> Result<Answer, AccountingError> {
+        self.check_charge(req, charge)?;
+        if matches!(self.policy.rule, Rule::Sealed(_)) {
+            return Err(AccountingError::WrongRule(
+                "the sealed rule answers at close_round; use seal",
+            ));
+        }
+        self.check_outcomes(req, outcomes)?;
+        let view = self
+            .view(&req.analyst, req.target)
+            .map_err(|_| AccountingError::StaleCharge)?;
+        let past = Past {
+            threshold: view.transcript.kt(req.target),
+            ladder: view.past_ladder,
+            best_cell: view.best_cell,
+            models: req.models,
+        };
+        let symbol = self.symbol(req.target, charge.level_nats, &past, outcomes);
+        let rule = self.policy.rule;
+        let rows = self.policy.rows;
+        let code = rule.code_nats(rows, &past, &symbol);
+        debug_assert!(code.is_finite(), "released symbol {symbol:?} has p = 0");
+        let (interval, released) = self.interval_of(req.target, &symbol, &past, charge.level_nats);
+        let isolated = self.policy.sharing == Sharing::Isolated;
+        let target = req.target;
+        let state = self.take_shares(charge);
+        match symbol {
+            Symbol::NoImprovement => state.ladder[target].record(false),
+            Symbol::NewBest { cell } => {
+                state.ladder[target].record(true);
+                state.best_cell[target] = cell;
+            }
+            _ => {}
+        }
+        if released.is_some() {
+            state.last_value[target] = released;
+        }
+        let transcript = if isolated {
+            &mut state.transcript
+        } else {
+            &mut self.transcript
+        };
+        transcript.nats += code;
+        transcript.answers += 1;
+        match symbol {
+            Symbol::Pass => transcript.threshold[target].record(true),
+            Symbol::Fail => transcript.threshold[target].record(false),
+            _ => {}
+        }
+        Ok(self.finish(req, charge, symbol, released, interval, code))
+    }
+
+    fn finish(
+        &self,
+        req: &QueryRequest,
+        charge: &Charge,
+        symbol: Symbol,
+        released_score: Option<f64>,
+        interval: Interval,
+        code_nats: f64,
+    ) -> Answer {
+        let status = self.status(Some(&req.analyst));
+        let t = &status.targets[req.target];
+        Answer {
+            statement: symbol.statement(&self.policy.rule, self.policy.rows),
+            symbol,
+            released_score,
+            interval,
+            query_number: charge.query_number,
+            delta_i: charge.delta_i,
+            level_nats: charge.level_nats,
+            code_nats,
+            spent: status.spent,
+            remaining: status.remaining,
+            transcript_nats: status.transcript_nats,
+            next_half_width: t.next_half_width.unwrap_or(f64::INFINITY),
+            queries_left: t.queries_left,
+        }
+    }
+
+    fn mean_of(&self, o: &Outcome) -> f64 {
+        let n = self.policy.rows as f64;
+        match *o {
+            Outcome::Errors(k) => k as f64 / n,
+            Outcome::LossSum(s) => s / n,
+        }
+    }
+
+    fn cell_of(&self, o: &Outcome) -> u64 {
+        let grid = self.policy.rule.grid(self.policy.rows).expect("grid rule");
+        match *o {
+            Outcome::Errors(k) => grid.cell_of_errors(self.policy.rows, k),
+            Outcome::LossSum(_) => grid.cell_of_mean(self.mean_of(o)),
+        }
+    }
+
+    fn symbol(&self, target: usize, level_nats: f64, past: &Past, outcomes: &[Outcome]) -> Symbol {
+        match self.policy.rule {
+            Rule::Rounded(_) | Rule::Sealed(_) => Symbol::Cell {
+                index: self.cell_of(&outcomes[0]),
+            },
+            Rule::Threshold { tau } => {
+                let t = &self.policy.targets[target];
+                let n = self.policy.rows;
+                let method = effective_method(t.binary, t.method);
+                let upper = match outcomes[0] {
+                    Outcome::Errors(k) => errors_interval(method, n, k, level_nats, Sides::Upper),
+                    Outcome::LossSum(_) => mean_interval(
+                        method,
+                        n,
+                        self.mean_of(&outcomes[0]),
+                        level_nats,
+                        Sides::Upper,
+                    ),
+                }
+                .map_or(1.0, |ci| ci.upper);
+                if upper <= tau {
+                    Symbol::Pass
+                } else {
+                    Symbol::Fail
+                }
+            }
+            Rule::Ladder(_) => {
+                let cell = self.cell_of(&outcomes[0]);
+                if cell < past.best_cell {
+                    Symbol::NewBest { cell }
+                } else {
+                    Symbol::NoImprovement
+                }
+            }
+            Rule::BestOf(_) => {
+                let key = |o: &Outcome| match *o {
+                    Outcome::Errors(k) => k as f64,
+                    Outcome::LossSum(s) => s,
+                };
+                let mut best = 0usize;
+                for (i, o) in outcomes.iter().enumerate() {
+                    if key(o) < key(&outcomes[best]) {
+                        best = i;
+                    }
+                }
+                Symbol::Best {
+                    model: best as u32,
+                    cell: self.cell_of(&outcomes[best]),
+                }
+            }
+        }
+    }
+
+    /// The reported interval and released value, from the symbol (and public past) only.
+    fn interval_of(
+        &self,
+        target: usize,
+        symbol: &Symbol,
+        past: &Past,
+        level: f64,
+    ) -> (Interval, Option<f64>) {
+        let t = &self.policy.targets[target];
+        let n = self.policy.rows;
+        let grid = self.policy.rule.grid(n);
+        let cell_interval = |j: u64| {
+            let g = grid.expect("grid rule");
+            let ci = g
+                .interval(
+                    j,
+                    n,
+                    t.binary,
+                    effective_method(t.binary, t.method),
+                    level,
+                    Sides::Two,
+                )
+                .unwrap_or(Interval::FULL);
+            (ci, g.value(j))
+        };
+        match *symbol {
+            Symbol::Cell { index: j }
+            | Symbol::NewBest { cell: j }
+            | Symbol::Best { cell: j, .. } => {
+                let (ci, v) = cell_interval(j);
+                (ci, Some(v))
+            }
+            // The interval for the analyst's best true error so far, from the standing best cell.
+            Symbol::NoImprovement => (cell_interval(past.best_cell).0, None),
+            Symbol::Pass => match self.policy.rule {
+                Rule::Threshold { tau } => (
+                    Interval {
+                        lower: 0.0,
+                        upper: tau,
+                    },
+                    None,
+                ),
+                _ => (Interval::FULL, None),
+            },
+            Symbol::Fail => (Interval::FULL, None),
+        }
+    }
+
+    /// Takes a sealed submission's share now (its level uses the transcript as it stands);
+    /// its answer is released by [`Accountant::close_round`].
+    pub fn seal(
+        &mut self,
+        req: &QueryRequest,
+        charge: &Charge,
+    ) -> Result<SealedReceipt, AccountingError> {
+        self.check_charge(req, charge)?;
+        if !matches!(self.policy.rule, Rule::Sealed(_)) {
+            return Err(AccountingError::WrongRule(
+                "seal is only for the sealed rule",
+            ));
+        }
+        if req.models != 1 {
+            return Err(AccountingError::BadOutcome(
+                "one model per sealed submission".into(),
+            ));
+        }
+        self.take_shares(charge);
+        let receipt = SealedReceipt {
+            ticket: self.pending.len(),
+            charge: charge.clone(),
+        };
+        self.pending.push(receipt.clone());
+        Ok(receipt)
+    }
+
+    /// Closes the round: releases every sealed model's cell with the level fixed at its
+    /// submission. `outcomes[i]` is the exact outcome of ticket `i`. The codes (`ln(M+1)` each)
+    /// are added to the transcript after all answers are formed, so a later round pays for
+    /// them; if the close is the holdout's last event, nobody does.
+    pub fn close_round(&mut self, outcomes: &[Outcome]) -> Result<Vec<Answer>, AccountingError> {
+        if outcomes.len() != self.pending.len() {
+            return Err(AccountingError::BadOutcome(format!(
+                "{} outcomes for {} sealed submissions",
+                outcomes.len(),
+                self.pending.len()
+            )));
+        }
+        for (r, o) in self.pending.iter().zip(outcomes) {
+            self.check_outcomes(&r.charge.request, std::slice::from_ref(o))?;
+        }
+        let pending = std::mem::take(&mut self.pending);
+        let rows = self.policy.rows;
+        let rule = self.policy.rule;
+        let mut formed = Vec::with_capacity(pending.len());
+        for (r, o) in pending.iter().zip(outcomes) {
+            let past = Past::start(&rule, rows);
+            let symbol = Symbol::Cell {
+                index: self.cell_of(o),
+            };
+            let code = rule.code_nats(rows, &past, &symbol);
+            let (interval, released) =
+                self.interval_of(r.charge.request.target, &symbol, &past, r.charge.level_nats);
+            formed.push((r, symbol, released, interval, code));
+        }
+        for (r, _, released, _, code) in &formed {
+            let req = &r.charge.request;
+            let isolated = self.policy.sharing == Sharing::Isolated;
+            let state = self
+                .analysts
+                .get_mut(&req.analyst)
+                .expect("sealed analyst registered");
+            state.last_value[req.target] = *released;
+            let transcript = if isolated {
+                &mut state.transcript
+            } else {
+                &mut self.transcript
+            };
+            transcript.nats += code;
+            transcript.answers += 1;
+        }
+        self.sequence += 1;
+        Ok(formed
+            .iter()
+            .map(|(r, symbol, released, interval, code)| {
+                self.finish(
+                    &r.charge.request,
+                    &r.charge,
+                    *symbol,
+                    *released,
+                    *interval,
+                    *code,
+                )
+            })
+            .collect())
+    }
+
+    /// Budget status. With `Some(analyst)`: that analyst's pool and transcript (safe to show the
+    /// analyst; under `isolated` it reveals nothing about other analysts). With `None`: the
+    /// whole holdout, for the organizer (under `isolated` never show it to analysts).
+    pub fn status(&self, analyst: Option<&str>) -> Status {
+        let budget_of = |w: f64| (-(self.ln_inv_delta + w)).exp();
+        let targets = self.policy.targets.len();
+        match analyst {
+            None => {
+                let (budget, answers, nats) = (
+                    self.policy.delta,
+                    self.transcript.answers,
+                    self.transcript.nats,
+                );
+                let answers = if self.policy.sharing == Sharing::Isolated {
+                    self.analysts.values().map(|a| a.transcript.answers).sum()
+                } else {
+                    answers
+                };
+                Status {
+                    analyst: None,
+                    budget,
+                    spent: self.spent,
+                    remaining: (budget - self.spent).max(0.0),
+                    transcript_nats: nats,
+                    answers,
+                    next_query_number: self.pool_queries + 1,
+                    next_level_nats: None,
+                    targets: self
+                        .policy
+                        .targets
+                        .iter()
+                        .map(|t| TargetStatus {
+                            name: t.name.clone(),
+                            next_half_width: None,
+                            queries_left: 0,
+                        })
+                        .collect(),
+                }
+            }
+            Some(a) => {
+                let Ok(view) = self.view(a, 0) else {
+                    return Status {
+                        analyst: Some(a.to_string()),
+                        budget: 0.0,
+                        spent: 0.0,
+                        remaining: 0.0,
+                        transcript_nats: 0.0,
+                        answers: 0,
+                        next_query_number: 1,
+                        next_level_nats: None,
+                        targets: self
+                            .policy
+                            .targets
+                            .iter()
+                            .map(|t| TargetStatus {
+                                name: t.name.clone(),
+                                next_half_width: None,
+                                queries_left: 0,
+                            })
+                            .collect(),
+                    };
+                };
+                let budget = budget_of(view.ln_inv_weight);
+                let spent = if self.per_analyst_pool() {
+                    self.analysts.get(a).map_or(0.0, |s| s.spent)
+                } else {
+                    self.spent
+                };
+                let next_level = self
+                    .policy
+                    .schedule
+                    .ln_inv_fraction(view.used + 1)
+                    .map(|f| self.ln_inv_delta + view.ln_inv_weight + f + view.transcript.nats);
+                let per_target = (0..targets)
+                    .map(|t| {
+                        let v = self.view(a, t).expect("checked above");
+                        self.forecast(t, &v, next_level)
+                    })
+                    .collect();
+                Status {
+                    analyst: Some(a.to_string()),
+                    budget,
+                    spent,
+                    remaining: (budget - spent).max(0.0),
+                    transcript_nats: view.transcript.nats,
+                    answers: view.transcript.answers,
+                    next_query_number: view.used + 1,
+                    next_level_nats: next_level,
+                    targets: per_target,
+                }
+            }
+        }
+    }
+
+    fn forecast(
+        &self,
+        target: usize,
+        view: &PoolView<'_>,
+        next_level: Option<f64>,
+    ) -> TargetStatus {
+        let reference = self.reference_mean(view);
+        let next_half_width = next_level.map(|l| self.half_width(target, reference, l));
+        let past = Past {
+            threshold: view.transcript.kt(target),
+            ladder: view.past_ladder,
+            best_cell: view.best_cell,
+            models: 1,
+        };
+        let base = self.ln_inv_delta + view.ln_inv_weight;
+        let queries_left = count_fitting(
+            |j| {
+                let frac = self
+                    .policy
+                    .schedule
+                    .ln_inv_fraction(view.used.checked_add(1 + j)?)?;
+                let cost = self.policy.rule.worst_case_nats(self.policy.rows, &past, j);
+                Some(base + frac + view.transcript.nats + cost)
+            },
+            |level| self.half_width(target, reference, level) <= self.policy.tolerance,
+        );
+        TargetStatus {
+            name: self.policy.targets[target].name.clone(),
+            next_half_width,
+            queries_left,
+        }
+    }
+}
+
+static EMPTY_TRANSCRIPT: Transcript = Transcript {
+    nats: 0.0,
+    answers: 0,
+    threshold: Vec::new(),
+};
+
+/// Exact needs counts; on bounded losses KL stands in (policy validation forbids the pair).
+fn effective_method(binary: bool, method: Method) -> Method {
+    if !binary && method == Method::Exact {
+        Method::Kl
+    } else {
+        method
+    }
+}
+
+/// How many `j = 0, 1, ...` have `fits(level(j))`, where `level` is non-decreasing in `j` and
+/// `None` once the schedule is exhausted, and `fits` is monotone (true below a threshold).
+/// Exponential then binary search; saturates at `u64::MAX`.
+pub(crate) fn count_fitting(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f64) -> bool) -> u64 {
+    let ok = |j: u64| level(j).is_some_and(&fits);
+    if !ok(0) {
+        return 0;
+    }
+    let mut lo = 0u64; // ok(lo)
+    let mut hi = 1u64;
+    while ok(hi) {
+        lo = hi;
+        if hi >= u64::MAX / 2 {
+            return u64::MAX;
+        }
+        hi *= 2;
+    }
+    while hi - lo > 1 {
+        let mid = lo + (hi - lo) / 2;
+        if ok(mid) { lo = mid } else { hi = mid }
+    }
+    lo + 1
+}
