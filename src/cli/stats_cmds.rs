@@ -1,1 +1,372 @@
-//! The `bound` and `plan` commands (being written).
+//! The `bound` and `plan` commands: local computations that need no daemon.
+//!
+//! `main` wires them as subcommands; each `run_*` prints to stdout and returns the exit code.
+
+use std::process::ExitCode;
+
+use anyhow::{Context, bail};
+use clap::Args;
+use serde_json::json;
+
+use crate::stats::interval::{Interval, Method, Sides, errors_interval, mean_interval};
+use crate::stats::plan::{PlanRow, PlanSpec, plan_table, rows_table};
+use crate::stats::rules::Rule;
+use crate::stats::schedule::Schedule;
+
+/// `holdout bound`: the interval for one score.
+#[derive(Debug, Clone, Args)]
+pub struct BoundArgs {
+    /// Rows in the test set (n).
+    #[arg(long)]
+    pub rows: u64,
+    /// Number of errors (0-1 loss) among the rows (k <= n).
+    #[arg(long, conflicts_with = "mean", required_unless_present = "mean")]
+    pub errors: Option<u64>,
+    /// Mean loss in [0, 1] instead of an error count (method kl unless told otherwise).
+    #[arg(long)]
+    pub mean: Option<f64>,
+    /// FAILURE probability D, e.g. 0.05 for an interval that holds with probability 0.95.
+    /// This is not the confidence: pass 0.05, never 0.95.
+    #[arg(long)]
+    pub delta: f64,
+    /// exact (Clopper-Pearson, error counts only), kl or hoeffding [default: exact with
+    /// --errors, kl with --mean].
+    #[arg(long, value_parser = parse_method)]
+    pub method: Option<Method>,
+    /// Print a one-sided upper bound at the full level D (the lower limit is then 0).
+    #[arg(long)]
+    pub one_sided: bool,
+    /// Print JSON: {"lower", "upper", "method", "delta", ...}.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// `holdout plan`: how many queries fit, or how many rows a number of queries needs.
+#[derive(Debug, Clone, Args)]
+pub struct PlanArgs {
+    /// Rows in the test set (n); gives the queries that fit.
+    #[arg(long, conflicts_with = "queries", required_unless_present = "queries")]
+    pub rows: Option<u64>,
+    /// Number of queries wanted; gives the rows needed instead.
+    #[arg(long)]
+    pub queries: Option<u64>,
+    /// Total FAILURE probability of the holdout, e.g. 0.05 (not the confidence 0.95).
+    #[arg(long)]
+    pub delta: f64,
+    /// Widest half-width still worth answering, e.g. 0.02.
+    #[arg(long)]
+    pub tolerance: f64,
+    /// Budget schedule: series, or even:K.
+    #[arg(long, default_value = "series")]
+    pub schedule: String,
+    /// Answer rules to compare (rounded:ETA, threshold:TAU, ladder:ETA, best-of:ETA, sealed).
+    #[arg(long = "answers", num_args = 1.., default_values_t = default_rules())]
+    pub answers: Vec<String>,
+    /// Also count queries at this expected error (the worst case is always shown).
+    #[arg(long)]
+    pub expected_error: Option<f64>,
+    /// Interval method: exact (0-1 loss), kl or hoeffding.
+    #[arg(long, value_parser = parse_method, default_value = "exact")]
+    pub method: Method,
+    /// Models per best-of batch.
+    #[arg(long, default_value_t = 10)]
+    pub batch: u32,
+    /// Print JSON: a list of {"rule", "queries"[, "queries_expected"]} or {"rule", "rows"}.
+    #[arg(long)]
+    pub json: bool,
+}
+
+fn default_rules() -> Vec<String> {
+    [
+        "sealed",
+        "threshold:0.5",
+        "ladder:0.01",
+        "best-of:0.01",
+        "rounded:0.01",
+    ]
+    .map(String::from)
+    .to_vec()
+}
+
+fn parse_method(s: &str) -> Result<Method, String> {
+    s.parse().map_err(|e| format!("{e}"))
+}
+
+fn check_delta(delta: f64) -> anyhow::Result<()> {
+    if !(delta > 0.0 && delta < 1.0) {
+        bail!(
+            "--delta is the failure probability and must lie in (0, 1), e.g. 0.05 for 95 % \
+             confidence; got {delta}"
+        );
+    }
+    Ok(())
+}
+
+/// Computes the interval of `holdout bound`.
+pub fn bound_interval(args: &BoundArgs) -> anyhow::Result<(Interval, Method)> {
+    check_delta(args.delta)?;
+    let level = -args.delta.ln();
+    let sides = if args.one_sided {
+        Sides::Upper
+    } else {
+        Sides::Two
+    };
+    let ci = match (args.errors, args.mean) {
+        (Some(_), Some(_)) => bail!("give either --errors or --mean, not both"),
+        (None, None) => bail!("give --errors K (0-1 loss) or --mean M (a mean loss in [0, 1])"),
+        (Some(k), None) => {
+            let method = args.method.unwrap_or(Method::Exact);
+            if k > args.rows {
+                bail!("--errors {k} is more than --rows {}", args.rows);
+            }
+            (errors_interval(method, args.rows, k, level, sides)?, method)
+        }
+        (None, Some(m)) => {
+            let method = args.method.unwrap_or(Method::Kl);
+            if method == Method::Exact {
+                bail!(
+                    "--method exact (Clopper-Pearson) needs --errors; use kl or hoeffding with --mean"
+                );
+            }
+            (mean_interval(method, args.rows, m, level, sides)?, method)
+        }
+    };
+    Ok(ci)
+}
+
+/// Runs `holdout bound`.
+pub fn run_bound(args: &BoundArgs) -> anyhow::Result<ExitCode> {
+    let (ci, method) = bound_interval(args)?;
+    if args.json {
+        let v = json!({
+            "lower": ci.lower,
+            "upper": ci.upper,
+            "method": method.to_string(),
+            "delta": args.delta,
+            "rows": args.rows,
+            "errors": args.errors,
+            "mean": args.mean,
+            "one_sided": args.one_sided,
+        });
+        println!("{v}");
+    } else {
+        let what = if args.one_sided {
+            "one-sided upper bound"
+        } else {
+            "two-sided interval"
+        };
+        println!("[{:.6}, {:.6}]", ci.lower, ci.upper);
+        println!(
+            "{what}, method {method}: holds with probability at least {} (delta = {} is the \
+             failure probability), for rows drawn independently and a model fixed without \
+             looking at these labels",
+            1.0 - args.delta,
+            args.delta
+        );
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Computes the rows of `holdout plan`.
+pub fn plan_rows(args: &PlanArgs) -> anyhow::Result<Vec<PlanRow>> {
+    check_delta(args.delta)?;
+    if !(args.tolerance > 0.0 && args.tolerance <= 1.0) {
+        bail!("--tolerance must lie in (0, 1], got {}", args.tolerance);
+    }
+    if let Some(p) = args.expected_error
+        && !(0.0..=1.0).contains(&p)
+    {
+        bail!("--expected-error must lie in [0, 1], got {p}");
+    }
+    let schedule: Schedule = args.schedule.parse().context("--schedule")?;
+    let rules = args
+        .answers
+        .iter()
+        .map(|s| s.parse::<Rule>().with_context(|| format!("--answers {s}")))
+        .collect::<anyhow::Result<Vec<Rule>>>()?;
+    let spec = |rows| PlanSpec {
+        rows,
+        delta: args.delta,
+        tolerance: args.tolerance,
+        schedule,
+        method: args.method,
+        batch: args.batch.max(1),
+    };
+    Ok(match (args.rows, args.queries) {
+        (Some(n), None) if n > 0 => plan_table(&spec(n), &rules, args.expected_error),
+        (None, Some(k)) if k > 0 => rows_table(&spec(1), &rules, k),
+        (Some(_), None) => bail!("--rows must be at least 1"),
+        (None, Some(_)) => bail!("--queries must be at least 1"),
+        _ => bail!("give either --rows N (queries that fit) or --queries K (rows needed)"),
+    })
+}
+
+fn count_text(q: Option<f64>) -> String {
+    match q {
+        None => "-".into(),
+        Some(q) if q < 1e15 => format!("{q:.0}"),
+        Some(q) => format!("{q:.1e}"),
+    }
+}
+
+/// Runs `holdout plan`.
+pub fn run_plan(args: &PlanArgs) -> anyhow::Result<ExitCode> {
+    let rows = plan_rows(args)?;
+    if args.json {
+        println!("{}", serde_json::to_string(&rows)?);
+        return Ok(ExitCode::SUCCESS);
+    }
+    let width = rows.iter().map(|r| r.rule.len()).max().unwrap_or(4).max(4);
+    if let Some(k) = args.queries {
+        println!("{:width$}  rows needed for {k} queries", "rule");
+        for r in &rows {
+            let n = r.rows.map_or("> 2^62".into(), |n| n.to_string());
+            println!("{:width$}  {n}", r.rule);
+        }
+    } else {
+        let expected = args
+            .expected_error
+            .map(|p| format!("  at error {p}"))
+            .unwrap_or_default();
+        println!("{:width$}  worst case{expected}", "rule");
+        for r in &rows {
+            let e = if args.expected_error.is_some() {
+                format!("  {:>10}", count_text(r.queries_expected))
+            } else {
+                String::new()
+            };
+            println!("{:width$}  {:>10}{e}", r.rule, count_text(r.queries));
+        }
+    }
+    println!(
+        "Queries (best-of: batches of {}) whose half-width stays within {} using method {} and \
+         schedule {}, every answer costing its rule's worst-case code; sealed counts one round \
+         released as the last event. Valid simultaneously with probability at least {} if rows \
+         are drawn independently, submissions see the labels only through released answers, and \
+         analysts share answers as the policy declares.",
+        args.batch.max(1),
+        args.tolerance,
+        args.method,
+        args.schedule,
+        1.0 - args.delta
+    );
+    Ok(ExitCode::SUCCESS)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::Parser;
+
+    #[derive(Parser)]
+    struct Bound {
+        #[command(flatten)]
+        args: BoundArgs,
+    }
+
+    #[derive(Parser)]
+    struct Plan {
+        #[command(flatten)]
+        args: PlanArgs,
+    }
+
+    fn bound(argv: &[&str]) -> anyhow::Result<(Interval, Method)> {
+        let parsed = Bound::try_parse_from(std::iter::once("bound").chain(argv.iter().copied()))?;
+        bound_interval(&parsed.args)
+    }
+
+    #[test]
+    fn bound_defaults_and_errors() {
+        let (ci, m) = bound(&[
+            "--rows",
+            "1000",
+            "--errors",
+            "0",
+            "--delta",
+            "0.05",
+            "--one-sided",
+        ])
+        .unwrap();
+        assert_eq!(m, Method::Exact);
+        assert!((ci.upper - (1.0 - 0.05f64.powf(1e-3))).abs() < 1e-12);
+        let (_, m) = bound(&["--rows", "100", "--mean", "0.3", "--delta", "0.05"]).unwrap();
+        assert_eq!(m, Method::Kl);
+        let e = bound(&["--rows", "10", "--errors", "11", "--delta", "0.05"]).unwrap_err();
+        assert!(e.to_string().contains("more than"), "{e}");
+        let e = bound(&["--rows", "10", "--errors", "1", "--delta", "0.95"]);
+        assert!(
+            e.is_ok(),
+            "0.95 is a legal (if useless) failure probability"
+        );
+        let e = bound(&["--rows", "10", "--errors", "1", "--delta", "1.5"]).unwrap_err();
+        assert!(e.to_string().contains("failure probability"), "{e}");
+        assert!(bound(&["--rows", "10", "--delta", "0.05"]).is_err());
+        assert!(
+            bound(&[
+                "--rows", "10", "--errors", "1", "--mean", "0.1", "--delta", "0.05"
+            ])
+            .is_err()
+        );
+        let e = bound(&[
+            "--rows", "10", "--mean", "0.1", "--method", "exact", "--delta", "0.05",
+        ])
+        .unwrap_err();
+        assert!(e.to_string().contains("needs --errors"), "{e}");
+    }
+
+    #[test]
+    fn help_says_delta_is_the_failure_probability() {
+        use clap::CommandFactory;
+        let help = Bound::command().render_long_help().to_string();
+        assert!(help.contains("FAILURE probability"), "{help}");
+        assert!(help.contains("not the confidence"), "{help}");
+    }
+
+    #[test]
+    fn plan_json_shape() {
+        let p = Plan::try_parse_from([
+            "plan",
+            "--rows",
+            "10000",
+            "--delta",
+            "0.05",
+            "--tolerance",
+            "0.05",
+            "--method",
+            "hoeffding",
+            "--answers",
+            "rounded:0.01",
+            "threshold:0.1",
+            "--expected-error",
+            "0.1",
+        ])
+        .unwrap();
+        let rows = plan_rows(&p.args).unwrap();
+        let v = serde_json::to_value(&rows).unwrap();
+        assert_eq!(v[0]["rule"], "rounded:0.01");
+        assert_eq!(v[0]["queries"], 10.0);
+        assert!(v[1]["queries_expected"].as_f64().unwrap() >= v[1]["queries"].as_f64().unwrap());
+        let p = Plan::try_parse_from([
+            "plan",
+            "--queries",
+            "10",
+            "--delta",
+            "0.05",
+            "--tolerance",
+            "0.05",
+            "--method",
+            "hoeffding",
+            "--answers",
+            "rounded:0.01",
+        ])
+        .unwrap();
+        let rows = plan_rows(&p.args).unwrap();
+        let n = rows[0].rows.unwrap();
+        assert!((9_000..=10_000).contains(&n), "{n}");
+        assert!(
+            serde_json::to_value(&rows).unwrap()[0]
+                .get("queries")
+                .is_none()
+        );
+    }
+}

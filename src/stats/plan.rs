@@ -1,0 +1,166 @@
+//! Planning (DESIGN 4.7): how many queries fit within a tolerance, and how many rows `K`
+//! queries need, with exactly the interval method, reference score and accounting the
+//! accountant uses (one pool, every answer costing its rule's worst case).
+//!
+//! Query `j + 1` (0-based `j` answers before it) gets level
+//! `ln(1/delta) + ln(1/s(i)) + W(j)`, `W(j)` the rule's worst-case code of `j` answers
+//! ([`Rule::worst_case_nats`]), `i` its last schedule share; it fits while the half-width at
+//! the reference score is at most the tolerance. For `best-of` a query is a batch of `B`
+//! models that takes `B` shares. For `sealed` (one round released as the last event) the code
+//! is 0, so the count is the non-adaptive one and can exceed `u64`: counts are f64.
+//!
+//! ```
+//! use holdout_ledger::stats::plan::{PlanSpec, queries_that_fit};
+//! use holdout_ledger::stats::interval::Method;
+//! // DESIGN 4.5: Hoeffding, n = 10,000, delta = 0.05, series, tolerance 0.05, rounded 0.01: 10.
+//! let spec = PlanSpec { rows: 10_000, delta: 0.05, tolerance: 0.05,
+//!     schedule: "series".parse().unwrap(), method: Method::Hoeffding, batch: 1 };
+//! assert_eq!(queries_that_fit(&spec, &"rounded:0.01".parse().unwrap(), 0.5), 10.0);
+//! ```
+
+use serde::{Deserialize, Serialize};
+
+use super::accounting::count_fitting;
+use super::interval::{Method, reference_half_width};
+use super::rules::{Past, Rule};
+use super::schedule::Schedule;
+
+/// Everything a plan depends on besides the rule.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PlanSpec {
+    /// Rows `n`.
+    pub rows: u64,
+    /// Total budget.
+    pub delta: f64,
+    /// Widest acceptable half-width.
+    pub tolerance: f64,
+    /// Schedule of the pool.
+    pub schedule: Schedule,
+    /// Interval method (exact for 0-1 loss).
+    pub method: Method,
+    /// Models per `best-of` batch.
+    pub batch: u32,
+}
+
+/// One row of a plan table.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PlanRow {
+    /// The rule.
+    pub rule: String,
+    /// Queries that fit, worst case (reference score 1/2).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub queries: Option<f64>,
+    /// Queries that fit at the stated expected error.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub queries_expected: Option<f64>,
+    /// Rows needed for the requested number of queries (`None` past 2^62).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub rows: Option<u64>,
+}
+
+fn half_width_fits(spec: &PlanSpec, rule: &Rule, reference: f64, level: f64) -> bool {
+    reference_half_width(spec.method, spec.rows, reference, level, rule.sides())
+        .is_ok_and(|h| h <= spec.tolerance)
+}
+
+fn models(rule: &Rule, spec: &PlanSpec) -> u64 {
+    if matches!(rule, Rule::BestOf(_)) {
+        u64::from(spec.batch.max(1))
+    } else {
+        1
+    }
+}
+
+/// Queries (batches, for best-of) that fit, at reference score `reference` (1/2: worst case).
+pub fn queries_that_fit(spec: &PlanSpec, rule: &Rule, reference: f64) -> f64 {
+    let ln_inv_delta = -spec.delta.ln();
+    let b = models(rule, spec);
+    let mut past = Past::start(rule, spec.rows);
+    past.models = b as u32;
+    let count = count_fitting(
+        |j| {
+            let frac = spec
+                .schedule
+                .ln_inv_fraction(j.checked_add(1)?.checked_mul(b)?)?;
+            Some(ln_inv_delta + frac + rule.worst_case_nats(spec.rows, &past, j))
+        },
+        |level| half_width_fits(spec, rule, reference, level),
+    );
+    if count < u64::MAX / 4 {
+        return count as f64;
+    }
+    // Code-free and open-ended: invert the series schedule in f64.
+    let max_level = max_fitting_level(spec, rule, reference);
+    let y = max_level - ln_inv_delta;
+    // Largest i with i (i + 1) <= e^y.
+    let i = (0.5 * y).exp() - 0.5;
+    i.floor().max(count as f64)
+}
+
+/// The largest level (nats) whose half-width at `reference` is within the tolerance.
+pub fn max_fitting_level(spec: &PlanSpec, rule: &Rule, reference: f64) -> f64 {
+    let fits = |l: f64| half_width_fits(spec, rule, reference, l);
+    let (mut lo, mut hi) = (0.0f64, 1.0f64);
+    while fits(hi) {
+        lo = hi;
+        hi *= 2.0;
+        if hi > 1e300 {
+            return f64::INFINITY;
+        }
+    }
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if mid <= lo || mid >= hi {
+            break;
+        }
+        if fits(mid) { lo = mid } else { hi = mid }
+    }
+    lo
+}
+
+/// The smallest `n` for which at least `queries` queries fit (worst case); `None` past 2^62.
+pub fn rows_needed(spec: &PlanSpec, rule: &Rule, queries: u64) -> Option<u64> {
+    let fits = |n: u64| {
+        let s = PlanSpec {
+            rows: n,
+            ..spec.clone()
+        };
+        queries_that_fit(&s, rule, 0.5) >= queries as f64
+    };
+    let (mut lo, mut hi) = (0u64, 1u64); // !fits(lo) (n = 0 answers nothing), fits(hi) sought
+    while !fits(hi) {
+        lo = hi;
+        hi = hi.checked_mul(2).filter(|h| *h <= 1 << 62)?;
+    }
+    while hi - lo > 1 {
+        let mid = lo + (hi - lo) / 2;
+        if fits(mid) { hi = mid } else { lo = mid }
+    }
+    Some(hi)
+}
+
+/// A side-by-side table: queries that fit per rule (and at the expected error when given).
+pub fn plan_table(spec: &PlanSpec, rules: &[Rule], expected_error: Option<f64>) -> Vec<PlanRow> {
+    rules
+        .iter()
+        .map(|r| PlanRow {
+            rule: r.to_string(),
+            queries: Some(queries_that_fit(spec, r, 0.5)),
+            queries_expected: expected_error.map(|p| queries_that_fit(spec, r, p)),
+            rows: None,
+        })
+        .collect()
+}
+
+/// A table of rows needed per rule for `queries` queries.
+pub fn rows_table(spec: &PlanSpec, rules: &[Rule], queries: u64) -> Vec<PlanRow> {
+    rules
+        .iter()
+        .map(|r| PlanRow {
+            rule: r.to_string(),
+            queries: None,
+            queries_expected: None,
+            rows: rows_needed(spec, r, queries),
+        })
+        .collect()
+}
