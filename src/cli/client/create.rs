@@ -321,7 +321,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     )?;
     let targets = declare(&table, &specs, args.classes.as_deref())?;
     let policy = policy_of(args);
-    let plan = super::plan::describe(table.len() as u64, &policy, &targets, args.expected_error);
+    let plan = super::plan::describe(table.len() as u64, &policy, &targets, args.expected_error)?;
     if args.json && args.preview {
         show::print_json(&json!({
             "preview": true,

@@ -1,9 +1,21 @@
-//! What a policy buys for `n` rows, printed by `create` before anything is sent.
+//! What a policy buys for `n` rows, printed by `create` before anything is sent: per target, the
+//! first answer's worst-case half-width and how many queries fit within the tolerance under the
+//! chosen answer rule and a few alternatives, at the worst case and at an expected error. The
+//! numbers come from the statistics core's planning functions ([`crate::stats::plan`]), the ones
+//! the daemon's accountant uses.
 
 use serde_json::{Value, json};
 
 use super::show;
+use crate::error::{Error, Result};
 use crate::proto::v1::{Policy, Target};
+use crate::stats::interval::{Method, reference_half_width};
+use crate::stats::plan::{PlanSpec, plan_table};
+use crate::stats::rules::Rule;
+use crate::stats::schedule::Schedule;
+
+/// Models per batch assumed when planning a `best-of` rule.
+const PLAN_BATCH: u32 = 2;
 
 /// A plan in both renderings.
 #[derive(Debug, Clone)]
@@ -14,15 +26,171 @@ pub struct Plan {
     pub json: Value,
 }
 
-/// Describes what the policy buys for `n` rows.
-pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64) -> Plan {
-    let _ = expected_error;
-    let mut text = format!("{n} rows\npolicy     {}", show::policy_text(policy));
-    for t in targets {
-        text.push_str(&format!("\ntarget     {}", show::target_text(t)));
+/// A count of queries for people: exact below a million, rounded above.
+fn count(q: f64) -> String {
+    if q < 1e6 {
+        format!("{}", q as u64)
+    } else {
+        format!("~{q:.1e}")
     }
-    Plan {
+}
+
+/// Describes what the policy buys for `n` rows.
+///
+/// # Errors
+/// [`Error::InvalidArgument`] for a schedule, answer rule or method the core does not accept,
+/// so a bad policy is caught before anything is sent.
+pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64) -> Result<Plan> {
+    let schedule: Schedule = policy
+        .schedule
+        .parse()
+        .map_err(|e| Error::invalid("--schedule", format!("{e}")))?;
+    let rule: Rule = policy
+        .answers
+        .parse()
+        .map_err(|e| Error::invalid("--answers", format!("{e}")))?;
+    if !(expected_error > 0.0 && expected_error < 1.0) {
+        return Err(Error::invalid(
+            "--expected-error",
+            format!("must lie in (0, 1), got {expected_error}"),
+        ));
+    }
+    let mut rules = vec![rule];
+    for alt in [
+        "rounded:0.01".to_string(),
+        format!("threshold:{expected_error}"),
+        "ladder:0.01".to_string(),
+        "sealed".to_string(),
+    ] {
+        if let Ok(r) = alt.parse::<Rule>() {
+            if !rules.contains(&r) {
+                rules.push(r);
+            }
+        }
+    }
+    let mut text = format!(
+        "{n} rows; policy: {}\nWhat the policy buys (queries that fit before the half-width passes \
+         the tolerance {}, every answer coded at its worst case; {} = the chosen rule):",
+        show::policy_text(policy),
+        show::num(policy.tolerance),
+        "*"
+    );
+    let mut per_target = Vec::new();
+    for t in targets {
+        let method: Method = t
+            .method
+            .parse()
+            .map_err(|e| Error::invalid("--target", format!("method of {}: {e}", t.name)))?;
+        let spec = PlanSpec {
+            rows: n,
+            delta: policy.delta,
+            tolerance: policy.tolerance,
+            schedule,
+            method,
+            batch: PLAN_BATCH,
+        };
+        let first_level = schedule.ln_inv_fraction(1).map(|f| -policy.delta.ln() + f);
+        let first_hw =
+            first_level.and_then(|l| reference_half_width(method, n, 0.5, l, rule.sides()).ok());
+        let table = plan_table(&spec, &rules, Some(expected_error));
+        let rows: Vec<Vec<String>> = table
+            .iter()
+            .enumerate()
+            .map(|(i, r)| {
+                vec![
+                    format!("{}{}", if i == 0 { "* " } else { "  " }, r.rule),
+                    r.queries.map_or("-".into(), count),
+                    r.queries_expected.map_or("-".into(), count),
+                ]
+            })
+            .collect();
+        let expected_col = format!("at expected loss {}", show::num(expected_error));
+        text.push_str(&format!(
+            "\n\ntarget {} ({}, method {}): first answer's half-width {} at worst\n{}",
+            t.name,
+            t.metric,
+            method,
+            first_hw.map_or("-".to_string(), show::num),
+            show::table(&["rule", "worst case", &expected_col], &rows)
+        ));
+        per_target.push(json!({
+            "target": t.name,
+            "method": method.to_string(),
+            "first_half_width": first_hw,
+            "rules": table,
+        }));
+    }
+    if matches!(rule, Rule::BestOf(_)) {
+        text.push_str(&format!(
+            "\n(best-of counts batches of {PLAN_BATCH} models; each model takes a share)"
+        ));
+    }
+    Ok(Plan {
         text,
-        json: json!({ "rows": n, "policy": show::policy_json(policy) }),
+        json: json!({
+            "rows": n,
+            "expected_error": expected_error,
+            "policy": show::policy_json(policy),
+            "targets": per_target,
+        }),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn policy(answers: &str, schedule: &str) -> Policy {
+        Policy {
+            delta: 0.05,
+            schedule: schedule.into(),
+            answers: answers.into(),
+            tolerance: 0.05,
+            ..Default::default()
+        }
+    }
+
+    fn target(method: &str) -> Target {
+        Target {
+            name: "y".into(),
+            column: "y".into(),
+            metric: "error".into(),
+            method: method.into(),
+            classes: vec![],
+        }
+    }
+
+    #[test]
+    fn design_magnitudes_show_up() {
+        // DESIGN 4.5: Hoeffding, n = 10,000, delta 0.05, series, tolerance 0.05, rounded 0.01: 10.
+        let p = describe(
+            10_000,
+            &policy("rounded:0.01", "series"),
+            &[target("hoeffding")],
+            0.1,
+        )
+        .expect("plan");
+        assert_eq!(
+            p.json["targets"][0]["rules"][0]["queries"], 10.0,
+            "{}",
+            p.json
+        );
+        assert!(p.text.contains("* rounded:0.01"), "{}", p.text);
+        assert!(p.text.contains("sealed"), "{}", p.text);
+    }
+
+    #[test]
+    fn bad_policy_parts_are_named() {
+        let t = [target("exact")];
+        for (answers, schedule, field) in [
+            ("rounded:0.01", "weekly", "--schedule"),
+            ("coin", "series", "--answers"),
+        ] {
+            match describe(100, &policy(answers, schedule), &t, 0.1) {
+                Err(Error::InvalidArgument { field: f, .. }) => assert_eq!(f, field),
+                other => panic!("expected a refusal, got {other:?}"),
+            }
+        }
+        assert!(describe(100, &policy("rounded:0.01", "series"), &t, 1.5).is_err());
     }
 }
