@@ -34,7 +34,11 @@ const TABLE: [(u64, f64, f64, f64, f64, f64); 4] = [
 fn rounded_and_exact_score_columns_match_design_table() {
     for (n, tol, _, _, rounded, exact) in TABLE {
         assert_eq!(fit(n, tol, "rounded:0.01"), rounded, "n={n} tol={tol}");
-        assert_eq!(fit(n, tol, &format!("rounded:1/{n}")), exact, "n={n} tol={tol}");
+        assert_eq!(
+            fit(n, tol, &format!("rounded:1/{n}")),
+            exact,
+            "n={n} tol={tol}"
+        );
     }
 }
 
@@ -44,7 +48,10 @@ fn non_adaptive_column_matches_to_two_digits() {
     for (n, tol, non_adaptive, ..) in TABLE {
         let got = fit(n, tol, "sealed");
         let ratio = got / non_adaptive;
-        assert!((0.9..1.1).contains(&ratio), "n={n} tol={tol}: {got:e} vs {non_adaptive:e}");
+        assert!(
+            (0.9..1.1).contains(&ratio),
+            "n={n} tol={tol}: {got:e} vs {non_adaptive:e}"
+        );
     }
 }
 
@@ -54,7 +61,10 @@ fn threshold_column_is_at_least_the_two_sided_figure() {
     // (ln(1/d) instead of ln(2/d)), so our counts are a little larger, never smaller.
     for (n, tol, _, kt, ..) in TABLE {
         let got = fit(n, tol, "threshold:0.1");
-        assert!(got >= kt && got <= kt * 1.05 + 2.0, "n={n} tol={tol}: {got} vs {kt}");
+        assert!(
+            got >= kt && got <= kt * 1.05 + 2.0,
+            "n={n} tol={tol}: {got} vs {kt}"
+        );
     }
 }
 

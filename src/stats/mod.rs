@@ -14,6 +14,7 @@ pub mod accounting;
 pub mod beta;
 pub mod interval;
 mod kl;
+pub mod paired;
 pub mod plan;
 pub mod policy;
 pub mod rules;
