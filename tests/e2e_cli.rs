@@ -351,7 +351,7 @@ fn submits_until_the_budget_is_spent_then_refuses() {
 fn bad_inputs_exit_with_their_codes_and_charge_nothing() {
     let d = Daemon::start();
     let parts = Parts::new(N);
-    create_qc(&d, "qc", &[]);
+    create_qc(&d, "qc", &["--tolerance", "0.2"]);
     let carol = d.add_user("carol", &["analyst"], None);
     let good = d.write("good.csv", &parts.defect_predictions(10, 0));
     // One answer first, so "nothing charged" is checked against a non-trivial state.
@@ -609,7 +609,7 @@ fn roles_are_enforced() {
 fn a_request_id_is_answered_once() {
     let d = Daemon::start();
     let parts = Parts::new(N);
-    create_qc(&d, "qc", &[]);
+    create_qc(&d, "qc", &["--tolerance", "0.2"]);
     let gina = d.add_user("gina", &["analyst"], None);
     let p1 = d.write("p1.csv", &parts.defect_predictions(10, 0));
     let p2 = d.write("p2.csv", &parts.defect_predictions(10, 3));
@@ -762,6 +762,8 @@ fn a_best_of_batch_names_the_best_model() {
         "defect",
         "--answers",
         "best-of:0.01",
+        "--schedule",
+        "even:10",
         "--tolerance",
         "0.3",
     ])
@@ -778,6 +780,7 @@ fn a_best_of_batch_names_the_best_model() {
         .json();
     assert_eq!(a["best_model"], 1, "{a}");
     assert_eq!(a["best_model_name"], "better.csv");
+    // Under even:10 every share is delta/10, so a batch of two spends exactly two of them.
     let b = budget(&d, &hana, "bo");
     let delta_i = a["delta_i"].as_f64().expect("delta_i");
     let spent = b["spent"].as_f64().expect("spent");

@@ -104,3 +104,54 @@ async fn dispatch(cmd: ClientCommand) -> anyhow::Result<ExitCode> {
         ClientCommand::Whoami(args) => admin::whoami(&args).await,
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use clap::Subcommand;
+
+    use super::ClientCommand;
+
+    #[test]
+    fn the_command_line_is_consistent() {
+        ClientCommand::augment_subcommands(clap::Command::new("holdout")).debug_assert();
+    }
+
+    #[test]
+    fn flags_parse_as_documented() {
+        let cmd = ClientCommand::augment_subcommands(clap::Command::new("holdout"));
+        let m = cmd
+            .clone()
+            .try_get_matches_from([
+                "holdout",
+                "submit",
+                "h",
+                "--predictions",
+                "a.csv",
+                "b.csv",
+                "--max-cost",
+                "2",
+            ])
+            .expect("submit parses");
+        let (name, sub) = m.subcommand().expect("subcommand");
+        assert_eq!(name, "submit");
+        let files: Vec<&std::path::PathBuf> = sub.get_many("predictions").expect("files").collect();
+        assert_eq!(files.len(), 2);
+        assert!(
+            cmd.clone()
+                .try_get_matches_from(["holdout", "create", "h", "--labels", "l.csv"])
+                .is_err(),
+            "create needs --metric or --target"
+        );
+        assert!(
+            cmd.clone()
+                .try_get_matches_from(["holdout", "ids", "h", "--json"])
+                .is_err(),
+            "ids --json needs --out"
+        );
+        assert!(
+            cmd.try_get_matches_from(["holdout", "user", "add", "u", "--role", "owner"])
+                .is_err(),
+            "unknown role"
+        );
+    }
+}
