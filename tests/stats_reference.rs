@@ -62,5 +62,10 @@ fn clopper_pearson_matches_scipy_to_1e_9_relative() {
         }
     }
     println!("worst relative error: {:e} at {}", worst.0, worst.1);
-    assert!(worst.0 <= 1e-9, "worst relative error {:e}: {}", worst.0, worst.1);
+    assert!(
+        worst.0 <= 1e-9,
+        "worst relative error {:e}: {}",
+        worst.0,
+        worst.1
+    );
 }
