@@ -3,9 +3,10 @@
 //! | concept | module |
 //! |---|---|
 //! | `ln I_x(a, b)` in log space and its inversion | [`beta`] |
-//! | one-query intervals (Clopper-Pearson, KL, Hoeffding) | [`interval`] |
+//! | one-query intervals (Clopper-Pearson, KL, Hoeffding) | [`interval`] (KL inversion in `kl`) |
 //! | how the budget is split over queries and analysts | [`schedule`] |
 //! | answer rules, their symbols and codes | [`rules`] |
+//! | a holdout's policy and the guarantee sentence | [`policy`] |
 //! | the accountant the daemon and the audit share | [`accounting`] |
 //! | paired comparison of two models | [`paired`] |
 //! | planning: queries that fit, rows needed | [`plan`] |
