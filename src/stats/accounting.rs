@@ -960,3 +960,28 @@ pub(crate) fn count_fitting(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f6
     }
     lo + 1
 }
+
+impl Accountant {
+    /// The most nats the next answer to `req` could add to the transcript, whatever its
+    /// symbol: what a dry run shows and what `--max-cost` is compared with. Decided from public
+    /// facts only.
+    pub fn worst_code_nats(&self, req: &QueryRequest) -> Result<f64, Refusal> {
+        if req.target >= self.policy.targets.len() {
+            return Err(Refusal::BadRequest(format!(
+                "target {} does not exist",
+                req.target
+            )));
+        }
+        let view = self.view(&req.analyst, req.target)?;
+        let past = Past {
+            threshold: view.transcript.kt(req.target),
+            ladder: view.past_ladder,
+            best_cell: view.best_cell,
+            models: req.models,
+        };
+        Ok(self
+            .policy
+            .rule
+            .worst_case_nats(self.policy.rows, &past, 1))
+    }
+}
