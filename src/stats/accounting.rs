@@ -979,9 +979,6 @@ impl Accountant {
             best_cell: view.best_cell,
             models: req.models,
         };
-        Ok(self
-            .policy
-            .rule
-            .worst_case_nats(self.policy.rows, &past, 1))
+        Ok(self.policy.rule.worst_case_nats(self.policy.rows, &past, 1))
     }
 }

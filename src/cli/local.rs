@@ -1,0 +1,146 @@
+//! Commands that work on a local database file: `serve` and `init`.
+
+use std::fs::OpenOptions;
+use std::io::Write;
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::sync::Arc;
+
+use anyhow::Context;
+use clap::Args;
+
+use crate::auth::{self, Role};
+use crate::engine::{Db, Engine, SystemClock};
+use crate::error::Error;
+use crate::server::{DEFAULT_LISTEN, serve as serve_on};
+use crate::service::Daemon;
+use crate::store::Store;
+
+/// `holdout serve`.
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// Database file (created and migrated if needed). It holds the labels in clear: keep its
+    /// permissions tight (new files are created readable by their owner only).
+    #[arg(long, env = "HOLDOUT_DB", default_value = "holdout.db")]
+    pub db: PathBuf,
+    /// Address to listen on. Loopback by default; use a non-loopback address only behind TLS or
+    /// a trusted network. Port 0 picks a free port (printed on stdout).
+    #[arg(long, default_value = DEFAULT_LISTEN)]
+    pub listen: String,
+    /// Log filter (tracing's env-filter syntax), e.g. `info` or `holdout_ledger=debug`.
+    #[arg(long, env = "HOLDOUT_LOG", default_value = "info")]
+    pub log: String,
+}
+
+/// `holdout init`.
+#[derive(Debug, Args)]
+pub struct InitArgs {
+    /// Database file to create.
+    #[arg(long, env = "HOLDOUT_DB", default_value = "holdout.db")]
+    pub db: PathBuf,
+    /// Where to write the first user's token (created readable by its owner only; must not exist).
+    #[arg(long)]
+    pub token_out: PathBuf,
+    /// Name of the first user, who gets the custodian and organizer roles.
+    #[arg(long, default_value = "custodian")]
+    pub name: String,
+}
+
+/// Runs the daemon until ctrl-c or SIGTERM.
+pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
+    let filter = tracing_subscriber::EnvFilter::try_new(&args.log)
+        .map_err(|e| Error::invalid("--log", e.to_string()))?;
+    tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .init();
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+        .context("starting the async runtime")?;
+    runtime.block_on(async move {
+        let store = Store::open(&args.db)
+            .with_context(|| format!("opening database {}", args.db.display()))?;
+        let db = Db::spawn(Engine::new(store, Arc::new(SystemClock)));
+        let listener = tokio::net::TcpListener::bind(&args.listen)
+            .await
+            .with_context(|| format!("listening on {}", args.listen))?;
+        let addr = listener.local_addr()?;
+        // Tests and scripts read this line to learn the port when they passed port 0.
+        println!("listening on {addr}");
+        std::io::stdout().flush()?;
+        serve_on(listener, Daemon::new(db), shutdown_signal()).await?;
+        Ok(ExitCode::SUCCESS)
+    })
+}
+
+async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {},
+        _ = term => {},
+    }
+}
+
+/// Creates a database and its first user.
+pub fn init(args: InitArgs) -> anyhow::Result<ExitCode> {
+    let mut store =
+        Store::open(&args.db).with_context(|| format!("opening database {}", args.db.display()))?;
+    let conn = store.conn();
+    let users: i64 = conn.query_row("SELECT count(*) FROM users", [], |r| r.get(0))?;
+    if users > 0 {
+        return Err(Error::FailedPrecondition(format!(
+            "{} already has users; add more with `holdout user add`",
+            args.db.display()
+        ))
+        .into());
+    }
+    let mut options = OpenOptions::new();
+    options.write(true).create_new(true);
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::OpenOptionsExt;
+        options.mode(0o600);
+    }
+    let mut file = options.open(&args.token_out).map_err(|e| {
+        Error::invalid(
+            "--token-out",
+            format!(
+                "cannot create {}: {e} (it must not exist yet)",
+                args.token_out.display()
+            ),
+        )
+    })?;
+    let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+    let (user, token) = auth::add_user(
+        &tx,
+        &args.name,
+        &[Role::Custodian, Role::Organizer],
+        None,
+        "init",
+        chrono::Utc::now(),
+    )?;
+    writeln!(file, "{token}")?;
+    file.sync_all()?;
+    tx.commit()?;
+    eprintln!(
+        "created {} with user {} (custodian, organizer); token written to {}",
+        args.db.display(),
+        user.name,
+        args.token_out.display()
+    );
+    Ok(ExitCode::SUCCESS)
+}

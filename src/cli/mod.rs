@@ -1,0 +1,79 @@
+//! The command line: one binary, `holdout`, for the daemon, the local tools and the client.
+//!
+//! `main` parses with [`Cli`] and calls [`run`]; every command returns its exit code.
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+pub mod client;
+pub mod demo;
+pub mod exit;
+pub mod local;
+pub mod stats_cmds;
+
+/// Exit codes, documented in `--help` and the README.
+pub const EXIT_CODES_HELP: &str = "\
+Exit codes:
+  0  answered (or the command succeeded)
+  1  internal error (a bug, or storage failure)
+  2  bad input (arguments, files, policy); nothing was charged or recorded
+  3  refused: budget spent, past tolerance, quota, or --max-cost; recorded, charged nothing
+  4  authentication or permission failure
+  5  not found (holdout, target, user)
+  6  cannot reach the daemon
+  7  not possible in the current state (closed holdout, request id reused with other predictions)";
+
+/// holdout-ledger: shared holdout sets whose reported scores stay trustworthy under reuse.
+///
+/// The daemon keeps the labels sealed, scores every prediction file itself, charges each answer
+/// against a union-bound confidence budget, and records every query, answer and refusal in a
+/// hash-chained ledger. The guarantee is statistical: it assumes i.i.d. rows, no access to the
+/// labels except through released answers, and the declared sharing assumption.
+#[derive(Debug, Parser)]
+#[command(name = "holdout", version, after_help = EXIT_CODES_HELP)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// Every command.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the main job end to end on a temporary database: an invented holdout, three squads
+    /// submitting models, answers with intervals, a refusal once the set is spent, and a verified
+    /// ledger.
+    Demo(demo::DemoArgs),
+    /// Run the daemon on a database (loopback only unless --listen says otherwise).
+    Serve(local::ServeArgs),
+    /// Create a database and its first custodian-and-organizer user; writes the token to a file.
+    Init(local::InitArgs),
+    /// Print the interval that holds with probability at least 1 - DELTA for one score (offline).
+    Bound(stats_cmds::BoundArgs),
+    /// How many queries a policy affords, or how many rows K queries need (offline).
+    Plan(stats_cmds::PlanArgs),
+    /// Client commands (talk to a running daemon).
+    #[command(flatten)]
+    Client(client::ClientCommand),
+}
+
+/// Runs a parsed command line.
+pub fn run(cli: Cli) -> ExitCode {
+    let result = match cli.command {
+        Command::Demo(args) => demo::run(args),
+        Command::Serve(args) => local::serve(args),
+        Command::Init(args) => local::init(args),
+        Command::Bound(args) => stats_cmds::run_bound(&args),
+        Command::Plan(args) => stats_cmds::run_plan(&args),
+        Command::Client(cmd) => client::run(cmd),
+    };
+    match result {
+        Ok(code) => code,
+        Err(err) => {
+            let code = exit::code_for(&err);
+            eprintln!("error: {err:#}");
+            ExitCode::from(code)
+        }
+    }
+}

@@ -1,0 +1,116 @@
+//! The crate's error type and its one mapping to gRPC status codes.
+
+use tonic::{Code, Status};
+
+/// Everything that can go wrong in the daemon and the library.
+#[derive(Debug, thiserror::Error)]
+pub enum Error {
+    /// Bad input from a caller; `field` names the offending field, file line or row id.
+    #[error("invalid {field}: {message}")]
+    InvalidArgument {
+        /// What was wrong (a field, `file:line`, or `row id X`).
+        field: String,
+        /// Why.
+        message: String,
+    },
+    /// An unknown holdout, target, user...
+    #[error("{what} not found: {name}")]
+    NotFound {
+        /// Kind of thing.
+        what: &'static str,
+        /// Its name.
+        name: String,
+    },
+    /// A name or a set of rows that already exists.
+    #[error("{0}")]
+    AlreadyExists(String),
+    /// Missing or unknown token.
+    #[error("unauthenticated: {0}")]
+    Unauthenticated(String),
+    /// The caller's role does not allow this.
+    #[error("permission denied: {0}")]
+    PermissionDenied(String),
+    /// The holdout is in a state that does not allow this (closed, for instance).
+    #[error("{0}")]
+    FailedPrecondition(String),
+    /// The database was written by a newer binary.
+    #[error(
+        "the database was written by a newer holdout-ledger (schema version {found}; this binary \
+         supports up to {supported}); upgrade the binary"
+    )]
+    SchemaTooNew {
+        /// Version found in the file.
+        found: u32,
+        /// Latest version this binary knows.
+        supported: u32,
+    },
+    /// A migration failed.
+    #[error("migration {name} failed: {detail}")]
+    Migration {
+        /// Migration name.
+        name: String,
+        /// SQLite's message.
+        detail: String,
+    },
+    /// SQLite failed.
+    #[error("storage error: {0}")]
+    Storage(#[from] rusqlite::Error),
+    /// File system failure.
+    #[error("i/o error: {0}")]
+    Io(#[from] std::io::Error),
+    /// A bug or an inconsistent database.
+    #[error("internal error: {0}")]
+    Internal(String),
+}
+
+/// Shorthand for results of this crate.
+pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+impl Error {
+    /// A bad-input error naming the field.
+    pub fn invalid(field: impl Into<String>, message: impl Into<String>) -> Self {
+        Error::InvalidArgument {
+            field: field.into(),
+            message: message.into(),
+        }
+    }
+
+    /// An unknown thing.
+    pub fn not_found(what: &'static str, name: impl Into<String>) -> Self {
+        Error::NotFound {
+            what,
+            name: name.into(),
+        }
+    }
+}
+
+impl From<Error> for Status {
+    fn from(err: Error) -> Status {
+        let code = match &err {
+            Error::InvalidArgument { .. } => Code::InvalidArgument,
+            Error::NotFound { .. } => Code::NotFound,
+            Error::AlreadyExists(_) => Code::AlreadyExists,
+            Error::Unauthenticated(_) => Code::Unauthenticated,
+            Error::PermissionDenied(_) => Code::PermissionDenied,
+            Error::FailedPrecondition(_) => Code::FailedPrecondition,
+            Error::SchemaTooNew { .. }
+            | Error::Migration { .. }
+            | Error::Storage(_)
+            | Error::Io(_)
+            | Error::Internal(_) => Code::Internal,
+        };
+        // Storage details stay in the daemon's log, never in a reply (they may name tables).
+        let message = match &err {
+            Error::Storage(e) => {
+                tracing::error!(error = %e, "storage failure");
+                "storage failure; see the daemon log".to_string()
+            }
+            Error::Io(e) => {
+                tracing::error!(error = %e, "i/o failure");
+                "i/o failure; see the daemon log".to_string()
+            }
+            other => other.to_string(),
+        };
+        Status::new(code, message)
+    }
+}

@@ -1,0 +1,92 @@
+//! The SQLite store: opening a database (WAL, busy timeout, foreign keys) and migrations.
+//!
+//! The database holds the labels in clear, so a new file is created readable by its owner only.
+
+mod migrate;
+
+use std::path::Path;
+use std::time::Duration;
+
+use rusqlite::Connection;
+
+use crate::error::Result;
+
+pub use migrate::{MIGRATIONS, current_version, latest_version, migrate};
+
+/// An open, migrated database.
+#[derive(Debug)]
+pub struct Store {
+    conn: Connection,
+}
+
+impl Store {
+    /// Opens (creating if needed) and migrates the database at `path`.
+    ///
+    /// # Failure
+    /// Fails when the file cannot be opened, a migration fails, or the file was written by a
+    /// newer binary.
+    pub fn open(path: &Path) -> Result<Store> {
+        let existed = path.exists();
+        let conn = Connection::open(path)?;
+        if !existed {
+            restrict_permissions(path)?;
+        }
+        Store::setup(conn)
+    }
+
+    /// An in-memory database, for tests.
+    pub fn open_in_memory() -> Result<Store> {
+        Store::setup(Connection::open_in_memory()?)
+    }
+
+    fn setup(mut conn: Connection) -> Result<Store> {
+        // WAL lets readers (backups, audits of a live file) run beside the writer; the busy
+        // timeout lets a second process wait for the write lock instead of failing at once.
+        conn.pragma_update(None, "journal_mode", "WAL")?;
+        conn.pragma_update(None, "synchronous", "FULL")?;
+        conn.pragma_update(None, "foreign_keys", "ON")?;
+        conn.busy_timeout(Duration::from_secs(10))?;
+        migrate(&mut conn)?;
+        Ok(Store { conn })
+    }
+
+    /// The connection, for the modules that read and write tables.
+    pub fn conn(&mut self) -> &mut Connection {
+        &mut self.conn
+    }
+}
+
+#[cfg(unix)]
+fn restrict_permissions(path: &Path) -> Result<()> {
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o600))?;
+    Ok(())
+}
+
+#[cfg(not(unix))]
+fn restrict_permissions(_path: &Path) -> Result<()> {
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn open_creates_owner_only_file_in_wal_mode() -> Result<()> {
+        let dir = tempfile::tempdir()?;
+        let path = dir.path().join("h.db");
+        let mut store = Store::open(&path)?;
+        let mode: String = store
+            .conn()
+            .query_row("PRAGMA journal_mode", [], |r| r.get(0))?;
+        assert_eq!(mode, "wal");
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::PermissionsExt;
+            let perms = std::fs::metadata(&path)?.permissions().mode() & 0o777;
+            assert_eq!(perms, 0o600);
+        }
+        Ok(())
+    }
+}
