@@ -1,0 +1,401 @@
+//! Users, roles and bearer tokens. Tokens are random, shown once, and stored only as SHA-256
+//! hashes; every identity change is recorded in the `@users` ledger chain.
+
+use std::fmt;
+use std::str::FromStr;
+
+use chrono::{DateTime, SecondsFormat, Utc};
+use rusqlite::{OptionalExtension, Transaction, params};
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+use sha2::{Digest, Sha256};
+
+use crate::error::{Error, Result};
+use crate::ledger;
+
+/// What a user may do (DESIGN 5).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Role {
+    /// Uploads labels, creates holdouts.
+    Custodian,
+    /// Manages users and policies, closes holdouts; sees exact scores only once closed.
+    Organizer,
+    /// Submits predictions; belongs to a team, the accounting identity.
+    Analyst,
+    /// Reads and exports the full ledger; reads are recorded.
+    Auditor,
+}
+
+impl Role {
+    /// Every role.
+    pub const ALL: [Role; 4] = [
+        Role::Custodian,
+        Role::Organizer,
+        Role::Analyst,
+        Role::Auditor,
+    ];
+
+    /// Lower-case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Role::Custodian => "custodian",
+            Role::Organizer => "organizer",
+            Role::Analyst => "analyst",
+            Role::Auditor => "auditor",
+        }
+    }
+}
+
+impl fmt::Display for Role {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+impl FromStr for Role {
+    type Err = Error;
+    fn from_str(s: &str) -> Result<Role> {
+        Role::ALL
+            .into_iter()
+            .find(|r| r.as_str() == s)
+            .ok_or_else(|| {
+                Error::invalid(
+                    "role",
+                    format!("unknown role {s:?}; use custodian, organizer, analyst or auditor"),
+                )
+            })
+    }
+}
+
+/// An authenticated caller.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Caller {
+    /// User name.
+    pub name: String,
+    /// Roles granted.
+    pub roles: Vec<Role>,
+    /// Team: the accounting identity of analysts.
+    pub team: String,
+}
+
+impl Caller {
+    /// Whether the caller holds `role`.
+    pub fn has(&self, role: Role) -> bool {
+        self.roles.contains(&role)
+    }
+
+    /// Fails with a permission error unless the caller holds one of `roles`.
+    pub fn require(&self, action: &str, roles: &[Role]) -> Result<()> {
+        if roles.iter().any(|r| self.has(*r)) {
+            return Ok(());
+        }
+        let wanted: Vec<&str> = roles.iter().map(|r| r.as_str()).collect();
+        Err(Error::PermissionDenied(format!(
+            "{action} needs the {} role; {} has {}",
+            wanted.join(" or "),
+            self.name,
+            role_list(&self.roles)
+        )))
+    }
+}
+
+/// A user as stored.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct User {
+    /// Name.
+    pub name: String,
+    /// Roles.
+    pub roles: Vec<Role>,
+    /// Team.
+    pub team: String,
+    /// Creation time.
+    pub created_at: String,
+    /// Whether revoked.
+    pub revoked: bool,
+}
+
+/// Comma-separated role names.
+pub fn role_list(roles: &[Role]) -> String {
+    if roles.is_empty() {
+        return "no role".into();
+    }
+    roles
+        .iter()
+        .map(|r| r.as_str())
+        .collect::<Vec<_>>()
+        .join(",")
+}
+
+fn parse_roles(s: &str) -> Vec<Role> {
+    s.split(',').filter_map(|r| r.parse().ok()).collect()
+}
+
+/// A name for a user, team or holdout: letters, digits, '-', '_', '.', 1 to 64 characters,
+/// not starting with '.' or '-'.
+pub fn check_name(field: &str, name: &str) -> Result<()> {
+    let ok = !name.is_empty()
+        && name.len() <= 64
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.'))
+        && !name.starts_with(['.', '-']);
+    if ok {
+        Ok(())
+    } else {
+        Err(Error::invalid(
+            field,
+            format!(
+                "{name:?} is not a valid name (1-64 of letters, digits, '-', '_', '.'; not starting \
+                 with '.' or '-')"
+            ),
+        ))
+    }
+}
+
+/// A fresh bearer token.
+pub fn new_token() -> Result<String> {
+    let mut bytes = [0u8; 24];
+    getrandom::fill(&mut bytes).map_err(|e| Error::Internal(format!("no randomness: {e}")))?;
+    Ok(format!("hlt_{}", hex::encode(bytes)))
+}
+
+/// The stored form of a token.
+pub fn token_hash(token: &str) -> String {
+    hex::encode(Sha256::digest(token.as_bytes()))
+}
+
+/// RFC 3339 UTC with seconds.
+pub fn rfc3339(t: DateTime<Utc>) -> String {
+    t.to_rfc3339_opts(SecondsFormat::Millis, true)
+}
+
+/// Adds a user and returns its token. Records a `user-added` entry in the `@users` chain.
+pub fn add_user(
+    tx: &Transaction<'_>,
+    name: &str,
+    roles: &[Role],
+    team: Option<&str>,
+    by: &str,
+    now: DateTime<Utc>,
+) -> Result<(User, String)> {
+    check_name("name", name)?;
+    if roles.is_empty() {
+        return Err(Error::invalid("roles", "give at least one role"));
+    }
+    let team = match team.filter(|t| !t.is_empty()) {
+        Some(t) => {
+            check_name("team", t)?;
+            t.to_string()
+        }
+        None => name.to_string(),
+    };
+    let mut roles = roles.to_vec();
+    roles.sort();
+    roles.dedup();
+    let exists: Option<i64> = tx
+        .query_row("SELECT id FROM users WHERE name = ?1", [name], |r| r.get(0))
+        .optional()?;
+    if exists.is_some() {
+        return Err(Error::AlreadyExists(format!("user {name} already exists")));
+    }
+    let at = rfc3339(now);
+    tx.execute(
+        "INSERT INTO users (name, roles, team, created_at) VALUES (?1, ?2, ?3, ?4)",
+        params![name, role_list(&roles), team, at],
+    )?;
+    let user_id = tx.last_insert_rowid();
+    let token = new_token()?;
+    tx.execute(
+        "INSERT INTO tokens (token_hash, user_id, created_at) VALUES (?1, ?2, ?3)",
+        params![token_hash(&token), user_id, at],
+    )?;
+    ledger::append(
+        tx,
+        ledger::USERS_CHAIN,
+        "user-added",
+        &json!({"user": name, "roles": role_list(&roles), "team": team, "by": by, "at": at}),
+    )?;
+    Ok((
+        User {
+            name: name.to_string(),
+            roles,
+            team,
+            created_at: at,
+            revoked: false,
+        },
+        token,
+    ))
+}
+
+/// Finds the live user a token belongs to.
+pub fn authenticate(conn: &rusqlite::Connection, token: &str) -> Result<Caller> {
+    let row: Option<(String, String, String)> = conn
+        .query_row(
+            "SELECT u.name, u.roles, u.team FROM tokens t JOIN users u ON u.id = t.user_id
+             WHERE t.token_hash = ?1 AND t.revoked_at IS NULL AND u.revoked_at IS NULL",
+            [token_hash(token)],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()?;
+    match row {
+        Some((name, roles, team)) => Ok(Caller {
+            name,
+            roles: parse_roles(&roles),
+            team,
+        }),
+        None => Err(Error::Unauthenticated(
+            "unknown or revoked token; pass --token or set HOLDOUT_TOKEN".into(),
+        )),
+    }
+}
+
+/// All users.
+pub fn list_users(conn: &rusqlite::Connection) -> Result<Vec<User>> {
+    let mut stmt = conn.prepare(
+        "SELECT name, roles, team, created_at, revoked_at IS NOT NULL FROM users ORDER BY name",
+    )?;
+    let rows = stmt.query_map([], |r| {
+        Ok(User {
+            name: r.get(0)?,
+            roles: parse_roles(&r.get::<_, String>(1)?),
+            team: r.get(2)?,
+            created_at: r.get(3)?,
+            revoked: r.get(4)?,
+        })
+    })?;
+    Ok(rows.collect::<std::result::Result<_, _>>()?)
+}
+
+/// Revokes a user and all its tokens.
+pub fn revoke_user(tx: &Transaction<'_>, name: &str, by: &str, now: DateTime<Utc>) -> Result<User> {
+    let at = rfc3339(now);
+    let n = tx.execute(
+        "UPDATE users SET revoked_at = ?2 WHERE name = ?1 AND revoked_at IS NULL",
+        params![name, at],
+    )?;
+    if n == 0 {
+        let known: Option<i64> = tx
+            .query_row("SELECT id FROM users WHERE name = ?1", [name], |r| r.get(0))
+            .optional()?;
+        return Err(match known {
+            Some(_) => Error::FailedPrecondition(format!("user {name} is already revoked")),
+            None => Error::not_found("user", name),
+        });
+    }
+    tx.execute(
+        "UPDATE tokens SET revoked_at = ?2 WHERE revoked_at IS NULL
+         AND user_id = (SELECT id FROM users WHERE name = ?1)",
+        params![name, at],
+    )?;
+    ledger::append(
+        tx,
+        ledger::USERS_CHAIN,
+        "user-revoked",
+        &json!({"user": name, "by": by, "at": at}),
+    )?;
+    list_users(tx)?
+        .into_iter()
+        .find(|u| u.name == name)
+        .ok_or_else(|| Error::Internal("revoked user vanished".into()))
+}
+
+/// Replaces every token of `name` with a new one, returned once.
+pub fn rotate_token(tx: &Transaction<'_>, name: &str, now: DateTime<Utc>) -> Result<String> {
+    let at = rfc3339(now);
+    let user_id: i64 = tx
+        .query_row(
+            "SELECT id FROM users WHERE name = ?1 AND revoked_at IS NULL",
+            [name],
+            |r| r.get(0),
+        )
+        .optional()?
+        .ok_or_else(|| Error::not_found("user", name))?;
+    tx.execute(
+        "UPDATE tokens SET revoked_at = ?2 WHERE user_id = ?1 AND revoked_at IS NULL",
+        params![user_id, at],
+    )?;
+    let token = new_token()?;
+    tx.execute(
+        "INSERT INTO tokens (token_hash, user_id, created_at) VALUES (?1, ?2, ?3)",
+        params![token_hash(&token), user_id, at],
+    )?;
+    ledger::append(
+        tx,
+        ledger::USERS_CHAIN,
+        "token-rotated",
+        &json!({"user": name, "at": at}),
+    )?;
+    Ok(token)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::store::Store;
+
+    #[test]
+    fn tokens_authenticate_until_revoked_and_are_stored_hashed() -> Result<()> {
+        let mut store = Store::open_in_memory()?;
+        let now = Utc::now();
+        let tx = store.conn().transaction()?;
+        let (user, token) = add_user(&tx, "ana", &[Role::Analyst], Some("blue"), "root", now)?;
+        tx.commit()?;
+        assert_eq!(user.team, "blue");
+        let caller = authenticate(store.conn(), &token)?;
+        assert_eq!(caller.name, "ana");
+        assert!(caller.has(Role::Analyst) && !caller.has(Role::Custodian));
+        let stored: i64 = store.conn().query_row(
+            "SELECT count(*) FROM tokens WHERE token_hash = ?1",
+            [&token],
+            |r| r.get(0),
+        )?;
+        assert_eq!(stored, 0, "the clear token must not be stored");
+
+        let tx = store.conn().transaction()?;
+        let new = rotate_token(&tx, "ana", now)?;
+        tx.commit()?;
+        assert!(authenticate(store.conn(), &token).is_err());
+        assert!(authenticate(store.conn(), &new).is_ok());
+
+        let tx = store.conn().transaction()?;
+        revoke_user(&tx, "ana", "root", now)?;
+        tx.commit()?;
+        assert!(matches!(
+            authenticate(store.conn(), &new),
+            Err(Error::Unauthenticated(_))
+        ));
+        let chain = ledger::read_chain(store.conn(), ledger::USERS_CHAIN)?;
+        assert_eq!(chain.len(), 3);
+        assert!(ledger::verify_chain(&chain).is_empty());
+        Ok(())
+    }
+
+    #[test]
+    fn bad_names_and_duplicates_are_refused() -> Result<()> {
+        let mut store = Store::open_in_memory()?;
+        let tx = store.conn().transaction()?;
+        assert!(add_user(&tx, "", &[Role::Analyst], None, "root", Utc::now()).is_err());
+        assert!(add_user(&tx, "a b", &[Role::Analyst], None, "root", Utc::now()).is_err());
+        assert!(add_user(&tx, "x", &[], None, "root", Utc::now()).is_err());
+        add_user(&tx, "x", &[Role::Auditor], None, "root", Utc::now())?;
+        assert!(matches!(
+            add_user(&tx, "x", &[Role::Auditor], None, "root", Utc::now()),
+            Err(Error::AlreadyExists(_))
+        ));
+        Ok(())
+    }
+
+    #[test]
+    fn require_names_the_missing_role() {
+        let c = Caller {
+            name: "ana".into(),
+            roles: vec![Role::Analyst],
+            team: "ana".into(),
+        };
+        let err = c
+            .require("creating a holdout", &[Role::Custodian])
+            .unwrap_err();
+        assert!(err.to_string().contains("custodian"), "{err}");
+    }
+}

@@ -1,0 +1,560 @@
+//! The holdout policy as the daemon stores it, and the bridge to the accounting core.
+//!
+//! [`Book`] wraps the core's [`Accountant`] with what the daemon adds: refusal counts and the
+//! translation between ledger records and the core's requests and outcomes. The accountant of a
+//! holdout is rebuilt by [`Book::replay`] from its ledger, which also checks that every recorded
+//! answer is what the core computes again, so a database whose ledger was edited, or a binary
+//! whose accounting changed, stops instead of answering on a wrong budget.
+
+use std::collections::BTreeMap;
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+
+use super::create::TargetDecl;
+use super::records::{AnswerRecord, BudgetView};
+use crate::error::{Error, Result};
+use crate::ledger::Entry;
+use crate::metric::Loss;
+use crate::stats::accounting::{Accountant, Charge, Outcome, QueryRequest, Refusal};
+use crate::stats::policy::{Policy, Sharing, TargetPolicy, ToleranceReference, guarantee_text};
+use crate::stats::rules::{Rule, Symbol};
+use crate::stats::schedule::{Schedule, Shares};
+
+/// The policy exactly as the custodian gave it (empty fields take the defaults).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PolicyInput {
+    /// Total failure probability, in (0, 1).
+    pub delta: f64,
+    /// `series` or `even:K`.
+    pub schedule: String,
+    /// Answer rule spec.
+    pub answers: String,
+    /// Widest half-width worth answering.
+    pub tolerance: f64,
+    /// `shared` or `isolated`.
+    pub sharing: String,
+    /// `worst-case` or `last-released`.
+    pub tolerance_reference: String,
+    /// `none`, `on-arrival`, or `roster:TEAM,TEAM,...[:RESERVE]`.
+    pub shares: String,
+    /// Answered queries per team per UTC day; 0 for no quota.
+    pub daily_quota: u32,
+}
+
+impl Default for PolicyInput {
+    fn default() -> Self {
+        PolicyInput {
+            delta: 0.05,
+            schedule: "series".into(),
+            answers: "rounded:0.01".into(),
+            tolerance: 0.05,
+            sharing: "shared".into(),
+            tolerance_reference: "worst-case".into(),
+            shares: "none".into(),
+            daily_quota: 0,
+        }
+    }
+}
+
+/// A holdout's complete policy: the accounting core's policy plus the daemon's own parts.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct HoldoutPolicy {
+    /// The input, with defaults filled in.
+    pub input: PolicyInput,
+    /// The accounting core's policy.
+    pub core: Policy,
+    /// Daily quota per team (0: none).
+    pub daily_quota: u32,
+    /// Targets with their metrics and declared label domains.
+    pub targets: Vec<TargetDecl>,
+}
+
+fn or_default(value: &str, default: &str) -> String {
+    if value.trim().is_empty() {
+        default.to_string()
+    } else {
+        value.trim().to_string()
+    }
+}
+
+/// Parses a shares spec.
+pub(crate) fn parse_shares(spec: &str) -> Result<Shares> {
+    let spec = spec.trim();
+    match spec {
+        "none" => return Ok(Shares::None),
+        "on-arrival" => return Ok(Shares::OnArrival),
+        _ => {}
+    }
+    let Some(rest) = spec.strip_prefix("roster:") else {
+        return Err(Error::invalid(
+            "shares",
+            format!("unknown shares {spec:?}; use none, on-arrival or roster:TEAM,TEAM[:RESERVE]"),
+        ));
+    };
+    let (names, reserve) = match rest.rsplit_once(':') {
+        Some((names, r)) => {
+            let r: f64 = r.trim().parse().map_err(|_| {
+                Error::invalid("shares", format!("roster reserve {r:?} is not a number"))
+            })?;
+            (names, r)
+        }
+        None => (rest, 0.0),
+    };
+    let analysts: Vec<String> = names
+        .split(',')
+        .map(|s| s.trim().to_string())
+        .filter(|s| !s.is_empty())
+        .collect();
+    Ok(Shares::Roster { analysts, reserve })
+}
+
+impl HoldoutPolicy {
+    /// Builds and validates a policy for `rows` rows. Errors name the offending field.
+    pub fn build(
+        input: &PolicyInput,
+        targets: Vec<TargetDecl>,
+        rows: u64,
+    ) -> Result<HoldoutPolicy> {
+        let defaults = PolicyInput::default();
+        let input = PolicyInput {
+            delta: input.delta,
+            schedule: or_default(&input.schedule, &defaults.schedule),
+            answers: or_default(&input.answers, &defaults.answers),
+            tolerance: input.tolerance,
+            sharing: or_default(&input.sharing, &defaults.sharing),
+            tolerance_reference: or_default(
+                &input.tolerance_reference,
+                &defaults.tolerance_reference,
+            ),
+            shares: or_default(&input.shares, &defaults.shares),
+            daily_quota: input.daily_quota,
+        };
+        let schedule: Schedule = input
+            .schedule
+            .parse()
+            .map_err(|e: crate::stats::schedule::ScheduleError| Error::invalid("schedule", e.0))?;
+        let rule: Rule = input
+            .answers
+            .parse()
+            .map_err(|e: crate::stats::rules::RuleError| Error::invalid("answers", e.0))?;
+        if matches!(rule, Rule::Sealed(_)) {
+            return Err(Error::invalid(
+                "answers",
+                "sealed rounds are not served by the daemon yet; use rounded, threshold, ladder \
+                 or best-of",
+            ));
+        }
+        let sharing = match input.sharing.as_str() {
+            "shared" => Sharing::Shared,
+            "isolated" => Sharing::Isolated,
+            other => {
+                return Err(Error::invalid(
+                    "sharing",
+                    format!("unknown sharing assumption {other:?}; use shared or isolated"),
+                ));
+            }
+        };
+        let tolerance_reference = match input.tolerance_reference.as_str() {
+            "worst-case" => ToleranceReference::WorstCase,
+            "last-released" => ToleranceReference::LastReleased,
+            other => {
+                return Err(Error::invalid(
+                    "tolerance_reference",
+                    format!("unknown reference {other:?}; use worst-case or last-released"),
+                ));
+            }
+        };
+        let shares = parse_shares(&input.shares)?;
+        let mut core_targets = Vec::with_capacity(targets.len());
+        for t in &targets {
+            core_targets.push(TargetPolicy {
+                name: t.name.clone(),
+                binary: t.metric.is_binary(),
+                method: t
+                    .method
+                    .parse()
+                    .map_err(|e: crate::stats::interval::IntervalError| {
+                        Error::invalid(format!("target {}", t.name), e.to_string())
+                    })?,
+            });
+        }
+        let core = Policy {
+            delta: input.delta,
+            schedule,
+            rule,
+            tolerance: input.tolerance,
+            tolerance_reference,
+            sharing,
+            shares,
+            rows,
+            targets: core_targets,
+        };
+        core.validate()
+            .map_err(|e| Error::invalid(e.field, e.message))?;
+        Ok(HoldoutPolicy {
+            daily_quota: input.daily_quota,
+            input,
+            core,
+            targets,
+        })
+    }
+
+    /// The input as given, with defaults.
+    pub fn input(&self) -> &PolicyInput {
+        &self.input
+    }
+
+    /// Whether batches of models are answered (best-of).
+    pub fn allows_batches(&self) -> bool {
+        matches!(self.core.rule, Rule::BestOf(_))
+    }
+
+    /// The answer rule spec.
+    pub fn answers_spec(&self) -> String {
+        self.core.rule.to_string()
+    }
+
+    /// Whether each team has its own transcript.
+    pub fn isolated(&self) -> bool {
+        self.core.sharing == Sharing::Isolated
+    }
+
+    /// The guarantee sentence and its assumptions.
+    pub fn guarantee(&self) -> String {
+        guarantee_text(&self.core)
+    }
+}
+
+/// Why a query is refused (all decided from public facts).
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) enum RefusalReason {
+    /// The accounting core refused.
+    Core(Refusal),
+    /// The team's daily quota is used.
+    Quota,
+    /// The analyst's own `--max-cost` limit.
+    MaxCost,
+}
+
+impl RefusalReason {
+    /// Machine-readable code.
+    pub(crate) fn code(&self) -> &'static str {
+        match self {
+            RefusalReason::Core(Refusal::ScheduleExhausted { .. }) => "budget-spent",
+            RefusalReason::Core(Refusal::ToleranceExceeded { .. }) => "tolerance",
+            RefusalReason::Core(Refusal::NoShare { .. }) => "shares",
+            RefusalReason::Core(Refusal::BadRequest(_)) => "bad-request",
+            RefusalReason::Quota => "quota",
+            RefusalReason::MaxCost => "max-cost",
+        }
+    }
+}
+
+impl fmt::Display for RefusalReason {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            RefusalReason::Core(Refusal::ScheduleExhausted { answered }) => write!(
+                f,
+                "the budget is spent: the schedule funded {answered} queries and has no share \
+                 left; nothing was charged"
+            ),
+            RefusalReason::Core(Refusal::ToleranceExceeded {
+                half_width,
+                tolerance,
+            }) => write!(
+                f,
+                "the holdout is spent for this tolerance: the next interval would be +-{half_width:.4} \
+                 at the reference score, wider than the tolerance {tolerance}; nothing was charged"
+            ),
+            RefusalReason::Core(r) => write!(f, "{r}; nothing was charged"),
+            RefusalReason::Quota => f.write_str("the daily quota is used"),
+            RefusalReason::MaxCost => f.write_str("the answer could cost more than --max-cost"),
+        }
+    }
+}
+
+/// What a query would be charged.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Quote {
+    /// The core's charge.
+    pub charge: Charge,
+    /// Query number (per pool).
+    pub query: u64,
+    /// Schedule share per model.
+    pub delta_i: f64,
+    /// ln(1/d_i).
+    pub level_nats: f64,
+    /// Half-width at the public reference score.
+    pub half_width: f64,
+    /// The most nats the answer could add to the transcript.
+    pub worst_code_nats: f64,
+}
+
+/// The core's answer, flattened for the ledger record.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct AnswerCore {
+    /// Query number.
+    pub query: u64,
+    /// Symbol as text.
+    pub symbol: String,
+    /// Released score.
+    pub score: Option<f64>,
+    /// Interval.
+    pub lower: f64,
+    /// Interval.
+    pub upper: f64,
+    /// Share.
+    pub delta_i: f64,
+    /// Level.
+    pub level_nats: f64,
+    /// Code.
+    pub code_nats: f64,
+    /// Statement.
+    pub statement: String,
+    /// Chosen model of a batch.
+    pub best_model: Option<u32>,
+    /// The core's answer as JSON (replayed and compared by audits).
+    pub core: serde_json::Value,
+}
+
+/// Formats a grid value without float noise (at most 10 decimals).
+fn grid_text(v: f64) -> String {
+    let r = (v * 1e10).round() / 1e10;
+    format!("{r}")
+}
+
+/// The released symbol as text.
+pub(crate) fn symbol_text(symbol: &Symbol, score: Option<f64>) -> String {
+    let s = score.map(grid_text).unwrap_or_default();
+    match symbol {
+        Symbol::Cell { .. } => s,
+        Symbol::Pass => "pass".into(),
+        Symbol::Fail => "fail".into(),
+        Symbol::NoImprovement => "no-improvement".into(),
+        Symbol::NewBest { .. } => format!("new-best {s}"),
+        Symbol::Best { model, .. } => format!("best=model-{model} {s}"),
+    }
+}
+
+/// The accounting state of one holdout, as of some ledger head.
+#[derive(Debug, Clone)]
+pub(crate) struct Book {
+    acct: Accountant,
+    refused: BTreeMap<String, u64>,
+    refused_total: u64,
+}
+
+fn outcome(binary: bool, loss: &Loss) -> Outcome {
+    match (binary, loss.errors) {
+        (true, Some(k)) => Outcome::Errors(k),
+        _ => Outcome::LossSum(loss.sum),
+    }
+}
+
+impl Book {
+    /// A fresh book for a new holdout.
+    pub(crate) fn new(policy: &HoldoutPolicy) -> Result<Book> {
+        Ok(Book {
+            acct: Accountant::new(policy.core.clone())
+                .map_err(|e| Error::Internal(format!("stored policy: {e}")))?,
+            refused: BTreeMap::new(),
+            refused_total: 0,
+        })
+    }
+
+    /// Rebuilds the book from a holdout's ledger, checking every answer against the core.
+    pub(crate) fn replay(policy: &HoldoutPolicy, entries: &[Entry]) -> Result<Book> {
+        let mut book = Book::new(policy)?;
+        for e in entries {
+            match e.kind.as_str() {
+                "answer" => {
+                    let r: AnswerRecord = serde_json::from_str(&e.body)
+                        .map_err(|err| Error::Internal(format!("ledger entry {}: {err}", e.seq)))?;
+                    let losses = r.exact.clone().ok_or_else(|| {
+                        Error::Internal(format!("ledger entry {} has no exact losses", e.seq))
+                    })?;
+                    let quote = book
+                        .quote(policy, &r.team, r.target_index, r.models)
+                        .map_err(|why| {
+                            Error::Internal(format!(
+                                "ledger entry {} was answered, but replaying it is refused ({why})",
+                                e.seq
+                            ))
+                        })?;
+                    let again = book.answer(policy, &r.team, r.target_index, &quote, &losses)?;
+                    if again.symbol != r.symbol
+                        || again.level_nats.to_bits() != r.level_nats.to_bits()
+                        || again.lower.to_bits() != r.lower.to_bits()
+                        || again.upper.to_bits() != r.upper.to_bits()
+                    {
+                        return Err(Error::Internal(format!(
+                            "ledger entry {} does not replay: recorded {} [{}, {}] at {} nats, \
+                             recomputed {} [{}, {}] at {} nats",
+                            e.seq,
+                            r.symbol,
+                            r.lower,
+                            r.upper,
+                            r.level_nats,
+                            again.symbol,
+                            again.lower,
+                            again.upper,
+                            again.level_nats
+                        )));
+                    }
+                }
+                "refusal" => {
+                    let team = serde_json::from_str::<serde_json::Value>(&e.body)
+                        .ok()
+                        .and_then(|v| v.get("team").and_then(|t| t.as_str()).map(str::to_string))
+                        .unwrap_or_default();
+                    book.note_refusal(policy, &team);
+                }
+                _ => {}
+            }
+        }
+        Ok(book)
+    }
+
+    fn request(team: &str, target: usize, models: u32) -> QueryRequest {
+        QueryRequest {
+            analyst: team.to_string(),
+            target,
+            models: models.max(1),
+        }
+    }
+
+    /// Decides refusal or charge from public facts only; changes nothing.
+    pub(crate) fn quote(
+        &self,
+        _policy: &HoldoutPolicy,
+        team: &str,
+        target: usize,
+        models: u32,
+    ) -> std::result::Result<Quote, RefusalReason> {
+        let req = Book::request(team, target, models);
+        let charge = self.acct.quote(&req).map_err(RefusalReason::Core)?;
+        let worst = self
+            .acct
+            .worst_code_nats(&req)
+            .map_err(RefusalReason::Core)?;
+        Ok(Quote {
+            query: charge.query_number,
+            delta_i: charge.delta_i,
+            level_nats: charge.level_nats,
+            half_width: charge.reference_half_width,
+            worst_code_nats: worst,
+            charge,
+        })
+    }
+
+    /// A quote for display when the query would be refused: what the level would be, ignoring
+    /// the tolerance (zeros when the schedule has nothing left).
+    pub(crate) fn quote_ignoring_limits(
+        &self,
+        policy: &HoldoutPolicy,
+        team: &str,
+        target: usize,
+        models: u32,
+    ) -> Quote {
+        let req = Book::request(team, target, models);
+        let status = self.acct.status(Some(team));
+        let worst = self.acct.worst_code_nats(&req).unwrap_or(0.0);
+        let level = status.next_level_nats.unwrap_or(0.0);
+        let half = status
+            .targets
+            .get(target)
+            .and_then(|t| t.next_half_width)
+            .unwrap_or(0.0);
+        let _ = policy;
+        Quote {
+            charge: Charge {
+                sequence: 0,
+                request: req,
+                query_number: status.next_query_number,
+                shares: models.max(1),
+                delta_i: 0.0,
+                ln_inv_delta_i: 0.0,
+                level_nats: level,
+                transcript_nats: status.transcript_nats,
+                delta_charged: 0.0,
+                reference_half_width: half,
+            },
+            query: status.next_query_number,
+            delta_i: 0.0,
+            level_nats: level,
+            half_width: half,
+            worst_code_nats: worst,
+        }
+    }
+
+    /// Answers a quoted query from the exact losses; advances the transcript.
+    pub(crate) fn answer(
+        &mut self,
+        policy: &HoldoutPolicy,
+        team: &str,
+        target: usize,
+        quote: &Quote,
+        losses: &[Loss],
+    ) -> Result<AnswerCore> {
+        let req = Book::request(team, target, losses.len() as u32);
+        let binary = policy.core.targets[target].binary;
+        let outcomes: Vec<Outcome> = losses.iter().map(|l| outcome(binary, l)).collect();
+        let ans = self
+            .acct
+            .answer(&req, &quote.charge, &outcomes)
+            .map_err(|e| Error::Internal(format!("accounting: {e}")))?;
+        let best_model = match ans.symbol {
+            Symbol::Best { model, .. } => Some(model),
+            _ => None,
+        };
+        Ok(AnswerCore {
+            query: ans.query_number,
+            symbol: symbol_text(&ans.symbol, ans.released_score),
+            score: ans.released_score,
+            lower: ans.interval.lower,
+            upper: ans.interval.upper,
+            delta_i: ans.delta_i,
+            level_nats: ans.level_nats,
+            code_nats: ans.code_nats,
+            statement: ans.statement.clone(),
+            best_model,
+            core: serde_json::to_value(&ans).unwrap_or_default(),
+        })
+    }
+
+    /// Counts a refusal (public: refusals are decided from public facts).
+    pub(crate) fn note_refusal(&mut self, _policy: &HoldoutPolicy, team: &str) {
+        *self.refused.entry(team.to_string()).or_default() += 1;
+        self.refused_total += 1;
+    }
+
+    /// The budget as `team` may see it (its own pool and transcript under isolated).
+    pub(crate) fn budget(&self, policy: &HoldoutPolicy, team: &str) -> BudgetView {
+        let s = self.acct.status(Some(team));
+        let next_half_width = s
+            .targets
+            .iter()
+            .map(|t| t.next_half_width.unwrap_or(1.0))
+            .fold(0.0f64, f64::max);
+        let queries_left = s.targets.iter().map(|t| t.queries_left).min().unwrap_or(0);
+        let refused = if policy.isolated() {
+            self.refused.get(team).copied().unwrap_or(0)
+        } else {
+            self.refused_total
+        };
+        BudgetView {
+            delta: s.budget,
+            spent: s.spent,
+            remaining: s.remaining,
+            transcript_nats: s.transcript_nats,
+            next_half_width,
+            queries_left,
+            answered: s.answers,
+            refused,
+            open: true,
+            quota_resets_at: None,
+            quota_left_today: None,
+        }
+    }
+}

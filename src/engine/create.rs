@@ -1,0 +1,351 @@
+//! Creating a holdout: checking the declaration and the labels, refusing overlaps, writing the
+//! sealed labels and the genesis ledger entry in one transaction; and loading one back.
+
+use std::collections::{HashMap, HashSet};
+
+use rusqlite::{OptionalExtension, TransactionBehavior, params};
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+use sha2::{Digest, Sha256};
+
+use super::account::{HoldoutPolicy, PolicyInput};
+use super::{Engine, Loaded, unknown_holdout};
+use crate::auth::{Caller, Role, check_name, rfc3339};
+use crate::error::{Error, Result};
+use crate::ledger;
+use crate::metric::{Metric, parse_labels};
+
+/// One target of a holdout: a label column scored with a metric.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TargetDecl {
+    /// Target name.
+    pub name: String,
+    /// Source column.
+    pub column: String,
+    /// Metric.
+    pub metric: Metric,
+    /// Interval method: exact, kl or hoeffding.
+    pub method: String,
+    /// Declared classes (public); empty for numeric labels.
+    pub classes: Vec<String>,
+}
+
+/// Everything needed to create a holdout.
+#[derive(Debug, Clone)]
+pub struct CreateRequest {
+    /// Name.
+    pub name: String,
+    /// Description.
+    pub description: String,
+    /// Policy as given.
+    pub policy: PolicyInput,
+    /// Targets, in column order.
+    pub targets: Vec<TargetDecl>,
+    /// Row ids.
+    pub ids: Vec<String>,
+    /// Label columns, one per target, aligned with `ids`.
+    pub columns: Vec<Vec<String>>,
+}
+
+/// Versions recorded in every genesis entry, so later binaries replay with the right rules.
+pub(crate) fn versions() -> serde_json::Value {
+    json!({
+        "binary": env!("CARGO_PKG_VERSION"),
+        "core": crate::stats::CORE_VERSION,
+        "encoding": ledger::ENCODING,
+    })
+}
+
+impl Engine {
+    /// Creates a holdout (custodian).
+    pub fn create_holdout(
+        &mut self,
+        caller: &Caller,
+        req: CreateRequest,
+    ) -> Result<super::HoldoutView> {
+        caller.require("creating a holdout", &[Role::Custodian])?;
+        check_name("holdout name", &req.name)?;
+        if req.ids.is_empty() {
+            return Err(Error::invalid("labels", "no label rows were sent"));
+        }
+        let targets = check_targets(req.targets, &req.columns)?;
+        let policy = HoldoutPolicy::build(&req.policy, targets, req.ids.len() as u64)?;
+
+        // Canonical order: rows sorted by id, so digests do not depend on file order.
+        let mut order: Vec<usize> = (0..req.ids.len()).collect();
+        order.sort_by(|&a, &b| req.ids[a].cmp(&req.ids[b]));
+        let ids: Vec<String> = order
+            .iter()
+            .map(|&i| req.ids[i].trim().to_string())
+            .collect();
+        for (i, id) in ids.iter().enumerate() {
+            if id.is_empty() {
+                return Err(Error::invalid("labels", "a row has an empty id"));
+            }
+            if i > 0 && ids[i - 1] == *id {
+                return Err(Error::invalid(
+                    format!("row id {id}"),
+                    "appears more than once in the labels",
+                ));
+            }
+        }
+        let columns: Vec<Vec<String>> = req
+            .columns
+            .iter()
+            .map(|c| order.iter().map(|&i| c[i].trim().to_string()).collect())
+            .collect();
+        for (t, col) in policy.targets.iter().zip(&columns) {
+            parse_labels(&t.metric, &t.classes, col, &ids)?;
+        }
+        let labels_digest = labels_digest(&policy, &columns);
+        let ids_digest = ids_digest(&ids);
+
+        let now = self.now();
+        let at = rfc3339(now);
+        let conn = self.store.conn();
+        let tx = conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
+        let exists: Option<i64> = tx
+            .query_row(
+                "SELECT id FROM holdouts WHERE name = ?1",
+                [&req.name],
+                |r| r.get(0),
+            )
+            .optional()?;
+        if exists.is_some() {
+            return Err(Error::AlreadyExists(format!(
+                "holdout {} already exists",
+                req.name
+            )));
+        }
+        let same_labels: Option<String> = tx
+            .query_row(
+                "SELECT name FROM holdouts WHERE labels_digest = ?1",
+                [&labels_digest],
+                |r| r.get(0),
+            )
+            .optional()?;
+        if let Some(other) = same_labels {
+            return Err(Error::AlreadyExists(format!(
+                "these labels are already sealed in holdout {other}: one set of rows gets one \
+                 budget. Add label columns as targets of one holdout (--target), or carve \
+                 row-disjoint holdouts with `holdout split`"
+            )));
+        }
+        {
+            let mut check = tx.prepare_cached(
+                "SELECT h.name FROM holdout_rows r JOIN holdouts h ON h.id = r.holdout_id
+                 WHERE r.row_id = ?1",
+            )?;
+            for id in &ids {
+                if let Some(other) = check
+                    .query_row([id], |r| r.get::<_, String>(0))
+                    .optional()?
+                {
+                    return Err(Error::AlreadyExists(format!(
+                        "row id {id} already belongs to holdout {other}: overlapping rows would \
+                         be charged twice against independent budgets. Use targets of one holdout \
+                         for several label columns, or `holdout split` for row-disjoint holdouts"
+                    )));
+                }
+            }
+        }
+        let policy_json = serde_json::to_string(&policy)
+            .map_err(|e| Error::Internal(format!("policy encoding: {e}")))?;
+        tx.execute(
+            "INSERT INTO holdouts (name, description, row_count, policy_json, targets_json,
+                                   labels_digest, created_at)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            params![
+                req.name,
+                req.description,
+                ids.len() as i64,
+                policy_json,
+                serde_json::to_string(&policy.targets).unwrap_or_default(),
+                labels_digest,
+                at
+            ],
+        )?;
+        let holdout_id = tx.last_insert_rowid();
+        {
+            let mut ins = tx.prepare_cached(
+                "INSERT INTO holdout_rows (row_id, holdout_id, pos) VALUES (?1, ?2, ?3)",
+            )?;
+            for (pos, id) in ids.iter().enumerate() {
+                ins.execute(params![id, holdout_id, pos as i64])?;
+            }
+        }
+        for (t, col) in columns.iter().enumerate() {
+            let blob = serde_json::to_vec(col)
+                .map_err(|e| Error::Internal(format!("label encoding: {e}")))?;
+            tx.execute(
+                "INSERT INTO sealed_labels (holdout_id, target, labels) VALUES (?1, ?2, ?3)",
+                params![holdout_id, t as i64, blob],
+            )?;
+        }
+        let genesis = json!({
+            "holdout": req.name,
+            "description": req.description,
+            "rows": ids.len(),
+            "policy": serde_json::to_value(&policy).unwrap_or_default(),
+            "declaration": {
+                "row_ids_sha256": ids_digest,
+                "targets": serde_json::to_value(&policy.targets).unwrap_or_default(),
+            },
+            "labels_sha256": labels_digest,
+            "versions": versions(),
+            "created_by": caller.name,
+            "at": at,
+        });
+        let entry = ledger::append(&tx, &req.name, "genesis", &genesis)?;
+        tx.commit()?;
+        tracing::info!(holdout = %req.name, rows = ids.len(), by = %caller.name, "created holdout");
+        let _ = entry;
+        self.holdout_view(caller, &req.name)
+    }
+}
+
+fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Vec<TargetDecl>> {
+    if targets.is_empty() {
+        return Err(Error::invalid("targets", "declare at least one target"));
+    }
+    if targets.len() != columns.len() {
+        return Err(Error::invalid(
+            "labels",
+            format!(
+                "{} targets but {} label columns",
+                targets.len(),
+                columns.len()
+            ),
+        ));
+    }
+    let mut seen = HashSet::new();
+    let mut out = Vec::with_capacity(targets.len());
+    for (mut t, col) in targets.into_iter().zip(columns) {
+        check_name("target name", &t.name)?;
+        if !seen.insert(t.name.clone()) {
+            return Err(Error::invalid(
+                "targets",
+                format!("target {} is declared twice", t.name),
+            ));
+        }
+        if t.method.is_empty() {
+            t.method = t.metric.default_method().to_string();
+        }
+        match t.method.as_str() {
+            "exact" if !t.metric.is_binary() => {
+                return Err(Error::invalid(
+                    format!("target {}", t.name),
+                    format!(
+                        "exact (Clopper-Pearson) intervals need a 0-1 loss; {} is not binary, \
+                         use kl or hoeffding",
+                        t.metric
+                    ),
+                ));
+            }
+            "exact" | "kl" | "hoeffding" => {}
+            other => {
+                return Err(Error::invalid(
+                    format!("target {}", t.name),
+                    format!("unknown interval method {other:?}; use exact, kl or hoeffding"),
+                ));
+            }
+        }
+        if let Some(fixed) = t.metric.fixed_classes() {
+            t.classes = fixed;
+        } else if t.metric.uses_classes() {
+            if t.classes.is_empty() {
+                t.classes = crate::metric::observed_classes(col);
+            }
+            let mut uniq = HashSet::new();
+            for c in &t.classes {
+                if c.is_empty() || !uniq.insert(c) {
+                    return Err(Error::invalid(
+                        format!("classes of target {}", t.name),
+                        "classes must be distinct and non-empty",
+                    ));
+                }
+            }
+        } else {
+            t.classes.clear();
+        }
+        out.push(t);
+    }
+    Ok(out)
+}
+
+/// SHA-256 over every target's labels in canonical row order (ids excluded, so the same labels
+/// under new ids are still recognised).
+fn labels_digest(policy: &HoldoutPolicy, columns: &[Vec<String>]) -> String {
+    let mut h = Sha256::new();
+    for (t, col) in policy.targets.iter().zip(columns) {
+        h.update(format!("target\n{}\n", t.metric).as_bytes());
+        for v in col {
+            h.update(v.as_bytes());
+            h.update(b"\n");
+        }
+    }
+    hex::encode(h.finalize())
+}
+
+fn ids_digest(ids: &[String]) -> String {
+    let mut h = Sha256::new();
+    for id in ids {
+        h.update(id.as_bytes());
+        h.update(b"\n");
+    }
+    hex::encode(h.finalize())
+}
+
+/// Loads a holdout's immutable facts.
+pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
+    let row: Option<(i64, String, String, String)> = conn
+        .query_row(
+            "SELECT id, description, created_at, policy_json FROM holdouts WHERE name = ?1",
+            [name],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)),
+        )
+        .optional()?;
+    let (id, description, created_at, policy_json) = row.ok_or_else(|| unknown_holdout(name))?;
+    let policy: HoldoutPolicy = serde_json::from_str(&policy_json)
+        .map_err(|e| Error::Internal(format!("stored policy of {name}: {e}")))?;
+    let mut ids = Vec::new();
+    {
+        let mut stmt =
+            conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
+        for id in stmt.query_map([id], |r| r.get::<_, String>(0))? {
+            ids.push(id?);
+        }
+    }
+    let positions: HashMap<String, u32> = ids
+        .iter()
+        .enumerate()
+        .map(|(i, s)| (s.clone(), i as u32))
+        .collect();
+    let mut labels = Vec::new();
+    for (t, target) in policy.targets.iter().enumerate() {
+        let blob: Vec<u8> = conn.query_row(
+            "SELECT labels FROM sealed_labels WHERE holdout_id = ?1 AND target = ?2",
+            params![id, t as i64],
+            |r| r.get(0),
+        )?;
+        let col: Vec<String> = serde_json::from_slice(&blob)
+            .map_err(|e| Error::Internal(format!("stored labels of {name}: {e}")))?;
+        labels.push(parse_labels(&target.metric, &target.classes, &col, &ids)?);
+    }
+    let genesis_hash: String = conn.query_row(
+        "SELECT hash FROM ledger WHERE chain = ?1 AND seq = 0",
+        [name],
+        |r| r.get(0),
+    )?;
+    Ok(Loaded {
+        id,
+        name: name.to_string(),
+        description,
+        created_at,
+        policy,
+        ids,
+        positions,
+        labels,
+        genesis_hash,
+    })
+}

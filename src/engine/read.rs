@@ -1,0 +1,221 @@
+//! Reading a holdout as a caller may see it: its public facts and budget, the history of
+//! released answers, the public declaration; and closing it.
+//!
+//! Everything shown here is a function of released symbols and public parameters (DESIGN 4.2
+//! rule 1). Exact scores go only to auditors, and to organizers once the holdout is closed; each
+//! such read is itself recorded in the ledger.
+
+use rusqlite::params;
+use serde::{Deserialize, Serialize};
+use serde_json::json;
+
+use super::account::HoldoutPolicy;
+use super::records::{AnswerRecord, BudgetView, RefusalRecord};
+use super::submit::{Receipt, next_midnight};
+use super::{Engine, Loaded};
+use crate::auth::{Caller, Role, rfc3339};
+use crate::error::{Error, Result};
+use crate::ledger;
+
+/// A holdout's public facts and the caller's view of its budget.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct HoldoutView {
+    /// Name.
+    pub name: String,
+    /// Description.
+    pub description: String,
+    /// Rows.
+    pub rows: u64,
+    /// Policy.
+    pub policy: HoldoutPolicy,
+    /// Creation time.
+    pub created_at: String,
+    /// Open for queries.
+    pub open: bool,
+    /// Budget (the caller's team under isolated).
+    pub budget: BudgetView,
+    /// Genesis hash.
+    pub genesis_hash: String,
+    /// Guarantee sentence and assumptions.
+    pub guarantee: String,
+}
+
+/// One released event in a history.
+#[derive(Debug, Clone)]
+pub enum HistoryItem {
+    /// An answer; `exact` filled only when the caller may read exact scores and asked.
+    Answer(Box<AnswerRecord>, Receipt),
+    /// A refusal.
+    Refusal(Box<RefusalRecord>, Receipt),
+}
+
+impl Engine {
+    /// Public facts and budget of one holdout.
+    pub fn holdout_view(&mut self, caller: &Caller, name: &str) -> Result<HoldoutView> {
+        let loaded = self.loaded(name)?;
+        let closed = self.closed_at(loaded.id)?;
+        let budget = self.budget_view(&loaded, &caller.team, closed.is_none())?;
+        Ok(HoldoutView {
+            name: loaded.name.clone(),
+            description: loaded.description.clone(),
+            rows: loaded.ids.len() as u64,
+            policy: loaded.policy.clone(),
+            created_at: loaded.created_at.clone(),
+            open: closed.is_none(),
+            budget,
+            genesis_hash: loaded.genesis_hash.clone(),
+            guarantee: loaded.policy.guarantee(),
+        })
+    }
+
+    /// Every holdout, by name.
+    pub fn list_holdouts(
+        &mut self,
+        caller: &Caller,
+        include_closed: bool,
+    ) -> Result<Vec<HoldoutView>> {
+        let names: Vec<(String, bool)> = {
+            let conn = self.store.conn();
+            let mut stmt =
+                conn.prepare("SELECT name, closed_at IS NOT NULL FROM holdouts ORDER BY name")?;
+            let rows = stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))?;
+            rows.collect::<std::result::Result<_, _>>()?
+        };
+        let mut out = Vec::new();
+        for (name, closed) in names {
+            if closed && !include_closed {
+                continue;
+            }
+            out.push(self.holdout_view(caller, &name)?);
+        }
+        Ok(out)
+    }
+
+    /// The budget as `team` may see it.
+    pub(crate) fn budget_view(
+        &mut self,
+        loaded: &Loaded,
+        team: &str,
+        open: bool,
+    ) -> Result<BudgetView> {
+        let book = self.book(loaded)?;
+        let mut budget = book.budget(&loaded.policy, team);
+        budget.open = open;
+        let quota = loaded.policy.daily_quota;
+        if quota > 0 {
+            let now = self.now();
+            let used = self.answers_today(loaded, team, now)?;
+            budget.quota_left_today = Some(quota.saturating_sub(used as u32));
+            budget.quota_resets_at = Some(rfc3339(next_midnight(now)));
+        }
+        Ok(budget)
+    }
+
+    /// Released answers and refusals, oldest first.
+    pub fn history(
+        &mut self,
+        caller: &Caller,
+        name: &str,
+        exact: bool,
+    ) -> Result<Vec<HistoryItem>> {
+        let loaded = self.loaded(name)?;
+        let closed = self.closed_at(loaded.id)?.is_some();
+        if exact {
+            let allowed = caller.has(Role::Auditor) || (caller.has(Role::Organizer) && closed);
+            if !allowed {
+                return Err(Error::PermissionDenied(if caller.has(Role::Organizer) {
+                    format!(
+                        "exact scores of holdout {name} are shown to organizers only after it is \
+                         closed (someone who sees them must not choose models while it is open)"
+                    )
+                } else {
+                    "exact scores need the auditor role".into()
+                }));
+            }
+        }
+        let see_all =
+            !loaded.policy.isolated() || caller.has(Role::Organizer) || caller.has(Role::Auditor);
+        let entries = ledger::read_chain(self.store.conn(), name)?;
+        let mut out = Vec::new();
+        for e in &entries {
+            let receipt = Receipt {
+                holdout: name.to_string(),
+                entry: e.seq,
+                entry_hash: e.hash.clone(),
+                salt: e.salt.clone(),
+            };
+            match e.kind.as_str() {
+                "answer" => {
+                    let mut r: AnswerRecord = serde_json::from_str(&e.body)
+                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                    if !see_all && r.team != caller.team {
+                        continue;
+                    }
+                    if !exact {
+                        r.exact = None;
+                    }
+                    out.push(HistoryItem::Answer(Box::new(r), receipt));
+                }
+                "refusal" => {
+                    let r: RefusalRecord = serde_json::from_str(&e.body)
+                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                    if !see_all && r.team != caller.team {
+                        continue;
+                    }
+                    out.push(HistoryItem::Refusal(Box::new(r), receipt));
+                }
+                _ => {}
+            }
+        }
+        if exact {
+            let at = rfc3339(self.now());
+            ledger::append(
+                self.store.conn(),
+                name,
+                "read",
+                &json!({"by": caller.name, "roles": crate::auth::role_list(&caller.roles),
+                        "what": "exact scores (history)", "at": at}),
+            )?;
+        }
+        Ok(out)
+    }
+
+    /// The public declaration: targets and row ids.
+    pub fn declaration(&mut self, name: &str) -> Result<(Vec<super::TargetDecl>, Vec<String>)> {
+        let loaded = self.loaded(name)?;
+        Ok((loaded.policy.targets.clone(), loaded.ids.clone()))
+    }
+
+    /// Closes a holdout (organizer).
+    pub fn close_holdout(
+        &mut self,
+        caller: &Caller,
+        name: &str,
+        reason: &str,
+    ) -> Result<HoldoutView> {
+        caller.require("closing a holdout", &[Role::Organizer])?;
+        let loaded = self.loaded(name)?;
+        let at = rfc3339(self.now());
+        let tx = self
+            .store
+            .conn()
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+        let n = tx.execute(
+            "UPDATE holdouts SET closed_at = ?2 WHERE id = ?1 AND closed_at IS NULL",
+            params![loaded.id, at],
+        )?;
+        if n == 0 {
+            return Err(Error::FailedPrecondition(format!(
+                "holdout {name} is already closed"
+            )));
+        }
+        ledger::append(
+            &tx,
+            name,
+            "close",
+            &json!({"by": caller.name, "reason": reason, "at": at}),
+        )?;
+        tx.commit()?;
+        self.holdout_view(caller, name)
+    }
+}

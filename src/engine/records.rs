@@ -1,0 +1,114 @@
+//! The bodies of ledger entries the engine writes, and what callers are shown of them.
+//!
+//! An answer entry holds everything needed to replay it (the request, the charge, the exact
+//! losses) and everything that was released (symbol, interval, budget after). Exact losses are
+//! stripped before an analyst or an organizer of an open holdout sees a record.
+
+use serde::{Deserialize, Serialize};
+
+use crate::metric::Loss;
+
+/// Budget position as shown to a caller.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct BudgetView {
+    /// Total failure probability.
+    pub delta: f64,
+    /// Schedule shares used.
+    pub spent: f64,
+    /// delta - spent.
+    pub remaining: f64,
+    /// Transcript cost L, nats.
+    pub transcript_nats: f64,
+    /// Half-width the next query would get at the public reference score.
+    pub next_half_width: f64,
+    /// Queries that still fit within the tolerance at worst-case cost.
+    pub queries_left: u64,
+    /// Answered queries (per team under isolated).
+    pub answered: u64,
+    /// Refused queries (per team under isolated).
+    pub refused: u64,
+    /// Whether the holdout accepts queries.
+    pub open: bool,
+    /// Next quota reset, RFC 3339, when a quota applies.
+    pub quota_resets_at: Option<String>,
+    /// Queries left today under the quota.
+    pub quota_left_today: Option<u32>,
+}
+
+/// A released answer, as recorded in the ledger.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AnswerRecord {
+    /// Holdout.
+    pub holdout: String,
+    /// Target name.
+    pub target: String,
+    /// Target index.
+    pub target_index: usize,
+    /// User who asked.
+    pub user: String,
+    /// Team (accounting identity).
+    pub team: String,
+    /// Query number (per team under isolated).
+    pub query: u64,
+    /// Released symbol, as text.
+    pub symbol: String,
+    /// Released score, if the rule releases one.
+    pub score: Option<f64>,
+    /// Reported interval, lower end.
+    pub lower: f64,
+    /// Reported interval, upper end.
+    pub upper: f64,
+    /// Schedule share (per model).
+    pub delta_i: f64,
+    /// ln(1/d_i).
+    pub level_nats: f64,
+    /// Code length of the symbol.
+    pub code_nats: f64,
+    /// What the symbol certifies.
+    pub statement: String,
+    /// Chosen model of a batch.
+    pub best_model: Option<u32>,
+    /// Number of models.
+    pub models: u32,
+    /// Model display names.
+    pub model_names: Vec<String>,
+    /// Digest of the parsed predictions.
+    pub digest: String,
+    /// Client request id.
+    pub request_id: Option<String>,
+    /// Note.
+    pub note: String,
+    /// Time, RFC 3339 UTC.
+    pub at: String,
+    /// Budget after the answer.
+    pub budget: BudgetView,
+    /// The accounting core's own record of the answer (for replay).
+    pub core: serde_json::Value,
+    /// Exact losses per model. Hidden from analysts, and from organizers while open.
+    pub exact: Option<Vec<Loss>>,
+}
+
+/// A refusal, as recorded in the ledger.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RefusalRecord {
+    /// Holdout.
+    pub holdout: String,
+    /// Target name.
+    pub target: String,
+    /// User who asked.
+    pub user: String,
+    /// Team.
+    pub team: String,
+    /// Machine-readable reason.
+    pub reason: String,
+    /// Explanation.
+    pub message: String,
+    /// Request id.
+    pub request_id: Option<String>,
+    /// Note.
+    pub note: String,
+    /// Time.
+    pub at: String,
+    /// Budget at the time.
+    pub budget: BudgetView,
+}

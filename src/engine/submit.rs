@@ -1,0 +1,635 @@
+//! Submitting predictions: validation against the public declaration, idempotency, the
+//! refuse-or-charge decision, scoring, and the ledger append, all in one transaction.
+
+use rusqlite::{OptionalExtension, params};
+use sha2::{Digest, Sha256};
+
+use super::account::{Quote, RefusalReason};
+use super::records::{AnswerRecord, RefusalRecord};
+use super::{Engine, Loaded};
+use crate::auth::{Caller, Role, rfc3339};
+use crate::error::{Error, Result};
+use crate::ledger::{self, Entry};
+use crate::metric::{self, Loss, Metric, Predictions};
+
+/// What the caller asks for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SubmitMode {
+    /// Score, charge, answer or refuse.
+    Answer,
+    /// Quote only; nothing scored or recorded.
+    DryRun,
+    /// Check against the public declaration only.
+    Validate,
+}
+
+/// Prediction values as received.
+#[derive(Debug, Clone, PartialEq)]
+pub enum RawValues {
+    /// Class names (metric `error`).
+    Classes(Vec<String>),
+    /// Numbers (every other metric).
+    Numbers(Vec<f64>),
+}
+
+/// One model's predictions as received (any row order).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ModelPredictions {
+    /// Row ids.
+    pub ids: Vec<String>,
+    /// Values aligned with `ids`.
+    pub values: RawValues,
+}
+
+/// A submission.
+#[derive(Debug, Clone)]
+pub struct SubmitRequest {
+    /// Holdout name.
+    pub holdout: String,
+    /// Target name; empty for the only target.
+    pub target: String,
+    /// Mode.
+    pub mode: SubmitMode,
+    /// Client request id.
+    pub request_id: Option<String>,
+    /// Note.
+    pub note: String,
+    /// Refuse locally if the answer could cost more nats than this.
+    pub max_cost_nats: Option<f64>,
+    /// Display names of the models.
+    pub model_names: Vec<String>,
+    /// One entry per model (more than one only for best-of batches).
+    pub models: Vec<ModelPredictions>,
+}
+
+/// Where a ledger entry is, for the analyst to keep.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Receipt {
+    /// Holdout.
+    pub holdout: String,
+    /// Entry number.
+    pub entry: u64,
+    /// Entry hash.
+    pub entry_hash: String,
+    /// Entry salt.
+    pub salt: String,
+}
+
+impl Receipt {
+    fn of(e: &Entry) -> Receipt {
+        Receipt {
+            holdout: e.chain.clone(),
+            entry: e.seq,
+            entry_hash: e.hash.clone(),
+            salt: e.salt.clone(),
+        }
+    }
+}
+
+/// The result of a submission.
+#[derive(Debug, Clone)]
+pub enum SubmitOutcome {
+    /// Answered (or answered again at no charge when `replayed`).
+    Answer {
+        /// The record, with exact losses removed.
+        record: Box<AnswerRecord>,
+        /// Receipt.
+        receipt: Receipt,
+        /// Whether this is a repeat of an earlier answer.
+        replayed: bool,
+    },
+    /// Refused; `receipt` is None for a local max-cost refusal (not recorded).
+    Refusal {
+        /// The record.
+        record: Box<RefusalRecord>,
+        /// Receipt.
+        receipt: Option<Receipt>,
+    },
+    /// Dry run.
+    Quote {
+        /// The quote.
+        quote: Quote,
+        /// Refusal reason if the query would be refused.
+        would_refuse: Option<String>,
+        /// Budget now.
+        budget: super::BudgetView,
+    },
+    /// Validation.
+    Validation {
+        /// Rows per model.
+        rows: u64,
+        /// Digest.
+        digest: String,
+    },
+}
+
+impl Engine {
+    /// Handles a submission.
+    pub fn submit(&mut self, caller: &Caller, req: SubmitRequest) -> Result<SubmitOutcome> {
+        let loaded = self.loaded(&req.holdout)?;
+        let target_index = resolve_target(&loaded, &req.target)?;
+        let target = &loaded.policy.targets[target_index];
+        if req.mode != SubmitMode::Validate {
+            caller.require("submitting predictions", &[Role::Analyst])?;
+        }
+        if req.models.is_empty() {
+            return Err(Error::invalid("predictions", "no predictions were sent"));
+        }
+        if req.models.len() > 1 && !loaded.policy.allows_batches() {
+            return Err(Error::invalid(
+                "predictions",
+                format!(
+                    "a batch of {} models needs a best-of holdout; this one answers with {}",
+                    req.models.len(),
+                    loaded.policy.answers_spec()
+                ),
+            ));
+        }
+        let mut preds = Vec::with_capacity(req.models.len());
+        for (m, model) in req.models.iter().enumerate() {
+            let label = req
+                .model_names
+                .get(m)
+                .cloned()
+                .unwrap_or_else(|| format!("model {m}"));
+            preds.push(join(
+                &loaded,
+                &target.metric,
+                &target.classes,
+                model,
+                &label,
+            )?);
+        }
+        let digest = digest(&target.name, &target.classes, &preds);
+        if req.mode == SubmitMode::Validate {
+            return Ok(SubmitOutcome::Validation {
+                rows: loaded.ids.len() as u64,
+                digest,
+            });
+        }
+        if let Some(at) = self.closed_at(loaded.id)? {
+            return Err(Error::FailedPrecondition(format!(
+                "holdout {} was closed at {at} and answers no more queries",
+                loaded.name
+            )));
+        }
+        let models = req.models.len() as u32;
+        let team = caller.team.clone();
+
+        if req.mode == SubmitMode::DryRun {
+            let book = self.book(&loaded)?;
+            let budget = book.budget(&loaded.policy, &team);
+            let quote = book.quote(&loaded.policy, &team, target_index, models);
+            return Ok(match quote {
+                Ok(q) => SubmitOutcome::Quote {
+                    quote: q,
+                    would_refuse: self.quota_refusal(&loaded, &team)?.map(|(r, _)| r),
+                    budget,
+                },
+                Err(r) => SubmitOutcome::Quote {
+                    quote: book.quote_ignoring_limits(&loaded.policy, &team, target_index, models),
+                    would_refuse: Some(r.code().to_string()),
+                    budget,
+                },
+            });
+        }
+
+        let result = self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models);
+        if result.is_err() {
+            self.forget(&loaded.name);
+        }
+        result
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn answer_in_tx(
+        &mut self,
+        caller: &Caller,
+        loaded: &Loaded,
+        req: &SubmitRequest,
+        target_index: usize,
+        preds: Vec<Predictions>,
+        digest: String,
+        models: u32,
+    ) -> Result<SubmitOutcome> {
+        let team = caller.team.clone();
+        let scope = if loaded.policy.isolated() {
+            team.clone()
+        } else {
+            String::new()
+        };
+        let now = self.now();
+        let at = rfc3339(now);
+        // Take the write lock before reading anything the decision depends on.
+        self.store
+            .conn()
+            .execute_batch("BEGIN IMMEDIATE")
+            .map_err(Error::from)?;
+        let outcome = (|| -> Result<(SubmitOutcome, Option<(u64, super::account::Book)>)> {
+            // Idempotency: the request id is scoped to the team and tied to the digest.
+            if let Some(rid) = &req.request_id {
+                let known: Option<(String, i64)> = self
+                    .store
+                    .conn()
+                    .query_row(
+                        "SELECT digest, seq FROM request_keys
+                         WHERE holdout_id = ?1 AND team = ?2 AND request_id = ?3",
+                        params![loaded.id, team, rid],
+                        |r| Ok((r.get(0)?, r.get(1)?)),
+                    )
+                    .optional()?;
+                if let Some((d, seq)) = known {
+                    if d != digest {
+                        return Err(Error::FailedPrecondition(format!(
+                            "request id {rid} was already used with different predictions; a \
+                             retry must send the same file, a new query needs a new id"
+                        )));
+                    }
+                    return Ok((self.replay_answer(loaded, seq as u64)?, None));
+                }
+            }
+            // An identical prediction vector is answered again from the ledger at no charge.
+            let seen: Option<i64> = self
+                .store
+                .conn()
+                .query_row(
+                    "SELECT seq FROM answered_digests
+                     WHERE holdout_id = ?1 AND target = ?2 AND scope = ?3 AND digest = ?4",
+                    params![loaded.id, target_index as i64, scope, digest],
+                    |r| r.get(0),
+                )
+                .optional()?;
+            if let Some(seq) = seen {
+                self.remember_request(loaded, &team, req, &digest, seq as u64)?;
+                return Ok((self.replay_answer(loaded, seq as u64)?, None));
+            }
+
+            let mut book = self.book(loaded)?;
+            let target_name = loaded.policy.targets[target_index].name.clone();
+            let refusal = |reason: String, message: String, budget| RefusalRecord {
+                holdout: loaded.name.clone(),
+                target: target_name.clone(),
+                user: caller.name.clone(),
+                team: team.clone(),
+                reason,
+                message,
+                request_id: req.request_id.clone(),
+                note: req.note.clone(),
+                at: at.clone(),
+                budget,
+            };
+            let budget_now = book.budget(&loaded.policy, &team);
+            if let Some((reason, message)) = self.quota_refusal(loaded, &team)? {
+                return self.record_refusal(
+                    loaded,
+                    &mut book,
+                    refusal(reason, message, budget_now),
+                );
+            }
+            let quote = match book.quote(&loaded.policy, &team, target_index, models) {
+                Ok(q) => q,
+                Err(r) => {
+                    let (code, msg) = (r.code().to_string(), r.to_string());
+                    return self.record_refusal(loaded, &mut book, refusal(code, msg, budget_now));
+                }
+            };
+            if let Some(max) = req.max_cost_nats {
+                if quote.worst_code_nats > max {
+                    let r = refusal(
+                        RefusalReason::MaxCost.code().into(),
+                        format!(
+                            "this answer could cost up to {:.3} nats of transcript, more than \
+                             --max-cost {max}; nothing was charged or recorded",
+                            quote.worst_code_nats
+                        ),
+                        budget_now,
+                    );
+                    return Ok((
+                        SubmitOutcome::Refusal {
+                            record: Box::new(r),
+                            receipt: None,
+                        },
+                        None,
+                    ));
+                }
+            }
+            // Only now, with the charge decided from public facts, is anything scored.
+            let target = &loaded.policy.targets[target_index];
+            let losses: Vec<Loss> = preds
+                .iter()
+                .map(|p| metric::score(&target.metric, &loaded.labels[target_index], p))
+                .collect::<Result<_>>()?;
+            let core = book.answer(&loaded.policy, &team, target_index, &quote, &losses)?;
+            let budget = book.budget(&loaded.policy, &team);
+            let record = AnswerRecord {
+                holdout: loaded.name.clone(),
+                target: target.name.clone(),
+                target_index,
+                user: caller.name.clone(),
+                team: team.clone(),
+                query: core.query,
+                symbol: core.symbol,
+                score: core.score,
+                lower: core.lower,
+                upper: core.upper,
+                delta_i: core.delta_i,
+                level_nats: core.level_nats,
+                code_nats: core.code_nats,
+                statement: core.statement,
+                best_model: core.best_model,
+                models,
+                model_names: req.model_names.clone(),
+                digest: digest.clone(),
+                request_id: req.request_id.clone(),
+                note: req.note.clone(),
+                at: at.clone(),
+                budget,
+                core: core.core,
+                exact: Some(losses),
+            };
+            let body = serde_json::to_value(&record)
+                .map_err(|e| Error::Internal(format!("answer encoding: {e}")))?;
+            let conn = self.store.conn();
+            let entry = ledger::append(conn, &loaded.name, "answer", &body)?;
+            conn.execute(
+                "INSERT INTO answered_digests (holdout_id, target, scope, digest, seq)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+                params![
+                    loaded.id,
+                    target_index as i64,
+                    scope,
+                    digest,
+                    entry.seq as i64
+                ],
+            )?;
+            self.remember_request(loaded, &team, req, &digest, entry.seq)?;
+            let mut shown = record;
+            shown.exact = None;
+            Ok((
+                SubmitOutcome::Answer {
+                    record: Box::new(shown),
+                    receipt: Receipt::of(&entry),
+                    replayed: false,
+                },
+                Some((entry.seq, book)),
+            ))
+        })();
+        match outcome {
+            Ok((out, book)) => {
+                self.store.conn().execute_batch("COMMIT")?;
+                if let Some((seq, book)) = book {
+                    self.remember_book(&loaded.name, seq, book);
+                }
+                Ok(out)
+            }
+            Err(e) => {
+                let _ = self.store.conn().execute_batch("ROLLBACK");
+                Err(e)
+            }
+        }
+    }
+
+    fn record_refusal(
+        &mut self,
+        loaded: &Loaded,
+        book: &mut super::account::Book,
+        record: RefusalRecord,
+    ) -> Result<(SubmitOutcome, Option<(u64, super::account::Book)>)> {
+        book.note_refusal(&loaded.policy, &record.team);
+        let body = serde_json::to_value(&record)
+            .map_err(|e| Error::Internal(format!("refusal encoding: {e}")))?;
+        let entry = ledger::append(self.store.conn(), &loaded.name, "refusal", &body)?;
+        let mut record = record;
+        record.budget = book.budget(&loaded.policy, &record.team);
+        Ok((
+            SubmitOutcome::Refusal {
+                record: Box::new(record),
+                receipt: Some(Receipt::of(&entry)),
+            },
+            Some((entry.seq, book.clone())),
+        ))
+    }
+
+    fn remember_request(
+        &mut self,
+        loaded: &Loaded,
+        team: &str,
+        req: &SubmitRequest,
+        digest: &str,
+        seq: u64,
+    ) -> Result<()> {
+        if let Some(rid) = &req.request_id {
+            self.store.conn().execute(
+                "INSERT OR IGNORE INTO request_keys (holdout_id, team, request_id, digest, seq)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+                params![loaded.id, team, rid, digest, seq as i64],
+            )?;
+        }
+        Ok(())
+    }
+
+    fn replay_answer(&mut self, loaded: &Loaded, seq: u64) -> Result<SubmitOutcome> {
+        let (body, hash, salt): (String, String, String) = self.store.conn().query_row(
+            "SELECT body, hash, salt FROM ledger WHERE chain = ?1 AND seq = ?2",
+            params![loaded.name, seq as i64],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )?;
+        let mut record: AnswerRecord = serde_json::from_str(&body)
+            .map_err(|e| Error::Internal(format!("stored answer {seq}: {e}")))?;
+        record.exact = None;
+        Ok(SubmitOutcome::Answer {
+            record: Box::new(record),
+            receipt: Receipt {
+                holdout: loaded.name.clone(),
+                entry: seq,
+                entry_hash: hash,
+                salt,
+            },
+            replayed: true,
+        })
+    }
+
+    /// A quota refusal, decided from public facts (the team's answers today), if any.
+    fn quota_refusal(&mut self, loaded: &Loaded, team: &str) -> Result<Option<(String, String)>> {
+        let quota = loaded.policy.daily_quota;
+        if quota == 0 {
+            return Ok(None);
+        }
+        let now = self.now();
+        let used = self.answers_today(loaded, team, now)?;
+        if used < u64::from(quota) {
+            return Ok(None);
+        }
+        let reset = next_midnight(now);
+        Ok(Some((
+            RefusalReason::Quota.code().into(),
+            format!(
+                "team {team} has used its {quota} queries for today (UTC); the quota resets at {}",
+                rfc3339(reset)
+            ),
+        )))
+    }
+
+    /// Answers a team received since the start of `now`'s UTC day.
+    pub(crate) fn answers_today(
+        &mut self,
+        loaded: &Loaded,
+        team: &str,
+        now: chrono::DateTime<chrono::Utc>,
+    ) -> Result<u64> {
+        let day = now.format("%Y-%m-%d").to_string();
+        let n: i64 = self.store.conn().query_row(
+            "SELECT count(*) FROM ledger WHERE chain = ?1 AND kind = 'answer'
+             AND json_extract(body, '$.team') = ?2
+             AND substr(json_extract(body, '$.at'), 1, 10) = ?3",
+            params![loaded.name, team, day],
+            |r| r.get(0),
+        )?;
+        Ok(n as u64)
+    }
+}
+
+/// Start of the next UTC day.
+pub(crate) fn next_midnight(now: chrono::DateTime<chrono::Utc>) -> chrono::DateTime<chrono::Utc> {
+    let tomorrow = now.date_naive().succ_opt().unwrap_or(now.date_naive());
+    tomorrow
+        .and_hms_opt(0, 0, 0)
+        .map(|t| t.and_utc())
+        .unwrap_or(now)
+}
+
+fn resolve_target(loaded: &Loaded, target: &str) -> Result<usize> {
+    let targets = &loaded.policy.targets;
+    if target.is_empty() {
+        if targets.len() == 1 {
+            return Ok(0);
+        }
+        let names: Vec<&str> = targets.iter().map(|t| t.name.as_str()).collect();
+        return Err(Error::invalid(
+            "target",
+            format!(
+                "holdout {} has several targets; choose one of {}",
+                loaded.name,
+                names.join(", ")
+            ),
+        ));
+    }
+    targets
+        .iter()
+        .position(|t| t.name == target)
+        .ok_or_else(|| Error::not_found("target", format!("{target} (holdout {})", loaded.name)))
+}
+
+/// Joins predictions to the holdout's row order, checking them against the public declaration
+/// only: every declared id exactly once, no other id, values in the declared domain.
+fn join(
+    loaded: &Loaded,
+    metric: &Metric,
+    classes: &[String],
+    model: &ModelPredictions,
+    label: &str,
+) -> Result<Predictions> {
+    let n = loaded.ids.len();
+    let given = match &model.values {
+        RawValues::Classes(v) => v.len(),
+        RawValues::Numbers(v) => v.len(),
+    };
+    if given != model.ids.len() {
+        return Err(Error::invalid(
+            label,
+            format!("{} ids but {given} values", model.ids.len()),
+        ));
+    }
+    if model.ids.is_empty() {
+        return Err(Error::invalid(label, "no prediction rows"));
+    }
+    let mut slot: Vec<u32> = vec![u32::MAX; n];
+    for (i, id) in model.ids.iter().enumerate() {
+        let pos = *loaded.positions.get(id.trim()).ok_or_else(|| {
+            Error::invalid(
+                format!("{label}, row id {id}"),
+                format!("not a row of holdout {} (see `holdout ids`)", loaded.name),
+            )
+        })? as usize;
+        if slot[pos] != u32::MAX {
+            return Err(Error::invalid(
+                format!("{label}, row id {id}"),
+                "predicted more than once",
+            ));
+        }
+        slot[pos] = i as u32;
+    }
+    if let Some(missing) = slot.iter().position(|s| *s == u32::MAX) {
+        let count = slot.iter().filter(|s| **s == u32::MAX).count();
+        return Err(Error::invalid(
+            format!("{label}, row id {}", loaded.ids[missing]),
+            format!("missing: every row needs a prediction ({count} missing)"),
+        ));
+    }
+    match (&model.values, metric.uses_classes()) {
+        (RawValues::Classes(v), true) => {
+            let index: std::collections::HashMap<&str, u32> = classes
+                .iter()
+                .enumerate()
+                .map(|(i, c)| (c.as_str(), i as u32))
+                .collect();
+            let mut out = Vec::with_capacity(n);
+            for s in &slot {
+                let raw = v[*s as usize].trim();
+                let c = *index.get(raw).ok_or_else(|| {
+                    Error::invalid(
+                        format!("{label}, row id {}", model.ids[*s as usize]),
+                        format!("{raw:?} is not a declared class ({})", classes.join(",")),
+                    )
+                })?;
+                out.push(c);
+            }
+            Ok(Predictions::Classes(out))
+        }
+        (RawValues::Numbers(v), false) => {
+            let mut out = Vec::with_capacity(n);
+            for s in &slot {
+                let x = v[*s as usize];
+                metric::check_number(metric, x).map_err(|m| {
+                    Error::invalid(format!("{label}, row id {}", model.ids[*s as usize]), m)
+                })?;
+                out.push(x);
+            }
+            Ok(Predictions::Numbers(out))
+        }
+        (RawValues::Numbers(_), true) => Err(Error::invalid(
+            label,
+            format!("metric {metric} expects class names, not numbers"),
+        )),
+        (RawValues::Classes(_), false) => Err(Error::invalid(
+            label,
+            format!("metric {metric} expects numbers, not class names"),
+        )),
+    }
+}
+
+/// SHA-256 over the parsed values in row-id order (not the file's bytes), so a re-exported file
+/// with other float formatting or row order has the same digest.
+fn digest(target: &str, classes: &[String], preds: &[Predictions]) -> String {
+    let mut h = Sha256::new();
+    h.update(format!("holdout-ledger-predictions/1\n{target}\n{}\n", preds.len()).as_bytes());
+    for p in preds {
+        match p {
+            Predictions::Classes(v) => {
+                for c in v {
+                    h.update(classes[*c as usize].as_bytes());
+                    h.update(b"\n");
+                }
+            }
+            Predictions::Numbers(v) => {
+                for x in v {
+                    // Normalise -0.0 so it digests like 0.0.
+                    let x = if *x == 0.0 { 0.0 } else { *x };
+                    h.update(x.to_bits().to_le_bytes());
+                }
+            }
+        }
+        h.update(b"--\n");
+    }
+    hex::encode(h.finalize())
+}

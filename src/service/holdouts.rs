@@ -1,0 +1,178 @@
+//! The `Holdouts` service.
+
+use std::pin::Pin;
+
+use tokio_stream::{Stream, StreamExt};
+use tonic::{Request, Response, Status, Streaming};
+
+use super::{Daemon, convert};
+use crate::auth::Role;
+use crate::engine::{CreateRequest, PolicyInput, TargetDecl};
+use crate::error::Error;
+use crate::metric::Metric;
+use crate::proto::v1::{
+    CloseHoldoutRequest, CreateHoldoutChunk, DeclarationChunk, GetDeclarationRequest,
+    GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse,
+    create_holdout_chunk::Part, holdouts_server::Holdouts,
+};
+
+/// Row ids per declaration chunk.
+const IDS_PER_CHUNK: usize = 8192;
+
+fn policy_input(p: crate::proto::v1::Policy) -> PolicyInput {
+    PolicyInput {
+        delta: p.delta,
+        schedule: p.schedule,
+        answers: p.answers,
+        tolerance: p.tolerance,
+        sharing: p.sharing,
+        tolerance_reference: p.tolerance_reference,
+        shares: p.shares,
+        daily_quota: p.daily_quota,
+    }
+}
+
+#[tonic::async_trait]
+impl Holdouts for Daemon {
+    async fn create_holdout(
+        &self,
+        request: Request<Streaming<CreateHoldoutChunk>>,
+    ) -> Result<Response<HoldoutInfo>, Status> {
+        let caller = self.caller(&request).await?;
+        // Refuse early, before reading labels the caller may not upload.
+        caller.require("creating a holdout", &[Role::Custodian])?;
+        let mut stream = request.into_inner();
+        let spec = match stream.next().await {
+            Some(Ok(CreateHoldoutChunk {
+                part: Some(Part::Spec(spec)),
+            })) => spec,
+            Some(Err(e)) => return Err(e),
+            _ => {
+                return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
+            }
+        };
+        let mut targets = Vec::with_capacity(spec.targets.len());
+        for t in &spec.targets {
+            let metric: Metric = t.metric.parse()?;
+            targets.push(TargetDecl {
+                name: t.name.clone(),
+                column: t.column.clone(),
+                metric,
+                method: t.method.clone(),
+                classes: t.classes.clone(),
+            });
+        }
+        let mut ids = Vec::new();
+        let mut columns: Vec<Vec<String>> = vec![Vec::new(); targets.len()];
+        while let Some(chunk) = stream.next().await {
+            match chunk?.part {
+                Some(Part::Rows(rows)) => {
+                    if rows.columns.len() != targets.len() {
+                        return Err(Error::invalid(
+                            "labels",
+                            format!(
+                                "a chunk has {} label columns for {} targets",
+                                rows.columns.len(),
+                                targets.len()
+                            ),
+                        )
+                        .into());
+                    }
+                    for (c, col) in rows.columns.into_iter().enumerate() {
+                        if col.values.len() != rows.ids.len() {
+                            return Err(Error::invalid(
+                                "labels",
+                                format!("column {c} is not as long as the ids of its chunk"),
+                            )
+                            .into());
+                        }
+                        columns[c].extend(col.values);
+                    }
+                    ids.extend(rows.ids);
+                }
+                Some(Part::Spec(_)) => {
+                    return Err(Error::invalid("stream", "the spec was sent twice").into());
+                }
+                None => {}
+            }
+        }
+        let req = CreateRequest {
+            name: spec.name,
+            description: spec.description,
+            policy: policy_input(spec.policy.unwrap_or_default()),
+            targets,
+            ids,
+            columns,
+        };
+        let view = self
+            .db
+            .call(move |engine| engine.create_holdout(&caller, req))
+            .await?;
+        Ok(Response::new(convert::holdout(&view)))
+    }
+
+    async fn get_holdout(
+        &self,
+        request: Request<GetHoldoutRequest>,
+    ) -> Result<Response<HoldoutInfo>, Status> {
+        let caller = self.caller(&request).await?;
+        let name = request.into_inner().name;
+        let view = self
+            .db
+            .call(move |engine| engine.holdout_view(&caller, &name))
+            .await?;
+        Ok(Response::new(convert::holdout(&view)))
+    }
+
+    async fn list_holdouts(
+        &self,
+        request: Request<ListHoldoutsRequest>,
+    ) -> Result<Response<ListHoldoutsResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let all = request.into_inner().include_closed;
+        let views = self
+            .db
+            .call(move |engine| engine.list_holdouts(&caller, all))
+            .await?;
+        Ok(Response::new(ListHoldoutsResponse {
+            holdouts: views.iter().map(convert::holdout).collect(),
+        }))
+    }
+
+    async fn close_holdout(
+        &self,
+        request: Request<CloseHoldoutRequest>,
+    ) -> Result<Response<HoldoutInfo>, Status> {
+        let caller = self.caller(&request).await?;
+        let req = request.into_inner();
+        let view = self
+            .db
+            .call(move |engine| engine.close_holdout(&caller, &req.name, &req.reason))
+            .await?;
+        Ok(Response::new(convert::holdout(&view)))
+    }
+
+    type GetDeclarationStream =
+        Pin<Box<dyn Stream<Item = Result<DeclarationChunk, Status>> + Send + 'static>>;
+
+    async fn get_declaration(
+        &self,
+        request: Request<GetDeclarationRequest>,
+    ) -> Result<Response<Self::GetDeclarationStream>, Status> {
+        self.caller(&request).await?;
+        let name = request.into_inner().name;
+        let (targets, ids) = self
+            .db
+            .call(move |engine| engine.declaration(&name))
+            .await?;
+        let mut chunks = Vec::with_capacity(ids.len() / IDS_PER_CHUNK + 1);
+        let mut first = Some(targets.iter().map(convert::target).collect::<Vec<_>>());
+        for part in ids.chunks(IDS_PER_CHUNK) {
+            chunks.push(Ok(DeclarationChunk {
+                targets: first.take().unwrap_or_default(),
+                ids: part.to_vec(),
+            }));
+        }
+        Ok(Response::new(Box::pin(tokio_stream::iter(chunks))))
+    }
+}

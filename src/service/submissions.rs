@@ -1,0 +1,236 @@
+//! The `Submissions` service.
+
+use std::pin::Pin;
+
+use tokio_stream::{Stream, StreamExt};
+use tonic::{Request, Response, Status, Streaming};
+
+use super::{Daemon, convert};
+use crate::engine::{
+    HistoryItem, ModelPredictions, RawValues, SubmitMode, SubmitOutcome, SubmitRequest,
+};
+use crate::error::Error;
+use crate::proto::v1::{
+    self as pb, HistoryEntry, HistoryRequest, StatusRequest, StatusResponse, SubmitChunk,
+    SubmitResponse, submissions_server::Submissions, submit_chunk::Part, submit_response::Outcome,
+};
+
+#[tonic::async_trait]
+impl Submissions for Daemon {
+    async fn submit(
+        &self,
+        request: Request<Streaming<SubmitChunk>>,
+    ) -> Result<Response<SubmitResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let mut stream = request.into_inner();
+        let header = match stream.next().await {
+            Some(Ok(SubmitChunk {
+                part: Some(Part::Header(h)),
+            })) => h,
+            Some(Err(e)) => return Err(e),
+            _ => return Err(Error::invalid("stream", "the first chunk must be the header").into()),
+        };
+        let mode = match pb::SubmitMode::try_from(header.mode) {
+            Ok(pb::SubmitMode::Answer) => SubmitMode::Answer,
+            Ok(pb::SubmitMode::DryRun) => SubmitMode::DryRun,
+            Ok(pb::SubmitMode::Validate) => SubmitMode::Validate,
+            _ => return Err(Error::invalid("mode", "set the submit mode").into()),
+        };
+        let holdout = header.holdout.clone();
+        // Rows per model are capped at the holdout's size (more is an error anyway), so a
+        // runaway client cannot exhaust memory.
+        let rows = self
+            .db
+            .call(move |engine| Ok(engine.loaded(&holdout)?.ids.len()))
+            .await?;
+        let models = header.models.max(1) as usize;
+        if models > 64 {
+            return Err(Error::invalid("models", "a batch holds at most 64 models").into());
+        }
+        let mut preds: Vec<ModelPredictions> = (0..models)
+            .map(|_| ModelPredictions {
+                ids: Vec::new(),
+                values: RawValues::Numbers(Vec::new()),
+            })
+            .collect();
+        let mut kinds: Vec<Option<bool>> = vec![None; models];
+        while let Some(chunk) = stream.next().await {
+            let chunk = match chunk?.part {
+                Some(Part::Predictions(c)) => c,
+                Some(Part::Header(_)) => {
+                    return Err(Error::invalid("stream", "the header was sent twice").into());
+                }
+                None => continue,
+            };
+            let m = chunk.model as usize;
+            let name = header
+                .model_names
+                .get(m)
+                .cloned()
+                .unwrap_or_else(|| format!("model {m}"));
+            let target = preds.get_mut(m).ok_or_else(|| {
+                Error::invalid(
+                    "predictions",
+                    format!("model index {m} is outside the batch"),
+                )
+            })?;
+            let classes = !chunk.classes.is_empty();
+            let n_values = if classes {
+                chunk.classes.len()
+            } else {
+                chunk.values.len()
+            };
+            if n_values != chunk.ids.len() {
+                return Err(Error::invalid(
+                    name,
+                    format!("a chunk has {} ids but {n_values} values", chunk.ids.len()),
+                )
+                .into());
+            }
+            if chunk.ids.is_empty() {
+                continue;
+            }
+            match kinds[m] {
+                None => {
+                    kinds[m] = Some(classes);
+                    target.values = if classes {
+                        RawValues::Classes(Vec::new())
+                    } else {
+                        RawValues::Numbers(Vec::new())
+                    };
+                }
+                Some(k) if k != classes => {
+                    return Err(Error::invalid(name, "mixes class names and numbers").into());
+                }
+                _ => {}
+            }
+            if target.ids.len() + chunk.ids.len() > rows {
+                return Err(Error::invalid(
+                    name,
+                    format!("more prediction rows than the holdout's {rows} rows"),
+                )
+                .into());
+            }
+            target.ids.extend(chunk.ids);
+            match &mut target.values {
+                RawValues::Classes(v) => v.extend(chunk.classes),
+                RawValues::Numbers(v) => v.extend(chunk.values),
+            }
+        }
+        let req = SubmitRequest {
+            holdout: header.holdout,
+            target: header.target,
+            mode,
+            request_id: Some(header.request_id).filter(|s| !s.is_empty()),
+            note: header.note,
+            max_cost_nats: Some(header.max_cost_nats).filter(|c| *c > 0.0),
+            model_names: header.model_names,
+            models: preds,
+        };
+        let holdout = req.holdout.clone();
+        let (outcome, guarantee) = self
+            .db
+            .call(move |engine| {
+                let out = engine.submit(&caller, req)?;
+                let guarantee = engine.loaded(&holdout)?.policy.guarantee();
+                Ok((out, guarantee))
+            })
+            .await?;
+        let outcome = match outcome {
+            SubmitOutcome::Answer {
+                record,
+                receipt,
+                replayed,
+            } => Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee)),
+            SubmitOutcome::Refusal { record, receipt } => {
+                Outcome::Refusal(convert::refusal(&record, receipt.as_ref()))
+            }
+            SubmitOutcome::Quote {
+                quote,
+                would_refuse,
+                budget,
+            } => Outcome::Quote(pb::Quote {
+                query: quote.query,
+                delta_i: quote.delta_i,
+                level_nats: quote.level_nats,
+                half_width: quote.half_width,
+                worst_code_nats: quote.worst_code_nats,
+                would_refuse: would_refuse.unwrap_or_default(),
+                budget: Some(convert::budget(&budget)),
+            }),
+            SubmitOutcome::Validation { rows, digest } => {
+                Outcome::Validation(pb::Validation { rows, digest })
+            }
+        };
+        Ok(Response::new(SubmitResponse {
+            outcome: Some(outcome),
+        }))
+    }
+
+    async fn get_status(
+        &self,
+        request: Request<StatusRequest>,
+    ) -> Result<Response<StatusResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let name = request.into_inner().holdout;
+        let view = self
+            .db
+            .call(move |engine| engine.holdout_view(&caller, &name))
+            .await?;
+        Ok(Response::new(StatusResponse {
+            holdout: view.name.clone(),
+            budget: Some(convert::budget(&view.budget)),
+            guarantee: view.guarantee.clone(),
+            policy: Some(convert::policy(&view.policy)),
+        }))
+    }
+
+    type HistoryStream = Pin<Box<dyn Stream<Item = Result<HistoryEntry, Status>> + Send + 'static>>;
+
+    async fn history(
+        &self,
+        request: Request<HistoryRequest>,
+    ) -> Result<Response<Self::HistoryStream>, Status> {
+        let caller = self.caller(&request).await?;
+        let req = request.into_inner();
+        let (items, guarantee) = self
+            .db
+            .call(move |engine| {
+                let items = engine.history(&caller, &req.holdout, req.exact)?;
+                Ok((items, engine.loaded(&req.holdout)?.policy.guarantee()))
+            })
+            .await?;
+        let entries: Vec<Result<HistoryEntry, Status>> = items
+            .into_iter()
+            .map(|item| {
+                Ok(match item {
+                    HistoryItem::Answer(r, rc) => HistoryEntry {
+                        entry: rc.entry,
+                        kind: "answer".into(),
+                        team: r.team.clone(),
+                        at: r.at.clone(),
+                        note: r.note.clone(),
+                        exact_scores: r
+                            .exact
+                            .as_ref()
+                            .map(|v| v.iter().map(|l| l.mean()).collect())
+                            .unwrap_or_default(),
+                        answer: Some(convert::answer(&r, &rc, false, &guarantee)),
+                        refusal: None,
+                    },
+                    HistoryItem::Refusal(r, rc) => HistoryEntry {
+                        entry: rc.entry,
+                        kind: "refusal".into(),
+                        team: r.team.clone(),
+                        at: r.at.clone(),
+                        note: r.note.clone(),
+                        exact_scores: Vec::new(),
+                        answer: None,
+                        refusal: Some(convert::refusal(&r, Some(&rc))),
+                    },
+                })
+            })
+            .collect();
+        Ok(Response::new(Box::pin(tokio_stream::iter(entries))))
+    }
+}
