@@ -38,22 +38,22 @@ labels except through released answers; the declared sharing assumption holds (s
 may see every answer; isolated: each team sees only its own, and a team is one analyst); and the \
 loss is the metric as defined (clipped, floored, rescaled).";
 
-/// Client commands.
+/// Client commands. The larger argument sets are boxed to keep the top-level enum small.
 #[derive(Debug, Subcommand)]
 pub enum ClientCommand {
     /// Create a holdout from a labels file (custodian): prints what the policy buys, then uploads.
     #[command(after_long_help = GUARANTEE_HELP)]
-    Create(create::CreateArgs),
+    Create(Box<create::CreateArgs>),
     /// Split a labelled file into row-disjoint files, one per future holdout (local, no daemon).
     #[command(after_long_help = split::SPLIT_HELP)]
-    Split(split::SplitArgs),
+    Split(Box<split::SplitArgs>),
     /// Write a predictions template (the holdout's row ids) and show its label domain.
     Ids(submit::IdsArgs),
     /// Check a predictions file against a holdout's declaration; charges nothing.
-    Validate(submit::ValidateArgs),
+    Validate(Box<submit::ValidateArgs>),
     /// Submit predictions for scoring: one answer charged against the budget, or a refusal.
     #[command(after_long_help = GUARANTEE_HELP)]
-    Submit(submit::SubmitArgs),
+    Submit(Box<submit::SubmitArgs>),
     /// A holdout's budget: spent, remaining, next half-width, queries left.
     Status(admin::StatusArgs),
     /// Released answers and refusals of a holdout, oldest first.
