@@ -59,7 +59,12 @@ async fn health_reflection_and_graceful_shutdown() {
     let mut daemon = start();
     let url = format!("http://{}", daemon.addr);
 
-    let mut health = HealthClient::connect(url.clone()).await.expect("connect");
+    let channel = tonic::transport::Endpoint::from_shared(url)
+        .expect("url")
+        .connect()
+        .await
+        .expect("connect");
+    let mut health = HealthClient::new(channel.clone());
     for service in ["", "holdout.v1.Holdouts", "holdout.v1.Submissions"] {
         let status = health
             .check(HealthCheckRequest {
@@ -72,7 +77,7 @@ async fn health_reflection_and_graceful_shutdown() {
         assert_eq!(status, ServingStatus::Serving as i32, "service {service:?}");
     }
 
-    let mut reflection = ServerReflectionClient::connect(url).await.expect("connect");
+    let mut reflection = ServerReflectionClient::new(channel);
     let request = ServerReflectionRequest {
         host: String::new(),
         message_request: Some(MessageRequest::ListServices(String::new())),

@@ -21,8 +21,12 @@ proptest! {
             let kl = errors_interval(Method::Kl, n, k, level, sides).unwrap();
             prop_assert!(kl.lower <= cp.lower * (1.0 + 1e-12) && cp.upper <= kl.upper * (1.0 + 1e-12),
                 "n={} k={} level={} {:?}: kl {:?} cp {:?}", n, k, level, sides, kl, cp);
+            // The point estimate lies inside once each tail has probability <= 1/2
+            // (level >= ln 2 nats); for d near 1 a one-sided limit may pass it, correctly.
             let p = k as f64 / n as f64;
-            prop_assert!(cp.lower <= p && p <= cp.upper);
+            if level >= std::f64::consts::LN_2 {
+                prop_assert!(cp.lower <= p && p <= cp.upper, "{:?} n={} k={}: {:?}", sides, n, k, cp);
+            }
         }
     }
 
