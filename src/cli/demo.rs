@@ -7,21 +7,17 @@
 
 use std::process::ExitCode;
 use std::sync::Arc;
-use std::time::Duration;
 
 use anyhow::{Context, bail};
 use clap::Args;
-use tonic::metadata::MetadataValue;
-use tonic::transport::{Channel, Endpoint};
-use tonic::{Request, Status};
 
+use super::client::conn::{Conn, ServerArgs};
 use crate::auth::{self, Role};
 use crate::engine::{Db, Engine, SystemClock};
 use crate::ledger;
 use crate::proto::v1::{
     self as pb, CreateHoldoutChunk, HoldoutSpec, LabelColumn, LabelRows, SubmitChunk, SubmitHeader,
-    create_holdout_chunk, holdouts_client::HoldoutsClient, submissions_client::SubmissionsClient,
-    submit_chunk, submit_response::Outcome, users_client::UsersClient,
+    create_holdout_chunk, submit_chunk, submit_response::Outcome,
 };
 use crate::service::Daemon;
 use crate::store::Store;
@@ -53,21 +49,11 @@ impl Mix {
     }
 }
 
-type Authed = tonic::service::interceptor::InterceptedService<
-    Channel,
-    Box<dyn FnMut(Request<()>) -> Result<Request<()>, Status> + Send + Sync>,
->;
-
-fn with_token(channel: Channel, token: &str) -> anyhow::Result<Authed> {
-    let value: MetadataValue<_> = format!("Bearer {token}").parse()?;
-    let f: Box<dyn FnMut(Request<()>) -> Result<Request<()>, Status> + Send + Sync> =
-        Box::new(move |mut req: Request<()>| {
-            req.metadata_mut().insert("authorization", value.clone());
-            Ok(req)
-        });
-    Ok(tonic::service::interceptor::InterceptedService::new(
-        channel, f,
-    ))
+fn conn(addr: std::net::SocketAddr, token: &str) -> ServerArgs {
+    ServerArgs {
+        server: format!("http://{addr}"),
+        token: Some(token.to_string()),
+    }
 }
 
 /// Runs the demo.
@@ -119,10 +105,6 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
     let server = tokio::spawn(crate::server::serve(listener, Daemon::new(db), async {
         let _ = stopped.await;
     }));
-    let channel = Endpoint::from_shared(format!("http://{addr}"))?
-        .connect_timeout(Duration::from_secs(5))
-        .connect()
-        .await?;
 
     println!("holdout-ledger demo: the Kestrel Parcel Cooperative (an invented scenario)");
     println!("daemon on {addr}, database {}\n", path.display());
@@ -148,7 +130,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         daily_quota: 0,
         canonical_json: String::new(),
     };
-    let mut holdouts = HoldoutsClient::new(with_token(channel.clone(), &custodian_token)?);
+    let mut holdouts = Conn::open(&conn(addr, &custodian_token)).await?.holdouts();
     let mut chunks = vec![CreateHoldoutChunk {
         part: Some(create_holdout_chunk::Part::Spec(HoldoutSpec {
             name: "parcel-lateness".into(),
@@ -199,7 +181,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
                     if says_late { "late" } else { "on-time" }.to_string()
                 })
                 .collect();
-            let mut client = SubmissionsClient::new(with_token(channel.clone(), token)?);
+            let mut client = Conn::open(&conn(addr, token)).await?.submissions();
             let mut chunks = vec![SubmitChunk {
                 part: Some(submit_chunk::Part::Header(SubmitHeader {
                     holdout: "parcel-lateness".into(),
@@ -268,7 +250,6 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         }
     );
     println!("\nWhat every interval above means:\n{}", info.guarantee);
-    let _ = UsersClient::new(with_token(channel, &custodian_token)?);
     Ok(if faults.is_empty() {
         ExitCode::SUCCESS
     } else {

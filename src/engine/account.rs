@@ -318,15 +318,18 @@ pub(crate) struct AnswerCore {
     pub core: serde_json::Value,
 }
 
-/// Formats a grid value without float noise (at most 10 decimals).
-fn grid_text(v: f64) -> String {
-    let r = (v * 1e10).round() / 1e10;
-    format!("{r}")
+/// Formats a grid value `j/M` with as many decimals as the grid needs (`0.30` on a 0.01 grid,
+/// `0.025` on a 0.025 grid), at most 6 when `M` does not divide a power of ten.
+fn grid_text(v: f64, cells: Option<u64>) -> String {
+    let decimals = cells
+        .and_then(|m| (0..=9u32).find(|d| 10u64.pow(*d) % m.max(1) == 0))
+        .unwrap_or(6) as usize;
+    format!("{v:.decimals$}")
 }
 
 /// The released symbol as text.
-pub(crate) fn symbol_text(symbol: &Symbol, score: Option<f64>) -> String {
-    let s = score.map(grid_text).unwrap_or_default();
+pub(crate) fn symbol_text(symbol: &Symbol, score: Option<f64>, cells: Option<u64>) -> String {
+    let s = score.map(|v| grid_text(v, cells)).unwrap_or_default();
     match symbol {
         Symbol::Cell { .. } => s,
         Symbol::Pass => "pass".into(),
@@ -510,7 +513,11 @@ impl Book {
         };
         Ok(AnswerCore {
             query: ans.query_number,
-            symbol: symbol_text(&ans.symbol, ans.released_score),
+            symbol: symbol_text(
+                &ans.symbol,
+                ans.released_score,
+                policy.core.rule.grid(policy.core.rows).map(|g| g.cells),
+            ),
             score: ans.released_score,
             lower: ans.interval.lower,
             upper: ans.interval.upper,
