@@ -120,6 +120,11 @@ pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64
             "rules": table,
         }));
     }
+    if targets.len() > 1 {
+        text.push_str(
+            "\n(the targets share one budget: each count assumes every query goes to that target)",
+        );
+    }
     if matches!(rule, Rule::BestOf(_)) {
         text.push_str(&format!(
             "\n(best-of counts batches of {PLAN_BATCH} models; each model takes a share)"

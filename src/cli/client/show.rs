@@ -48,6 +48,11 @@ pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
     out
 }
 
+/// `n` with the singular or plural phrase.
+pub fn plural(n: u64, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
+
 /// A budget as JSON.
 pub fn budget_json(b: &Budget) -> Value {
     json!({
@@ -70,14 +75,14 @@ pub fn budget_text(b: &Budget) -> String {
     let mut s = format!(
         "budget     spent {} of delta {}, remaining {}\n\
          transcript {} nats released so far\n\
-         next       half-width {} at the reference score; {} more queries fit within the tolerance\n\
+         next       half-width {} at the reference score; {} within the tolerance\n\
          queries    {} answered, {} refused; {}",
         num(b.spent),
         num(b.delta),
         num(b.remaining),
         num(b.transcript_nats),
         num(b.next_half_width),
-        b.queries_left,
+        plural(b.queries_left, "more query fits", "more queries fit"),
         b.answered,
         b.refused,
         if b.open { "open" } else { "closed" }
