@@ -789,3 +789,63 @@ fn a_best_of_batch_names_the_best_model() {
         "a batch of 2 takes 2 shares: {spent} vs {delta_i}"
     );
 }
+
+#[test]
+fn many_rows_stream_in_chunks_and_json_lines_are_read() {
+    // 20,000 rows: three chunks of at most 8192 rows each way.
+    let d = Daemon::start();
+    let parts = Parts::new(20_000);
+    let labels = d.write("labels.csv", &parts.labels_csv());
+    let info = d
+        .admin(&[
+            "create",
+            "big",
+            "--labels",
+            &labels,
+            "--metric",
+            "sq_error:10000",
+            "--label-column",
+            "cost",
+            "--json",
+        ])
+        .ok()
+        .json();
+    assert_eq!(info["rows"], 20_000);
+    assert_eq!(info["targets"][0]["name"], "cost");
+    let ivy = d.add_user("ivy", &["analyst"], None);
+    let mut jsonl = String::new();
+    for (id, _, c) in parts.rows.iter().rev() {
+        jsonl.push_str(&format!(
+            "{{\"id\": \"{id}\", \"prediction\": {}}}\n",
+            c + 10.0
+        ));
+    }
+    let preds = d.write("preds.jsonl", &jsonl);
+    let v = d
+        .run(
+            &ivy,
+            &["validate", "big", "--predictions", &preds, "--json"],
+        )
+        .ok()
+        .json();
+    assert_eq!(v["rows"], 20_000);
+    let a = d
+        .run(&ivy, &["submit", "big", "--predictions", &preds, "--json"])
+        .ok()
+        .json();
+    // Every prediction is off by 10: squared error 100 of the clip bound 10,000 = 0.01.
+    let (lo, hi) = (
+        a["lower"].as_f64().expect("lower"),
+        a["upper"].as_f64().expect("upper"),
+    );
+    assert!(lo <= 0.01 && 0.01 <= hi, "[{lo}, {hi}]");
+    // The same vector as CSV in another order has the same digest: it is replayed, not charged.
+    let csv = d.write("preds.csv", &parts.cost_predictions(10.0));
+    let again = d
+        .run(&ivy, &["submit", "big", "--predictions", &csv, "--json"])
+        .ok()
+        .json();
+    assert_eq!(again["digest"], a["digest"]);
+    assert_eq!(again["replayed"], true);
+    assert_eq!(budget(&d, &ivy, "big")["answered"], 1);
+}
