@@ -797,9 +797,14 @@ fn restart_replays_the_ledger_to_the_same_budget() {
 #[test]
 fn daily_quota_refuses_until_utc_midnight() {
     let dir = tempfile::tempdir().unwrap();
-    let clock = Arc::new(FixedClock::new(Utc.with_ymd_and_hms(2026, 3, 4, 23, 50, 0).unwrap()));
+    let clock = Arc::new(FixedClock::new(
+        Utc.with_ymd_and_hms(2026, 3, 4, 23, 50, 0).unwrap(),
+    ));
     let mut f = Fixture {
-        engine: Engine::new(Store::open(&dir.path().join("q.db")).unwrap(), clock.clone()),
+        engine: Engine::new(
+            Store::open(&dir.path().join("q.db")).unwrap(),
+            clock.clone(),
+        ),
         _dir: dir,
     };
     let n = 300;
@@ -813,12 +818,19 @@ fn daily_quota_refuses_until_utc_midnight() {
     for w in [3, 4, 5] {
         match f
             .engine
-            .submit(&analyst("t1"), submit("h", "", predictions(&id, &truth, w), None))
+            .submit(
+                &analyst("t1"),
+                submit("h", "", predictions(&id, &truth, w), None),
+            )
             .unwrap()
         {
             SubmitOutcome::Answer { .. } => kinds.push("answer".to_string()),
             SubmitOutcome::Refusal { record, .. } => {
-                assert!(record.message.contains("2026-03-05T00:00:00"), "{}", record.message);
+                assert!(
+                    record.message.contains("2026-03-05T00:00:00"),
+                    "{}",
+                    record.message
+                );
                 kinds.push(record.reason);
             }
             other => panic!("{other:?}"),
@@ -828,7 +840,10 @@ fn daily_quota_refuses_until_utc_midnight() {
     // Another team has its own quota.
     answer_of(
         f.engine
-            .submit(&analyst("t2"), submit("h", "", predictions(&id, &truth, 6), None))
+            .submit(
+                &analyst("t2"),
+                submit("h", "", predictions(&id, &truth, 6), None),
+            )
             .unwrap(),
     );
     let b = f.engine.holdout_view(&analyst("t1"), "h").unwrap().budget;
@@ -837,10 +852,16 @@ fn daily_quota_refuses_until_utc_midnight() {
     clock.set(Utc.with_ymd_and_hms(2026, 3, 5, 0, 0, 1).unwrap());
     answer_of(
         f.engine
-            .submit(&analyst("t1"), submit("h", "", predictions(&id, &truth, 7), None))
+            .submit(
+                &analyst("t1"),
+                submit("h", "", predictions(&id, &truth, 7), None),
+            )
             .unwrap(),
     );
     let b = f.engine.holdout_view(&analyst("t1"), "h").unwrap().budget;
     assert_eq!(b.quota_left_today, Some(1));
-    assert_eq!(b.quota_resets_at.as_deref(), Some("2026-03-06T00:00:00.000Z"));
+    assert_eq!(
+        b.quota_resets_at.as_deref(),
+        Some("2026-03-06T00:00:00.000Z")
+    );
 }
