@@ -1,0 +1,2 @@
+//! Placeholder until the audit benchmark lands.
+fn main() {}
