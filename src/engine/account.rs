@@ -550,10 +550,17 @@ impl Book {
         } else {
             self.refused_total
         };
+        // With one pool the budget is delta itself; computing it back from ln(1/delta) would
+        // show float noise (0.05000000000000001).
+        let (delta, remaining) = if policy.core.shares == Shares::None {
+            (policy.core.delta, (policy.core.delta - s.spent).max(0.0))
+        } else {
+            (s.budget, s.remaining)
+        };
         BudgetView {
-            delta: s.budget,
+            delta,
             spent: s.spent,
-            remaining: s.remaining,
+            remaining,
             transcript_nats: s.transcript_nats,
             next_half_width,
             queries_left,

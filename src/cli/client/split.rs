@@ -64,8 +64,9 @@ pub fn parse_part(s: &str) -> std::result::Result<Part, String> {
 pub struct SplitArgs {
     /// Labelled file to split (CSV with a header row, or JSON Lines).
     pub file: PathBuf,
-    /// A part NAME=FRACTION, written to DIR/NAME.csv; repeat for each part.
-    #[arg(long = "into", value_name = "NAME=FRACTION", required = true, value_parser = parse_part)]
+    /// Parts NAME=FRACTION, each written to DIR/NAME.csv (`--into a=0.5 b=0.5`, or `--into`
+    /// repeated).
+    #[arg(long = "into", value_name = "NAME=FRACTION", required = true, num_args = 1.., value_parser = parse_part)]
     pub into: Vec<Part>,
     /// Seed of the shuffle: the same seed and file give the same parts.
     #[arg(long, default_value_t = 0)]
