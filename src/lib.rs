@@ -15,10 +15,13 @@
 //!   transaction.
 //! - [`service`]: the gRPC services, converting `proto` types at the edge.
 //! - [`server`]: serving on a bound listener until a shutdown future completes.
+//! - [`audit`]: ledger exports, signed checkpoints, and the offline audit that re-verifies and
+//!   replays them with the same accounting core.
 //! - [`cli`]: the `holdout` command line.
 #![deny(missing_docs)]
 #![warn(unreachable_pub, rustdoc::broken_intra_doc_links)]
 
+pub mod audit;
 pub mod auth;
 pub mod cli;
 pub mod engine;

@@ -27,6 +27,8 @@ pub use read::{HistoryItem, HoldoutView};
 pub use records::{AnswerRecord, BudgetView, RefusalRecord};
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use worker::Db;
+// The offline audit replays ledgers with the daemon's own bookkeeping.
+pub(crate) use account::{Book, RefusalReason};
 
 use crate::error::{Error, Result};
 use crate::metric::Labels;

@@ -2,7 +2,6 @@
 //! refuse-or-charge decision, scoring, and the ledger append, all in one transaction.
 
 use rusqlite::{OptionalExtension, params};
-use sha2::{Digest, Sha256};
 
 use super::account::{Quote, RefusalReason};
 use super::records::{AnswerRecord, RefusalRecord};
@@ -160,7 +159,7 @@ impl Engine {
                 &label,
             )?);
         }
-        let digest = digest(&target.name, &target.classes, &preds);
+        let digest = crate::audit::predictions_digest(&target.name, &target.classes, &preds);
         if req.mode == SubmitMode::Validate {
             return Ok(SubmitOutcome::Validation {
                 rows: loaded.ids.len() as u64,
@@ -606,30 +605,4 @@ fn join(
             format!("metric {metric} expects numbers, not class names"),
         )),
     }
-}
-
-/// SHA-256 over the parsed values in row-id order (not the file's bytes), so a re-exported file
-/// with other float formatting or row order has the same digest.
-fn digest(target: &str, classes: &[String], preds: &[Predictions]) -> String {
-    let mut h = Sha256::new();
-    h.update(format!("holdout-ledger-predictions/1\n{target}\n{}\n", preds.len()).as_bytes());
-    for p in preds {
-        match p {
-            Predictions::Classes(v) => {
-                for c in v {
-                    h.update(classes[*c as usize].as_bytes());
-                    h.update(b"\n");
-                }
-            }
-            Predictions::Numbers(v) => {
-                for x in v {
-                    // Normalise -0.0 so it digests like 0.0.
-                    let x = if *x == 0.0 { 0.0 } else { *x };
-                    h.update(x.to_bits().to_le_bytes());
-                }
-            }
-        }
-        h.update(b"--\n");
-    }
-    hex::encode(h.finalize())
 }
