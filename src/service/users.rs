@@ -4,6 +4,8 @@ use tonic::{Request, Response, Status};
 
 use super::Daemon;
 use crate::auth::{self, Role, User};
+use crate::engine::Engine;
+use crate::error::Error;
 use crate::proto::v1::{
     AddUserRequest, AddUserResponse, ListUsersRequest, ListUsersResponse, RevokeUserRequest,
     RotateTokenRequest, UserInfo, WhoAmIRequest, users_server::Users,
@@ -17,6 +19,21 @@ fn info(u: User) -> UserInfo {
         created_at: u.created_at,
         revoked: u.revoked,
     }
+}
+
+/// Runs `f` in one write transaction (taking the write lock first) and commits.
+fn write<T>(
+    engine: &mut Engine,
+    f: impl FnOnce(&rusqlite::Transaction<'_>, chrono::DateTime<chrono::Utc>) -> Result<T, Error>,
+) -> Result<T, Error> {
+    let now = engine.now();
+    let tx = engine
+        .store()
+        .conn()
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
+    let out = f(&tx, now)?;
+    tx.commit()?;
+    Ok(out)
 }
 
 #[tonic::async_trait]
@@ -36,15 +53,9 @@ impl Users for Daemon {
         let (user, token) = self
             .db
             .call(move |engine| {
-                let now = engine.now();
-                let tx = engine
-                    .store()
-                    .conn()
-                    .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-                let out =
-                    auth::add_user(&tx, &req.name, &roles, Some(&req.team), &caller.name, now)?;
-                tx.commit()?;
-                Ok(out)
+                write(engine, |tx, now| {
+                    auth::add_user(tx, &req.name, &roles, Some(&req.team), &caller.name, now)
+                })
             })
             .await?;
         Ok(Response::new(AddUserResponse {
@@ -78,14 +89,9 @@ impl Users for Daemon {
         let user = self
             .db
             .call(move |engine| {
-                let now = engine.now();
-                let tx = engine
-                    .store()
-                    .conn()
-                    .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-                let u = auth::revoke_user(&tx, &name, &caller.name, now)?;
-                tx.commit()?;
-                Ok(u)
+                write(engine, |tx, now| {
+                    auth::revoke_user(tx, &name, &caller.name, now)
+                })
             })
             .await?;
         Ok(Response::new(info(user)))
@@ -99,17 +105,11 @@ impl Users for Daemon {
         let (user, token) = self
             .db
             .call(move |engine| {
-                let now = engine.now();
-                let tx = engine
-                    .store()
-                    .conn()
-                    .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-                let token = auth::rotate_token(&tx, &caller.name, now)?;
-                tx.commit()?;
+                let token = write(engine, |tx, now| auth::rotate_token(tx, &caller.name, now))?;
                 let user = auth::list_users(engine.store().conn())?
                     .into_iter()
                     .find(|u| u.name == caller.name)
-                    .ok_or_else(|| crate::error::Error::not_found("user", caller.name.clone()))?;
+                    .ok_or_else(|| Error::not_found("user", caller.name.clone()))?;
                 Ok((user, token))
             })
             .await?;
@@ -131,7 +131,7 @@ impl Users for Daemon {
                 auth::list_users(engine.store().conn())?
                     .into_iter()
                     .find(|u| u.name == name)
-                    .ok_or_else(|| crate::error::Error::not_found("user", name.clone()))
+                    .ok_or_else(|| Error::not_found("user", name.clone()))
             })
             .await?;
         Ok(Response::new(info(user)))
