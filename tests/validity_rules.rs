@@ -136,6 +136,7 @@ fn submit(
         max_cost_nats: None,
         model_names: vec!["preds.csv".into()],
         models: vec![model],
+        mark_final: false,
     }
 }
 

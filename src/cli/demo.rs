@@ -129,6 +129,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         shares: "none".into(),
         daily_quota: 0,
         canonical_json: String::new(),
+        ..Default::default()
     };
     let mut holdouts = Conn::open(&conn(addr, &custodian_token)).await?.holdouts();
     let mut chunks = vec![CreateHoldoutChunk {

@@ -40,7 +40,27 @@ pub struct PolicyInput {
     pub shares: String,
     /// Answered queries per team per UTC day; 0 for no quota.
     pub daily_quota: u32,
+    /// Sealed rounds: the deadline (RFC 3339, UTC) after which entries are refused and the
+    /// round closes by itself; empty for none (the organizer closes it).
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub closes_at: String,
+    /// Sealed rounds: the fraction of delta reserved for the ranking's paired comparisons
+    /// (0: the default, 0.2).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub ranking_share: f64,
+    /// Who sees the leaderboard: `public` (every caller) or `organizers` (organizers and
+    /// auditors; analysts see their own team's row); empty for the default, `public` under
+    /// `shared` and `organizers` under `isolated`.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub leaderboard: String,
 }
+
+fn is_zero(x: &f64) -> bool {
+    *x == 0.0
+}
+
+/// The fraction of delta a sealed round reserves for its ranking when the policy names none.
+pub(crate) const DEFAULT_RANKING_SHARE: f64 = 0.2;
 
 impl Default for PolicyInput {
     fn default() -> Self {
@@ -53,6 +73,9 @@ impl Default for PolicyInput {
             tolerance_reference: "worst-case".into(),
             shares: "none".into(),
             daily_quota: 0,
+            closes_at: String::new(),
+            ranking_share: 0.0,
+            leaderboard: String::new(),
         }
     }
 }
@@ -68,6 +91,20 @@ pub struct HoldoutPolicy {
     pub daily_quota: u32,
     /// Targets with their metrics and declared label domains.
     pub targets: Vec<TargetDecl>,
+    /// Sealed rounds: the deadline, parsed from `input.closes_at`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub closes_at: Option<chrono::DateTime<chrono::Utc>>,
+    /// Sealed rounds: the part of delta reserved for the ranking's paired comparisons
+    /// (`core.delta` is what is left for the sealed answers; they sum to `input.delta`).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub ranking_delta: f64,
+    /// Whether analysts see every team's row of the leaderboard.
+    #[serde(default = "yes")]
+    pub public_leaderboard: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 fn or_default(value: &str, default: &str) -> String {
@@ -129,6 +166,9 @@ impl HoldoutPolicy {
             ),
             shares: or_default(&input.shares, &defaults.shares),
             daily_quota: input.daily_quota,
+            closes_at: input.closes_at.trim().to_string(),
+            ranking_share: input.ranking_share,
+            leaderboard: input.leaderboard.trim().to_string(),
         };
         let schedule: Schedule = input
             .schedule
@@ -138,13 +178,7 @@ impl HoldoutPolicy {
             .answers
             .parse()
             .map_err(|e: crate::stats::rules::RuleError| Error::invalid("answers", e.0))?;
-        if matches!(rule, Rule::Sealed(_)) {
-            return Err(Error::invalid(
-                "answers",
-                "sealed rounds are not served by the daemon yet; use rounded, threshold, ladder \
-                 or best-of",
-            ));
-        }
+        let round = super::compete::RoundTerms::build(&input, &rule)?;
         let sharing = match input.sharing.as_str() {
             "shared" => Sharing::Shared,
             "isolated" => Sharing::Isolated,
@@ -166,6 +200,8 @@ impl HoldoutPolicy {
             }
         };
         let shares = parse_shares(&input.shares)?;
+        let public_leaderboard =
+            super::compete::public_leaderboard(&input.leaderboard, sharing == Sharing::Isolated)?;
         let mut core_targets = Vec::with_capacity(targets.len());
         for t in &targets {
             core_targets.push(TargetPolicy {
@@ -180,7 +216,7 @@ impl HoldoutPolicy {
             });
         }
         let core = Policy {
-            delta: input.delta,
+            delta: input.delta - round.ranking_delta,
             schedule,
             rule,
             tolerance: input.tolerance,
@@ -197,6 +233,9 @@ impl HoldoutPolicy {
             input,
             core,
             targets,
+            closes_at: round.closes_at,
+            ranking_delta: round.ranking_delta,
+            public_leaderboard,
         })
     }
 
@@ -220,9 +259,18 @@ impl HoldoutPolicy {
         self.core.sharing == Sharing::Isolated
     }
 
-    /// The guarantee sentence and its assumptions.
+    /// Whether entries are sealed until the round closes.
+    pub fn sealed(&self) -> bool {
+        matches!(self.core.rule, Rule::Sealed(_))
+    }
+
+    /// The guarantee sentence and its assumptions, stated at the committed total delta.
     pub fn guarantee(&self) -> String {
-        guarantee_text(&self.core)
+        let mut whole = self.core.clone();
+        whole.delta = self.input.delta;
+        let mut text = guarantee_text(&whole);
+        text.push_str(&super::compete::guarantee_addendum(self));
+        text
     }
 }
 
@@ -406,6 +454,7 @@ impl Book {
                         )));
                     }
                 }
+                "sealed" | "round" => super::compete::replay_entry(&mut book, policy, e)?,
                 "refusal" => {
                     let team = serde_json::from_str::<serde_json::Value>(&e.body)
                         .ok()
@@ -528,6 +577,60 @@ impl Book {
             best_model,
             core: serde_json::to_value(&ans).unwrap_or_default(),
         })
+    }
+
+    /// Takes a sealed entry's share now; its answer waits for [`Book::close_round`].
+    pub(crate) fn seal(&mut self, team: &str, target: usize, quote: &Quote) -> Result<u64> {
+        let req = Book::request(team, target, 1);
+        self.acct
+            .seal(&req, &quote.charge)
+            .map(|r| r.ticket as u64)
+            .map_err(|e| Error::Internal(format!("accounting: {e}")))
+    }
+
+    /// Sealed entries waiting for the close: (team, target) in ticket order.
+    pub(crate) fn pending(&self) -> Vec<(String, usize)> {
+        self.acct
+            .pending()
+            .iter()
+            .map(|r| (r.charge.request.analyst.clone(), r.charge.request.target))
+            .collect()
+    }
+
+    /// Closes the round: answers every sealed entry from its exact loss (ticket order).
+    pub(crate) fn close_round(
+        &mut self,
+        policy: &HoldoutPolicy,
+        losses: &[Loss],
+    ) -> Result<Vec<AnswerCore>> {
+        let outcomes: Vec<Outcome> = self
+            .acct
+            .pending()
+            .iter()
+            .zip(losses)
+            .map(|(r, l)| outcome(policy.core.targets[r.charge.request.target].binary, l))
+            .collect();
+        let answers = self
+            .acct
+            .close_round(&outcomes)
+            .map_err(|e| Error::Internal(format!("accounting: {e}")))?;
+        let cells = policy.core.rule.grid(policy.core.rows).map(|g| g.cells);
+        Ok(answers
+            .into_iter()
+            .map(|ans| AnswerCore {
+                query: ans.query_number,
+                symbol: symbol_text(&ans.symbol, ans.released_score, cells),
+                score: ans.released_score,
+                lower: ans.interval.lower,
+                upper: ans.interval.upper,
+                delta_i: ans.delta_i,
+                level_nats: ans.level_nats,
+                code_nats: ans.code_nats,
+                statement: ans.statement.clone(),
+                best_model: None,
+                core: serde_json::to_value(&ans).unwrap_or_default(),
+            })
+            .collect())
     }
 
     /// Counts a refusal (public: refusals are decided from public facts).

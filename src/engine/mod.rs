@@ -9,6 +9,7 @@
 
 mod account;
 mod clock;
+mod compete;
 mod create;
 mod read;
 mod records;
@@ -22,9 +23,12 @@ use rusqlite::{OptionalExtension, params};
 
 pub use account::{HoldoutPolicy, PolicyInput, Quote};
 pub use clock::{Clock, FixedClock, SystemClock};
+pub use compete::{Duplicate, Leaderboard, LeaderboardRow, Ranking, replay_comparison};
 pub use create::{CreateRequest, TargetDecl};
 pub use read::{HistoryItem, HoldoutView};
-pub use records::{AnswerRecord, BudgetView, RefusalRecord};
+pub use records::{
+    AnswerRecord, BudgetView, Comparison, RankedEntry, RefusalRecord, RoundRecord, SealedRecord,
+};
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use worker::Db;
 // The offline audit replays ledgers with the daemon's own bookkeeping.

@@ -47,12 +47,15 @@ pub enum HistoryItem {
     Answer(Box<AnswerRecord>, Receipt),
     /// A refusal.
     Refusal(Box<RefusalRecord>, Receipt),
+    /// A sealed entry of a final round (nothing about its score).
+    Sealed(Box<super::SealedRecord>, Receipt),
 }
 
 impl Engine {
     /// Public facts and budget of one holdout.
     pub fn holdout_view(&mut self, caller: &Caller, name: &str) -> Result<HoldoutView> {
         let loaded = self.loaded(name)?;
+        self.settle(&loaded)?;
         let closed = self.closed_at(loaded.id)?;
         let budget = self.budget_view(&loaded, &caller.team, closed.is_none())?;
         Ok(HoldoutView {
@@ -119,6 +122,7 @@ impl Engine {
         exact: bool,
     ) -> Result<Vec<HistoryItem>> {
         let loaded = self.loaded(name)?;
+        self.settle(&loaded)?;
         let closed = self.closed_at(loaded.id)?.is_some();
         if exact {
             let allowed = caller.has(Role::Auditor) || (caller.has(Role::Organizer) && closed);
@@ -164,6 +168,27 @@ impl Engine {
                     }
                     out.push(HistoryItem::Refusal(Box::new(r), receipt));
                 }
+                "sealed" => {
+                    let r: super::SealedRecord = serde_json::from_str(&e.body)
+                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                    if !see_all && r.team != caller.team {
+                        continue;
+                    }
+                    out.push(HistoryItem::Sealed(Box::new(r), receipt));
+                }
+                "round" => {
+                    let round: super::RoundRecord = serde_json::from_str(&e.body)
+                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                    for mut r in round.answers {
+                        if !see_all && r.team != caller.team {
+                            continue;
+                        }
+                        if !exact {
+                            r.exact = None;
+                        }
+                        out.push(HistoryItem::Answer(Box::new(r), receipt.clone()));
+                    }
+                }
                 _ => {}
             }
         }
@@ -195,6 +220,16 @@ impl Engine {
     ) -> Result<HoldoutView> {
         caller.require("closing a holdout", &[Role::Organizer])?;
         let loaded = self.loaded(name)?;
+        self.settle(&loaded)?;
+        if loaded.policy.sealed() {
+            if self.closed_at(loaded.id)?.is_some() {
+                return Err(Error::FailedPrecondition(format!(
+                    "holdout {name} is already closed"
+                )));
+            }
+            self.close_sealed(caller, &loaded)?;
+            return self.holdout_view(caller, name);
+        }
         let at = rfc3339(self.now());
         let tx = self
             .store

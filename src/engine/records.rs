@@ -112,3 +112,106 @@ pub struct RefusalRecord {
     /// Budget at the time.
     pub budget: BudgetView,
 }
+
+/// A sealed entry of a final round, as recorded in the ledger when it arrives. It carries the
+/// charge (taken now, DESIGN 4.3 `sealed` (d)) and nothing about the score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SealedRecord {
+    /// Holdout.
+    pub holdout: String,
+    /// Target name.
+    pub target: String,
+    /// Target index.
+    pub target_index: usize,
+    /// User who submitted.
+    pub user: String,
+    /// Team (accounting identity).
+    pub team: String,
+    /// Position in the round (0-based); outcomes at the close come in this order.
+    pub ticket: u64,
+    /// Query number (per pool).
+    pub query: u64,
+    /// Schedule share taken.
+    pub delta_i: f64,
+    /// ln(1/d_i) the answer will use at the close.
+    pub level_nats: f64,
+    /// Digest of the parsed predictions.
+    pub digest: String,
+    /// Whether the team marked this entry as its selected one.
+    pub marked: bool,
+    /// Client request id.
+    pub request_id: Option<String>,
+    /// Note.
+    pub note: String,
+    /// Time, RFC 3339 UTC.
+    pub at: String,
+}
+
+/// A paired comparison between two neighbours of a ranking (DESIGN 4.6).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Comparison {
+    /// Ticket of the better-ranked entry (A).
+    pub ahead: u64,
+    /// Ticket of the entry ranked just below (B).
+    pub behind: u64,
+    /// Interval for `R(A) - R(B)`.
+    pub lower: f64,
+    /// Interval for `R(A) - R(B)`.
+    pub upper: f64,
+    /// ln(1/d) of the comparison.
+    pub level_nats: f64,
+    /// True when the interval excludes 0: the data tell the two ranks apart.
+    pub distinguishable: bool,
+    /// 0-1 loss: rows where A is wrong and B right.
+    pub a_only: Option<u64>,
+    /// 0-1 loss: rows where B is wrong and A right.
+    pub b_only: Option<u64>,
+    /// Bounded loss: sum of the per-row differences `l_A - l_B`.
+    pub sum_diff: Option<f64>,
+    /// Bounded loss: sum of their squares.
+    pub sum_sq_diff: Option<f64>,
+}
+
+/// One ranked entry: a team's selected entry with its released answer.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RankedEntry {
+    /// Rank, from 1.
+    pub rank: u64,
+    /// Team.
+    pub team: String,
+    /// Ticket in the round.
+    pub ticket: u64,
+    /// Released score.
+    pub score: Option<f64>,
+    /// Interval.
+    pub lower: f64,
+    /// Interval.
+    pub upper: f64,
+    /// Digest of the entry's predictions.
+    pub digest: String,
+}
+
+/// The close of a sealed round: every entry answered at once, then the ranking of the teams'
+/// selected entries with paired comparisons between neighbours. Carries the exact outcomes and
+/// the comparisons' statistics so an audit can replay it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RoundRecord {
+    /// Holdout.
+    pub holdout: String,
+    /// `deadline` or `organizer`.
+    pub trigger: String,
+    /// Who closed it (`daemon` at the deadline).
+    pub by: String,
+    /// Time of the close.
+    pub at: String,
+    /// One answer per entry, in ticket order (exact losses kept for replay).
+    pub answers: Vec<AnswerRecord>,
+    /// The teams' selected entries, best first.
+    pub ranking: Vec<RankedEntry>,
+    /// Comparisons between neighbours of the ranking, top first.
+    pub comparisons: Vec<Comparison>,
+    /// Part of delta the comparisons use, split evenly over every pair of ranked entries.
+    pub ranking_delta: f64,
+    /// Pairs the reserve is split over: `K (K - 1) / 2`.
+    pub pairs: u64,
+}

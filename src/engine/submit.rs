@@ -59,6 +59,8 @@ pub struct SubmitRequest {
     pub model_names: Vec<String>,
     /// One entry per model (more than one only for best-of batches).
     pub models: Vec<ModelPredictions>,
+    /// Sealed rounds: mark this entry as the team's selected one (else its last entry is).
+    pub mark_final: bool,
 }
 
 /// Where a ledger entry is, for the analyst to keep.
@@ -75,7 +77,7 @@ pub struct Receipt {
 }
 
 impl Receipt {
-    fn of(e: &Entry) -> Receipt {
+    pub(crate) fn of(e: &Entry) -> Receipt {
         Receipt {
             holdout: e.chain.clone(),
             entry: e.seq,
@@ -112,6 +114,16 @@ pub enum SubmitOutcome {
         would_refuse: Option<String>,
         /// Budget now.
         budget: super::BudgetView,
+    },
+    /// A sealed entry: its share is taken, nothing about its score is released until the
+    /// round closes.
+    Sealed {
+        /// The record (it holds nothing about the score).
+        record: Box<super::records::SealedRecord>,
+        /// Receipt.
+        receipt: Receipt,
+        /// Whether this repeats an earlier entry (same predictions or request id): no charge.
+        replayed: bool,
     },
     /// Validation.
     Validation {
@@ -166,6 +178,7 @@ impl Engine {
                 digest,
             });
         }
+        self.settle(&loaded)?;
         if let Some(at) = self.closed_at(loaded.id)? {
             return Err(Error::FailedPrecondition(format!(
                 "holdout {} was closed at {at} and answers no more queries",
@@ -193,6 +206,9 @@ impl Engine {
             });
         }
 
+        if loaded.policy.sealed() {
+            return self.seal_entry(caller, &loaded, &req, target_index, &preds[0], digest);
+        }
         let result = self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models);
         if result.is_err() {
             self.forget(&loaded.name);
@@ -388,7 +404,7 @@ impl Engine {
         }
     }
 
-    fn record_refusal(
+    pub(super) fn record_refusal(
         &mut self,
         loaded: &Loaded,
         book: &mut super::account::Book,
@@ -449,7 +465,11 @@ impl Engine {
     }
 
     /// A quota refusal, decided from public facts (the team's answers today), if any.
-    fn quota_refusal(&mut self, loaded: &Loaded, team: &str) -> Result<Option<(String, String)>> {
+    pub(super) fn quota_refusal(
+        &mut self,
+        loaded: &Loaded,
+        team: &str,
+    ) -> Result<Option<(String, String)>> {
         let quota = loaded.policy.daily_quota;
         if quota == 0 {
             return Ok(None);
@@ -478,7 +498,7 @@ impl Engine {
     ) -> Result<u64> {
         let day = now.format("%Y-%m-%d").to_string();
         let n: i64 = self.store.conn().query_row(
-            "SELECT count(*) FROM ledger WHERE chain = ?1 AND kind = 'answer'
+            "SELECT count(*) FROM ledger WHERE chain = ?1 AND kind IN ('answer', 'sealed')
              AND json_extract(body, '$.team') = ?2
              AND substr(json_extract(body, '$.at'), 1, 10) = ?3",
             params![loaded.name, team, day],

@@ -1,9 +1,9 @@
 //! Conversions between engine types and `holdout.v1` messages.
 
-use crate::engine::Receipt;
 use crate::engine::{
     AnswerRecord, BudgetView, HoldoutPolicy, HoldoutView, RefusalRecord, TargetDecl,
 };
+use crate::engine::{Duplicate, Leaderboard, Ranking, Receipt, SealedRecord};
 use crate::proto::v1 as pb;
 
 pub(super) fn budget(b: &BudgetView) -> pb::Budget {
@@ -44,6 +44,9 @@ pub(super) fn policy(p: &HoldoutPolicy) -> pb::Policy {
         shares: input.shares.clone(),
         daily_quota: input.daily_quota,
         canonical_json: serde_json::to_string(p).unwrap_or_default(),
+        closes_at: input.closes_at.clone(),
+        ranking_share: input.ranking_share,
+        leaderboard: input.leaderboard.clone(),
     }
 }
 
@@ -105,5 +108,119 @@ pub(super) fn refusal(r: &RefusalRecord, rc: Option<&Receipt>) -> pb::Refusal {
         message: r.message.clone(),
         budget: Some(budget(&r.budget)),
         receipt: rc.map(receipt),
+    }
+}
+
+pub(super) fn sealed(
+    r: &SealedRecord,
+    rc: &Receipt,
+    replayed: bool,
+    closes_at: &str,
+    guarantee: &str,
+) -> pb::SealedEntry {
+    pb::SealedEntry {
+        query: r.query,
+        ticket: r.ticket,
+        delta_i: r.delta_i,
+        level_nats: r.level_nats,
+        receipt: Some(receipt(rc)),
+        digest: r.digest.clone(),
+        marked: r.marked,
+        closes_at: closes_at.to_string(),
+        statement: format!(
+            "sealed: entry {} of the round is recorded and its share taken; nothing about its \
+             score is released until the round closes ({}), when every entry is answered at once",
+            r.ticket,
+            if closes_at.is_empty() {
+                "by an organizer".to_string()
+            } else {
+                format!("deadline {closes_at}")
+            }
+        ),
+        guarantee: guarantee.to_string(),
+        replayed,
+        target: r.target.clone(),
+    }
+}
+
+fn interval(lower: f64, upper: f64) -> Option<pb::Interval> {
+    Some(pb::Interval { lower, upper })
+}
+
+pub(super) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
+    pb::LeaderboardResponse {
+        holdout: l.holdout.clone(),
+        target: l.target.clone(),
+        rows: l
+            .rows
+            .iter()
+            .map(|r| pb::LeaderboardRow {
+                rank: r.rank,
+                team: r.team.clone(),
+                best: r.best,
+                interval: interval(r.lower, r.upper),
+                submissions: r.submissions,
+                improvements: r.improvements,
+                best_at: r.best_at.clone().unwrap_or_default(),
+            })
+            .collect(),
+        statement: l.statement.clone(),
+        guarantee: l.guarantee.clone(),
+        own_team_only: l.own_team_only,
+    }
+}
+
+pub(super) fn ranking(r: &Ranking) -> pb::RankingResponse {
+    pb::RankingResponse {
+        holdout: r.holdout.clone(),
+        closed_at: r.closed_at.clone(),
+        trigger: r.trigger.clone(),
+        entries: r
+            .entries
+            .iter()
+            .map(|e| pb::RankedEntry {
+                rank: e.rank,
+                team: e.team.clone(),
+                ticket: e.ticket,
+                score: e.score,
+                interval: interval(e.lower, e.upper),
+                digest: e.digest.clone(),
+            })
+            .collect(),
+        comparisons: r
+            .comparisons
+            .iter()
+            .map(|c| pb::Comparison {
+                ahead: c.ahead,
+                behind: c.behind,
+                difference: interval(c.lower, c.upper),
+                level_nats: c.level_nats,
+                distinguishable: c.distinguishable,
+            })
+            .collect(),
+        statement: r.statement.clone(),
+        guarantee: r.guarantee.clone(),
+    }
+}
+
+pub(super) fn duplicates(holdout: &str, d: &[Duplicate]) -> pb::DuplicatesResponse {
+    pb::DuplicatesResponse {
+        holdout: holdout.to_string(),
+        duplicates: d
+            .iter()
+            .map(|d| pb::Duplicate {
+                digest: d.digest.clone(),
+                teams: d.teams.clone(),
+                entries: d
+                    .entries
+                    .iter()
+                    .map(|(entry, team, user)| pb::DuplicateEntry {
+                        entry: *entry,
+                        team: team.clone(),
+                        user: user.clone(),
+                    })
+                    .collect(),
+            })
+            .collect(),
     }
 }

@@ -29,6 +29,9 @@ fn policy_input(p: crate::proto::v1::Policy) -> PolicyInput {
         tolerance_reference: p.tolerance_reference,
         shares: p.shares,
         daily_quota: p.daily_quota,
+        closes_at: p.closes_at,
+        ranking_share: p.ranking_share,
+        leaderboard: p.leaderboard,
     }
 }
 

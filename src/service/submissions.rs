@@ -126,14 +126,16 @@ impl Submissions for Daemon {
             max_cost_nats: Some(header.max_cost_nats).filter(|c| *c > 0.0),
             model_names: header.model_names,
             models: preds,
+            mark_final: header.mark_final,
         };
         let holdout = req.holdout.clone();
-        let (outcome, guarantee) = self
+        let (outcome, guarantee, closes_at) = self
             .db
             .call(move |engine| {
                 let out = engine.submit(&caller, req)?;
-                let guarantee = engine.loaded(&holdout)?.policy.guarantee();
-                Ok((out, guarantee))
+                let policy = &engine.loaded(&holdout)?.policy;
+                let closes_at = policy.closes_at.map(crate::auth::rfc3339);
+                Ok((out, policy.guarantee(), closes_at.unwrap_or_default()))
             })
             .await?;
         let outcome = match outcome {
@@ -161,6 +163,13 @@ impl Submissions for Daemon {
             SubmitOutcome::Validation { rows, digest } => {
                 Outcome::Validation(pb::Validation { rows, digest })
             }
+            SubmitOutcome::Sealed {
+                record,
+                receipt,
+                replayed,
+            } => Outcome::Sealed(convert::sealed(
+                &record, &receipt, replayed, &closes_at, &guarantee,
+            )),
         };
         Ok(Response::new(SubmitResponse {
             outcome: Some(outcome),
@@ -218,6 +227,16 @@ impl Submissions for Daemon {
                         answer: Some(convert::answer(&r, &rc, false, &guarantee)),
                         refusal: None,
                     },
+                    HistoryItem::Sealed(r, rc) => HistoryEntry {
+                        entry: rc.entry,
+                        kind: "sealed".into(),
+                        team: r.team.clone(),
+                        at: r.at.clone(),
+                        note: r.note.clone(),
+                        exact_scores: Vec::new(),
+                        answer: None,
+                        refusal: None,
+                    },
                     HistoryItem::Refusal(r, rc) => HistoryEntry {
                         entry: rc.entry,
                         kind: "refusal".into(),
@@ -232,5 +251,45 @@ impl Submissions for Daemon {
             })
             .collect();
         Ok(Response::new(Box::pin(tokio_stream::iter(entries))))
+    }
+
+    async fn leaderboard(
+        &self,
+        request: Request<pb::LeaderboardRequest>,
+    ) -> Result<Response<pb::LeaderboardResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let name = request.into_inner().holdout;
+        let board = self
+            .db
+            .call(move |engine| engine.leaderboard(&caller, &name))
+            .await?;
+        Ok(Response::new(convert::leaderboard(&board)))
+    }
+
+    async fn ranking(
+        &self,
+        request: Request<pb::RankingRequest>,
+    ) -> Result<Response<pb::RankingResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let name = request.into_inner().holdout;
+        let ranking = self
+            .db
+            .call(move |engine| engine.ranking(&caller, &name))
+            .await?;
+        Ok(Response::new(convert::ranking(&ranking)))
+    }
+
+    async fn duplicates(
+        &self,
+        request: Request<pb::DuplicatesRequest>,
+    ) -> Result<Response<pb::DuplicatesResponse>, Status> {
+        let caller = self.caller(&request).await?;
+        let name = request.into_inner().holdout;
+        let holdout = name.clone();
+        let found = self
+            .db
+            .call(move |engine| engine.duplicates(&caller, &name))
+            .await?;
+        Ok(Response::new(convert::duplicates(&holdout, &found)))
     }
 }

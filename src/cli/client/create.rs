@@ -86,9 +86,23 @@ pub struct CreateArgs {
     /// Reference score for the tolerance decision.
     #[arg(long, value_enum, default_value_t = ToleranceReference::WorstCase)]
     pub tolerance_reference: ToleranceReference,
-    /// Budget shares per team: none, roster:N[:RESERVE] or on-arrival.
+    /// Budget shares per team: none, roster:TEAM,TEAM,...[:RESERVE] (equal shares for the
+    /// declared teams plus a reserve for late joiners) or on-arrival (the j-th team to arrive
+    /// gets delta / (j (j+1))).
     #[arg(long, default_value = "none")]
     pub shares: String,
+    /// Sealed rounds: deadline, RFC 3339 (e.g. 2026-06-30T12:00:00Z). Entries after it are
+    /// refused and the round closes by itself; without it an organizer closes the round.
+    #[arg(long, value_name = "TIME")]
+    pub closes_at: Option<String>,
+    /// Sealed rounds: fraction of delta reserved for the final ranking's paired comparisons
+    /// [default: 0.2].
+    #[arg(long, value_name = "FRACTION")]
+    pub ranking_share: Option<f64>,
+    /// Ladder leaderboard visibility: public or organizers [default: public under shared,
+    /// organizers under isolated; public with isolated is refused].
+    #[arg(long, value_name = "WHO")]
+    pub leaderboard: Option<String>,
     /// Most answered queries per team per UTC day (0: no quota).
     #[arg(long, default_value_t = 0)]
     pub daily_quota: u32,
@@ -288,6 +302,9 @@ fn policy_of(args: &CreateArgs) -> Policy {
         shares: args.shares.clone(),
         daily_quota: args.daily_quota,
         canonical_json: String::new(),
+        closes_at: args.closes_at.clone().unwrap_or_default(),
+        ranking_share: args.ranking_share.unwrap_or(0.0),
+        leaderboard: args.leaderboard.clone().unwrap_or_default(),
     }
 }
 

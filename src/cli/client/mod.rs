@@ -6,6 +6,7 @@
 //! | `split` | [`split`] |
 //! | `ids`, `validate`, `submit` | [`submit`] |
 //! | `status`, `history`, `list`, `close`, `user ...`, `whoami` | [`admin`] |
+//! | `leaderboard`, `ranking`, `duplicates` | [`compete`] |
 //!
 //! Every command prints people-readable text by default and one JSON document with `--json`.
 //! Errors are printed as `error: MESSAGE` on stderr and mapped to the documented exit codes
@@ -18,6 +19,7 @@ use clap::Subcommand;
 use super::exit;
 
 pub mod admin;
+pub mod compete;
 pub mod conn;
 pub mod create;
 pub mod plan;
@@ -60,8 +62,15 @@ pub enum ClientCommand {
     History(admin::HistoryArgs),
     /// Holdouts visible to you.
     List(admin::ListArgs),
-    /// Close a holdout: it answers no more queries (organizer).
+    /// Close a holdout: it answers no more queries (organizer). Closing a sealed round answers
+    /// every entry at once and ranks them.
     Close(admin::CloseArgs),
+    /// Ladder holdouts: each team's best so far with the interval for its best true error.
+    Leaderboard(compete::BoardArgs),
+    /// Sealed rounds, once closed: the ranking, with paired comparisons between neighbours.
+    Ranking(compete::BoardArgs),
+    /// Identical predictions submitted by different teams (organizers, auditors).
+    Duplicates(compete::BoardArgs),
     /// Manage users and tokens (organizer; `rotate` for anyone).
     #[command(subcommand)]
     User(admin::UserCommand),
@@ -100,6 +109,9 @@ async fn dispatch(cmd: ClientCommand) -> anyhow::Result<ExitCode> {
         ClientCommand::History(args) => admin::history(&args).await,
         ClientCommand::List(args) => admin::list(&args).await,
         ClientCommand::Close(args) => admin::close(&args).await,
+        ClientCommand::Leaderboard(args) => compete::leaderboard(&args).await,
+        ClientCommand::Ranking(args) => compete::ranking(&args).await,
+        ClientCommand::Duplicates(args) => compete::duplicates(&args).await,
         ClientCommand::User(cmd) => admin::user(&cmd).await,
         ClientCommand::Whoami(args) => admin::whoami(&args).await,
     }

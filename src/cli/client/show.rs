@@ -269,6 +269,9 @@ pub fn policy_json(p: &Policy) -> Value {
         "tolerance_reference": p.tolerance_reference,
         "shares": p.shares,
         "daily_quota": p.daily_quota,
+        "closes_at": p.closes_at,
+        "ranking_share": p.ranking_share,
+        "leaderboard": p.leaderboard,
     })
 }
 
@@ -288,7 +291,11 @@ pub fn policy_text(p: &Policy) -> String {
         } else {
             p.daily_quota.to_string()
         }
-    )
+    ) + &if p.closes_at.is_empty() {
+        String::new()
+    } else {
+        format!(", closes at {}", p.closes_at)
+    }
 }
 
 /// A target as JSON.

@@ -104,6 +104,10 @@ pub struct SubmitArgs {
     /// many nats.
     #[arg(long, value_name = "NATS")]
     pub max_cost: Option<f64>,
+    /// Sealed rounds: mark this entry as your team's selected one for the ranking (without a
+    /// mark, the team's last entry is selected).
+    #[arg(long = "final")]
+    pub mark_final: bool,
     /// Print one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -235,6 +239,7 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
         models: u32::try_from(tables.len()).unwrap_or(u32::MAX),
         model_names: names.clone(),
         expected_rows: tables[0].len() as u64,
+        mark_final: args.mark_final,
     };
     match send(&conn, header, models).await? {
         Outcome::Answer(a) => {
@@ -258,6 +263,14 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
                 show::print_json(&show::quote_json(&q));
             } else {
                 println!("{}", show::quote_text(&q));
+            }
+            Ok(ExitCode::SUCCESS)
+        }
+        Outcome::Sealed(e) => {
+            if args.json {
+                show::print_json(&super::compete::sealed_json(&e));
+            } else {
+                println!("{}", super::compete::sealed_text(&e));
             }
             Ok(ExitCode::SUCCESS)
         }

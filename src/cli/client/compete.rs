@@ -1,0 +1,369 @@
+//! Competition commands: `leaderboard` (ladder holdouts), `ranking` (sealed rounds, after the
+//! close) and `duplicates` (organizers and auditors); and the reply to a sealed entry.
+//!
+//! Each prints text for people, one JSON object with `--json`, or CSV with `--csv` (one row per
+//! team or entry, for spreadsheets; the guarantee is in the text and JSON forms).
+
+use std::process::ExitCode;
+
+use clap::Args;
+use serde_json::{Value, json};
+
+use super::conn::{Conn, ServerArgs};
+use super::show::{self, num};
+use crate::proto::v1::{
+    DuplicatesRequest, Interval, LeaderboardRequest, RankingRequest, SealedEntry,
+};
+
+/// `holdout leaderboard`, `holdout ranking`, `holdout duplicates`.
+#[derive(Debug, Args)]
+pub struct BoardArgs {
+    /// Holdout name.
+    pub name: String,
+    /// Print one JSON object.
+    #[arg(long, conflicts_with = "csv")]
+    pub json: bool,
+    /// Print CSV with a header row.
+    #[arg(long)]
+    pub csv: bool,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub server: ServerArgs,
+}
+
+fn iv(i: Option<&Interval>) -> (f64, f64) {
+    i.map_or((0.0, 1.0), |i| (i.lower, i.upper))
+}
+
+fn opt(x: Option<f64>) -> String {
+    x.map(num).unwrap_or_else(|| "-".into())
+}
+
+fn csv_line(cells: &[String]) -> String {
+    cells
+        .iter()
+        .map(|c| {
+            if c.contains([',', '"', '\n']) {
+                format!("\"{}\"", c.replace('"', "\"\""))
+            } else {
+                c.clone()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join(",")
+}
+
+/// Prints a ladder leaderboard.
+///
+/// # Errors
+/// Connection, permission and not-found failures; a holdout that is not a ladder.
+pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let b = conn
+        .submissions()
+        .leaderboard(LeaderboardRequest {
+            holdout: args.name.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    let rank = |r: u64| {
+        if r == 0 {
+            "-".to_string()
+        } else {
+            r.to_string()
+        }
+    };
+    if args.json {
+        show::print_json(&json!({
+            "holdout": b.holdout,
+            "target": b.target,
+            "own_team_only": b.own_team_only,
+            "rows": b.rows.iter().map(|r| {
+                let (lo, hi) = iv(r.interval.as_ref());
+                json!({"rank": r.rank, "team": r.team, "best": r.best, "lower": lo, "upper": hi,
+                       "submissions": r.submissions, "improvements": r.improvements,
+                       "best_at": r.best_at})
+            }).collect::<Vec<Value>>(),
+            "statement": b.statement,
+            "guarantee": b.guarantee,
+        }));
+    } else if args.csv {
+        println!("rank,team,best,lower,upper,submissions,improvements,best_at");
+        for r in &b.rows {
+            let (lo, hi) = iv(r.interval.as_ref());
+            println!(
+                "{}",
+                csv_line(&[
+                    r.rank.to_string(),
+                    r.team.clone(),
+                    r.best.map(|x| x.to_string()).unwrap_or_default(),
+                    lo.to_string(),
+                    hi.to_string(),
+                    r.submissions.to_string(),
+                    r.improvements.to_string(),
+                    r.best_at.clone(),
+                ])
+            );
+        }
+    } else {
+        let rows: Vec<Vec<String>> = b
+            .rows
+            .iter()
+            .map(|r| {
+                let (lo, hi) = iv(r.interval.as_ref());
+                vec![
+                    rank(r.rank),
+                    r.team.clone(),
+                    opt(r.best),
+                    format!("[{}, {}]", num(lo), num(hi)),
+                    r.submissions.to_string(),
+                    r.improvements.to_string(),
+                ]
+            })
+            .collect();
+        println!("leaderboard of {} (target {})", b.holdout, b.target);
+        if b.own_team_only {
+            println!("(only your team's row: this leaderboard is shown in full to organizers)");
+        }
+        println!(
+            "{}",
+            show::table(
+                &[
+                    "rank",
+                    "team",
+                    "best",
+                    "best true error among its submissions",
+                    "answered",
+                    "new bests"
+                ],
+                &rows
+            )
+        );
+        println!("\n{}\n\n{}", b.statement, b.guarantee);
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Prints the final ranking of a closed sealed round.
+///
+/// # Errors
+/// Connection, permission and not-found failures; a round that has not closed.
+pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let r = conn
+        .submissions()
+        .ranking(RankingRequest {
+            holdout: args.name.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    // The comparison with the entry ranked just below, by ticket of the entry ahead.
+    let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
+    if args.json {
+        show::print_json(&json!({
+            "holdout": r.holdout,
+            "closed_at": r.closed_at,
+            "trigger": r.trigger,
+            "entries": r.entries.iter().map(|e| {
+                let (lo, hi) = iv(e.interval.as_ref());
+                json!({"rank": e.rank, "team": e.team, "ticket": e.ticket, "score": e.score,
+                       "lower": lo, "upper": hi, "digest": e.digest})
+            }).collect::<Vec<Value>>(),
+            "comparisons": r.comparisons.iter().map(|c| {
+                let (lo, hi) = iv(c.difference.as_ref());
+                json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
+                       "level_nats": c.level_nats, "distinguishable": c.distinguishable})
+            }).collect::<Vec<Value>>(),
+            "statement": r.statement,
+            "guarantee": r.guarantee,
+        }));
+    } else if args.csv {
+        println!("rank,team,ticket,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
+        for e in &r.entries {
+            let (lo, hi) = iv(e.interval.as_ref());
+            let (clo, chi, apart) =
+                below(e.ticket).map_or((String::new(), String::new(), String::new()), |c| {
+                    let (a, b) = iv(c.difference.as_ref());
+                    (a.to_string(), b.to_string(), c.distinguishable.to_string())
+                });
+            println!(
+                "{}",
+                csv_line(&[
+                    e.rank.to_string(),
+                    e.team.clone(),
+                    e.ticket.to_string(),
+                    e.score.map(|x| x.to_string()).unwrap_or_default(),
+                    lo.to_string(),
+                    hi.to_string(),
+                    clo,
+                    chi,
+                    apart,
+                ])
+            );
+        }
+    } else {
+        let rows: Vec<Vec<String>> = r
+            .entries
+            .iter()
+            .map(|e| {
+                let (lo, hi) = iv(e.interval.as_ref());
+                let vs = below(e.ticket).map_or(String::new(), |c| {
+                    let (a, b) = iv(c.difference.as_ref());
+                    format!(
+                        "[{}, {}] {}",
+                        num(a),
+                        num(b),
+                        if c.distinguishable {
+                            "told apart"
+                        } else {
+                            "not told apart"
+                        }
+                    )
+                });
+                vec![
+                    e.rank.to_string(),
+                    e.team.clone(),
+                    opt(e.score),
+                    format!("[{}, {}]", num(lo), num(hi)),
+                    vs,
+                ]
+            })
+            .collect();
+        println!(
+            "ranking of {} (closed {} by {})",
+            r.holdout, r.closed_at, r.trigger
+        );
+        println!(
+            "{}",
+            show::table(
+                &["rank", "team", "score", "interval", "minus the next rank"],
+                &rows
+            )
+        );
+        println!("\n{}\n\n{}", r.statement, r.guarantee);
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Prints prediction digests submitted by more than one team.
+///
+/// # Errors
+/// Connection, permission and not-found failures.
+pub async fn duplicates(args: &BoardArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let d = conn
+        .submissions()
+        .duplicates(DuplicatesRequest {
+            holdout: args.name.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    if args.json {
+        show::print_json(&json!({
+            "holdout": d.holdout,
+            "duplicates": d.duplicates.iter().map(|x| json!({
+                "digest": x.digest,
+                "teams": x.teams,
+                "entries": x.entries.iter().map(|e| json!({
+                    "entry": e.entry, "team": e.team, "user": e.user,
+                })).collect::<Vec<Value>>(),
+            })).collect::<Vec<Value>>(),
+        }));
+    } else if args.csv {
+        println!("digest,entry,team,user");
+        for x in &d.duplicates {
+            for e in &x.entries {
+                println!(
+                    "{}",
+                    csv_line(&[
+                        x.digest.clone(),
+                        e.entry.to_string(),
+                        e.team.clone(),
+                        e.user.clone()
+                    ])
+                );
+            }
+        }
+    } else if d.duplicates.is_empty() {
+        println!(
+            "no identical predictions from different teams on {}",
+            d.holdout
+        );
+    } else {
+        println!(
+            "{} sent by more than one team on {} (a team is one analyst: several accounts \
+             of one team void the guarantee)",
+            show::plural(
+                d.duplicates.len() as u64,
+                "prediction vector was",
+                "prediction vectors were"
+            ),
+            d.holdout
+        );
+        for x in &d.duplicates {
+            let entries: Vec<String> = x
+                .entries
+                .iter()
+                .map(|e| format!("entry {} ({}, {})", e.entry, e.team, e.user))
+                .collect();
+            println!(
+                "{}  teams {}: {}",
+                x.digest,
+                x.teams.join(", "),
+                entries.join("; ")
+            );
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// A sealed entry's receipt as JSON.
+pub fn sealed_json(e: &SealedEntry) -> Value {
+    json!({
+        "sealed": true,
+        "target": e.target,
+        "query": e.query,
+        "ticket": e.ticket,
+        "delta_i": e.delta_i,
+        "level_nats": e.level_nats,
+        "marked": e.marked,
+        "replayed": e.replayed,
+        "closes_at": e.closes_at,
+        "digest": e.digest,
+        "statement": e.statement,
+        "receipt": show::receipt_json(e.receipt.as_ref()),
+        "guarantee": e.guarantee,
+    })
+}
+
+/// A sealed entry's receipt for people.
+pub fn sealed_text(e: &SealedEntry) -> String {
+    let mut s = format!("sealed entry {} (target {})", e.ticket, e.target);
+    if e.replayed {
+        s.push_str(", already entered: nothing charged");
+    }
+    if e.marked {
+        s.push_str(", marked as your team's selected entry");
+    }
+    s.push_str(&format!(
+        "\nlevel      ln(1/d) = {} nats; share delta_i = {}",
+        num(e.level_nats),
+        num(e.delta_i)
+    ));
+    if let Some(r) = &e.receipt {
+        s.push_str(&format!(
+            "\nreceipt    entry {} hash {} salt {}",
+            r.entry, r.entry_hash, r.salt
+        ));
+    }
+    s.push_str(&format!("\nstatement  {}", e.statement));
+    s.push_str(&format!("\ndigest     {}", e.digest));
+    if !e.guarantee.is_empty() {
+        s.push_str("\n\n");
+        s.push_str(&e.guarantee);
+    }
+    s
+}

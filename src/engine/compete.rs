@@ -1,0 +1,883 @@
+//! Competitions: the ladder leaderboard, sealed final rounds with their deadline, close and
+//! ranking, and the report of identical predictions submitted by different teams.
+//!
+//! Sealed rounds (DESIGN 4.3 `sealed`). An entry takes its share when it arrives, at the level
+//! of the answers released before it ([`super::account::Book::seal`]); its per-row losses are
+//! kept in `sealed_entries` until the close, and the ledger records the entry without anything
+//! about its score. The round closes at the deadline (checked from the injected clock on every
+//! call that touches the holdout) or by an organizer; then every entry is answered at once and
+//! the teams' selected entries (the last one each team marked, else its last entry) are ranked
+//! by released score. Neighbours are compared with paired intervals (DESIGN 4.6) at a level
+//! from the ranking's reserve: `ranking_delta` split evenly over all `K (K - 1) / 2` pairs, so
+//! the intervals hold simultaneously for whichever pairs end up adjacent. The sealed answers
+//! use the rest of delta, so the whole holdout stays within the committed delta. The close is
+//! the holdout's last event (nothing is answered after it), so neither the cells nor the
+//! comparisons have to be coded for a later query.
+
+use std::collections::{BTreeMap, BTreeSet};
+
+use chrono::{DateTime, Utc};
+use rusqlite::{OptionalExtension, params};
+use serde::{Deserialize, Serialize};
+
+use super::account::{Book, DEFAULT_RANKING_SHARE, HoldoutPolicy, PolicyInput, Quote};
+use super::records::{AnswerRecord, Comparison, RankedEntry, RoundRecord, SealedRecord};
+use super::submit::{Receipt, SubmitOutcome, SubmitRequest};
+use super::{Engine, Loaded};
+use crate::auth::{Caller, Role, rfc3339};
+use crate::error::{Error, Result};
+use crate::ledger::{self, Entry};
+use crate::metric::{Labels, Loss, Metric, Predictions};
+use crate::stats::paired::{paired_bounded, paired_errors};
+use crate::stats::rules::Rule;
+
+/// The parts of a policy that only sealed rounds have.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct RoundTerms {
+    pub(crate) closes_at: Option<DateTime<Utc>>,
+    pub(crate) ranking_delta: f64,
+}
+
+impl RoundTerms {
+    /// Parses and checks `closes_at` and `ranking_share` against the rule.
+    pub(crate) fn build(input: &PolicyInput, rule: &Rule) -> Result<RoundTerms> {
+        let sealed = matches!(rule, Rule::Sealed(_));
+        let closes_at = if input.closes_at.is_empty() {
+            None
+        } else {
+            if !sealed {
+                return Err(Error::invalid(
+                    "closes_at",
+                    "only sealed rounds have a deadline (answers: sealed or sealed:ETA)",
+                ));
+            }
+            let t = DateTime::parse_from_rfc3339(&input.closes_at).map_err(|e| {
+                Error::invalid(
+                    "closes_at",
+                    format!(
+                        "{:?} is not an RFC 3339 time such as 2026-05-01T12:00:00Z ({e})",
+                        input.closes_at
+                    ),
+                )
+            })?;
+            Some(t.with_timezone(&Utc))
+        };
+        let share = input.ranking_share;
+        if !sealed {
+            if share != 0.0 {
+                return Err(Error::invalid(
+                    "ranking_share",
+                    "only sealed rounds reserve a share for a ranking",
+                ));
+            }
+            return Ok(RoundTerms {
+                closes_at,
+                ranking_delta: 0.0,
+            });
+        }
+        let share = if share == 0.0 {
+            DEFAULT_RANKING_SHARE
+        } else {
+            share
+        };
+        if !(share > 0.0 && share < 1.0) {
+            return Err(Error::invalid(
+                "ranking_share",
+                format!("must lie in (0, 1), got {share}"),
+            ));
+        }
+        Ok(RoundTerms {
+            closes_at,
+            ranking_delta: input.delta * share,
+        })
+    }
+}
+
+/// Who sees the leaderboard; a public one is refused under `isolated`, which it would break.
+pub(crate) fn public_leaderboard(spec: &str, isolated: bool) -> Result<bool> {
+    match spec {
+        "" => Ok(!isolated),
+        "organizers" => Ok(false),
+        "public" if isolated => Err(Error::invalid(
+            "leaderboard",
+            "a public leaderboard shows every team's answers to every team, which breaks the \
+             isolated assumption (one transcript per team); use sharing shared, or leaderboard \
+             organizers",
+        )),
+        "public" => Ok(true),
+        other => Err(Error::invalid(
+            "leaderboard",
+            format!("unknown leaderboard visibility {other:?}; use public or organizers"),
+        )),
+    }
+}
+
+/// What the guarantee adds for ladder holdouts and sealed rounds.
+pub(crate) fn guarantee_addendum(p: &HoldoutPolicy) -> String {
+    match p.core.rule {
+        Rule::Ladder(_) => "\nLeaderboard (ladder): a team's interval covers the smallest true \
+                            error among that team's submissions so far (inside the simultaneous \
+                            guarantee); it says nothing about any one file."
+            .to_string(),
+        Rule::Sealed(_) => format!(
+            "\nSealed round: nothing about any entry is released before the close{}; the \
+             entries' answers use {} of delta and the ranking's paired comparisons the other {} \
+             (split evenly over every pair of ranked entries).",
+            p.closes_at
+                .map(|t| format!(" (deadline {})", rfc3339(t)))
+                .unwrap_or_default(),
+            p.core.delta,
+            p.ranking_delta
+        ),
+        _ => String::new(),
+    }
+}
+
+/// One team's row of a ladder leaderboard.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct LeaderboardRow {
+    /// Rank, from 1 (teams with no released best come last, unranked: 0).
+    pub rank: u64,
+    /// Team.
+    pub team: String,
+    /// Best score so far on the grid (`None` before a first new best).
+    pub best: Option<f64>,
+    /// Interval for the smallest true error among the team's submissions, from its latest
+    /// answer.
+    pub lower: f64,
+    /// Upper end.
+    pub upper: f64,
+    /// Answered submissions.
+    pub submissions: u64,
+    /// New bests released.
+    pub improvements: u64,
+    /// Ledger entry of the latest new best (ties on `best` go to the earlier one).
+    pub best_entry: Option<u64>,
+    /// Time of the latest new best.
+    pub best_at: Option<String>,
+}
+
+/// A ladder leaderboard with its guarantee.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Leaderboard {
+    /// Holdout.
+    pub holdout: String,
+    /// Target.
+    pub target: String,
+    /// Rows, ranked.
+    pub rows: Vec<LeaderboardRow>,
+    /// What the leaderboard certifies.
+    pub statement: String,
+    /// The holdout's guarantee with its assumptions.
+    pub guarantee: String,
+    /// Whether other teams' rows were withheld from this caller.
+    pub own_team_only: bool,
+}
+
+/// The final ranking of a closed round.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Ranking {
+    /// Holdout.
+    pub holdout: String,
+    /// When and how it closed.
+    pub closed_at: String,
+    /// `deadline` or `organizer`.
+    pub trigger: String,
+    /// Entries, best first.
+    pub entries: Vec<RankedEntry>,
+    /// Neighbour comparisons, top first.
+    pub comparisons: Vec<Comparison>,
+    /// What the comparisons certify.
+    pub statement: String,
+    /// The holdout's guarantee with its assumptions.
+    pub guarantee: String,
+}
+
+/// Identical predictions submitted by more than one team.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Duplicate {
+    /// The prediction digest.
+    pub digest: String,
+    /// The teams, sorted.
+    pub teams: Vec<String>,
+    /// Ledger entries `(entry, team, user)` that carried it.
+    pub entries: Vec<(u64, String, String)>,
+}
+
+/// Per-row losses of one model, in the holdout's row order.
+pub(crate) fn row_losses(metric: &Metric, labels: &Labels, preds: &Predictions) -> Vec<f64> {
+    match (labels, preds) {
+        (Labels::Classes(y), Predictions::Classes(p)) => y
+            .iter()
+            .zip(p)
+            .map(|(a, b)| if a == b { 0.0 } else { 1.0 })
+            .collect(),
+        (Labels::Numbers(y), Predictions::Numbers(p)) => y
+            .iter()
+            .zip(p)
+            .map(|(label, pred)| metric.numeric_loss(*pred, *label))
+            .collect(),
+        _ => Vec::new(),
+    }
+}
+
+fn encode_losses(v: &[f64]) -> Vec<u8> {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+fn decode_losses(b: &[u8]) -> Vec<f64> {
+    b.chunks_exact(8)
+        .map(|c| f64::from_le_bytes(c.try_into().expect("8 bytes")))
+        .collect()
+}
+
+/// The exact loss of a per-row loss vector (summed in row order, like the scorer).
+fn loss_of(binary: bool, v: &[f64]) -> Loss {
+    let sum: f64 = v.iter().sum();
+    Loss {
+        rows: v.len() as u64,
+        errors: binary.then(|| v.iter().filter(|x| **x != 0.0).count() as u64),
+        sum,
+    }
+}
+
+/// The paired comparison of two per-row loss vectors at `level_nats` (DESIGN 4.6).
+pub(crate) fn compare(
+    binary: bool,
+    a: &[f64],
+    b: &[f64],
+    level_nats: f64,
+) -> Result<(f64, f64, Comparison)> {
+    let n = a.len() as u64;
+    let mut c = Comparison {
+        ahead: 0,
+        behind: 0,
+        lower: -1.0,
+        upper: 1.0,
+        level_nats,
+        distinguishable: false,
+        a_only: None,
+        b_only: None,
+        sum_diff: None,
+        sum_sq_diff: None,
+    };
+    let ci = if binary {
+        let a_only = a.iter().zip(b).filter(|(x, y)| **x > **y).count() as u64;
+        let b_only = a.iter().zip(b).filter(|(x, y)| **x < **y).count() as u64;
+        c.a_only = Some(a_only);
+        c.b_only = Some(b_only);
+        paired_errors(n, a_only, b_only, level_nats)
+    } else {
+        let (s, s2) = a.iter().zip(b).fold((0.0, 0.0), |(s, s2), (x, y)| {
+            let d = x - y;
+            (s + d, s2 + d * d)
+        });
+        c.sum_diff = Some(s);
+        c.sum_sq_diff = Some(s2);
+        paired_bounded(n, s, s2, level_nats)
+    }
+    .map_err(|e| Error::Internal(format!("paired comparison: {e}")))?;
+    c.lower = ci.lower;
+    c.upper = ci.upper;
+    c.distinguishable = ci.lower > 0.0 || ci.upper < 0.0;
+    Ok((ci.lower, ci.upper, c))
+}
+
+/// Recomputes a comparison from the statistics its record carries (audit replay).
+pub fn replay_comparison(binary: bool, rows: u64, c: &Comparison) -> Option<(f64, f64)> {
+    let ci = if binary {
+        paired_errors(rows, c.a_only?, c.b_only?, c.level_nats).ok()?
+    } else {
+        paired_bounded(rows, c.sum_diff?, c.sum_sq_diff?, c.level_nats).ok()?
+    };
+    Some((ci.lower, ci.upper))
+}
+
+/// `ln(1/d)` of each neighbour comparison: the reserve split over `pairs` pairs.
+fn comparison_level(ranking_delta: f64, pairs: u64) -> f64 {
+    (pairs.max(1) as f64).ln() - ranking_delta.ln()
+}
+
+fn parse<T: for<'de> Deserialize<'de>>(e: &Entry) -> Result<T> {
+    serde_json::from_str(&e.body)
+        .map_err(|err| Error::Internal(format!("ledger entry {}: {err}", e.seq)))
+}
+
+/// Replays a `sealed` or `round` ledger entry into a book, checking it against the core.
+pub(crate) fn replay_entry(book: &mut Book, policy: &HoldoutPolicy, e: &Entry) -> Result<()> {
+    let mismatch = |what: &str| {
+        Error::Internal(format!(
+            "ledger entry {} does not replay: {what} differs from what the accounting core \
+             computes again",
+            e.seq
+        ))
+    };
+    if e.kind == "sealed" {
+        let r: SealedRecord = parse(e)?;
+        let quote = book
+            .quote(policy, &r.team, r.target_index, 1)
+            .map_err(|why| {
+                Error::Internal(format!(
+                    "ledger entry {} was sealed, but replaying it is refused ({why})",
+                    e.seq
+                ))
+            })?;
+        if quote.level_nats.to_bits() != r.level_nats.to_bits() {
+            return Err(mismatch("the level"));
+        }
+        let ticket = book.seal(&r.team, r.target_index, &quote)?;
+        if ticket != r.ticket {
+            return Err(mismatch("the ticket"));
+        }
+        return Ok(());
+    }
+    let r: RoundRecord = parse(e)?;
+    let losses: Vec<Loss> = r
+        .answers
+        .iter()
+        .map(|a| {
+            a.exact
+                .as_ref()
+                .and_then(|v| v.first().copied())
+                .ok_or_else(|| mismatch("the exact losses"))
+        })
+        .collect::<Result<_>>()?;
+    let again = book.close_round(policy, &losses)?;
+    for (a, b) in r.answers.iter().zip(&again) {
+        if a.symbol != b.symbol
+            || a.lower.to_bits() != b.lower.to_bits()
+            || a.upper.to_bits() != b.upper.to_bits()
+        {
+            return Err(mismatch("an answer of the round"));
+        }
+    }
+    for c in &r.comparisons {
+        let binary = r
+            .answers
+            .get(c.ahead as usize)
+            .map(|a| policy.core.targets[a.target_index].binary)
+            .unwrap_or(true);
+        match replay_comparison(binary, policy.core.rows, c) {
+            Some((lo, hi))
+                if lo.to_bits() == c.lower.to_bits() && hi.to_bits() == c.upper.to_bits() => {}
+            _ => return Err(mismatch("a comparison")),
+        }
+    }
+    Ok(())
+}
+
+impl Engine {
+    /// Closes a sealed round whose deadline has passed (on the injected clock). Called by every
+    /// operation that touches a holdout, so the close happens at the first call after the
+    /// deadline whatever it is; it depends only on the time, a public fact.
+    pub(crate) fn settle(&mut self, loaded: &Loaded) -> Result<()> {
+        let Some(deadline) = loaded.policy.closes_at else {
+            return Ok(());
+        };
+        if self.now() < deadline || self.closed_at(loaded.id)?.is_some() {
+            return Ok(());
+        }
+        match self.close_round_tx(loaded, "deadline", "daemon", deadline) {
+            // Another connection closed it first.
+            Err(Error::FailedPrecondition(_)) => Ok(()),
+            other => other.map(|_| ()),
+        }
+    }
+
+    /// Seals one entry: takes its share, records it, keeps its per-row losses for the close.
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn seal_entry(
+        &mut self,
+        caller: &Caller,
+        loaded: &Loaded,
+        req: &SubmitRequest,
+        target_index: usize,
+        preds: &Predictions,
+        digest: String,
+    ) -> Result<SubmitOutcome> {
+        let team = caller.team.clone();
+        let at = rfc3339(self.now());
+        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        let result = (|| -> Result<(SubmitOutcome, Option<(u64, Book)>)> {
+            // A retried request id, or the same predictions again from the same team: the
+            // earlier receipt, nothing charged.
+            let earlier: Option<(i64, String)> = self
+                .store
+                .conn()
+                .query_row(
+                    "SELECT seq, digest FROM sealed_entries WHERE holdout_id = ?1 AND team = ?2
+                     AND (digest = ?3 OR (request_id = ?4 AND ?4 != '')) ORDER BY ticket LIMIT 1",
+                    params![
+                        loaded.id,
+                        team,
+                        digest,
+                        req.request_id.clone().unwrap_or_default()
+                    ],
+                    |r| Ok((r.get(0)?, r.get(1)?)),
+                )
+                .optional()?;
+            if let Some((seq, d)) = earlier {
+                if d != digest {
+                    return Err(Error::FailedPrecondition(format!(
+                        "request id {} was already used with different predictions; a retry \
+                         must send the same file, a new entry needs a new id",
+                        req.request_id.clone().unwrap_or_default()
+                    )));
+                }
+                return Ok((self.sealed_receipt(loaded, seq as u64, true)?, None));
+            }
+            let mut book = self.book(loaded)?;
+            let target_name = loaded.policy.targets[target_index].name.clone();
+            let budget_now = book.budget(&loaded.policy, &team);
+            let refusal = |reason: String, message: String| super::RefusalRecord {
+                holdout: loaded.name.clone(),
+                target: target_name.clone(),
+                user: caller.name.clone(),
+                team: team.clone(),
+                reason,
+                message,
+                request_id: req.request_id.clone(),
+                note: req.note.clone(),
+                at: at.clone(),
+                budget: budget_now.clone(),
+            };
+            if let Some((reason, message)) = self.quota_refusal(loaded, &team)? {
+                return self.record_refusal(loaded, &mut book, refusal(reason, message));
+            }
+            let quote: Quote = match book.quote(&loaded.policy, &team, target_index, 1) {
+                Ok(q) => q,
+                Err(r) => {
+                    let (code, msg) = (r.code().to_string(), r.to_string());
+                    return self.record_refusal(loaded, &mut book, refusal(code, msg));
+                }
+            };
+            let ticket = book.seal(&team, target_index, &quote)?;
+            let target = &loaded.policy.targets[target_index];
+            let losses = row_losses(&target.metric, &loaded.labels[target_index], preds);
+            let record = SealedRecord {
+                holdout: loaded.name.clone(),
+                target: target.name.clone(),
+                target_index,
+                user: caller.name.clone(),
+                team: team.clone(),
+                ticket,
+                query: quote.query,
+                delta_i: quote.delta_i,
+                level_nats: quote.level_nats,
+                digest: digest.clone(),
+                marked: req.mark_final,
+                request_id: req.request_id.clone(),
+                note: req.note.clone(),
+                at: at.clone(),
+            };
+            let body = serde_json::to_value(&record)
+                .map_err(|e| Error::Internal(format!("sealed entry encoding: {e}")))?;
+            let conn = self.store.conn();
+            let entry = ledger::append(conn, &loaded.name, "sealed", &body)?;
+            conn.execute(
+                "INSERT INTO sealed_entries
+                 (holdout_id, ticket, seq, team, digest, request_id, marked, losses)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+                params![
+                    loaded.id,
+                    ticket as i64,
+                    entry.seq as i64,
+                    team,
+                    digest,
+                    req.request_id.clone().unwrap_or_default(),
+                    req.mark_final,
+                    encode_losses(&losses)
+                ],
+            )?;
+            Ok((
+                SubmitOutcome::Sealed {
+                    record: Box::new(record),
+                    receipt: Receipt::of(&entry),
+                    replayed: false,
+                },
+                Some((entry.seq, book)),
+            ))
+        })();
+        match result {
+            Ok((out, book)) => {
+                self.store.conn().execute_batch("COMMIT")?;
+                if let Some((seq, book)) = book {
+                    self.remember_book(&loaded.name, seq, book);
+                }
+                Ok(out)
+            }
+            Err(e) => {
+                let _ = self.store.conn().execute_batch("ROLLBACK");
+                self.forget(&loaded.name);
+                Err(e)
+            }
+        }
+    }
+
+    fn sealed_receipt(
+        &mut self,
+        loaded: &Loaded,
+        seq: u64,
+        replayed: bool,
+    ) -> Result<SubmitOutcome> {
+        let (body, hash, salt): (String, String, String) = self.store.conn().query_row(
+            "SELECT body, hash, salt FROM ledger WHERE chain = ?1 AND seq = ?2",
+            params![loaded.name, seq as i64],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )?;
+        let record: SealedRecord = serde_json::from_str(&body)
+            .map_err(|e| Error::Internal(format!("stored sealed entry {seq}: {e}")))?;
+        Ok(SubmitOutcome::Sealed {
+            record: Box::new(record),
+            receipt: Receipt {
+                holdout: loaded.name.clone(),
+                entry: seq,
+                entry_hash: hash,
+                salt,
+            },
+            replayed,
+        })
+    }
+
+    /// Closes a sealed round: answers every entry, ranks the selected ones, compares
+    /// neighbours, records it all in one `round` entry and marks the holdout closed.
+    pub(crate) fn close_round_tx(
+        &mut self,
+        loaded: &Loaded,
+        trigger: &str,
+        by: &str,
+        when: DateTime<Utc>,
+    ) -> Result<RoundRecord> {
+        let at = rfc3339(when);
+        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        let result = self.close_round_inner(loaded, trigger, by, &at);
+        match result {
+            Ok((record, seq, book)) => {
+                self.store.conn().execute_batch("COMMIT")?;
+                self.remember_book(&loaded.name, seq, book);
+                Ok(record)
+            }
+            Err(e) => {
+                let _ = self.store.conn().execute_batch("ROLLBACK");
+                self.forget(&loaded.name);
+                Err(e)
+            }
+        }
+    }
+
+    fn close_round_inner(
+        &mut self,
+        loaded: &Loaded,
+        trigger: &str,
+        by: &str,
+        at: &str,
+    ) -> Result<(RoundRecord, u64, Book)> {
+        let n = self.store.conn().execute(
+            "UPDATE holdouts SET closed_at = ?2 WHERE id = ?1 AND closed_at IS NULL",
+            params![loaded.id, at],
+        )?;
+        if n == 0 {
+            return Err(Error::FailedPrecondition(format!(
+                "holdout {} is already closed",
+                loaded.name
+            )));
+        }
+        let mut book = self.book(loaded)?;
+        let stored: Vec<(i64, i64, bool, Vec<u8>)> = {
+            let conn = self.store.conn();
+            let mut stmt = conn.prepare(
+                "SELECT ticket, seq, marked, losses FROM sealed_entries WHERE holdout_id = ?1
+                 ORDER BY ticket",
+            )?;
+            let rows = stmt.query_map([loaded.id], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+            })?;
+            rows.collect::<std::result::Result<_, _>>()?
+        };
+        let pending = book.pending();
+        if stored.len() != pending.len() {
+            return Err(Error::Internal(format!(
+                "{} sealed entries stored for {} in the ledger",
+                stored.len(),
+                pending.len()
+            )));
+        }
+        let mut sealed = Vec::with_capacity(stored.len());
+        let mut vectors = Vec::with_capacity(stored.len());
+        let mut losses = Vec::with_capacity(stored.len());
+        for ((ticket, seq, _, blob), _) in stored.iter().zip(&pending) {
+            let body: String = self.store.conn().query_row(
+                "SELECT body FROM ledger WHERE chain = ?1 AND seq = ?2",
+                params![loaded.name, seq],
+                |r| r.get(0),
+            )?;
+            let rec: SealedRecord = serde_json::from_str(&body)
+                .map_err(|e| Error::Internal(format!("sealed entry {seq}: {e}")))?;
+            if rec.ticket != *ticket as u64 {
+                return Err(Error::Internal(format!(
+                    "sealed entry {seq}: ticket mismatch"
+                )));
+            }
+            let v = decode_losses(blob);
+            let binary = loaded.policy.core.targets[rec.target_index].binary;
+            losses.push(loss_of(binary, &v));
+            vectors.push(v);
+            sealed.push(rec);
+        }
+        let cores = book.close_round(&loaded.policy, &losses)?;
+        let mut answers = Vec::with_capacity(cores.len());
+        for ((rec, core), loss) in sealed.iter().zip(cores).zip(&losses) {
+            answers.push(AnswerRecord {
+                holdout: loaded.name.clone(),
+                target: rec.target.clone(),
+                target_index: rec.target_index,
+                user: rec.user.clone(),
+                team: rec.team.clone(),
+                query: core.query,
+                symbol: core.symbol,
+                score: core.score,
+                lower: core.lower,
+                upper: core.upper,
+                delta_i: core.delta_i,
+                level_nats: core.level_nats,
+                code_nats: core.code_nats,
+                statement: core.statement,
+                best_model: None,
+                models: 1,
+                model_names: Vec::new(),
+                digest: rec.digest.clone(),
+                request_id: rec.request_id.clone(),
+                note: rec.note.clone(),
+                at: at.to_string(),
+                budget: book.budget(&loaded.policy, &rec.team),
+                core: core.core,
+                exact: Some(vec![*loss]),
+            });
+        }
+        // One selected entry per team: its last marked entry, else its last entry.
+        let mut selected: BTreeMap<&str, usize> = BTreeMap::new();
+        for (i, rec) in sealed.iter().enumerate() {
+            let keep = match selected.get(rec.team.as_str()) {
+                Some(&j) => rec.marked || !sealed[j].marked,
+                None => true,
+            };
+            if keep {
+                selected.insert(rec.team.as_str(), i);
+            }
+        }
+        // Ranked by released score (public), ties to the earlier entry.
+        let mut order: Vec<usize> = selected.values().copied().collect();
+        order.sort_by(|&a, &b| {
+            let sa = answers[a].score.unwrap_or(f64::INFINITY);
+            let sb = answers[b].score.unwrap_or(f64::INFINITY);
+            sa.total_cmp(&sb).then(a.cmp(&b))
+        });
+        let ranking: Vec<RankedEntry> = order
+            .iter()
+            .enumerate()
+            .map(|(r, &i)| RankedEntry {
+                rank: r as u64 + 1,
+                team: sealed[i].team.clone(),
+                ticket: i as u64,
+                score: answers[i].score,
+                lower: answers[i].lower,
+                upper: answers[i].upper,
+                digest: sealed[i].digest.clone(),
+            })
+            .collect();
+        let k = order.len() as u64;
+        let pairs = (k * k.saturating_sub(1) / 2).max(1);
+        let level = comparison_level(loaded.policy.ranking_delta, pairs);
+        let mut comparisons = Vec::new();
+        for w in order.windows(2) {
+            let (a, b) = (w[0], w[1]);
+            let binary = loaded.policy.core.targets[sealed[a].target_index].binary;
+            let (_, _, mut c) = compare(binary, &vectors[a], &vectors[b], level)?;
+            c.ahead = a as u64;
+            c.behind = b as u64;
+            comparisons.push(c);
+        }
+        let record = RoundRecord {
+            holdout: loaded.name.clone(),
+            trigger: trigger.to_string(),
+            by: by.to_string(),
+            at: at.to_string(),
+            answers,
+            ranking,
+            comparisons,
+            ranking_delta: loaded.policy.ranking_delta,
+            pairs,
+        };
+        let body = serde_json::to_value(&record)
+            .map_err(|e| Error::Internal(format!("round encoding: {e}")))?;
+        let entry = ledger::append(self.store.conn(), &loaded.name, "round", &body)?;
+        Ok((record, entry.seq, book))
+    }
+
+    /// The final ranking of a sealed round; refused (revealing nothing) until it closes.
+    pub fn ranking(&mut self, caller: &Caller, name: &str) -> Result<Ranking> {
+        let _ = caller;
+        let loaded = self.loaded(name)?;
+        if !loaded.policy.sealed() {
+            return Err(Error::FailedPrecondition(format!(
+                "holdout {name} is not a sealed round (its answers are {}); rankings are for \
+                 sealed rounds, see `holdout leaderboard` for ladder holdouts",
+                loaded.policy.answers_spec()
+            )));
+        }
+        self.settle(&loaded)?;
+        let round: Option<String> = self
+            .store
+            .conn()
+            .query_row(
+                "SELECT body FROM ledger WHERE chain = ?1 AND kind = 'round'",
+                [name],
+                |r| r.get(0),
+            )
+            .optional()?;
+        let Some(body) = round else {
+            return Err(Error::FailedPrecondition(format!(
+                "the round on {name} is sealed until it closes ({}); nothing about its entries \
+                 is released before",
+                loaded
+                    .policy
+                    .closes_at
+                    .map(|t| format!("deadline {}", rfc3339(t)))
+                    .unwrap_or_else(|| "by an organizer".into())
+            )));
+        };
+        let r: RoundRecord = serde_json::from_str(&body)
+            .map_err(|e| Error::Internal(format!("round entry: {e}")))?;
+        Ok(Ranking {
+            holdout: r.holdout,
+            closed_at: r.at,
+            trigger: r.trigger,
+            entries: r.ranking,
+            comparisons: r.comparisons,
+            statement: format!(
+                "Each comparison is an interval for R(ahead) - R(behind), the difference of the \
+                 two entries' true errors; an interval that excludes 0 tells the two ranks apart. \
+                 All comparisons hold together with probability at least 1 - {} (the ranking's \
+                 reserve, split over {} pairs), inside the holdout's total delta.",
+                r.ranking_delta, r.pairs
+            ),
+            guarantee: loaded.policy.guarantee(),
+        })
+    }
+
+    /// The ladder leaderboard: each team's best so far with its interval, ranked.
+    pub fn leaderboard(&mut self, caller: &Caller, name: &str) -> Result<Leaderboard> {
+        let loaded = self.loaded(name)?;
+        if !matches!(loaded.policy.core.rule, Rule::Ladder(_)) {
+            return Err(Error::FailedPrecondition(format!(
+                "holdout {name} answers with {}; leaderboards are for ladder holdouts (use \
+                 history, or ranking for a sealed round)",
+                loaded.policy.answers_spec()
+            )));
+        }
+        let privileged = caller.has(Role::Organizer) || caller.has(Role::Auditor);
+        let own_only = !loaded.policy.public_leaderboard && !privileged;
+        let entries = ledger::read_chain(self.store.conn(), name)?;
+        let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
+        for e in entries.iter().filter(|e| e.kind == "answer") {
+            let r: AnswerRecord = parse(e)?;
+            if own_only && r.team != caller.team {
+                continue;
+            }
+            let row = rows
+                .entry(r.team.clone())
+                .or_insert_with(|| LeaderboardRow {
+                    rank: 0,
+                    team: r.team.clone(),
+                    best: None,
+                    lower: 0.0,
+                    upper: 1.0,
+                    submissions: 0,
+                    improvements: 0,
+                    best_entry: None,
+                    best_at: None,
+                });
+            row.submissions += 1;
+            row.lower = r.lower;
+            row.upper = r.upper;
+            if r.symbol.starts_with("new-best") {
+                row.best = r.score;
+                row.improvements += 1;
+                row.best_entry = Some(e.seq);
+                row.best_at = Some(r.at.clone());
+            }
+        }
+        let mut ranked: Vec<LeaderboardRow> = rows.into_values().collect();
+        ranked.sort_by(|a, b| match (a.best, b.best) {
+            (Some(x), Some(y)) => x.total_cmp(&y).then(a.best_entry.cmp(&b.best_entry)),
+            (Some(_), None) => std::cmp::Ordering::Less,
+            (None, Some(_)) => std::cmp::Ordering::Greater,
+            (None, None) => a.team.cmp(&b.team),
+        });
+        for (i, r) in ranked.iter_mut().enumerate() {
+            r.rank = if r.best.is_some() { i as u64 + 1 } else { 0 };
+        }
+        let eta = loaded
+            .policy
+            .core
+            .rule
+            .grid(loaded.policy.core.rows)
+            .map_or(0.0, |g| g.value(1));
+        Ok(Leaderboard {
+            holdout: loaded.name.clone(),
+            target: loaded.policy.targets[0].name.clone(),
+            rows: ranked,
+            statement: format!(
+                "A team's best is its best score so far on the grid of step {eta}; its interval \
+                 covers the smallest true error among all of that team's submissions so far, not \
+                 the error of any one file. The rows hold together with every other interval the \
+                 holdout reports, with probability at least 1 - {} (DESIGN 4.3, ladder: the shown \
+                 best is within {eta} plus the latest half-width of that smallest error).",
+                loaded.policy.input.delta
+            ),
+            guarantee: loaded.policy.guarantee(),
+            own_team_only: own_only,
+        })
+    }
+
+    /// Identical prediction digests submitted by different teams (organizers and auditors).
+    pub fn duplicates(&mut self, caller: &Caller, name: &str) -> Result<Vec<Duplicate>> {
+        caller.require(
+            "reading the duplicate-predictions report",
+            &[Role::Organizer, Role::Auditor],
+        )?;
+        let _ = self.loaded(name)?;
+        let entries = ledger::read_chain(self.store.conn(), name)?;
+        let mut by_digest: BTreeMap<String, Vec<(u64, String, String)>> = BTreeMap::new();
+        for e in &entries {
+            let v: serde_json::Value = match e.kind.as_str() {
+                "answer" | "sealed" => parse(e)?,
+                _ => continue,
+            };
+            let field = |k: &str| v.get(k).and_then(|x| x.as_str()).unwrap_or("").to_string();
+            by_digest.entry(field("digest")).or_default().push((
+                e.seq,
+                field("team"),
+                field("user"),
+            ));
+        }
+        Ok(by_digest
+            .into_iter()
+            .filter_map(|(digest, entries)| {
+                let teams: BTreeSet<String> = entries.iter().map(|e| e.1.clone()).collect();
+                (teams.len() > 1).then(|| Duplicate {
+                    digest,
+                    teams: teams.into_iter().collect(),
+                    entries,
+                })
+            })
+            .collect())
+    }
+
+    /// Records an organizer's close of a sealed round.
+    pub(crate) fn close_sealed(&mut self, caller: &Caller, loaded: &Loaded) -> Result<()> {
+        let now = self.now();
+        self.close_round_tx(loaded, "organizer", &caller.name, now)?;
+        Ok(())
+    }
+}
