@@ -1,6 +1,65 @@
 //! The audit: ledger exports, signed checkpoints of chain heads, and the offline check that
 //! re-verifies an export and replays it with the daemon's own accounting core.
+//!
+//! | concept | module |
+//! |---|---|
+//! | the export file (JSON Lines, versioned header) | [`export`] |
+//! | the daemon's key, signed checkpoints | [`anchor`] |
+//! | prediction digests shared with the daemon | `digest` ([`predictions_digest`]) |
+//! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
+//! | replay of every answer and refusal | `replay` ([`QuerySummary`]) |
+//! | `--find`, re-scoring, what-if replays | [`trace`] |
 
+pub mod anchor;
+mod check;
 mod digest;
+pub mod export;
+mod replay;
+pub mod trace;
 
+use serde::Serialize;
+
+pub use check::{
+    AuditOptions, LabelColumns, Receipt, Report, audit, genesis_policy as check_genesis,
+    labels_digest,
+};
 pub use digest::predictions_digest;
+pub use replay::QuerySummary;
+
+/// One discrepancy, named by chain, entry number and field.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct Finding {
+    /// Chain (holdout name or `@users`).
+    pub chain: String,
+    /// Entry number, when the finding is about one entry.
+    pub entry: Option<u64>,
+    /// Field (or check) concerned.
+    pub field: String,
+    /// What is wrong.
+    pub problem: String,
+}
+
+impl std::fmt::Display for Finding {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self.entry {
+            Some(n) => write!(
+                f,
+                "{} entry {n}, {}: {}",
+                self.chain, self.field, self.problem
+            ),
+            None => write!(f, "{}, {}: {}", self.chain, self.field, self.problem),
+        }
+    }
+}
+
+/// What an offline audit cannot establish, printed with every report.
+pub const CANNOT_CHECK: &[&str] = &[
+    "that the holdout's rows were drawn i.i.d. from the population the guarantee speaks of",
+    "that labels or exact scores did not leak outside the tool (copies of the database, backups, \
+     people who read exact scores and then chose models)",
+    "drift: whether the population has changed since the holdout was drawn",
+    "entries appended after the newest checkpoint or receipt you hold (the chain is only \
+     anchored up to them)",
+    "that the predictions were produced without access to the holdout's inputs, for the \
+     true-risk reading",
+];

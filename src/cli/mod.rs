@@ -6,6 +6,7 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
+pub mod audit_cmds;
 pub mod client;
 pub mod demo;
 pub mod exit;
@@ -22,7 +23,8 @@ Exit codes:
   4  authentication or permission failure
   5  not found (holdout, target, user)
   6  cannot reach the daemon
-  7  not possible in the current state (closed holdout, request id reused with other predictions)";
+  7  not possible in the current state (closed holdout, request id reused with other predictions)
+  8  audit found discrepancies (each is listed with its entry number and field)";
 
 /// holdout-ledger: shared holdout sets whose reported scores stay trustworthy under reuse.
 ///
@@ -56,6 +58,9 @@ pub enum Command {
     /// Client commands (talk to a running daemon).
     #[command(flatten)]
     Client(client::ClientCommand),
+    /// Audit commands: export, checkpoint, certify, and the offline audit.
+    #[command(flatten)]
+    Audit(audit_cmds::AuditCommand),
 }
 
 /// Runs a parsed command line.
@@ -67,6 +72,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Bound(args) => stats_cmds::run_bound(&args),
         Command::Plan(args) => stats_cmds::run_plan(&args),
         Command::Client(cmd) => client::run(cmd),
+        Command::Audit(cmd) => audit_cmds::run(cmd),
     };
     match result {
         Ok(code) => code,

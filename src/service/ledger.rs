@@ -1,4 +1,4 @@
-//! The `Ledger` service: export for auditors.
+//! The `Ledger` service: export for auditors, and signed checkpoints of a chain head.
 
 use std::pin::Pin;
 
@@ -7,11 +7,24 @@ use tokio_stream::Stream;
 use tonic::{Request, Response, Status};
 
 use super::Daemon;
+use crate::audit::anchor;
 use crate::auth::{Role, rfc3339};
-use crate::ledger;
+use crate::ledger::{self, Entry};
 use crate::proto::v1::{
     CheckpointRequest, ExportRequest, LedgerEntry, SignedCheckpoint, ledger_server::Ledger,
 };
+
+fn to_proto(e: Entry) -> LedgerEntry {
+    LedgerEntry {
+        seq: e.seq,
+        kind: e.kind,
+        body_json: e.body,
+        salt: e.salt,
+        prev_hash: e.prev_hash,
+        hash: e.hash,
+        chain: e.chain,
+    }
+}
 
 #[tonic::async_trait]
 impl Ledger for Daemon {
@@ -27,6 +40,10 @@ impl Ledger for Daemon {
         let entries = self
             .db
             .call(move |engine| {
+                if name == ledger::USERS_CHAIN {
+                    // Identity events hold no scores; reading them is not a read of exact scores.
+                    return ledger::read_chain(engine.store().conn(), ledger::USERS_CHAIN);
+                }
                 engine.loaded(&name)?;
                 let at = rfc3339(engine.now());
                 // The export is itself a read of exact scores: record it first, so the export
@@ -41,19 +58,8 @@ impl Ledger for Daemon {
                 ledger::read_chain(engine.store().conn(), &name)
             })
             .await?;
-        let out: Vec<Result<LedgerEntry, Status>> = entries
-            .into_iter()
-            .map(|e| {
-                Ok(LedgerEntry {
-                    seq: e.seq,
-                    kind: e.kind,
-                    body_json: e.body,
-                    salt: e.salt,
-                    prev_hash: e.prev_hash,
-                    hash: e.hash,
-                })
-            })
-            .collect();
+        let out: Vec<Result<LedgerEntry, Status>> =
+            entries.into_iter().map(|e| Ok(to_proto(e))).collect();
         Ok(Response::new(Box::pin(tokio_stream::iter(out))))
     }
 
@@ -62,8 +68,22 @@ impl Ledger for Daemon {
         request: Request<CheckpointRequest>,
     ) -> Result<Response<SignedCheckpoint>, Status> {
         self.caller(&request).await?;
-        Err(Status::unimplemented(
-            "signed checkpoints are not implemented yet; export the ledger and keep its head hash",
-        ))
+        let name = request.into_inner().holdout;
+        let cp = self
+            .db
+            .call(move |engine| {
+                engine.loaded(&name)?;
+                let at = rfc3339(engine.now());
+                anchor::checkpoint(engine.store().conn(), &name, &at)
+            })
+            .await?;
+        Ok(Response::new(SignedCheckpoint {
+            holdout: cp.holdout,
+            seq: cp.seq,
+            head_hash: cp.head_hash,
+            at: cp.at,
+            public_key: cp.public_key,
+            signature: cp.signature,
+        }))
     }
 }

@@ -6,10 +6,20 @@ use rusqlite::Connection;
 use crate::error::{Error, Result};
 
 /// The embedded migrations, in order. Migration `i` (0-based) brings the schema to version `i+1`.
-pub const MIGRATIONS: &[(&str, &str)] = &[(
-    "0001_initial",
-    include_str!("../../migrations/0001_initial.sql"),
-)];
+pub const MIGRATIONS: &[(&str, &str)] = &[
+    (
+        "0001_initial",
+        include_str!("../../migrations/0001_initial.sql"),
+    ),
+    (
+        "0002_signing_key",
+        include_str!("../../migrations/0002_signing_key.sql"),
+    ),
+    (
+        "0003_sealed_entries",
+        include_str!("../../migrations/0003_sealed_entries.sql"),
+    ),
+];
 
 /// The schema version this binary writes.
 pub fn latest_version() -> u32 {
@@ -60,11 +70,11 @@ mod tests {
         let tables: i64 = conn.query_row(
             "SELECT count(*) FROM sqlite_master WHERE type = 'table' AND name IN
              ('holdouts', 'holdout_rows', 'sealed_labels', 'ledger', 'users', 'tokens',
-              'request_keys', 'answered_digests')",
+              'request_keys', 'answered_digests', 'signing_key')",
             [],
             |r| r.get(0),
         )?;
-        assert_eq!(tables, 8);
+        assert_eq!(tables, 9);
         // Migrating again is a no-op.
         assert_eq!(migrate(&mut conn)?, latest_version());
         Ok(())

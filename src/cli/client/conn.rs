@@ -9,6 +9,7 @@ use tonic::{Request, Status};
 
 use crate::error::Error;
 use crate::proto::v1::holdouts_client::HoldoutsClient;
+use crate::proto::v1::ledger_client::LedgerClient;
 use crate::proto::v1::submissions_client::SubmissionsClient;
 use crate::proto::v1::users_client::UsersClient;
 
@@ -116,6 +117,13 @@ impl Conn {
     /// The submission service.
     pub fn submissions(&self) -> SubmissionsClient<AuthChannel> {
         SubmissionsClient::with_interceptor(self.channel.clone(), self.auth.clone())
+            .max_decoding_message_size(MAX_REPLY_BYTES)
+            .max_encoding_message_size(MAX_REQUEST_BYTES)
+    }
+
+    /// The ledger service (export, checkpoints).
+    pub fn ledger(&self) -> LedgerClient<AuthChannel> {
+        LedgerClient::with_interceptor(self.channel.clone(), self.auth.clone())
             .max_decoding_message_size(MAX_REPLY_BYTES)
             .max_encoding_message_size(MAX_REQUEST_BYTES)
     }

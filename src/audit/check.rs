@@ -1,0 +1,472 @@
+//! The offline audit of one export: the hash chains, the genesis entry, checkpoints, receipts,
+//! the labels' digest, and the replay; collected into one [`Report`].
+
+use serde::{Deserialize, Serialize};
+use serde_json::Value;
+use sha2::{Digest, Sha256};
+
+use super::anchor::Checkpoint;
+use super::export::Export;
+use super::replay::{QuerySummary, replay};
+use super::{CANNOT_CHECK, Finding};
+use crate::engine::HoldoutPolicy;
+use crate::ledger::{self, Entry};
+
+/// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Receipt {
+    /// Holdout.
+    pub holdout: String,
+    /// Entry number.
+    pub entry: u64,
+    /// Entry hash.
+    pub entry_hash: String,
+    /// Entry salt.
+    pub salt: String,
+}
+
+impl Receipt {
+    /// Reads a receipt from JSON text: the receipt object, or any object holding one under
+    /// `receipt` (a whole `submit --json` answer).
+    pub fn from_json(text: &str) -> std::result::Result<Receipt, String> {
+        let v: Value = serde_json::from_str(text).map_err(|e| format!("not JSON: {e}"))?;
+        let obj = if v.get("receipt").is_some_and(Value::is_object) {
+            v["receipt"].clone()
+        } else {
+            v
+        };
+        serde_json::from_value(obj).map_err(|e| format!("not a receipt: {e}"))
+    }
+}
+
+/// Labels given to the audit: row ids and one column per target, as in the labels file.
+#[derive(Debug, Clone)]
+pub struct LabelColumns {
+    /// Row ids, any order.
+    pub ids: Vec<String>,
+    /// One column per target, aligned with `ids`.
+    pub columns: Vec<Vec<String>>,
+}
+
+/// What to check beyond the export itself.
+#[derive(Default)]
+pub struct AuditOptions<'a> {
+    /// Labels, to check the genesis digests.
+    pub labels: Option<LabelColumns>,
+    /// Checkpoints (with the file each came from).
+    pub checkpoints: Vec<(String, Checkpoint)>,
+    /// Receipts (with the file each came from).
+    pub receipts: Vec<(String, Receipt)>,
+    /// Hex public key the checkpoints must be signed with, when the auditor knows it.
+    pub trusted_key: Option<String>,
+    /// Called with entries done, for a progress bar.
+    pub progress: Option<&'a mut dyn FnMut(u64)>,
+}
+
+/// The result of an audit.
+#[derive(Debug, Clone, Serialize)]
+pub struct Report {
+    /// Holdout.
+    pub holdout: String,
+    /// Entries in the holdout's chain.
+    pub entries: u64,
+    /// Entries in the identity chain.
+    pub identity_events: u64,
+    /// Versions recorded in the genesis entry.
+    pub versions: Value,
+    /// Answered queries, in order.
+    pub queries: Vec<QuerySummary>,
+    /// Refusals.
+    pub refusals: u64,
+    /// Reads of exact scores (entry, description).
+    pub reads: Vec<(u64, String)>,
+    /// Checkpoints checked (file, entry, key).
+    pub checkpoints: Vec<String>,
+    /// Receipts checked.
+    pub receipts: Vec<String>,
+    /// Whether the labels' digest was checked.
+    pub labels_checked: bool,
+    /// Every discrepancy.
+    pub findings: Vec<Finding>,
+    /// What the audit cannot check.
+    pub cannot_check: Vec<String>,
+}
+
+impl Report {
+    /// Whether nothing was found.
+    pub fn clean(&self) -> bool {
+        self.findings.is_empty()
+    }
+}
+
+fn whole(chain: &str, field: &str, problem: String) -> Finding {
+    Finding {
+        chain: chain.into(),
+        entry: None,
+        field: field.into(),
+        problem,
+    }
+}
+
+fn at(chain: &str, entry: u64, field: &str, problem: String) -> Finding {
+    Finding {
+        chain: chain.into(),
+        entry: Some(entry),
+        field: field.into(),
+        problem,
+    }
+}
+
+fn chain_faults(chain: &str, entries: &[Entry], out: &mut Vec<Finding>) {
+    for f in ledger::verify_chain(entries) {
+        out.push(at(chain, f.seq, "chain", f.problem));
+    }
+    for (pos, e) in entries.iter().enumerate() {
+        if e.chain != chain {
+            out.push(at(
+                chain,
+                pos as u64,
+                "chain",
+                format!("entry belongs to chain {:?}", e.chain),
+            ));
+        }
+    }
+}
+
+/// SHA-256 of the labels the way the daemon records it at creation: rows in id order, per
+/// target `target\nMETRIC\n` then each trimmed label on its own line.
+pub fn labels_digest(policy: &HoldoutPolicy, labels: &LabelColumns) -> (String, String) {
+    let mut order: Vec<usize> = (0..labels.ids.len()).collect();
+    order.sort_by(|&a, &b| labels.ids[a].trim().cmp(labels.ids[b].trim()));
+    let mut h = Sha256::new();
+    for (t, col) in policy.targets.iter().zip(&labels.columns) {
+        h.update(format!("target\n{}\n", t.metric).as_bytes());
+        for &i in &order {
+            h.update(col[i].trim().as_bytes());
+            h.update(b"\n");
+        }
+    }
+    let mut ids = Sha256::new();
+    for &i in &order {
+        ids.update(labels.ids[i].trim().as_bytes());
+        ids.update(b"\n");
+    }
+    (hex::encode(h.finalize()), hex::encode(ids.finalize()))
+}
+
+/// Reads the policy recorded in a genesis entry, checking the entry's own fields.
+pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(HoldoutPolicy, Value)> {
+    let chain = export.header.holdout.as_str();
+    let Some(g) = export.entries.first() else {
+        out.push(whole(chain, "entries", "the export has no entries".into()));
+        return None;
+    };
+    if g.kind != "genesis" {
+        out.push(at(
+            chain,
+            g.seq,
+            "kind",
+            format!("the first entry is {:?}, not genesis", g.kind),
+        ));
+    }
+    let body: Value = match serde_json::from_str(&g.body) {
+        Ok(v) => v,
+        Err(e) => {
+            out.push(at(chain, g.seq, "body", format!("not JSON: {e}")));
+            return None;
+        }
+    };
+    if body["holdout"].as_str() != Some(chain) {
+        out.push(at(
+            chain,
+            g.seq,
+            "holdout",
+            format!("genesis names {}, the export {chain}", body["holdout"]),
+        ));
+    }
+    let policy: HoldoutPolicy = match serde_json::from_value(body["policy"].clone()) {
+        Ok(p) => p,
+        Err(e) => {
+            out.push(at(chain, g.seq, "policy", format!("unreadable: {e}")));
+            return None;
+        }
+    };
+    if body["rows"].as_u64() != Some(policy.core.rows) {
+        out.push(at(
+            chain,
+            g.seq,
+            "rows",
+            format!(
+                "{} rows, the policy says {}",
+                body["rows"], policy.core.rows
+            ),
+        ));
+    }
+    match HoldoutPolicy::build(&policy.input, policy.targets.clone(), policy.core.rows) {
+        Ok(rebuilt) if rebuilt == policy => {}
+        Ok(_) => out.push(at(
+            chain,
+            g.seq,
+            "policy",
+            "the recorded core policy is not what its recorded input builds".into(),
+        )),
+        Err(e) => out.push(at(
+            chain,
+            g.seq,
+            "policy",
+            format!("does not validate: {e}"),
+        )),
+    }
+    let declared = &body["declaration"]["targets"];
+    if serde_json::to_value(&policy.targets).ok().as_ref() != Some(declared) {
+        out.push(at(
+            chain,
+            g.seq,
+            "declaration.targets",
+            "differ from the policy's targets".into(),
+        ));
+    }
+    let versions = body["versions"].clone();
+    if versions["encoding"].as_str() != Some(ledger::ENCODING) {
+        out.push(at(
+            chain,
+            g.seq,
+            "versions.encoding",
+            format!(
+                "{}; this binary verifies {}",
+                versions["encoding"],
+                ledger::ENCODING
+            ),
+        ));
+    }
+    if versions["core"].as_str() != Some(crate::stats::CORE_VERSION) {
+        out.push(at(
+            chain,
+            g.seq,
+            "versions.core",
+            format!(
+                "{}; this binary replays core {}: use the matching release to replay",
+                versions["core"],
+                crate::stats::CORE_VERSION
+            ),
+        ));
+    }
+    Some((policy, body))
+}
+
+fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
+    let chain = export.header.holdout.as_str();
+    for (file, cp) in &opts.checkpoints {
+        let mut f = |field: &str, problem: String| {
+            report.findings.push(Finding {
+                chain: chain.into(),
+                entry: Some(cp.seq),
+                field: format!("checkpoint {file}: {field}"),
+                problem,
+            })
+        };
+        if let Err(why) = cp.verify_signature() {
+            f("signature", why);
+        }
+        if let Some(k) = &opts.trusted_key {
+            if !k.eq_ignore_ascii_case(&cp.public_key) {
+                f(
+                    "public_key",
+                    format!("signed by {}, not the trusted key {k}", cp.public_key),
+                );
+            }
+        }
+        if cp.holdout != chain {
+            f(
+                "holdout",
+                format!("checkpoint of {}, export of {chain}", cp.holdout),
+            );
+            continue;
+        }
+        match export.entries.get(cp.seq as usize) {
+            None => f(
+                "seq",
+                format!(
+                    "the checkpoint anchors entry {} but the chain ends at entry {}: truncated",
+                    cp.seq,
+                    export.entries.len() as i64 - 1
+                ),
+            ),
+            Some(e) if e.hash != cp.head_hash || e.seq != cp.seq => f(
+                "head_hash",
+                format!(
+                    "entry {} has hash {}, the checkpoint signed {}: the chain was rebuilt or \
+                     changed",
+                    cp.seq, e.hash, cp.head_hash
+                ),
+            ),
+            Some(_) => {}
+        }
+        report.checkpoints.push(format!(
+            "{file}: entry {} at {} (key {})",
+            cp.seq, cp.at, cp.public_key
+        ));
+    }
+    let keys: std::collections::BTreeSet<&str> = opts
+        .checkpoints
+        .iter()
+        .map(|(_, c)| c.public_key.as_str())
+        .collect();
+    if keys.len() > 1 && opts.trusted_key.is_none() {
+        report.findings.push(whole(
+            chain,
+            "checkpoints",
+            format!(
+                "signed by {} different keys; pass --public-key to say which is the daemon's",
+                keys.len()
+            ),
+        ));
+    }
+}
+
+fn check_receipts(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
+    let chain = export.header.holdout.as_str();
+    for (file, r) in &opts.receipts {
+        let mut f = |field: &str, problem: String| {
+            report.findings.push(Finding {
+                chain: chain.into(),
+                entry: Some(r.entry),
+                field: format!("receipt {file}: {field}"),
+                problem,
+            })
+        };
+        if r.holdout != chain {
+            f(
+                "holdout",
+                format!("receipt of {}, export of {chain}", r.holdout),
+            );
+            continue;
+        }
+        match export.entries.get(r.entry as usize) {
+            None => f(
+                "entry",
+                format!(
+                    "the receipt names entry {} but the chain ends at entry {}: truncated",
+                    r.entry,
+                    export.entries.len() as i64 - 1
+                ),
+            ),
+            Some(e) => {
+                if e.salt != r.salt {
+                    f("salt", "differs from the entry's salt".into());
+                }
+                if e.hash != r.entry_hash {
+                    f(
+                        "entry_hash",
+                        format!(
+                            "the entry's hash is {}, the receipt says {}",
+                            e.hash, r.entry_hash
+                        ),
+                    );
+                }
+                let again = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+                if again != r.entry_hash {
+                    f(
+                        "entry_hash",
+                        "does not match the entry's contents as exported".into(),
+                    );
+                }
+            }
+        }
+        report.receipts.push(format!("{file}: entry {}", r.entry));
+    }
+}
+
+/// Audits an export: every check, every discrepancy.
+pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
+    let chain = export.header.holdout.clone();
+    let mut report = Report {
+        holdout: chain.clone(),
+        entries: export.entries.len() as u64,
+        identity_events: export.users.len() as u64,
+        versions: Value::Null,
+        queries: Vec::new(),
+        refusals: 0,
+        reads: Vec::new(),
+        checkpoints: Vec::new(),
+        receipts: Vec::new(),
+        labels_checked: false,
+        findings: Vec::new(),
+        cannot_check: CANNOT_CHECK.iter().map(|s| s.to_string()).collect(),
+    };
+    for (line, other) in &export.foreign {
+        report.findings.push(whole(
+            other,
+            "chain",
+            format!("line {line} belongs to neither this holdout nor @users"),
+        ));
+    }
+    for (name, count) in &export.header.chains {
+        let have = if *name == chain {
+            export.entries.len()
+        } else if name == ledger::USERS_CHAIN {
+            export.users.len()
+        } else {
+            0
+        } as u64;
+        if have != *count {
+            report.findings.push(whole(
+                name,
+                "header.chains",
+                format!("the header announces {count} entries, the file holds {have}"),
+            ));
+        }
+    }
+    chain_faults(&chain, &export.entries, &mut report.findings);
+    chain_faults(ledger::USERS_CHAIN, &export.users, &mut report.findings);
+    check_checkpoints(export, &opts, &mut report);
+    check_receipts(export, &opts, &mut report);
+    let Some((policy, genesis)) = genesis_policy(export, &mut report.findings) else {
+        return report;
+    };
+    report.versions = genesis["versions"].clone();
+    if let Some(labels) = &opts.labels {
+        report.labels_checked = true;
+        if labels.columns.len() != policy.targets.len() {
+            report.findings.push(at(
+                &chain,
+                0,
+                "labels_sha256",
+                format!(
+                    "{} label columns given, the holdout has {} targets",
+                    labels.columns.len(),
+                    policy.targets.len()
+                ),
+            ));
+        } else {
+            let (digest, ids) = labels_digest(&policy, labels);
+            if genesis["labels_sha256"].as_str() != Some(digest.as_str()) {
+                report.findings.push(at(
+                    &chain,
+                    0,
+                    "labels_sha256",
+                    "the labels given do not have the digest recorded at creation".into(),
+                ));
+            }
+            if genesis["declaration"]["row_ids_sha256"].as_str() != Some(ids.as_str()) {
+                report.findings.push(at(
+                    &chain,
+                    0,
+                    "declaration.row_ids_sha256",
+                    "the row ids given do not have the digest recorded at creation".into(),
+                ));
+            }
+        }
+    }
+    let mut noop = |_: u64| {};
+    let progress: &mut dyn FnMut(u64) = match opts.progress.take() {
+        Some(p) => p,
+        None => &mut noop,
+    };
+    let r = replay(&policy, &export.entries, progress);
+    report.findings.extend(r.findings);
+    report.queries = r.queries;
+    report.refusals = r.refusals;
+    report.reads = r.reads;
+    report
+}

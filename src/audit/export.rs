@@ -1,0 +1,152 @@
+//! The export file: JSON Lines, one header line then every ledger entry in order.
+//!
+//! Header: `{"format":"holdout-ledger-export/1","holdout":NAME,"exported_at":T,
+//! "encoding":ENCODING,"binary":VERSION,"chains":{NAME:COUNT,"@users":COUNT}}`.
+//! Entry lines: `{"chain","seq","kind","body","salt","prev_hash","hash"}`, where `body` is the
+//! canonical JSON text exactly as hashed (a string, so re-encoding cannot change the bytes).
+//! The holdout's chain comes first, then the identity chain `@users`. Labels are never part of
+//! it: the genesis entry carries only their digest.
+
+use std::io::{BufRead, Write};
+use std::path::Path;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+use crate::ledger::{self, Entry};
+
+/// Version tag of the export format.
+pub const EXPORT_FORMAT: &str = "holdout-ledger-export/1";
+
+/// The first line of an export.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Header {
+    /// Always [`EXPORT_FORMAT`].
+    pub format: String,
+    /// The holdout exported.
+    pub holdout: String,
+    /// Time of export, RFC 3339 UTC.
+    pub exported_at: String,
+    /// Canonical entry encoding ([`ledger::ENCODING`]).
+    pub encoding: String,
+    /// Version of the binary that wrote the export.
+    pub binary: String,
+    /// Entries per chain, as written.
+    pub chains: std::collections::BTreeMap<String, u64>,
+}
+
+/// A parsed export: the holdout's chain and the identity chain.
+#[derive(Debug, Clone)]
+pub struct Export {
+    /// The header.
+    pub header: Header,
+    /// The holdout's entries, in file order.
+    pub entries: Vec<Entry>,
+    /// `@users` entries, in file order.
+    pub users: Vec<Entry>,
+    /// Entry lines whose chain is neither (named in the audit report).
+    pub foreign: Vec<(u64, String)>,
+}
+
+impl Export {
+    /// Assembles an export of `holdout` from its chain and the identity chain.
+    pub fn new(holdout: &str, exported_at: &str, entries: Vec<Entry>, users: Vec<Entry>) -> Self {
+        let mut chains = std::collections::BTreeMap::new();
+        chains.insert(holdout.to_string(), entries.len() as u64);
+        chains.insert(ledger::USERS_CHAIN.to_string(), users.len() as u64);
+        Export {
+            header: Header {
+                format: EXPORT_FORMAT.into(),
+                holdout: holdout.into(),
+                exported_at: exported_at.into(),
+                encoding: ledger::ENCODING.into(),
+                binary: env!("CARGO_PKG_VERSION").into(),
+                chains,
+            },
+            entries,
+            users,
+            foreign: Vec::new(),
+        }
+    }
+
+    /// Writes the export as JSON Lines.
+    pub fn write_to(&self, mut out: impl Write) -> std::io::Result<()> {
+        serde_json::to_writer(&mut out, &self.header)?;
+        out.write_all(b"\n")?;
+        for e in self.entries.iter().chain(&self.users) {
+            serde_json::to_writer(&mut out, e)?;
+            out.write_all(b"\n")?;
+        }
+        out.flush()
+    }
+
+    /// Writes the export to a new file (refuses to overwrite).
+    pub fn write_file(&self, path: &Path) -> Result<()> {
+        let file = std::fs::OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(path)
+            .map_err(|e| {
+                Error::invalid(
+                    path.display().to_string(),
+                    format!("cannot create (it must not exist yet): {e}"),
+                )
+            })?;
+        self.write_to(std::io::BufWriter::new(file))
+            .map_err(|e| Error::invalid(path.display().to_string(), format!("write failed: {e}")))
+    }
+
+    /// Parses an export; `source` names it in errors (`FILE:LINE: problem`).
+    pub fn parse(source: &str, input: impl BufRead) -> Result<Export> {
+        let mut lines = input.lines();
+        let bad = |line: u64, msg: String| Error::invalid(format!("{source}:{line}"), msg);
+        let first = lines
+            .next()
+            .ok_or_else(|| bad(1, "empty file: no export header".into()))?
+            .map_err(|e| bad(1, e.to_string()))?;
+        let header: Header = serde_json::from_str(&first)
+            .map_err(|e| bad(1, format!("not an export header: {e}")))?;
+        if header.format != EXPORT_FORMAT {
+            return Err(bad(
+                1,
+                format!(
+                    "format {:?} is not one this binary reads ({EXPORT_FORMAT})",
+                    header.format
+                ),
+            ));
+        }
+        let mut out = Export {
+            header,
+            entries: Vec::new(),
+            users: Vec::new(),
+            foreign: Vec::new(),
+        };
+        for (i, line) in lines.enumerate() {
+            let n = i as u64 + 2;
+            let line = line.map_err(|e| bad(n, e.to_string()))?;
+            if line.trim().is_empty() {
+                continue;
+            }
+            let e: Entry =
+                serde_json::from_str(&line).map_err(|e| bad(n, format!("not an entry: {e}")))?;
+            if e.chain == out.header.holdout {
+                out.entries.push(e);
+            } else if e.chain == ledger::USERS_CHAIN {
+                out.users.push(e);
+            } else {
+                out.foreign.push((n, e.chain));
+            }
+        }
+        Ok(out)
+    }
+
+    /// Reads an export file.
+    pub fn read(path: &Path) -> Result<Export> {
+        let file = std::fs::File::open(path)
+            .map_err(|e| Error::invalid(path.display().to_string(), format!("cannot open: {e}")))?;
+        Export::parse(
+            &path.display().to_string(),
+            std::io::BufReader::with_capacity(1 << 20, file),
+        )
+    }
+}

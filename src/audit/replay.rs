@@ -1,0 +1,449 @@
+//! Replaying a holdout's chain with the daemon's own bookkeeping ([`Book`], over the pure
+//! accountant), comparing every recorded field with what is computed again, and checking that
+//! refusals were decided from public facts only.
+
+use std::collections::HashMap;
+
+use serde::Serialize;
+use serde_json::Value;
+
+use super::Finding;
+use crate::engine::{AnswerRecord, Book, BudgetView, HoldoutPolicy, RefusalReason, RefusalRecord};
+use crate::ledger::Entry;
+
+/// One answered query, as the replay saw it.
+#[derive(Debug, Clone, Serialize)]
+pub struct QuerySummary {
+    /// Entry number.
+    pub entry: u64,
+    /// Query number (per team under isolated).
+    pub query: u64,
+    /// Team.
+    pub team: String,
+    /// Target.
+    pub target: String,
+    /// Released symbol.
+    pub symbol: String,
+    /// Reported interval.
+    pub lower: f64,
+    /// Reported interval.
+    pub upper: f64,
+    /// ln(1/d_i).
+    pub level_nats: f64,
+    /// Code length charged.
+    pub code_nats: f64,
+    /// Digest of the predictions.
+    pub digest: String,
+    /// Whether every field replayed exactly.
+    pub replayed: bool,
+}
+
+/// What a replay found.
+#[derive(Debug, Default)]
+pub(crate) struct Replay {
+    pub(crate) findings: Vec<Finding>,
+    pub(crate) queries: Vec<QuerySummary>,
+    pub(crate) refusals: u64,
+    pub(crate) reads: Vec<(u64, String)>,
+}
+
+fn finding(chain: &str, entry: u64, field: &str, problem: String) -> Finding {
+    Finding {
+        chain: chain.to_string(),
+        entry: Some(entry),
+        field: field.to_string(),
+        problem,
+    }
+}
+
+struct Cmp<'a> {
+    chain: &'a str,
+    entry: u64,
+    out: Vec<Finding>,
+}
+
+impl Cmp<'_> {
+    fn eq<T: PartialEq + std::fmt::Debug>(&mut self, field: &str, recorded: T, again: T) {
+        if recorded != again {
+            self.out.push(finding(
+                self.chain,
+                self.entry,
+                field,
+                format!("recorded {recorded:?}, replay computes {again:?}"),
+            ));
+        }
+    }
+
+    fn f(&mut self, field: &str, recorded: f64, again: f64) {
+        if recorded.to_bits() != again.to_bits() && !(recorded == 0.0 && again == 0.0) {
+            self.out.push(finding(
+                self.chain,
+                self.entry,
+                field,
+                format!("recorded {recorded}, replay computes {again}"),
+            ));
+        }
+    }
+
+    fn budget(&mut self, recorded: &BudgetView, again: &BudgetView) {
+        self.f("budget.delta", recorded.delta, again.delta);
+        self.f("budget.spent", recorded.spent, again.spent);
+        self.f("budget.remaining", recorded.remaining, again.remaining);
+        self.f(
+            "budget.transcript_nats",
+            recorded.transcript_nats,
+            again.transcript_nats,
+        );
+        self.f(
+            "budget.next_half_width",
+            recorded.next_half_width,
+            again.next_half_width,
+        );
+        self.eq(
+            "budget.queries_left",
+            recorded.queries_left,
+            again.queries_left,
+        );
+        self.eq("budget.answered", recorded.answered, again.answered);
+        self.eq("budget.refused", recorded.refused, again.refused);
+    }
+}
+
+/// Keys that would carry exact scores; none may appear in a refusal.
+const EXACT_KEYS: &[&str] = &["exact", "score", "losses", "errors", "loss"];
+
+fn exact_key(v: &Value) -> Option<String> {
+    match v {
+        Value::Object(m) => m.iter().find_map(|(k, v)| {
+            if EXACT_KEYS.contains(&k.as_str()) {
+                Some(k.clone())
+            } else {
+                exact_key(v)
+            }
+        }),
+        Value::Array(a) => a.iter().find_map(exact_key),
+        _ => None,
+    }
+}
+
+/// Replays `entries` (the genesis first) under `policy`, reporting every discrepancy.
+/// `progress` is called with the number of entries done.
+pub(crate) fn replay(
+    policy: &HoldoutPolicy,
+    entries: &[Entry],
+    progress: &mut dyn FnMut(u64),
+) -> Replay {
+    let mut out = Replay::default();
+    let chain = entries.first().map(|e| e.chain.as_str()).unwrap_or("");
+    let mut book = match Book::new(policy) {
+        Ok(b) => b,
+        Err(e) => {
+            out.findings
+                .push(finding(chain, 0, "policy", format!("cannot replay: {e}")));
+            return out;
+        }
+    };
+    let quota = u64::from(policy.daily_quota);
+    let mut today: HashMap<(String, String), u64> = HashMap::new();
+    let mut closed_at: Option<u64> = None;
+    for (i, e) in entries.iter().enumerate().skip(1) {
+        if i % 4096 == 0 {
+            progress(i as u64);
+        }
+        let mut cmp = Cmp {
+            chain,
+            entry: e.seq,
+            out: Vec::new(),
+        };
+        match e.kind.as_str() {
+            "answer" => {
+                if let Some(c) = closed_at {
+                    cmp.out.push(finding(
+                        chain,
+                        e.seq,
+                        "kind",
+                        format!("answered after the holdout was closed at entry {c}"),
+                    ));
+                }
+                let ok = answer(policy, &mut book, e, quota, &mut today, &mut cmp, &mut out);
+                if let Some(q) = out.queries.last_mut().filter(|q| q.entry == e.seq) {
+                    q.replayed = ok && cmp.out.is_empty();
+                }
+            }
+            "refusal" => {
+                out.refusals += 1;
+                refusal(policy, &mut book, e, quota, &today, &mut cmp);
+            }
+            "read" => {
+                let what = serde_json::from_str::<Value>(&e.body)
+                    .ok()
+                    .map(|v| {
+                        format!(
+                            "{} by {} at {}",
+                            v["what"].as_str().unwrap_or("?"),
+                            v["by"].as_str().unwrap_or("?"),
+                            v["at"].as_str().unwrap_or("?")
+                        )
+                    })
+                    .unwrap_or_else(|| "unreadable read entry".into());
+                out.reads.push((e.seq, what));
+            }
+            "close" => closed_at = Some(e.seq),
+            "genesis" => cmp.out.push(finding(
+                chain,
+                e.seq,
+                "kind",
+                "a second genesis entry inside the chain".into(),
+            )),
+            _ => {}
+        }
+        out.findings.append(&mut cmp.out);
+    }
+    progress(entries.len() as u64);
+    out
+}
+
+fn day_of(at: &str) -> String {
+    at.get(..10).unwrap_or("").to_string()
+}
+
+fn answer(
+    policy: &HoldoutPolicy,
+    book: &mut Book,
+    e: &Entry,
+    quota: u64,
+    today: &mut HashMap<(String, String), u64>,
+    cmp: &mut Cmp<'_>,
+    out: &mut Replay,
+) -> bool {
+    let r: AnswerRecord = match serde_json::from_str(&e.body) {
+        Ok(r) => r,
+        Err(err) => {
+            cmp.out.push(finding(
+                cmp.chain,
+                e.seq,
+                "body",
+                format!("not an answer record: {err}"),
+            ));
+            return false;
+        }
+    };
+    out.queries.push(QuerySummary {
+        entry: e.seq,
+        query: r.query,
+        team: r.team.clone(),
+        target: r.target.clone(),
+        symbol: r.symbol.clone(),
+        lower: r.lower,
+        upper: r.upper,
+        level_nats: r.level_nats,
+        code_nats: r.code_nats,
+        digest: r.digest.clone(),
+        replayed: false,
+    });
+    let day = day_of(&r.at);
+    if chrono::DateTime::parse_from_rfc3339(&r.at).is_err() {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "at",
+            format!("{:?} is not an RFC 3339 time", r.at),
+        ));
+    }
+    let used = today.entry((r.team.clone(), day)).or_default();
+    if quota > 0 && *used >= quota {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "quota",
+            format!(
+                "team {} was answered beyond its daily quota of {quota} (public fact: answers that \
+                 UTC day)",
+                r.team
+            ),
+        ));
+    }
+    *used += 1;
+    let Some(t) = policy.targets.get(r.target_index) else {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "target_index",
+            format!("{} is not a target of the policy", r.target_index),
+        ));
+        return false;
+    };
+    cmp.eq("target", r.target.as_str(), t.name.as_str());
+    let Some(losses) = r.exact.clone() else {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "exact",
+            "the answer carries no exact losses, so it cannot be replayed".into(),
+        ));
+        return false;
+    };
+    cmp.eq("models", r.models as usize, losses.len());
+    for (m, l) in losses.iter().enumerate() {
+        if l.rows != policy.core.rows || !(0.0..=l.rows as f64).contains(&l.sum) {
+            cmp.out.push(finding(
+                cmp.chain,
+                e.seq,
+                &format!("exact[{m}]"),
+                format!(
+                    "loss sum {} over {} rows is impossible for this holdout ({} rows)",
+                    l.sum, l.rows, policy.core.rows
+                ),
+            ));
+        }
+    }
+    let quote = match book.quote(policy, &r.team, r.target_index, r.models) {
+        Ok(q) => q,
+        Err(why) => {
+            cmp.out.push(finding(
+                cmp.chain,
+                e.seq,
+                "kind",
+                format!(
+                    "answered, but the public state at this point refuses it ({}: {why})",
+                    why.code()
+                ),
+            ));
+            return false;
+        }
+    };
+    let again = match book.answer(policy, &r.team, r.target_index, &quote, &losses) {
+        Ok(a) => a,
+        Err(err) => {
+            cmp.out.push(finding(
+                cmp.chain,
+                e.seq,
+                "exact",
+                format!("the core cannot answer from these losses: {err}"),
+            ));
+            return false;
+        }
+    };
+    cmp.eq("query", r.query, again.query);
+    cmp.eq("symbol", r.symbol.as_str(), again.symbol.as_str());
+    cmp.eq(
+        "score",
+        r.score.map(f64::to_bits),
+        again.score.map(f64::to_bits),
+    );
+    cmp.f("lower", r.lower, again.lower);
+    cmp.f("upper", r.upper, again.upper);
+    cmp.f("delta_i", r.delta_i, again.delta_i);
+    cmp.f("level_nats", r.level_nats, again.level_nats);
+    cmp.f("code_nats", r.code_nats, again.code_nats);
+    cmp.eq("statement", r.statement.as_str(), again.statement.as_str());
+    cmp.eq("best_model", r.best_model, again.best_model);
+    if r.core != again.core {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "core",
+            "the core's own record differs from what the core computes again".into(),
+        ));
+    }
+    let budget = book.budget(policy, &r.team);
+    cmp.budget(&r.budget, &budget);
+    true
+}
+
+fn refusal(
+    policy: &HoldoutPolicy,
+    book: &mut Book,
+    e: &Entry,
+    quota: u64,
+    today: &HashMap<(String, String), u64>,
+    cmp: &mut Cmp<'_>,
+) {
+    let raw: Value = serde_json::from_str(&e.body).unwrap_or(Value::Null);
+    if let Some(k) = exact_key(&raw) {
+        cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            &k,
+            "a refusal carries a score-like field; refusals must be decided before scoring".into(),
+        ));
+    }
+    let r: RefusalRecord = match serde_json::from_value(raw) {
+        Ok(r) => r,
+        Err(err) => {
+            cmp.out.push(finding(
+                cmp.chain,
+                e.seq,
+                "body",
+                format!("not a refusal record: {err}"),
+            ));
+            book.note_refusal(policy, "");
+            return;
+        }
+    };
+    let budget_now = book.budget(policy, &r.team);
+    cmp.budget(&r.budget, &budget_now);
+    let target = policy.targets.iter().position(|t| t.name == r.target);
+    match r.reason.as_str() {
+        "quota" => {
+            let used = today
+                .get(&(r.team.clone(), day_of(&r.at)))
+                .copied()
+                .unwrap_or(0);
+            if quota == 0 || used < quota {
+                cmp.out.push(finding(
+                    cmp.chain,
+                    e.seq,
+                    "reason",
+                    format!(
+                        "refused for the quota, but team {} had {used} answers that day (quota {})",
+                        r.team,
+                        if quota == 0 {
+                            "none".to_string()
+                        } else {
+                            quota.to_string()
+                        }
+                    ),
+                ));
+            }
+        }
+        "max-cost" => cmp.out.push(finding(
+            cmp.chain,
+            e.seq,
+            "reason",
+            "max-cost refusals are local and never recorded".into(),
+        )),
+        code => {
+            // The number of models is not recorded with a refusal: accept the decision when
+            // some batch size reproduces it from the public state, message included.
+            let decided = target.and_then(|t| {
+                (1..=64u32).find_map(|m| match book.quote(policy, &r.team, t, m) {
+                    Err(why) if why.code() == code => Some((why.to_string(), why)),
+                    _ => None,
+                })
+            });
+            match decided {
+                None => cmp.out.push(finding(
+                    cmp.chain,
+                    e.seq,
+                    "reason",
+                    format!(
+                        "refused as {code:?}, but the public state at this point does not refuse \
+                         for that reason"
+                    ),
+                )),
+                Some((message, why)) => {
+                    if matches!(why, RefusalReason::Core(_)) && message != r.message {
+                        cmp.out.push(finding(
+                            cmp.chain,
+                            e.seq,
+                            "message",
+                            format!("recorded {:?}, replay computes {message:?}", r.message),
+                        ));
+                    }
+                }
+            }
+        }
+    }
+    book.note_refusal(policy, &r.team);
+}
