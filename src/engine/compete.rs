@@ -298,6 +298,13 @@ fn comparison_level(ranking_delta: f64, pairs: u64) -> f64 {
     (pairs.max(1) as f64).ln() - ranking_delta.ln()
 }
 
+/// `ln(1/d)` of the paired comparisons of a ranking of `entries` entries whose reserve is
+/// `ranking_delta`: the reserve split evenly over all `entries (entries - 1) / 2` pairs, so
+/// every pair's interval holds at once, whichever pairs the data make neighbours.
+pub fn ranking_level(ranking_delta: f64, entries: u64) -> f64 {
+    comparison_level(ranking_delta, entries * entries.saturating_sub(1) / 2)
+}
+
 fn parse<T: for<'de> Deserialize<'de>>(e: &Entry) -> Result<T> {
     serde_json::from_str(&e.body)
         .map_err(|err| Error::Internal(format!("ledger entry {}: {err}", e.seq)))

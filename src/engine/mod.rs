@@ -23,7 +23,9 @@ use rusqlite::{OptionalExtension, params};
 
 pub use account::{HoldoutPolicy, PolicyInput, Quote};
 pub use clock::{Clock, FixedClock, SystemClock};
-pub use compete::{Duplicate, Leaderboard, LeaderboardRow, Ranking, replay_comparison};
+pub use compete::{
+    Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
+};
 pub use create::{CreateRequest, TargetDecl};
 pub use read::{HistoryItem, HoldoutView};
 pub use records::{
