@@ -30,6 +30,15 @@ pub struct ServeArgs {
     /// Log filter (tracing's env-filter syntax), e.g. `info` or `holdout_ledger=debug`.
     #[arg(long, env = "HOLDOUT_LOG", default_value = "info")]
     pub log: String,
+    /// Write signed checkpoints of every holdout's chain head into this directory
+    /// (`NAME-SEQ.checkpoint.json`, one per new head), at start and every --checkpoint-every
+    /// seconds; ship them elsewhere and pass them to `holdout audit --checkpoint`.
+    #[arg(long, value_name = "DIR")]
+    pub checkpoint_dir: Option<PathBuf>,
+    /// Seconds between checkpoints with --checkpoint-dir.
+    #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
+          value_parser = clap::value_parser!(u64).range(1..))]
+    pub checkpoint_every: u64,
 }
 
 /// `holdout init`.
@@ -62,6 +71,11 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         let store = Store::open(&args.db)
             .with_context(|| format!("opening database {}", args.db.display()))?;
         let db = Db::spawn(Engine::new(store, Arc::new(SystemClock)));
+        if let Some(dir) = args.checkpoint_dir.clone() {
+            std::fs::create_dir_all(&dir)
+                .with_context(|| format!("creating --checkpoint-dir {}", dir.display()))?;
+            tokio::spawn(write_checkpoints(db.clone(), dir, args.checkpoint_every));
+        }
         let listener = tokio::net::TcpListener::bind(&args.listen)
             .await
             .with_context(|| format!("listening on {}", args.listen))?;
@@ -72,6 +86,29 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         serve_on(listener, Daemon::new(db), shutdown_signal()).await?;
         Ok(ExitCode::SUCCESS)
     })
+}
+
+/// Signs every holdout's head into `dir` now and every `secs` seconds, while the daemon runs.
+async fn write_checkpoints(db: Db, dir: PathBuf, secs: u64) {
+    let mut tick = tokio::time::interval(std::time::Duration::from_secs(secs));
+    loop {
+        tick.tick().await;
+        let dir = dir.clone();
+        let done = db
+            .call(move |engine| {
+                let at = auth::rfc3339(engine.now());
+                crate::audit::anchor::checkpoint_all(engine.store().conn(), &dir, &at)
+            })
+            .await;
+        match done {
+            Ok(files) => {
+                for f in files {
+                    tracing::info!(file = %f.display(), "wrote checkpoint");
+                }
+            }
+            Err(e) => tracing::warn!(error = %e, "writing checkpoints failed"),
+        }
+    }
 }
 
 async fn shutdown_signal() {

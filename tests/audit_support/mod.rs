@@ -1,0 +1,206 @@
+//! Ledger generator for the audit tests, the fixture and the benchmark: drives the real engine
+//! (create, users, submissions) in process on an in-memory database under a fixed clock, so the
+//! ledger is exactly what the daemon writes.
+#![allow(dead_code)]
+
+use std::sync::Arc;
+
+use holdout_ledger::audit::LabelColumns;
+use holdout_ledger::audit::export::Export;
+use holdout_ledger::auth::{self, Caller, Role};
+use holdout_ledger::engine::{
+    CreateRequest, Engine, FixedClock, ModelPredictions, PolicyInput, RawValues, SubmitMode,
+    SubmitOutcome, SubmitRequest, TargetDecl,
+};
+use holdout_ledger::ledger;
+use holdout_ledger::store::Store;
+
+/// A generated holdout with its engine, users and labels.
+pub struct Generated {
+    pub engine: Engine,
+    pub clock: Arc<FixedClock>,
+    pub name: String,
+    pub ids: Vec<String>,
+    pub labels: Vec<String>,
+    pub analysts: Vec<Caller>,
+    pub auditor: Caller,
+    /// Predictions of every submission, in order (class names per row, ids order).
+    pub submitted: Vec<Vec<String>>,
+    /// Entry numbers of answers.
+    pub answer_entries: Vec<u64>,
+    state: u64,
+}
+
+fn caller(engine: &mut Engine, name: &str, roles: &[Role], team: Option<&str>) -> Caller {
+    let now = engine.now();
+    let conn = engine.store().conn();
+    let tx = conn.transaction().unwrap();
+    auth::add_user(&tx, name, roles, team, "custodian", now).unwrap();
+    tx.commit().unwrap();
+    Caller {
+        name: name.into(),
+        roles: roles.to_vec(),
+        team: team.unwrap_or("").into(),
+    }
+}
+
+impl Generated {
+    /// A binary-error holdout of `rows` rows under `policy`, with `teams` analyst teams.
+    pub fn new(name: &str, rows: usize, policy: PolicyInput, teams: usize, seed: u64) -> Self {
+        let t0 = chrono::DateTime::parse_from_rfc3339("2026-03-01T09:00:00Z")
+            .unwrap()
+            .to_utc();
+        let clock = Arc::new(FixedClock::new(t0));
+        let mut engine = Engine::new(Store::open_in_memory().unwrap(), clock.clone());
+        let custodian = caller(&mut engine, "custodian", &[Role::Custodian], None);
+        let auditor = caller(&mut engine, "auditor", &[Role::Auditor], None);
+        let analysts: Vec<Caller> = (0..teams)
+            .map(|t| {
+                let name = format!("analyst{t}");
+                let team = format!("team{t}");
+                caller(&mut engine, &name, &[Role::Analyst], Some(&team))
+            })
+            .collect();
+        let mut state = seed.wrapping_mul(6364136223846793005).wrapping_add(1);
+        let mut next = move || {
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            state >> 33
+        };
+        let ids: Vec<String> = (0..rows).map(|i| format!("r{i:06}")).collect();
+        let labels: Vec<String> = (0..rows).map(|_| (next() % 2).to_string()).collect();
+        engine
+            .create_holdout(
+                &custodian,
+                CreateRequest {
+                    name: name.into(),
+                    description: "generated for audit tests".into(),
+                    policy,
+                    targets: vec![TargetDecl {
+                        name: "y".into(),
+                        column: "label".into(),
+                        metric: "error".parse().unwrap(),
+                        method: String::new(),
+                        classes: vec![],
+                    }],
+                    ids: ids.clone(),
+                    columns: vec![labels.clone()],
+                },
+            )
+            .unwrap();
+        Generated {
+            engine,
+            clock,
+            name: name.into(),
+            ids,
+            labels,
+            analysts,
+            auditor,
+            submitted: Vec::new(),
+            answer_entries: Vec::new(),
+            state: next(),
+        }
+    }
+
+    fn rand(&mut self) -> u64 {
+        self.state = self
+            .state
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        self.state >> 33
+    }
+
+    /// One submission by team `t`: predictions that agree with the labels on about
+    /// `accuracy` percent of rows. Returns the outcome.
+    pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
+        let preds: Vec<String> = (0..self.labels.len())
+            .map(|i| {
+                let flip = self.rand() % 100 >= accuracy;
+                let l = &self.labels[i];
+                if flip {
+                    if l == "1" { "0".into() } else { "1".into() }
+                } else {
+                    l.clone()
+                }
+            })
+            .collect();
+        self.submitted.push(preds.clone());
+        let caller = self.analysts[t].clone();
+        let out = self
+            .engine
+            .submit(
+                &caller,
+                SubmitRequest {
+                    holdout: self.name.clone(),
+                    target: String::new(),
+                    mode: SubmitMode::Answer,
+                    request_id: None,
+                    note: String::new(),
+                    max_cost_nats: None,
+                    model_names: vec![],
+                    models: vec![ModelPredictions {
+                        ids: self.ids.clone(),
+                        values: RawValues::Classes(preds),
+                    }],
+                    mark_final: false,
+                },
+            )
+            .unwrap();
+        if let SubmitOutcome::Answer {
+            receipt,
+            replayed: false,
+            ..
+        } = &out
+        {
+            self.answer_entries.push(receipt.entry);
+        }
+        out
+    }
+
+    /// Advances the fixed clock.
+    pub fn advance(&mut self, secs: i64) {
+        let now = self.engine.now() + chrono::Duration::seconds(secs);
+        self.clock.set(now);
+    }
+
+    /// The export as `holdout export` writes it.
+    pub fn export(&mut self) -> Export {
+        let conn = self.engine.store().conn();
+        let entries = ledger::read_chain(conn, &self.name).unwrap();
+        let users = ledger::read_chain(conn, ledger::USERS_CHAIN).unwrap();
+        Export::new(&self.name, "2026-03-02T00:00:00Z", entries, users)
+    }
+
+    /// The labels as an auditor would read them from the labels file.
+    pub fn label_columns(&self) -> LabelColumns {
+        LabelColumns {
+            ids: self.ids.clone(),
+            columns: vec![self.labels.clone()],
+        }
+    }
+
+    /// A signed checkpoint of the current head.
+    pub fn checkpoint(&mut self) -> holdout_ledger::audit::anchor::Checkpoint {
+        let at = auth::rfc3339(self.engine.now());
+        let name = self.name.clone();
+        holdout_ledger::audit::anchor::checkpoint(self.engine.store().conn(), &name, &at).unwrap()
+    }
+}
+
+/// A small ledger with answers, a refusal past the tolerance, two teams and a read.
+pub fn small(seed: u64) -> Generated {
+    let policy = PolicyInput {
+        delta: 0.05,
+        schedule: "series".into(),
+        answers: "rounded:0.01".into(),
+        tolerance: 0.2,
+        ..PolicyInput::default()
+    };
+    let mut g = Generated::new("audited", 300, policy, 2, seed);
+    for q in 0..6 {
+        g.advance(60);
+        g.submit(q % 2, 60 + 5 * q as u64);
+    }
+    g
+}
