@@ -162,7 +162,11 @@ pub fn run(cmd: AuditCommand) -> anyhow::Result<ExitCode> {
                     AuditCommand::Audit(_) => unreachable!("handled above"),
                 }
             });
-            result.map_err(|e| anyhow::anyhow!(super::client::conn::describe(&e)).context(e))
+            // Printed here, as the client commands do: a status's own message, its exit code.
+            Ok(result.unwrap_or_else(|err| {
+                eprintln!("error: {}", super::client::conn::describe(&err));
+                ExitCode::from(super::exit::code_for(&err))
+            }))
         }
     }
 }

@@ -1,0 +1,366 @@
+//! End to end through the real binary: export, checkpoint and certify against a daemon, then
+//! the offline audit of the export and of the database file, receipts, --find, what-if, and
+//! periodic checkpoints written by `serve --checkpoint-dir`.
+
+mod common;
+
+use std::io::{BufRead, BufReader};
+use std::process::Stdio;
+use std::time::{Duration, Instant};
+
+use common::{Daemon, holdout, run};
+
+const ROWS: usize = 400;
+
+/// Labels with distinctive cost values, so the test can look for any of them in an export.
+fn labels_csv() -> (String, Vec<String>) {
+    let classes = ["ok", "ok", "dent", "ok", "crack"];
+    let mut s = String::from("id,defect,cost\n");
+    let mut costs = Vec::new();
+    for i in 0..ROWS {
+        let cost = format!("{:.6}", 300.0 + i as f64 * 0.731_4 + 0.000_137);
+        s.push_str(&format!(
+            "p{i:04},{},{cost}\n",
+            classes[(i * 3 + i / 7) % 5]
+        ));
+        costs.push(cost);
+    }
+    (s, costs)
+}
+
+fn defect_predictions(wrong_every: usize) -> String {
+    let classes = ["ok", "ok", "dent", "ok", "crack"];
+    let mut s = String::from("id,prediction\n");
+    for i in 0..ROWS {
+        let truth = classes[(i * 3 + i / 7) % 5];
+        let p = if i % wrong_every == 0 {
+            if truth == "ok" { "dent" } else { "ok" }
+        } else {
+            truth
+        };
+        s.push_str(&format!("p{i:04},{p}\n"));
+    }
+    s
+}
+
+/// Cost predictions; `exp` writes them in exponent notation and in reverse row order.
+fn cost_predictions(offset: f64, exp: bool) -> String {
+    let mut rows: Vec<String> = (0..ROWS)
+        .map(|i| {
+            let v = 300.0 + i as f64 * 0.731_4 + offset;
+            if exp {
+                format!("p{i:04},{v:e}")
+            } else {
+                format!("p{i:04},{v}")
+            }
+        })
+        .collect();
+    if exp {
+        rows.reverse();
+    }
+    format!("id,prediction\n{}\n", rows.join("\n"))
+}
+
+struct Setup {
+    d: Daemon,
+    auditor: String,
+    analyst: String,
+    costs: Vec<String>,
+    labels: String,
+}
+
+fn setup() -> Setup {
+    let d = Daemon::start();
+    let (csv, costs) = labels_csv();
+    let labels = d.write("labels.csv", &csv);
+    d.admin(&[
+        "create",
+        "qc",
+        "--labels",
+        &labels,
+        "--target",
+        "defect:defect:error",
+        "--target",
+        "cost:cost:abs_error:100:hoeffding",
+        "--tolerance",
+        "0.3",
+        "--json",
+    ])
+    .ok();
+    let auditor = d.add_user("ava", &["auditor"], None);
+    let analyst = d.add_user("sam", &["analyst"], Some("squad"));
+    Setup {
+        d,
+        auditor,
+        analyst,
+        costs,
+        labels,
+    }
+}
+
+#[test]
+fn export_checkpoint_audit_receipts_find_certify_and_db() {
+    let s = setup();
+    let d = &s.d;
+    let p1 = d.write("p1.csv", &defect_predictions(9));
+    let answer = d
+        .run(
+            &s.analyst,
+            &[
+                "submit",
+                "qc",
+                "--target",
+                "defect",
+                "--predictions",
+                &p1,
+                "--json",
+            ],
+        )
+        .ok()
+        .json();
+    let receipt = d.write("receipt.json", &answer.to_string());
+    let early = d.path("early.json").display().to_string();
+    d.run(&s.analyst, &["checkpoint", "qc", "--out", &early])
+        .ok();
+    let c1 = d.write("c1.csv", &cost_predictions(1.5, false));
+    d.run(
+        &s.analyst,
+        &["submit", "qc", "--target", "cost", "--predictions", &c1],
+    )
+    .ok();
+    let p2 = d.write("p2.csv", &defect_predictions(4));
+    d.run(
+        &s.analyst,
+        &["submit", "qc", "--target", "defect", "--predictions", &p2],
+    )
+    .ok();
+    let late = d.path("late.json").display().to_string();
+    d.run(&s.analyst, &["checkpoint", "qc", "--out", &late])
+        .ok();
+
+    // Exporting needs the auditor role.
+    let out = d.path("qc.jsonl").display().to_string();
+    d.run(&s.analyst, &["export", "qc", "--out", &out]).code(4);
+    d.run(&s.auditor, &["export", "qc", "--out", &out]).ok();
+    let text = std::fs::read_to_string(&out).unwrap();
+    assert!(
+        text.lines()
+            .next()
+            .unwrap()
+            .contains("holdout-ledger-export/1")
+    );
+    // No label value appears anywhere in the export.
+    for c in &s.costs {
+        assert!(
+            !text.contains(c.as_str()),
+            "label {c} leaked into the export"
+        );
+    }
+    assert!(
+        text.contains("\"kind\":\"read\""),
+        "the export records its own read"
+    );
+
+    // A clean audit, offline, with labels, both checkpoints and the receipt.
+    let audit = |extra: &[&str]| {
+        let mut args = vec!["audit", out.as_str()];
+        args.extend_from_slice(extra);
+        run(holdout(), &args)
+    };
+    let ok = audit(&[
+        "--labels",
+        &s.labels,
+        "--checkpoint",
+        &early,
+        "--checkpoint",
+        &late,
+        "--receipt",
+        &receipt,
+        "--json",
+    ])
+    .ok()
+    .json();
+    assert_eq!(ok["clean"], true, "{ok:#}");
+    assert_eq!(ok["queries"].as_array().unwrap().len(), 3);
+    assert_eq!(ok["labels_checked"], true);
+    let human = audit(&["--checkpoint", &early]).ok();
+    assert!(
+        human.stdout.contains("clean: no discrepancies"),
+        "{}",
+        human.stdout
+    );
+    assert!(human.stdout.contains("i.i.d."), "{}", human.stdout);
+
+    // A forged receipt: exit 8, named.
+    let mut forged = answer.clone();
+    forged["receipt"]["salt"] = "00".repeat(16).into();
+    let forged = d.write("forged.json", &forged.to_string());
+    let bad = audit(&["--receipt", &forged]).code(8);
+    assert!(bad.stdout.contains("salt"), "{}", bad.stdout);
+
+    // A truncated export (the last two entries cut, header fixed) against the late checkpoint.
+    let lines: Vec<&str> = text.lines().collect();
+    let users = lines
+        .iter()
+        .filter(|l| l.contains("\"chain\":\"@users\""))
+        .count();
+    let qc: Vec<&str> = lines[1..]
+        .iter()
+        .copied()
+        .filter(|l| l.contains("\"chain\":\"qc\""))
+        .collect();
+    let mut header: serde_json::Value = serde_json::from_str(lines[0]).unwrap();
+    header["chains"]["qc"] = (qc.len() - 2).into();
+    let mut cut = vec![header.to_string()];
+    cut.extend(qc[..qc.len() - 2].iter().map(|s| s.to_string()));
+    cut.extend(
+        lines
+            .iter()
+            .filter(|l| l.contains("\"chain\":\"@users\""))
+            .map(|s| s.to_string()),
+    );
+    assert_eq!(cut.len(), 1 + qc.len() - 2 + users);
+    let cut_path = d.write("cut.jsonl", &(cut.join("\n") + "\n"));
+    run(holdout(), &["audit", &cut_path]).ok();
+    let caught = run(holdout(), &["audit", &cut_path, "--checkpoint", &late]).code(8);
+    assert!(caught.stdout.contains("truncated"), "{}", caught.stdout);
+
+    // --find: the cost file re-saved in exponent notation and reverse order names its entry.
+    let c1_again = d.write("c1-resaved.csv", &cost_predictions(1.5, true));
+    assert_ne!(
+        std::fs::read(&c1).unwrap(),
+        std::fs::read(&c1_again).unwrap()
+    );
+    let found = audit(&["--find", &c1_again, "--json"]).ok().json();
+    let entries = found["find"][0]["entries"].as_array().unwrap();
+    assert_eq!(entries.len(), 1, "{found:#}");
+    assert_eq!(entries[0]["target"], "cost");
+    let other = d.write("c2.csv", &cost_predictions(2.5, false));
+    let none = audit(&["--find", &other, "--json"]).ok().json();
+    assert!(none["find"][0]["entries"].as_array().unwrap().is_empty());
+
+    // Re-scoring the prediction files found in the ledger against the labels.
+    let rescored = audit(&[
+        "--labels",
+        &s.labels,
+        "--predictions",
+        &d.dir.path().display().to_string(),
+        "--json",
+    ])
+    .ok()
+    .json();
+    let checked: usize = rescored["rescored"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f["entries"].as_array().unwrap().len())
+        .sum();
+    assert!(checked >= 3, "{rescored:#}");
+
+    // What-if under a coarser rule.
+    let w = audit(&["--what-if-answers", "rounded:0.05", "--json"])
+        .ok()
+        .json();
+    assert_eq!(w["what_if"].as_array().unwrap().len(), 3, "{w:#}");
+
+    // The database file itself, read-only, with the labels it seals.
+    let db = d.path("holdout.db").display().to_string();
+    let live = run(
+        holdout(),
+        &["audit", "--db", &db, "qc", "--checkpoint", &late, "--json"],
+    )
+    .ok()
+    .json();
+    assert_eq!(live["labels_checked"], true);
+    assert_eq!(live["clean"], true, "{live:#}");
+
+    // A certificate a model card can cite.
+    let cert = d
+        .run(&s.auditor, &["certify", "qc", "--query", "1", "--json"])
+        .ok()
+        .json();
+    assert_eq!(cert["answer"]["query"], 1);
+    assert!(cert["guarantee"].as_str().unwrap().contains("probability"));
+    let rfile = d.write("cert-receipt.json", &cert["receipt"].to_string());
+    let cpfile = d.write("cert-cp.json", &cert["checkpoint"].to_string());
+    d.run(
+        &s.auditor,
+        &[
+            "export",
+            "qc",
+            "--out",
+            &d.path("qc2.jsonl").display().to_string(),
+        ],
+    )
+    .ok();
+    run(
+        holdout(),
+        &[
+            "audit",
+            &d.path("qc2.jsonl").display().to_string(),
+            "--receipt",
+            &rfile,
+            "--checkpoint",
+            &cpfile,
+        ],
+    )
+    .ok();
+}
+
+#[test]
+fn serve_writes_periodic_checkpoints() {
+    let s = setup();
+    let db = s.d.path("holdout.db");
+    let copy = s.d.path("copy.db");
+    // Copy through SQLite's backup so the WAL content is included.
+    {
+        let src = rusqlite::Connection::open(&db).unwrap();
+        src.execute("VACUUM INTO ?1", [copy.display().to_string()])
+            .unwrap();
+    }
+    let dir = s.d.path("anchors");
+    let mut child = holdout()
+        .args([
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--checkpoint-every",
+            "1",
+            "--db",
+        ])
+        .arg(&copy)
+        .arg("--checkpoint-dir")
+        .arg(&dir)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().unwrap())
+        .read_line(&mut line)
+        .unwrap();
+    assert!(line.starts_with("listening on"), "{line}");
+    let deadline = Instant::now() + Duration::from_secs(30);
+    let mut files = Vec::new();
+    while Instant::now() < deadline {
+        files = std::fs::read_dir(&dir)
+            .map(|r| r.filter_map(|e| e.ok().map(|e| e.path())).collect())
+            .unwrap_or_default();
+        if !files.is_empty() {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    assert_eq!(files.len(), 1, "{files:?}");
+    let name = files[0].file_name().unwrap().to_string_lossy().to_string();
+    assert!(name.starts_with("qc-0.checkpoint"), "{name}");
+    let dbs = copy.display().to_string();
+    let cp = files[0].display().to_string();
+    run(
+        holdout(),
+        &["audit", "--db", &dbs, "qc", "--checkpoint", &cp],
+    )
+    .ok();
+}
