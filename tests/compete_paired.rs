@@ -54,24 +54,22 @@ fn neighbour_comparisons_hold_together_at_the_ranking_reserve() {
     let (mut all_hold, mut told_apart) = (0u32, 0u32);
     let mut rng = Rng(11);
     for _ in 0..rounds {
-        let mut wrong = vec![vec![false; n]; base.len()];
-        for r in 0..n {
-            let u = rng.uniform();
-            for (j, b) in base.iter().enumerate() {
-                wrong[j][r] = (u < *b) ^ (rng.uniform() < FLIP);
-            }
-        }
-        let errors: Vec<usize> = wrong
-            .iter()
-            .map(|w| w.iter().filter(|x| **x).count())
+        let rows: Vec<[bool; 5]> = (0..n)
+            .map(|_| {
+                let u = rng.uniform();
+                std::array::from_fn(|j| (u < base[j]) ^ (rng.uniform() < FLIP))
+            })
+            .collect();
+        let errors: Vec<usize> = (0..base.len())
+            .map(|j| rows.iter().filter(|r| r[j]).count())
             .collect();
         let mut order: Vec<usize> = (0..base.len()).collect();
         order.sort_by_key(|&j| (errors[j], j));
         let mut ok = true;
         for w in order.windows(2) {
             let (a, b) = (w[0], w[1]);
-            let a_only = (0..n).filter(|&r| wrong[a][r] && !wrong[b][r]).count() as u64;
-            let b_only = (0..n).filter(|&r| !wrong[a][r] && wrong[b][r]).count() as u64;
+            let a_only = rows.iter().filter(|r| r[a] && !r[b]).count() as u64;
+            let b_only = rows.iter().filter(|r| !r[a] && r[b]).count() as u64;
             let (lo, hi) = replay_comparison(true, n as u64, &comparison(a_only, b_only, level))
                 .expect("interval");
             let truth = err[a] - err[b];
