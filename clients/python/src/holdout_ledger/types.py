@@ -1,0 +1,322 @@
+"""Typed results: plain frozen dataclasses mirroring the messages of proto/holdout/v1.
+
+Field names and meanings are those of the proto (see its comments); proto ``optional`` fields
+that are absent become ``None``. Probabilities (``delta``, ``spent``, ``remaining``,
+``delta_i``) are failure probabilities; levels are carried in nats, ``level_nats = ln(1/d)``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Optional, Tuple
+
+
+@dataclass(frozen=True)
+class Interval:
+    """A closed interval ``[lower, upper]`` for a mean loss in [0, 1]."""
+
+    lower: float
+    upper: float
+
+    @property
+    def half_width(self) -> float:
+        """Half the interval's width."""
+        return (self.upper - self.lower) / 2.0
+
+    def __contains__(self, x: float) -> bool:
+        return self.lower <= x <= self.upper
+
+
+@dataclass(frozen=True)
+class Budget:
+    """Budget position of a holdout (per team under the ``isolated`` sharing assumption)."""
+
+    delta: float
+    spent: float
+    remaining: float
+    transcript_nats: float
+    next_half_width: float
+    queries_left: int
+    answered: int
+    refused: int
+    open: bool
+    quota_resets_at: str
+    quota_left_today: int
+
+
+@dataclass(frozen=True)
+class Receipt:
+    """Proof that an answer (or refusal) is in the ledger; keep it to check against an export."""
+
+    holdout: str
+    entry: int
+    entry_hash: str
+    salt: str
+
+
+@dataclass(frozen=True)
+class Answer:
+    """The released answer to one query.
+
+    ``symbol`` is what the answer rule released (``"0.13"``, ``"pass"``, ``"fail"``, ...);
+    ``score`` the released grid value when the rule releases one; ``interval`` is computed from
+    the symbol alone and holds simultaneously with every other interval of the holdout.
+    """
+
+    query: int
+    symbol: str
+    score: Optional[float]
+    interval: Interval
+    delta_i: float
+    level_nats: float
+    code_nats: float
+    budget: Budget
+    receipt: Receipt
+    guarantee: str
+    statement: str
+    best_model: Optional[int]
+    replayed: bool
+    digest: str
+    target: str
+
+    @property
+    def level(self) -> float:
+        """The failure probability d_i = exp(-level_nats) this answer's interval was built at
+        (underflows to 0.0 after long transcripts; use ``level_nats`` then)."""
+        return math.exp(-self.level_nats)
+
+
+@dataclass(frozen=True)
+class Refusal:
+    """A refusal (recorded in the ledger unless local, charges nothing)."""
+
+    reason: str
+    message: str
+    budget: Budget
+    receipt: Optional[Receipt]
+
+
+@dataclass(frozen=True)
+class Quote:
+    """What a query would cost (a dry run): nothing was scored, charged or recorded.
+
+    ``would_refuse`` is the refusal reason if the query would be refused, else ``""``.
+    """
+
+    query: int
+    delta_i: float
+    level_nats: float
+    half_width: float
+    worst_code_nats: float
+    would_refuse: str
+    budget: Budget
+
+
+@dataclass(frozen=True)
+class Validation:
+    """Predictions matched the public declaration: rows read per model, and the digest of the
+    parsed predictions (the same digest an answer to these predictions will carry)."""
+
+    rows: int
+    digest: str
+
+
+@dataclass(frozen=True)
+class Target:
+    """A label column of a holdout, its metric, interval method and public label domain."""
+
+    name: str
+    column: str
+    metric: str
+    method: str
+    classes: Tuple[str, ...]
+
+    @property
+    def uses_classes(self) -> bool:
+        """True when predictions are class names (metric ``error``), False for numbers."""
+        return self.metric.split(":", 1)[0] == "error"
+
+
+@dataclass(frozen=True)
+class Policy:
+    """A holdout's policy, fixed at creation."""
+
+    delta: float
+    schedule: str
+    answers: str
+    tolerance: float
+    sharing: str
+    tolerance_reference: str
+    shares: str
+    daily_quota: int
+    canonical_json: str
+
+
+@dataclass(frozen=True)
+class Status:
+    """Budget position of a holdout as the caller may see it."""
+
+    holdout: str
+    budget: Budget
+    guarantee: str
+    policy: Policy
+
+
+@dataclass(frozen=True)
+class HoldoutInfo:
+    """Public facts of a holdout."""
+
+    name: str
+    description: str
+    rows: int
+    policy: Policy
+    targets: Tuple[Target, ...]
+    created_at: str
+    open: bool
+    budget: Budget
+    genesis_hash: str
+    guarantee: str
+
+
+@dataclass(frozen=True)
+class HistoryEntry:
+    """One released event: ``kind`` is ``"answer"`` (``answer`` set) or ``"refusal"``
+    (``refusal`` set). ``exact_scores`` is filled only for ``history(..., exact=True)`` by a role
+    allowed to read exact scores (auditor; organizer once the holdout is closed)."""
+
+    entry: int
+    kind: str
+    team: str
+    at: str
+    answer: Optional[Answer]
+    refusal: Optional[Refusal]
+    note: str
+    exact_scores: Tuple[float, ...] = field(default_factory=tuple)
+
+
+@dataclass(frozen=True)
+class Declaration:
+    """The public declaration of a holdout: its targets and row ids, in the holdout's order."""
+
+    targets: Tuple[Target, ...]
+    ids: Tuple[str, ...]
+
+
+# -- conversions from the generated protobuf messages -------------------------------------------
+
+
+def _budget(m) -> Budget:
+    return Budget(
+        delta=m.delta,
+        spent=m.spent,
+        remaining=m.remaining,
+        transcript_nats=m.transcript_nats,
+        next_half_width=m.next_half_width,
+        queries_left=m.queries_left,
+        answered=m.answered,
+        refused=m.refused,
+        open=m.open,
+        quota_resets_at=m.quota_resets_at,
+        quota_left_today=m.quota_left_today,
+    )
+
+
+def _receipt(m) -> Receipt:
+    return Receipt(holdout=m.holdout, entry=m.entry, entry_hash=m.entry_hash, salt=m.salt)
+
+
+def _answer(m) -> Answer:
+    return Answer(
+        query=m.query,
+        symbol=m.symbol,
+        score=m.score if m.HasField("score") else None,
+        interval=Interval(m.interval.lower, m.interval.upper),
+        delta_i=m.delta_i,
+        level_nats=m.level_nats,
+        code_nats=m.code_nats,
+        budget=_budget(m.budget),
+        receipt=_receipt(m.receipt),
+        guarantee=m.guarantee,
+        statement=m.statement,
+        best_model=m.best_model if m.HasField("best_model") else None,
+        replayed=m.replayed,
+        digest=m.digest,
+        target=m.target,
+    )
+
+
+def _refusal(m) -> Refusal:
+    has_receipt = m.HasField("receipt") and bool(m.receipt.entry_hash)
+    return Refusal(
+        reason=m.reason,
+        message=m.message,
+        budget=_budget(m.budget),
+        receipt=_receipt(m.receipt) if has_receipt else None,
+    )
+
+
+def _quote(m) -> Quote:
+    return Quote(
+        query=m.query,
+        delta_i=m.delta_i,
+        level_nats=m.level_nats,
+        half_width=m.half_width,
+        worst_code_nats=m.worst_code_nats,
+        would_refuse=m.would_refuse,
+        budget=_budget(m.budget),
+    )
+
+
+def _target(m) -> Target:
+    return Target(
+        name=m.name, column=m.column, metric=m.metric, method=m.method, classes=tuple(m.classes)
+    )
+
+
+def _policy(m) -> Policy:
+    return Policy(
+        delta=m.delta,
+        schedule=m.schedule,
+        answers=m.answers,
+        tolerance=m.tolerance,
+        sharing=m.sharing,
+        tolerance_reference=m.tolerance_reference,
+        shares=m.shares,
+        daily_quota=m.daily_quota,
+        canonical_json=m.canonical_json,
+    )
+
+
+def _holdout_info(m) -> HoldoutInfo:
+    return HoldoutInfo(
+        name=m.name,
+        description=m.description,
+        rows=m.rows,
+        policy=_policy(m.policy),
+        targets=tuple(_target(t) for t in m.targets),
+        created_at=m.created_at,
+        open=m.open,
+        budget=_budget(m.budget),
+        genesis_hash=m.genesis_hash,
+        guarantee=m.guarantee,
+    )
+
+
+def _status(m) -> Status:
+    return Status(
+        holdout=m.holdout, budget=_budget(m.budget), guarantee=m.guarantee, policy=_policy(m.policy)
+    )
+
+
+def _history_entry(m) -> HistoryEntry:
+    return HistoryEntry(
+        entry=m.entry,
+        kind=m.kind,
+        team=m.team,
+        at=m.at,
+        answer=_answer(m.answer) if m.HasField("answer") else None,
+        refusal=_refusal(m.refusal) if m.HasField("refusal") else None,
+        note=m.note,
+        exact_scores=tuple(m.exact_scores),
+    )
