@@ -18,6 +18,20 @@ BIN = Path(os.environ.get("HOLDOUT_BIN", REPO / "target" / "debug" / "holdout"))
 START_TIMEOUT = 60.0
 
 
+def pytest_report_header(config):
+    """Names the outside libraries (and versions) the tests compare against."""
+    from importlib.metadata import PackageNotFoundError, version
+
+    names = ["grpcio", "protobuf", "numpy", "pandas", "scikit-learn", "scipy", "statsmodels"]
+    found = []
+    for n in names:
+        try:
+            found.append(f"{n} {version(n)}")
+        except PackageNotFoundError:
+            found.append(f"{n} (not installed)")
+    return [f"holdout binary: {BIN}", "libraries: " + ", ".join(found)]
+
+
 class Daemon:
     """A running daemon: `url`, `admin` token, `dir` (scratch), `cli(...)` to run the binary."""
 
