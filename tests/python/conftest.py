@@ -39,6 +39,7 @@ class Daemon:
         if not BIN.exists():
             pytest.fail(f"no holdout binary at {BIN}: run `cargo build` or set HOLDOUT_BIN")
         self.dir = tmp
+        self.bin_dir = BIN.parent
         db = tmp / "holdout.db"
         token_file = tmp / "admin.token"
         subprocess.run([str(BIN), "init", "--db", str(db), "--token-out", str(token_file)],

@@ -22,16 +22,14 @@ import pytest
 
 import holdout_ledger as hl
 
-sklearn = pytest.importorskip("sklearn")
-statsmodels = pytest.importorskip("statsmodels")
-
-from sklearn.datasets import load_breast_cancer  # noqa: E402
-from sklearn.linear_model import LogisticRegression  # noqa: E402
-from sklearn.metrics import accuracy_score  # noqa: E402
-from sklearn.model_selection import train_test_split  # noqa: E402
-from sklearn.pipeline import make_pipeline  # noqa: E402
-from sklearn.preprocessing import StandardScaler  # noqa: E402
-from statsmodels.stats.proportion import proportion_confint  # noqa: E402
+# Imported outright (no importorskip): in CI a missing reference library must fail, not skip.
+from sklearn.datasets import load_breast_cancer
+from sklearn.linear_model import LogisticRegression
+from sklearn.metrics import accuracy_score
+from sklearn.model_selection import train_test_split
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from statsmodels.stats.proportion import proportion_confint
 
 HOLDOUT_ROWS = 200
 DELTA = 0.05
