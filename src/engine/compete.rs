@@ -788,7 +788,8 @@ impl Engine {
         let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
         for e in entries.iter().filter(|e| e.kind == "answer") {
             let r: AnswerRecord = parse(e)?;
-            if own_only && r.team != caller.team {
+            // One ladder per team and target; the leaderboard shows the first target's.
+            if r.target_index != 0 || (own_only && r.team != caller.team) {
                 continue;
             }
             let row = rows
