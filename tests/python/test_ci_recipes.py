@@ -36,6 +36,7 @@ GATE = textwrap.dedent('''
 # The shell gate of the README: the CLI's exit code, then the symbol.
 SHELL_GATE = textwrap.dedent('''
     set -eu
+    holdout validate release-gate --predictions "$1"
     holdout submit release-gate --predictions "$1" --dry-run
     holdout submit release-gate --predictions "$1" --max-cost 2 --json > answer.json
     "$PY" -c 'import json, sys; a = json.load(open("answer.json")); print(a["symbol"], a["statement"]); sys.exit(a["symbol"] != "pass")'
