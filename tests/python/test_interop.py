@@ -123,6 +123,7 @@ def test_submit_answers_replays_then_refuses_when_spent(setup):
     with pytest.raises(hl.BudgetRefused) as e:
         client.submit("tiles", frame, max_cost=0.001)
     assert e.value.reason == "max-cost" and not e.value.spent and e.value.exit_code == 3
+    assert str(e.value).count("max-cost") >= 1 and not str(e.value).startswith("refused (max-cost): refused")
     assert client.status("tiles").budget.answered == 0
 
     a = client.submit("tiles", frame, note="baseline", request_id="run-1")

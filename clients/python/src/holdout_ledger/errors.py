@@ -102,7 +102,10 @@ class BudgetRefused(HoldoutError):
     exit_code = 3
 
     def __init__(self, refusal: "Refusal"):
-        super().__init__(f"refused ({refusal.reason}): {refusal.message}")
+        text = refusal.message
+        if not text.startswith("refused"):
+            text = f"refused ({refusal.reason}): {text}"
+        super().__init__(text)
         self.refusal = refusal
         self.reason: str = refusal.reason
         self.budget: "Budget" = refusal.budget
