@@ -207,3 +207,24 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
         assert admin.holdout("cli-tiles").targets[0].classes == tuple(CLASSES)
         with pytest.raises(hl.StateConflict):  # the same rows again
             admin.create_holdout("cli-tiles", labels)
+
+
+def test_ladder_leaderboard(daemon):
+    labels = tiles()
+    with hl.connect(daemon.url, daemon.admin) as admin:
+        admin.create_holdout("tiles-ladder", labels, metric="error", answers="ladder:0.01",
+                             tolerance=0.2)
+    teams = {"kiln": 10, "glaze": 4}  # error 0.10 and 0.25
+    for team, every in teams.items():
+        with hl.connect(daemon.url, daemon.add_user(f"{team}-1", "analyst", team=team)) as c:
+            a = c.submit("tiles-ladder", predictions(labels, every))
+            assert a.score == pytest.approx(1 / every)
+    with hl.connect(daemon.url, daemon.admin) as organizer:
+        board = organizer.leaderboard("tiles-ladder")
+    assert board.holdout == "tiles-ladder" and not board.own_team_only
+    assert [(r.rank, r.team) for r in board.rows] == [(1, "kiln"), (2, "glaze")]
+    assert board.rows[0].best == pytest.approx(0.10) and 0.10 in board.rows[0].interval
+    assert board.rows[1].submissions == 1 and board.statement
+    with hl.connect(daemon.url, daemon.admin) as organizer:
+        with pytest.raises(hl.NotFound):
+            organizer.leaderboard("no-such-ladder")

@@ -38,6 +38,8 @@ from .types import (
     HistoryEntry,
     HoldoutInfo,
     Interval,
+    Leaderboard,
+    LeaderboardRow,
     Policy,
     Quote,
     Receipt,
@@ -53,6 +55,7 @@ __all__ = [
     "connect", "Client", "DEFAULT_SERVER", "CHUNK_ROWS",
     "HoldoutError", "BudgetRefused", "InvalidInput", "NotAuthorized", "NotFound",
     "StateConflict", "Unreachable",
-    "Answer", "Budget", "Declaration", "HistoryEntry", "HoldoutInfo", "Interval", "Policy",
+    "Answer", "Budget", "Declaration", "HistoryEntry", "HoldoutInfo", "Interval", "Leaderboard",
+    "LeaderboardRow", "Policy",
     "Quote", "Receipt", "Refusal", "Status", "Target", "Validation",
 ]

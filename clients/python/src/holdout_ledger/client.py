@@ -15,6 +15,7 @@ from .types import (
     Declaration,
     HistoryEntry,
     HoldoutInfo,
+    Leaderboard,
     Quote,
     Refusal,
     Status,
@@ -23,6 +24,7 @@ from .types import (
     _answer,
     _history_entry,
     _holdout_info,
+    _leaderboard,
     _quote,
     _refusal,
     _status,
@@ -195,6 +197,12 @@ class Client:
         """
         req = _s.HistoryRequest(holdout=holdout, exact=exact)
         return [_history_entry(m) for m in self._stream(self._submissions.History, req)]
+
+    def leaderboard(self, holdout: str) -> Leaderboard:
+        """The ladder leaderboard of a ``ladder:ETA`` holdout: each team's shown best with its
+        interval, ranked (only the caller's row when the board is for organizers only)."""
+        req = _s.LeaderboardRequest(holdout=holdout)
+        return _leaderboard(self._unary(self._submissions.Leaderboard, req))
 
     # -- submissions ------------------------------------------------------------------------
 

@@ -203,6 +203,34 @@ class Declaration:
     ids: Tuple[str, ...]
 
 
+@dataclass(frozen=True)
+class LeaderboardRow:
+    """One team's row of a ladder leaderboard: ``best`` is the team's shown best on the grid
+    (None before its first release), ``interval`` covers the smallest true error among the
+    team's submissions."""
+
+    rank: int
+    team: str
+    best: Optional[float]
+    interval: Interval
+    submissions: int
+    improvements: int
+    best_at: str
+
+
+@dataclass(frozen=True)
+class Leaderboard:
+    """A ladder holdout's leaderboard, ranked. ``own_team_only`` is True when the policy shows
+    the full board to organizers only and the caller sees just its team's row."""
+
+    holdout: str
+    target: str
+    rows: Tuple[LeaderboardRow, ...]
+    statement: str
+    guarantee: str
+    own_team_only: bool
+
+
 # -- conversions from the generated protobuf messages -------------------------------------------
 
 
@@ -319,4 +347,26 @@ def _history_entry(m) -> HistoryEntry:
         refusal=_refusal(m.refusal) if m.HasField("refusal") else None,
         note=m.note,
         exact_scores=tuple(m.exact_scores),
+    )
+
+
+def _leaderboard(m) -> Leaderboard:
+    return Leaderboard(
+        holdout=m.holdout,
+        target=m.target,
+        rows=tuple(
+            LeaderboardRow(
+                rank=r.rank,
+                team=r.team,
+                best=r.best if r.HasField("best") else None,
+                interval=Interval(r.interval.lower, r.interval.upper),
+                submissions=r.submissions,
+                improvements=r.improvements,
+                best_at=r.best_at,
+            )
+            for r in m.rows
+        ),
+        statement=m.statement,
+        guarantee=m.guarantee,
+        own_team_only=m.own_team_only,
     )
