@@ -1,2 +1,98 @@
-//! Placeholder until the audit benchmark lands.
-fn main() {}
+//! The offline audit on a 100,000-entry ledger written by the real engine: chain verification
+//! alone, parsing the export file, and the whole audit (chains, genesis, replay of every
+//! answer through the daemon's accounting core). Target: >= 100,000 entries per second.
+//!
+//! `AUDIT_BENCH_ENTRIES` overrides the size (e.g. 10000 for a quick look);
+//! `AUDIT_BENCH_TOLERANCE` the policy's tolerance (default 0.1: answers until the tolerance is
+//! reached, refusals after, as a long-lived holdout's ledger looks; 1.0: every entry an answer).
+
+#[path = "../tests/audit_support/mod.rs"]
+mod audit_support;
+
+use std::hint::black_box;
+use std::time::Instant;
+
+use criterion::{Criterion, Throughput, criterion_group, criterion_main};
+use holdout_ledger::audit::export::Export;
+use holdout_ledger::audit::{AuditOptions, audit};
+use holdout_ledger::engine::PolicyInput;
+use holdout_ledger::ledger;
+
+fn ledger_of(entries: usize, tolerance: f64) -> Export {
+    let started = Instant::now();
+    // Four teams submit in turn to a 2,000-row holdout under an open-ended series schedule.
+    let policy = PolicyInput {
+        delta: 0.05,
+        schedule: "series".into(),
+        answers: "rounded:0.01".into(),
+        tolerance,
+        ..PolicyInput::default()
+    };
+    let mut g = audit_support::Generated::new("bench", 2000, policy, 4, 42);
+    let mut i = 0;
+    while g
+        .engine
+        .store()
+        .conn()
+        .query_row(
+            "SELECT count(*) FROM ledger WHERE chain = 'bench'",
+            [],
+            |r| r.get::<_, i64>(0),
+        )
+        .unwrap()
+        < entries as i64
+    {
+        g.submit(i % 4, 55 + (i % 40) as u64);
+        i += 1;
+        if i % 97 == 0 {
+            g.advance(1);
+        }
+    }
+    let ex = g.export();
+    let answers = ex.entries.iter().filter(|e| e.kind == "answer").count();
+    let refusals = ex.entries.iter().filter(|e| e.kind == "refusal").count();
+    eprintln!(
+        "generated {} entries ({answers} answers, {refusals} refusals) in {:.1} s",
+        ex.entries.len(),
+        started.elapsed().as_secs_f64()
+    );
+    ex
+}
+
+fn bench(c: &mut Criterion) {
+    let n: usize = std::env::var("AUDIT_BENCH_ENTRIES")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(100_000);
+    let tolerance: f64 = std::env::var("AUDIT_BENCH_TOLERANCE")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(0.1);
+    let ex = ledger_of(n, tolerance);
+    let mut bytes = Vec::new();
+    ex.write_to(&mut bytes).expect("write the export");
+    assert!(audit(&ex, AuditOptions::default()).clean());
+
+    let mut group = c.benchmark_group("audit");
+    group.sample_size(10);
+    group.throughput(Throughput::Elements(ex.entries.len() as u64));
+    group.bench_function("verify_chain", |b| {
+        b.iter(|| black_box(ledger::verify_chain(black_box(&ex.entries))))
+    });
+    group.bench_function("parse_export", |b| {
+        b.iter(|| black_box(Export::parse("bench.jsonl", black_box(&bytes[..])).unwrap()))
+    });
+    group.bench_function("full_audit", |b| {
+        b.iter(|| black_box(audit(black_box(&ex), AuditOptions::default())))
+    });
+    group.bench_function("parse_and_full_audit", |b| {
+        b.iter(|| {
+            let ex = Export::parse("bench.jsonl", black_box(&bytes[..])).unwrap();
+            black_box(audit(&ex, AuditOptions::default()))
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, bench);
+criterion_main!(benches);

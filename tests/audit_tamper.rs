@@ -340,6 +340,19 @@ fn refusals_are_recomputed_from_public_facts() {
             .any(|f| f.entry == Some(k as u64) && f.field == "score")
     );
 
+    // A refusal showing a budget the public state did not have.
+    let mut t = ex.clone();
+    edit_body(&mut t.entries[k], |v| {
+        v["budget"]["refused"] = (v["budget"]["refused"].as_u64().unwrap() + 5).into()
+    });
+    rehash(&mut t.entries, k);
+    assert!(
+        plain(&t)
+            .findings
+            .iter()
+            .any(|f| f.entry == Some(k as u64) && f.field == "budget.refused")
+    );
+
     // A refusal for a reason the public state does not give.
     let mut t = ex.clone();
     edit_body(&mut t.entries[k], |v| v["reason"] = "quota".into());

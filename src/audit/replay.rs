@@ -60,7 +60,19 @@ struct Cmp<'a> {
     chain: &'a str,
     entry: u64,
     out: Vec<Finding>,
+    /// Budget checks, computed off the replay thread (see [`replay`]).
+    jobs: Option<&'a Jobs>,
 }
+
+/// A budget to recompute from a snapshot of the book and compare with what was recorded.
+struct BudgetJob {
+    entry: u64,
+    book: Book,
+    team: String,
+    recorded: BudgetView,
+}
+
+type Jobs = std::sync::mpsc::SyncSender<BudgetJob>;
 
 impl Cmp<'_> {
     fn eq<T: PartialEq + std::fmt::Debug>(&mut self, field: &str, recorded: T, again: T) {
@@ -82,6 +94,20 @@ impl Cmp<'_> {
                 field,
                 format!("recorded {recorded}, replay computes {again}"),
             ));
+        }
+    }
+
+    /// Queues the comparison of `recorded` with the budget `book` shows `team`.
+    fn defer_budget(&mut self, book: &Book, team: &str, recorded: &BudgetView) {
+        let job = BudgetJob {
+            entry: self.entry,
+            book: book.clone(),
+            team: team.to_string(),
+            recorded: recorded.clone(),
+        };
+        // The receivers live until every job is sent (scoped threads), so this cannot fail.
+        if let Some(jobs) = self.jobs {
+            let _ = jobs.send(job);
         }
     }
 
@@ -128,10 +154,99 @@ fn exact_key(v: &Value) -> Option<String> {
 
 /// Replays `entries` (the genesis first) under `policy`, reporting every discrepancy.
 /// `progress` is called with the number of entries done.
+///
+/// The replay itself is sequential (each answer's level depends on the transcript before it),
+/// but the budget each entry shows (next half-width, queries left: many interval inversions)
+/// is a pure function of the book at that point, so it is recomputed on worker threads from
+/// snapshots while the replay goes on.
 pub(crate) fn replay(
     policy: &HoldoutPolicy,
     entries: &[Entry],
     progress: &mut dyn FnMut(u64),
+) -> Replay {
+    let chain = entries.first().map(|e| e.chain.as_str()).unwrap_or("");
+    let workers = std::thread::available_parallelism()
+        .map(|n| n.get().saturating_sub(1))
+        .unwrap_or(1)
+        .clamp(1, 8);
+    let (tx, rx) = std::sync::mpsc::sync_channel::<BudgetJob>(4096);
+    let rx = std::sync::Mutex::new(rx);
+    std::thread::scope(|scope| {
+        let handles: Vec<_> = (0..workers)
+            .map(|_| {
+                let rx = &rx;
+                scope.spawn(move || {
+                    let mut found = Vec::new();
+                    loop {
+                        let job = match rx.lock() {
+                            Ok(r) => r.recv(),
+                            Err(_) => break,
+                        };
+                        let Ok(job) = job else { break };
+                        let again = job.book.budget(policy, &job.team);
+                        let mut cmp = Cmp {
+                            chain,
+                            entry: job.entry,
+                            out: Vec::new(),
+                            jobs: None,
+                        };
+                        cmp.budget(&job.recorded, &again);
+                        found.append(&mut cmp.out);
+                    }
+                    found
+                })
+            })
+            .collect();
+        let mut out = replay_serial(policy, entries, progress, &tx);
+        drop(tx);
+        for h in handles {
+            if let Ok(mut found) = h.join() {
+                out.findings.append(&mut found);
+            }
+        }
+        out.findings.sort_by_key(|f| f.entry);
+        let flagged: std::collections::HashSet<u64> =
+            out.findings.iter().filter_map(|f| f.entry).collect();
+        for q in &mut out.queries {
+            q.replayed &= !flagged.contains(&q.entry);
+        }
+        out
+    })
+}
+
+/// Refusals change nothing in the accountant (they charge nothing; only the refusal counts
+/// move), so during a run of refusals the public state is the same: its decision and its budget
+/// are computed once per accountant state and reused, with the counts moved on.
+/// (accountant generation, team, target, reason code).
+type DecisionKey = (u64, String, usize, String);
+
+#[derive(Default)]
+struct RefusalMemo {
+    /// Bumped after every answer: the accountant's state changed.
+    generation: u64,
+    /// (generation, team, target, reason) -> the recomputed message, if the reason holds.
+    decisions: HashMap<DecisionKey, Option<(String, bool)>>,
+    /// (generation, team) -> budget then, and the count it was computed at.
+    budgets: HashMap<(u64, String), (BudgetView, u64)>,
+    refused_total: u64,
+    refused_by_team: HashMap<String, u64>,
+}
+
+impl RefusalMemo {
+    fn count(&self, policy: &HoldoutPolicy, team: &str) -> u64 {
+        if policy.isolated() {
+            self.refused_by_team.get(team).copied().unwrap_or(0)
+        } else {
+            self.refused_total
+        }
+    }
+}
+
+fn replay_serial(
+    policy: &HoldoutPolicy,
+    entries: &[Entry],
+    progress: &mut dyn FnMut(u64),
+    jobs: &Jobs,
 ) -> Replay {
     let mut out = Replay::default();
     let chain = entries.first().map(|e| e.chain.as_str()).unwrap_or("");
@@ -146,6 +261,7 @@ pub(crate) fn replay(
     let quota = u64::from(policy.daily_quota);
     let mut today: HashMap<(String, String), u64> = HashMap::new();
     let mut closed_at: Option<u64> = None;
+    let mut memo = RefusalMemo::default();
     for (i, e) in entries.iter().enumerate().skip(1) {
         if i % 4096 == 0 {
             progress(i as u64);
@@ -154,6 +270,7 @@ pub(crate) fn replay(
             chain,
             entry: e.seq,
             out: Vec::new(),
+            jobs: Some(jobs),
         };
         match e.kind.as_str() {
             "answer" => {
@@ -166,13 +283,14 @@ pub(crate) fn replay(
                     ));
                 }
                 let ok = answer(policy, &mut book, e, quota, &mut today, &mut cmp, &mut out);
+                memo.generation += 1;
                 if let Some(q) = out.queries.last_mut().filter(|q| q.entry == e.seq) {
                     q.replayed = ok && cmp.out.is_empty();
                 }
             }
             "refusal" => {
                 out.refusals += 1;
-                refusal(policy, &mut book, e, quota, &today, &mut cmp);
+                refusal(policy, &mut book, e, quota, &today, &mut cmp, &mut memo);
             }
             "read" => {
                 let what = serde_json::from_str::<Value>(&e.body)
@@ -346,8 +464,7 @@ fn answer(
             "the core's own record differs from what the core computes again".into(),
         ));
     }
-    let budget = book.budget(policy, &r.team);
-    cmp.budget(&r.budget, &budget);
+    cmp.defer_budget(book, &r.team, &r.budget);
     true
 }
 
@@ -358,6 +475,7 @@ fn refusal(
     quota: u64,
     today: &HashMap<(String, String), u64>,
     cmp: &mut Cmp<'_>,
+    memo: &mut RefusalMemo,
 ) {
     let raw: Value = serde_json::from_str(&e.body).unwrap_or(Value::Null);
     if let Some(k) = exact_key(&raw) {
@@ -378,11 +496,19 @@ fn refusal(
                 format!("not a refusal record: {err}"),
             ));
             book.note_refusal(policy, "");
+            memo.refused_total += 1;
             return;
         }
     };
-    let budget_now = book.budget(policy, &r.team);
-    cmp.budget(&r.budget, &budget_now);
+    let now_count = memo.count(policy, &r.team);
+    let (view, at_count) = memo
+        .budgets
+        .entry((memo.generation, r.team.clone()))
+        .or_insert_with(|| (book.budget(policy, &r.team), now_count))
+        .clone();
+    let mut expected = view;
+    expected.refused += now_count - at_count;
+    cmp.budget(&r.budget, &expected);
     let target = policy.targets.iter().position(|t| t.name == r.target);
     match r.reason.as_str() {
         "quota" => {
@@ -416,12 +542,26 @@ fn refusal(
         code => {
             // The number of models is not recorded with a refusal: accept the decision when
             // some batch size reproduces it from the public state, message included.
-            let decided = target.and_then(|t| {
-                (1..=64u32).find_map(|m| match book.quote(policy, &r.team, t, m) {
-                    Err(why) if why.code() == code => Some((why.to_string(), why)),
-                    _ => None,
+            let key = (
+                memo.generation,
+                r.team.clone(),
+                target.unwrap_or(usize::MAX),
+                code.to_string(),
+            );
+            let decided = memo
+                .decisions
+                .entry(key)
+                .or_insert_with(|| {
+                    target.and_then(|t| {
+                        (1..=64u32).find_map(|m| match book.quote(policy, &r.team, t, m) {
+                            Err(why) if why.code() == code => {
+                                Some((why.to_string(), matches!(why, RefusalReason::Core(_))))
+                            }
+                            _ => None,
+                        })
+                    })
                 })
-            });
+                .clone();
             match decided {
                 None => cmp.out.push(finding(
                     cmp.chain,
@@ -432,8 +572,8 @@ fn refusal(
                          for that reason"
                     ),
                 )),
-                Some((message, why)) => {
-                    if matches!(why, RefusalReason::Core(_)) && message != r.message {
+                Some((message, core)) => {
+                    if core && message != r.message {
                         cmp.out.push(finding(
                             cmp.chain,
                             e.seq,
@@ -446,4 +586,6 @@ fn refusal(
         }
     }
     book.note_refusal(policy, &r.team);
+    memo.refused_total += 1;
+    *memo.refused_by_team.entry(r.team.clone()).or_default() += 1;
 }

@@ -158,6 +158,11 @@ impl Generated {
         out
     }
 
+    /// Adds a user and returns them as a caller.
+    pub fn user(&mut self, name: &str, roles: &[Role], team: Option<&str>) -> Caller {
+        caller(&mut self.engine, name, roles, team)
+    }
+
     /// Advances the fixed clock.
     pub fn advance(&mut self, secs: i64) {
         let now = self.engine.now() + chrono::Duration::seconds(secs);
