@@ -18,6 +18,8 @@ pub const NOT_FOUND: u8 = 5;
 pub const UNREACHABLE: u8 = 6;
 /// Not possible in the current state.
 pub const PRECONDITION: u8 = 7;
+/// `submit --require-pass` got a `fail` answer.
+pub const GATE_FAILED: u8 = 9;
 
 /// The exit code for a gRPC status code.
 pub fn code_for_status(code: tonic::Code) -> u8 {

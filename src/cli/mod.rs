@@ -24,7 +24,8 @@ Exit codes:
   5  not found (holdout, target, user)
   6  cannot reach the daemon
   7  not possible in the current state (closed holdout, request id reused with other predictions)
-  8  audit found discrepancies (each is listed with its entry number and field)";
+  8  audit found discrepancies (each is listed with its entry number and field)
+  9  submit --require-pass: the threshold answer was `fail` (recorded and printed)";
 
 /// holdout-ledger: shared holdout sets whose reported scores stay trustworthy under reuse.
 ///

@@ -38,8 +38,7 @@ SHELL_GATE = textwrap.dedent('''
     set -eu
     holdout validate release-gate --predictions "$1"
     holdout submit release-gate --predictions "$1" --dry-run
-    holdout submit release-gate --predictions "$1" --max-cost 2 --json > answer.json
-    "$PY" -c 'import json, sys; a = json.load(open("answer.json")); print(a["symbol"], a["statement"]); sys.exit(a["symbol"] != "pass")'
+    holdout submit release-gate --predictions "$1" --max-cost 2 --require-pass --json > answer.json
 ''')
 
 
@@ -80,10 +79,11 @@ def test_shell_gate_uses_exit_codes(daemon):
     labels = tiles()
     good = run_gate(daemon, token, predictions(labels, 10), shell=True)
     assert good.returncode == 0, good.stdout + good.stderr
-    assert "pass" in good.stdout
+    assert json.loads((daemon.dir / "answer.json").read_text())["symbol"] == "pass"
     bad = run_gate(daemon, token, predictions(labels, 4), shell=True)
-    assert bad.returncode == 1, bad.stdout + bad.stderr
-    assert "fail" in bad.stdout
+    assert bad.returncode == 9, bad.stdout + bad.stderr  # --require-pass: exit 9 on fail
+    assert json.loads((daemon.dir / "answer.json").read_text())["symbol"] == "fail"
+    assert "threshold gate" in bad.stderr
     # --max-cost below the worst-case code: refused with exit 3, nothing charged.
     path = daemon.dir / "p.csv"
     predictions(labels, 5).to_csv(path, index=False)

@@ -108,6 +108,10 @@ pub struct SubmitArgs {
     /// mark, the team's last entry is selected).
     #[arg(long = "final")]
     pub mark_final: bool,
+    /// For CI gates on `threshold:TAU` holdouts: exit with status 9 when the answer is `fail`
+    /// (the answer is still recorded and printed). A pass exits 0.
+    #[arg(long)]
+    pub require_pass: bool,
     /// Print one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -247,6 +251,14 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
                 show::print_json(&show::answer_json(&a, &names));
             } else {
                 println!("{}", show::answer_text(&a, &names));
+            }
+            if args.require_pass && a.symbol == "fail" {
+                eprintln!(
+                    "threshold gate: the answer is `fail` (a fail certifies nothing either way); \
+                     exit {}",
+                    exit::GATE_FAILED
+                );
+                return Ok(ExitCode::from(exit::GATE_FAILED));
             }
             Ok(ExitCode::SUCCESS)
         }
