@@ -306,6 +306,14 @@ fn replay_serial(
                     .unwrap_or_else(|| "unreadable read entry".into());
                 out.reads.push((e.seq, what));
             }
+            "sealed" | "round" => {
+                // Competition entries move the accountant too; the engine's own replay step
+                // checks them against the core.
+                if let Err(err) = crate::engine::replay_competition_entry(&mut book, policy, e) {
+                    cmp.out.push(finding(chain, e.seq, "replay", err.to_string()));
+                }
+                memo.generation += 1;
+            }
             "close" => closed_at = Some(e.seq),
             "genesis" => cmp.out.push(finding(
                 chain,

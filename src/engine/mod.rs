@@ -35,6 +35,7 @@ pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome
 pub use worker::Db;
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::{Book, RefusalReason};
+pub(crate) use compete::replay_entry as replay_competition_entry;
 
 use crate::error::{Error, Result};
 use crate::metric::Labels;

@@ -24,8 +24,6 @@ pub struct Generated {
     pub labels: Vec<String>,
     pub analysts: Vec<Caller>,
     pub auditor: Caller,
-    /// Predictions of every submission, in order (class names per row, ids order).
-    pub submitted: Vec<Vec<String>>,
     /// Entry numbers of answers.
     pub answer_entries: Vec<u64>,
     state: u64,
@@ -97,7 +95,6 @@ impl Generated {
             labels,
             analysts,
             auditor,
-            submitted: Vec::new(),
             answer_entries: Vec::new(),
             state: next(),
         }
@@ -125,7 +122,6 @@ impl Generated {
                 }
             })
             .collect();
-        self.submitted.push(preds.clone());
         let caller = self.analysts[t].clone();
         let out = self
             .engine
