@@ -310,7 +310,8 @@ fn replay_serial(
                 // Competition entries move the accountant too; the engine's own replay step
                 // checks them against the core.
                 if let Err(err) = crate::engine::replay_competition_entry(&mut book, policy, e) {
-                    cmp.out.push(finding(chain, e.seq, "replay", err.to_string()));
+                    cmp.out
+                        .push(finding(chain, e.seq, "replay", err.to_string()));
                 }
                 memo.generation += 1;
             }
