@@ -462,4 +462,10 @@ fn the_export_file_round_trips_and_names_bad_lines() {
         .join("\n");
     let err = Export::parse("x.jsonl", broken.as_bytes()).unwrap_err();
     assert!(err.to_string().contains("x.jsonl:4"), "{err}");
+    let other = text.replacen("holdout-ledger-export/1", "holdout-ledger-export/9", 1);
+    let err = Export::parse("y.jsonl", other.as_bytes()).unwrap_err();
+    assert!(
+        err.to_string().contains("y.jsonl:1") && err.to_string().contains("export/9"),
+        "{err}"
+    );
 }

@@ -104,17 +104,19 @@ impl Export {
             .next()
             .ok_or_else(|| bad(1, "empty file: no export header".into()))?
             .map_err(|e| bad(1, e.to_string()))?;
-        let header: Header = serde_json::from_str(&first)
+        let raw: serde_json::Value = serde_json::from_str(&first)
             .map_err(|e| bad(1, format!("not an export header: {e}")))?;
-        if header.format != EXPORT_FORMAT {
+        if raw["format"].as_str() != Some(EXPORT_FORMAT) {
             return Err(bad(
                 1,
                 format!(
-                    "format {:?} is not one this binary reads ({EXPORT_FORMAT})",
-                    header.format
+                    "format {} is not one this binary reads ({EXPORT_FORMAT})",
+                    raw["format"]
                 ),
             ));
         }
+        let header: Header = serde_json::from_value(raw)
+            .map_err(|e| bad(1, format!("not an export header: {e}")))?;
         let mut out = Export {
             header,
             entries: Vec::new(),
