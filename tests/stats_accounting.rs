@@ -254,3 +254,48 @@ fn policies_reject_bad_fields() {
     assert_eq!(back.rule, Rule::Threshold { tau: 0.1 });
     assert_eq!(back.schedule, Schedule::Even { k: 3 });
 }
+
+/// The forecast's cached largest fitting level decides exactly as comparing each candidate's
+/// half-width with the tolerance: `worst-case` (cached) and `last-released` (direct; its
+/// reference stays 1/2 while a threshold rule releases no score) agree on `queries_left` after
+/// every answer, across sizes, tolerances, methods and schedules.
+#[test]
+fn cached_fit_level_matches_direct_half_width_comparison() {
+    use holdout_ledger::stats::policy::ToleranceReference;
+    let mut compared = 0;
+    for rows in [50u64, 999, 20_000, 1_000_000] {
+        for tolerance in [0.01, 0.05, 0.12, 0.3, 0.6] {
+            for method in [Method::Exact, Method::Kl, Method::Hoeffding] {
+                for schedule in ["series", "even:40"] {
+                    let mut cached = policy("threshold:0.2", schedule, rows, tolerance);
+                    cached.targets[0].method = method;
+                    let mut direct = cached.clone();
+                    direct.tolerance_reference = ToleranceReference::LastReleased;
+                    let (mut a, mut b) = (
+                        Accountant::new(cached).unwrap(),
+                        Accountant::new(direct).unwrap(),
+                    );
+                    for step in 0..6u64 {
+                        let (sa, sb) = (a.status(Some("t")), b.status(Some("t")));
+                        assert_eq!(
+                            sa.targets[0].queries_left, sb.targets[0].queries_left,
+                            "rows {rows} tol {tolerance} {method:?} {schedule} step {step}"
+                        );
+                        compared += 1;
+                        let r = req("t");
+                        match (a.quote(&r), b.quote(&r)) {
+                            (Ok(ca), Ok(cb)) => {
+                                let k = Outcome::Errors(rows * (step % 3) / 10);
+                                a.answer(&r, &ca, &[k]).unwrap();
+                                b.answer(&r, &cb, &[k]).unwrap();
+                            }
+                            (Err(_), Err(_)) => break,
+                            other => panic!("quotes disagree: {other:?}"),
+                        }
+                    }
+                }
+            }
+        }
+    }
+    assert!(compared > 200, "{compared}");
+}

@@ -248,6 +248,10 @@ pub struct Accountant {
     transcript: Transcript,
     analysts: BTreeMap<String, AnalystState>,
     pending: Vec<SealedReceipt>,
+    /// Per target, the largest level whose half-width at the worst-case reference (1/2) is
+    /// within the tolerance; empty unless the policy judges the tolerance at the worst case.
+    /// Forecasts compare levels with it instead of inverting a Beta per candidate.
+    fit_level: Vec<f64>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -265,7 +269,7 @@ impl Accountant {
     pub fn new(policy: Policy) -> Result<Accountant, AccountingError> {
         policy.validate()?;
         let targets = policy.targets.len();
-        Ok(Accountant {
+        let mut acc = Accountant {
             ln_inv_delta: -policy.delta.ln(),
             sequence: 0,
             pool_queries: 0,
@@ -277,8 +281,44 @@ impl Accountant {
             },
             analysts: BTreeMap::new(),
             pending: Vec::new(),
+            fit_level: Vec::new(),
             policy,
-        })
+        };
+        if acc.policy.tolerance_reference == ToleranceReference::WorstCase {
+            acc.fit_level = (0..targets).map(|t| acc.max_fit_level(t, 0.5)).collect();
+        }
+        Ok(acc)
+    }
+
+    /// The largest level (nats) whose half-width at `reference` is within the tolerance, to the
+    /// last representable bit: `+inf` when every level fits, `-inf` when none does. Half-widths
+    /// grow with the level, so `level <= max_fit_level` decides the same as comparing the
+    /// half-width with the tolerance.
+    fn max_fit_level(&self, target: usize, reference: f64) -> f64 {
+        let fits = |l: f64| self.half_width(target, reference, l) <= self.policy.tolerance;
+        let mut lo = f64::MIN_POSITIVE;
+        if !fits(lo) {
+            return f64::NEG_INFINITY;
+        }
+        let mut hi = 1.0f64;
+        while fits(hi) {
+            lo = hi;
+            hi *= 2.0;
+            if hi > 1e300 {
+                return f64::INFINITY;
+            }
+        }
+        loop {
+            let mid = lo + 0.5 * (hi - lo);
+            if mid <= lo || mid >= hi {
+                return lo;
+            }
+            if fits(mid) {
+                lo = mid;
+            } else {
+                hi = mid;
+            }
+        }
     }
 
     /// The policy.
@@ -912,7 +952,10 @@ impl Accountant {
                 let cost = self.policy.rule.worst_case_nats(self.policy.rows, &past, j);
                 Some(base + frac + view.transcript.nats + cost)
             },
-            |level| self.half_width(target, reference, level) <= self.policy.tolerance,
+            |level| match self.fit_level.get(target) {
+                Some(max) if reference == 0.5 => level <= *max,
+                _ => self.half_width(target, reference, level) <= self.policy.tolerance,
+            },
         );
         TargetStatus {
             name: self.policy.targets[target].name.clone(),
