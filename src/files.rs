@@ -255,16 +255,16 @@ impl<'a> Builder<'a> {
                 format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
             ));
         }
-        if !self.spec.allow_empty_values {
-            if let Some(pos) = values.iter().position(String::is_empty) {
-                return Err(self.err(
-                    line,
-                    format!(
-                        "empty value in column `{}` for id `{id}`",
-                        self.columns[pos]
-                    ),
-                ));
-            }
+        if !self.spec.allow_empty_values
+            && let Some(pos) = values.iter().position(String::is_empty)
+        {
+            return Err(self.err(
+                line,
+                format!(
+                    "empty value in column `{}` for id `{id}`",
+                    self.columns[pos]
+                ),
+            ));
         }
         self.first_line.insert(id.clone(), line);
         self.rows.push(Row { line, id, values });

@@ -96,7 +96,7 @@ async fn add_user(c: &Conn, name: &str, role: &str) -> String {
 const N: usize = 2000;
 
 fn truth(i: usize) -> &'static str {
-    if i % 4 == 0 { "x" } else { "y" }
+    if i.is_multiple_of(4) { "x" } else { "y" }
 }
 
 async fn create(c: &Conn, schedule: &str, answers: &str, tolerance: f64) {

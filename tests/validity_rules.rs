@@ -62,7 +62,14 @@ fn ids(n: usize, prefix: &str) -> Vec<String> {
 /// Labels "a"/"b" alternating, shifted by `phase` so two holdouts can differ in labels only.
 fn labels(n: usize, phase: usize) -> Vec<String> {
     (0..n)
-        .map(|i| if (i + phase) % 3 == 0 { "a" } else { "b" }.to_string())
+        .map(|i| {
+            if (i + phase).is_multiple_of(3) {
+                "a"
+            } else {
+                "b"
+            }
+            .to_string()
+        })
         .collect()
 }
 

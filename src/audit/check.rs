@@ -268,13 +268,13 @@ fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Repo
         if let Err(why) = cp.verify_signature() {
             f("signature", why);
         }
-        if let Some(k) = &opts.trusted_key {
-            if !k.eq_ignore_ascii_case(&cp.public_key) {
-                f(
-                    "public_key",
-                    format!("signed by {}, not the trusted key {k}", cp.public_key),
-                );
-            }
+        if let Some(k) = &opts.trusted_key
+            && !k.eq_ignore_ascii_case(&cp.public_key)
+        {
+            f(
+                "public_key",
+                format!("signed by {}, not the trusted key {k}", cp.public_key),
+            );
         }
         if cp.holdout != chain {
             f(

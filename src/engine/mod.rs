@@ -123,10 +123,10 @@ impl Engine {
             |r| r.get(0),
         )?;
         let head = head as u64;
-        if let Some((seq, book)) = self.accountants.get(&loaded.name) {
-            if *seq == head {
-                return Ok(book.clone());
-            }
+        if let Some((seq, book)) = self.accountants.get(&loaded.name)
+            && *seq == head
+        {
+            return Ok(book.clone());
         }
         let entries = crate::ledger::read_chain(self.store.conn(), &loaded.name)?;
         let book = account::Book::replay(&loaded.policy, &entries)?;

@@ -308,25 +308,25 @@ impl Engine {
                     return self.record_refusal(loaded, &mut book, refusal(code, msg, budget_now));
                 }
             };
-            if let Some(max) = req.max_cost_nats {
-                if quote.worst_code_nats > max {
-                    let r = refusal(
-                        RefusalReason::MaxCost.code().into(),
-                        format!(
-                            "this answer could cost up to {:.3} nats of transcript, more than \
+            if let Some(max) = req.max_cost_nats
+                && quote.worst_code_nats > max
+            {
+                let r = refusal(
+                    RefusalReason::MaxCost.code().into(),
+                    format!(
+                        "this answer could cost up to {:.3} nats of transcript, more than \
                              --max-cost {max}; nothing was charged or recorded",
-                            quote.worst_code_nats
-                        ),
-                        budget_now,
-                    );
-                    return Ok((
-                        SubmitOutcome::Refusal {
-                            record: Box::new(r),
-                            receipt: None,
-                        },
-                        None,
-                    ));
-                }
+                        quote.worst_code_nats
+                    ),
+                    budget_now,
+                );
+                return Ok((
+                    SubmitOutcome::Refusal {
+                        record: Box::new(r),
+                        receipt: None,
+                    },
+                    None,
+                ));
             }
             // Only now, with the charge decided from public facts, is anything scored.
             let target = &loaded.policy.targets[target_index];

@@ -62,10 +62,10 @@ pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64
         "ladder:0.01".to_string(),
         "sealed".to_string(),
     ] {
-        if let Ok(r) = alt.parse::<Rule>() {
-            if !rules.contains(&r) {
-                rules.push(r);
-            }
+        if let Ok(r) = alt.parse::<Rule>()
+            && !rules.contains(&r)
+        {
+            rules.push(r);
         }
     }
     let mut text = format!(

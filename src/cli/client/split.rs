@@ -314,14 +314,14 @@ pub fn run(args: &SplitArgs) -> anyhow::Result<ExitCode> {
         )
     })?;
     let path_of = |name: &str| -> PathBuf { args.out_dir.join(format!("{name}.csv")) };
-    if !args.force {
-        if let Some((name, ..)) = outputs.iter().find(|(n, ..)| path_of(n).exists()) {
-            return Err(Error::invalid(
-                path_of(name).display().to_string(),
-                "already exists; refusing to replace it (use --force)",
-            )
-            .into());
-        }
+    if !args.force
+        && let Some((name, ..)) = outputs.iter().find(|(n, ..)| path_of(n).exists())
+    {
+        return Err(Error::invalid(
+            path_of(name).display().to_string(),
+            "already exists; refusing to replace it (use --force)",
+        )
+        .into());
     }
     for (name, _, rows) in &outputs {
         let values = rows.iter().map(|&i| &table.rows[i].values);

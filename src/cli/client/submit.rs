@@ -211,14 +211,14 @@ pub async fn validate(args: &ValidateArgs) -> anyhow::Result<ExitCode> {
 /// # Errors
 /// Bad input (local or from the daemon), connection, permission, not-found and state failures.
 pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
-    if let Some(c) = args.max_cost {
-        if !(c.is_finite() && c > 0.0) {
-            return Err(Error::invalid(
-                "--max-cost",
-                format!("must be a positive number of nats, got {c}"),
-            )
-            .into());
-        }
+    if let Some(c) = args.max_cost
+        && !(c.is_finite() && c > 0.0)
+    {
+        return Err(Error::invalid(
+            "--max-cost",
+            format!("must be a positive number of nats, got {c}"),
+        )
+        .into());
     }
     let tables = args
         .predictions
