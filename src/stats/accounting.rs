@@ -252,6 +252,8 @@ pub struct Accountant {
     /// within the tolerance; empty unless the policy judges the tolerance at the worst case.
     /// Forecasts compare levels with it instead of inverting a Beta per candidate.
     fit_level: Vec<f64>,
+    /// The last reference half-width computed, by (target, reference bits, level bits).
+    last_half_width: std::cell::Cell<Option<((usize, u64, u64), f64)>>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -282,6 +284,7 @@ impl Accountant {
             analysts: BTreeMap::new(),
             pending: Vec::new(),
             fit_level: Vec::new(),
+            last_half_width: std::cell::Cell::new(None),
             policy,
         };
         if acc.policy.tolerance_reference == ToleranceReference::WorstCase {
@@ -409,16 +412,27 @@ impl Accountant {
     }
 
     fn half_width(&self, target: usize, reference: f64, level_nats: f64) -> f64 {
+        // The next query's half-width is asked for by the previous answer's forecast, by
+        // status, and by the next quote, all at the same level: remember the last one (a pure
+        // function of its key, so the cache cannot change any result).
+        let key = (target, reference.to_bits(), level_nats.to_bits());
+        if let Some((k, h)) = self.last_half_width.get()
+            && k == key
+        {
+            return h;
+        }
         let t = &self.policy.targets[target];
         let method = effective_method(t.binary, t.method);
-        reference_half_width(
+        let h = reference_half_width(
             method,
             self.policy.rows,
             reference,
             level_nats,
             self.policy.rule.sides(),
         )
-        .unwrap_or(f64::INFINITY)
+        .unwrap_or(f64::INFINITY);
+        self.last_half_width.set(Some((key, h)));
+        h
     }
 
     /// Decides whether the query is answered and at what charge; changes nothing.
