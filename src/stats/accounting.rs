@@ -253,7 +253,7 @@ pub struct Accountant {
     /// Forecasts compare levels with it instead of inverting a Beta per candidate.
     fit_level: Vec<f64>,
     /// The last reference half-width computed, by (target, reference bits, level bits).
-    last_half_width: std::cell::Cell<Option<((usize, u64, u64), f64)>>,
+    last_half_width: std::cell::Cell<Option<HalfWidthMemo>>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -978,6 +978,9 @@ impl Accountant {
         }
     }
 }
+
+/// (target, reference bits, level bits) and the half-width computed for them.
+type HalfWidthMemo = ((usize, u64, u64), f64);
 
 static EMPTY_TRANSCRIPT: Transcript = Transcript {
     nats: 0.0,
