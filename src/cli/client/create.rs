@@ -37,6 +37,8 @@ pub enum ToleranceReference {
 }
 
 /// `holdout create`.
+// The --help texts show `[:METHOD]`-style optional parts, which rustdoc would read as links.
+#[allow(rustdoc::broken_intra_doc_links)]
 #[derive(Debug, Args)]
 pub struct CreateArgs {
     /// Name of the new holdout: letters, digits, '-', '_' and '.', at most 64 characters.
@@ -141,7 +143,7 @@ pub struct TargetSpec {
 
 const METHODS: [&str; 3] = ["exact", "kl", "hoeffding"];
 
-/// Parses NAME:COLUMN:METRIC[:METHOD], where METRIC may carry its own `:PARAM`.
+/// Parses `NAME:COLUMN:METRIC[:METHOD]`, where METRIC may carry its own `:PARAM`.
 ///
 /// # Errors
 /// [`Error::InvalidArgument`] on `--target` for a malformed spec, an unknown metric or method,

@@ -1,0 +1,182 @@
+//! Budget status and forecasts: how wide the next interval would be and how many more queries
+//! fit within the tolerance if every answer costs its worst case.
+
+use super::{Accountant, PoolView, QueryRequest, Refusal, Status, TargetStatus};
+use crate::stats::policy::Sharing;
+use crate::stats::rules::Past;
+
+impl Accountant {
+    /// Budget status. With `Some(analyst)`: that analyst's pool and transcript (safe to show the
+    /// analyst; under `isolated` it reveals nothing about other analysts). With `None`: the
+    /// whole holdout, for the organizer (under `isolated` never show it to analysts).
+    pub fn status(&self, analyst: Option<&str>) -> Status {
+        let budget_of = |w: f64| (-(self.ln_inv_delta + w)).exp();
+        let targets = self.policy.targets.len();
+        match analyst {
+            None => {
+                let (budget, answers, nats) = (
+                    self.policy.delta,
+                    self.transcript.answers,
+                    self.transcript.nats,
+                );
+                let answers = if self.policy.sharing == Sharing::Isolated {
+                    self.analysts.values().map(|a| a.transcript.answers).sum()
+                } else {
+                    answers
+                };
+                Status {
+                    analyst: None,
+                    budget,
+                    spent: self.spent,
+                    remaining: (budget - self.spent).max(0.0),
+                    transcript_nats: nats,
+                    answers,
+                    next_query_number: self.pool_queries + 1,
+                    next_level_nats: None,
+                    targets: self
+                        .policy
+                        .targets
+                        .iter()
+                        .map(|t| TargetStatus {
+                            name: t.name.clone(),
+                            next_half_width: None,
+                            queries_left: 0,
+                        })
+                        .collect(),
+                }
+            }
+            Some(a) => {
+                let Ok(view) = self.view(a, 0) else {
+                    return Status {
+                        analyst: Some(a.to_string()),
+                        budget: 0.0,
+                        spent: 0.0,
+                        remaining: 0.0,
+                        transcript_nats: 0.0,
+                        answers: 0,
+                        next_query_number: 1,
+                        next_level_nats: None,
+                        targets: self
+                            .policy
+                            .targets
+                            .iter()
+                            .map(|t| TargetStatus {
+                                name: t.name.clone(),
+                                next_half_width: None,
+                                queries_left: 0,
+                            })
+                            .collect(),
+                    };
+                };
+                let budget = budget_of(view.ln_inv_weight);
+                let spent = if self.per_analyst_pool() {
+                    self.analysts.get(a).map_or(0.0, |s| s.spent)
+                } else {
+                    self.spent
+                };
+                let next_level = self
+                    .policy
+                    .schedule
+                    .ln_inv_fraction(view.used + 1)
+                    .map(|f| self.ln_inv_delta + view.ln_inv_weight + f + view.transcript.nats);
+                let per_target = (0..targets)
+                    .map(|t| {
+                        let v = self.view(a, t).expect("checked above");
+                        self.forecast(t, &v, next_level)
+                    })
+                    .collect();
+                Status {
+                    analyst: Some(a.to_string()),
+                    budget,
+                    spent,
+                    remaining: (budget - spent).max(0.0),
+                    transcript_nats: view.transcript.nats,
+                    answers: view.transcript.answers,
+                    next_query_number: view.used + 1,
+                    next_level_nats: next_level,
+                    targets: per_target,
+                }
+            }
+        }
+    }
+
+    fn forecast(
+        &self,
+        target: usize,
+        view: &PoolView<'_>,
+        next_level: Option<f64>,
+    ) -> TargetStatus {
+        let reference = self.reference_mean(view);
+        let next_half_width = next_level.map(|l| self.half_width(target, reference, l));
+        let past = Past {
+            threshold: view.transcript.kt(target),
+            ladder: view.past_ladder,
+            best_cell: view.best_cell,
+            models: 1,
+        };
+        let base = self.ln_inv_delta + view.ln_inv_weight;
+        let queries_left = count_fitting(
+            |j| {
+                let frac = self
+                    .policy
+                    .schedule
+                    .ln_inv_fraction(view.used.checked_add(1 + j)?)?;
+                let cost = self.policy.rule.worst_case_nats(self.policy.rows, &past, j);
+                Some(base + frac + view.transcript.nats + cost)
+            },
+            |level| match self.fit_level.get(target) {
+                Some(max) if reference == 0.5 => level <= *max,
+                _ => self.half_width(target, reference, level) <= self.policy.tolerance,
+            },
+        );
+        TargetStatus {
+            name: self.policy.targets[target].name.clone(),
+            next_half_width,
+            queries_left,
+        }
+    }
+
+    /// The most nats the next answer to `req` could add to the transcript, whatever its
+    /// symbol: what a dry run shows and what `--max-cost` is compared with. Decided from public
+    /// facts only.
+    pub fn worst_code_nats(&self, req: &QueryRequest) -> Result<f64, Refusal> {
+        if req.target >= self.policy.targets.len() {
+            return Err(Refusal::BadRequest(format!(
+                "target {} does not exist",
+                req.target
+            )));
+        }
+        let view = self.view(&req.analyst, req.target)?;
+        let past = Past {
+            threshold: view.transcript.kt(req.target),
+            ladder: view.past_ladder,
+            best_cell: view.best_cell,
+            models: req.models,
+        };
+        Ok(self.policy.rule.worst_case_nats(self.policy.rows, &past, 1))
+    }
+}
+
+/// How many `j = 0, 1, ...` have `fits(level(j))`, where `level` is non-decreasing in `j` and
+/// `None` once the schedule is exhausted, and `fits` is monotone (true below a threshold).
+/// Exponential then binary search; saturates at `u64::MAX`.
+pub(crate) fn count_fitting(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f64) -> bool) -> u64 {
+    let ok = |j: u64| level(j).is_some_and(&fits);
+    if !ok(0) {
+        return 0;
+    }
+    let mut lo = 0u64; // ok(lo)
+    let mut hi = 1u64;
+    while ok(hi) {
+        lo = hi;
+        if hi >= u64::MAX / 2 {
+            return u64::MAX;
+        }
+        hi *= 2;
+    }
+    while hi - lo > 1 {
+        let mid = lo + (hi - lo) / 2;
+        if ok(mid) { lo = mid } else { hi = mid }
+    }
+    lo + 1
+}
