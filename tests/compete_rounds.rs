@@ -451,3 +451,33 @@ fn identical_predictions_from_different_teams_are_reported() {
     assert_eq!(d[0].teams, ["t1", "t2"]);
     assert_eq!(d[0].entries.len(), 2);
 }
+
+/// The daemon's timer closes a round at its deadline without any call touching the holdout.
+#[test]
+fn the_deadline_timer_closes_a_round_nobody_touches() {
+    let n = 3000;
+    let mut f = fixture();
+    round_before_close(&mut f, n, 100);
+    f.clock
+        .set(Utc.with_ymd_and_hms(2026, 3, 4, 11, 59, 59).unwrap());
+    assert!(f.engine.settle_deadlines().unwrap().is_empty());
+    let kinds = |f: &mut Fixture| -> Vec<String> {
+        ledger::read_chain(f.engine.store().conn(), "final")
+            .unwrap()
+            .into_iter()
+            .map(|e| e.kind)
+            .collect()
+    };
+    assert!(!kinds(&mut f).contains(&"round".to_string()));
+    f.clock
+        .set(Utc.with_ymd_and_hms(2026, 3, 4, 12, 0, 1).unwrap());
+    assert_eq!(
+        f.engine.settle_deadlines().unwrap(),
+        vec!["final".to_string()]
+    );
+    assert!(kinds(&mut f).contains(&"round".to_string()));
+    // Settling again changes nothing.
+    let before = kinds(&mut f).len();
+    assert!(f.engine.settle_deadlines().unwrap().is_empty());
+    assert_eq!(kinds(&mut f).len(), before);
+}

@@ -76,6 +76,9 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
                 .with_context(|| format!("creating --checkpoint-dir {}", dir.display()))?;
             tokio::spawn(write_checkpoints(db.clone(), dir, args.checkpoint_every));
         }
+        // Sealed rounds close at their deadline even if nobody calls; a call that touches the
+        // holdout closes it at once anyway (the deadline is a public fact either way).
+        tokio::spawn(settle_deadlines(db.clone()));
         let listener = tokio::net::TcpListener::bind(&args.listen)
             .await
             .with_context(|| format!("listening on {}", args.listen))?;
@@ -107,6 +110,21 @@ async fn write_checkpoints(db: Db, dir: PathBuf, secs: u64) {
                 }
             }
             Err(e) => tracing::warn!(error = %e, "writing checkpoints failed"),
+        }
+    }
+}
+
+async fn settle_deadlines(db: Db) {
+    let mut tick = tokio::time::interval(std::time::Duration::from_secs(5));
+    loop {
+        tick.tick().await;
+        match db.call(|engine| engine.settle_deadlines()).await {
+            Ok(closed) => {
+                for name in closed {
+                    tracing::info!(holdout = %name, "sealed round closed at its deadline");
+                }
+            }
+            Err(e) => tracing::warn!(error = %e, "closing rounds at their deadline failed"),
         }
     }
 }

@@ -391,6 +391,33 @@ impl Engine {
         }
     }
 
+    /// Closes every sealed round whose deadline has passed, without waiting for a call that
+    /// touches it; the daemon runs this on a timer. Returns the names of the rounds it closed.
+    pub fn settle_deadlines(&mut self) -> Result<Vec<String>> {
+        let open: Vec<String> = {
+            let conn = self.store.conn();
+            let mut stmt =
+                conn.prepare("SELECT name FROM holdouts WHERE closed_at IS NULL ORDER BY name")?;
+            let rows = stmt.query_map([], |r| r.get::<_, String>(0))?;
+            rows.collect::<std::result::Result<_, _>>()?
+        };
+        let mut closed = Vec::new();
+        for name in open {
+            let loaded = self.loaded(&name)?;
+            let Some(deadline) = loaded.policy.closes_at else {
+                continue;
+            };
+            if self.now() < deadline {
+                continue;
+            }
+            self.settle(&loaded)?;
+            if self.closed_at(loaded.id)?.is_some() {
+                closed.push(name);
+            }
+        }
+        Ok(closed)
+    }
+
     /// Seals one entry: takes its share, records it, keeps its per-row losses for the close.
     #[allow(clippy::too_many_arguments)]
     pub(crate) fn seal_entry(
