@@ -532,20 +532,7 @@ impl Engine {
                 Some((entry.seq, book)),
             ))
         })();
-        match result {
-            Ok((out, book)) => {
-                self.store.conn().execute_batch("COMMIT")?;
-                if let Some((seq, book)) = book {
-                    self.remember_book(&loaded.name, seq, book);
-                }
-                Ok(out)
-            }
-            Err(e) => {
-                let _ = self.store.conn().execute_batch("ROLLBACK");
-                self.forget(&loaded.name);
-                Err(e)
-            }
-        }
+        self.finish_write(&loaded.name, result)
     }
 
     fn sealed_receipt(
@@ -584,19 +571,10 @@ impl Engine {
     ) -> Result<RoundRecord> {
         let at = rfc3339(when);
         self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
-        let result = self.close_round_inner(loaded, trigger, by, &at);
-        match result {
-            Ok((record, seq, book)) => {
-                self.store.conn().execute_batch("COMMIT")?;
-                self.remember_book(&loaded.name, seq, book);
-                Ok(record)
-            }
-            Err(e) => {
-                let _ = self.store.conn().execute_batch("ROLLBACK");
-                self.forget(&loaded.name);
-                Err(e)
-            }
-        }
+        let result = self
+            .close_round_inner(loaded, trigger, by, &at)
+            .map(|(record, seq, book)| (record, Some((seq, book))));
+        self.finish_write(&loaded.name, result)
     }
 
     fn close_round_inner(

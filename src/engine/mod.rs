@@ -140,6 +140,30 @@ impl Engine {
         self.accountants.insert(name.to_string(), (seq, book));
     }
 
+    /// Ends a write begun with `BEGIN IMMEDIATE`: on success commits and remembers the
+    /// accounting state as of the new ledger head; on failure rolls back and forgets the cached
+    /// state, so the next call replays from the ledger.
+    pub(crate) fn finish_write<T>(
+        &mut self,
+        holdout: &str,
+        result: Result<(T, Option<(u64, account::Book)>)>,
+    ) -> Result<T> {
+        match result {
+            Ok((out, book)) => {
+                self.store.conn().execute_batch("COMMIT")?;
+                if let Some((seq, book)) = book {
+                    self.remember_book(holdout, seq, book);
+                }
+                Ok(out)
+            }
+            Err(e) => {
+                let _ = self.store.conn().execute_batch("ROLLBACK");
+                self.forget(holdout);
+                Err(e)
+            }
+        }
+    }
+
     /// Forgets cached state of a holdout (after a failed transaction).
     pub(crate) fn forget(&mut self, name: &str) {
         self.accountants.remove(name);

@@ -389,19 +389,7 @@ impl Engine {
                 Some((entry.seq, book)),
             ))
         })();
-        match outcome {
-            Ok((out, book)) => {
-                self.store.conn().execute_batch("COMMIT")?;
-                if let Some((seq, book)) = book {
-                    self.remember_book(&loaded.name, seq, book);
-                }
-                Ok(out)
-            }
-            Err(e) => {
-                let _ = self.store.conn().execute_batch("ROLLBACK");
-                Err(e)
-            }
-        }
+        self.finish_write(&loaded.name, outcome)
     }
 
     pub(super) fn record_refusal(
