@@ -31,7 +31,7 @@ fn intervals(c: &mut Criterion) {
 fn accountant(c: &mut Criterion) {
     let policy: Policy = serde_json::from_str(
         r#"{"delta": 0.05, "schedule": "series", "rule": "rounded:0.01", "tolerance": 0.05,
-            "rows": 100000, "targets": [{"name": "y", "binary": true, "method": "exact"}]}"#,
+            "rows": 100000, "targets": [{"name": "y", "binary": true, "method": "exact"}], "core_version": 2}"#,
     )
     .expect("valid policy");
     let acc = Accountant::new(policy).expect("valid policy");

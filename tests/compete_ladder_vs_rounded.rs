@@ -71,7 +71,7 @@ fn trace(seed: u64) -> Vec<(String, u64)> {
 fn policy(rule: &str) -> Policy {
     serde_json::from_str(&format!(
         r#"{{"delta": 0.05, "schedule": "series", "rule": "{rule}", "tolerance": 0.025,
-            "rows": {N}, "targets": [{{"name": "y", "binary": true, "method": "exact"}}]}}"#
+            "rows": {N}, "targets": [{{"name": "y", "binary": true, "method": "exact"}}], "core_version": 2}}"#
     ))
     .unwrap()
 }

@@ -23,6 +23,7 @@ fn policy(rule: &str, schedule: &str, rows: u64, tolerance: f64) -> Policy {
             binary: true,
             method: Method::Exact,
         }],
+        core_version: holdout_ledger::stats::CORE,
     }
 }
 

@@ -100,6 +100,7 @@ fn attack_run(seed: u64, queries: usize) -> (bool, bool, f64, f64) {
             binary: true,
             method: Method::Exact,
         }],
+        core_version: holdout_ledger::stats::CORE,
     };
     let mut acc = Accountant::new(policy).unwrap();
     let req = QueryRequest {

@@ -202,7 +202,14 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
             ),
         ));
     }
-    match HoldoutPolicy::build(&policy.input, policy.targets.clone(), policy.core.rows) {
+    // The input builds today's core version; the recorded one is checked against the
+    // genesis `versions.core` below, so compare the rest.
+    let rebuilt = HoldoutPolicy::build(&policy.input, policy.targets.clone(), policy.core.rows)
+        .map(|mut p| {
+            p.core.core_version = policy.core.core_version;
+            p
+        });
+    match rebuilt {
         Ok(rebuilt) if rebuilt == policy => {}
         Ok(_) => out.push(at(
             chain,
@@ -239,17 +246,33 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
             ),
         ));
     }
-    if versions["core"].as_str() != Some(crate::stats::CORE_VERSION) {
-        out.push(at(
+    let core = versions["core"]
+        .as_str()
+        .and_then(|v| v.parse::<u32>().ok());
+    match core {
+        Some(v) if crate::stats::KNOWN_CORES.contains(&v) => {
+            if v != policy.core.core_version {
+                out.push(at(
+                    chain,
+                    g.seq,
+                    "versions.core",
+                    format!(
+                        "{v}, but the recorded policy says core {}",
+                        policy.core.core_version
+                    ),
+                ));
+            }
+        }
+        _ => out.push(at(
             chain,
             g.seq,
             "versions.core",
             format!(
-                "{}; this binary replays core {}: use the matching release to replay",
+                "{}; this binary replays cores {:?}: use the matching release to replay",
                 versions["core"],
-                crate::stats::CORE_VERSION
+                crate::stats::KNOWN_CORES
             ),
-        ));
+        )),
     }
     Some((policy, body))
 }

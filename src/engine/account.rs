@@ -225,6 +225,7 @@ impl HoldoutPolicy {
             shares,
             rows,
             targets: core_targets,
+            core_version: crate::stats::CORE,
         };
         core.validate()
             .map_err(|e| Error::invalid(e.field, e.message))?;

@@ -76,6 +76,15 @@ pub struct Policy {
     pub rows: u64,
     /// Targets (label columns), all on the same rows and the same budget.
     pub targets: Vec<TargetPolicy>,
+    /// Version of the accounting core whose numbers this holdout uses (see
+    /// [`super::CORE_VERSION`]). A policy recorded before the field existed is version 1, and
+    /// replays with version 1's numbers, so every older ledger still replays bit for bit.
+    #[serde(default = "legacy_core")]
+    pub core_version: u32,
+}
+
+fn legacy_core() -> u32 {
+    1
 }
 
 /// A policy that cannot be used, naming the offending field.
@@ -98,6 +107,16 @@ fn bad(field: &'static str, message: impl Into<String>) -> PolicyError {
 impl Policy {
     /// Checks every field; the error names the field.
     pub fn validate(&self) -> Result<(), PolicyError> {
+        if !super::KNOWN_CORES.contains(&self.core_version) {
+            return Err(bad(
+                "core_version",
+                format!(
+                    "{} is not a core this binary can replay (it knows {:?})",
+                    self.core_version,
+                    super::KNOWN_CORES
+                ),
+            ));
+        }
         if !(self.delta > 0.0 && self.delta < 1.0) {
             return Err(bad(
                 "delta",
