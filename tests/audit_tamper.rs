@@ -5,7 +5,7 @@ mod audit_support;
 
 use holdout_ledger::audit::anchor::Checkpoint;
 use holdout_ledger::audit::export::Export;
-use holdout_ledger::audit::{AuditOptions, Finding, Receipt, Report, audit};
+use holdout_ledger::audit::{AuditOptions, Finding, Receipt, Released, Report, audit};
 use holdout_ledger::engine::SubmitOutcome;
 use holdout_ledger::ledger::{self, Entry};
 use serde_json::Value;
@@ -53,12 +53,7 @@ fn a_clean_export_verifies_with_labels_checkpoint_and_receipts() {
     assert!(ex.entries.iter().any(|e| e.kind == "answer"));
     let receipt = {
         let e = &ex.entries[g.answer_entries[0] as usize];
-        Receipt {
-            holdout: g.name.clone(),
-            entry: e.seq,
-            entry_hash: e.hash.clone(),
-            salt: e.salt.clone(),
-        }
+        receipt_of(&g.name, e)
     };
     let report = run(
         &ex,
@@ -179,12 +174,7 @@ fn truncation_is_caught_by_a_checkpoint_and_a_receipt() {
     // Without an anchor, a cut chain is still a valid chain.
     assert!(plain(&cut).clean(), "{:#?}", plain(&cut).findings);
     let last = ex.entries.last().unwrap();
-    let receipt = Receipt {
-        holdout: g.name.clone(),
-        entry: last.seq,
-        entry_hash: last.hash.clone(),
-        salt: last.salt.clone(),
-    };
+    let receipt = receipt_of(&g.name, last);
     let report = run(
         &cut,
         AuditOptions {
@@ -320,7 +310,7 @@ fn refusals_are_recomputed_from_public_facts() {
             receipt: Some(r), ..
         } = g.submit(1, 70)
         {
-            refused = Some(r.entry as usize);
+            refused = Some(seq_of(&mut g, &r.entry_hash) as usize);
             break;
         }
     }
@@ -378,12 +368,7 @@ fn receipts_verify_and_forgeries_do_not() {
     let mut g = small(9);
     let ex = g.export();
     let e = &ex.entries[g.answer_entries[1] as usize];
-    let good = Receipt {
-        holdout: g.name.clone(),
-        entry: e.seq,
-        entry_hash: e.hash.clone(),
-        salt: e.salt.clone(),
-    };
+    let good = receipt_of(&g.name, e);
     let check = |r: Receipt| {
         run(
             &ex,
@@ -397,12 +382,61 @@ fn receipts_verify_and_forgeries_do_not() {
     let mut forged = good.clone();
     forged.entry_hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, "{}");
     assert!(!check(forged).clean());
-    let mut other_salt = good.clone();
-    other_salt.salt = "00".repeat(16);
+    let mut other_query = good.clone();
+    other_query.query += 1;
+    assert!(!check(other_query).clean());
+    // A receipt that came with its answer: the released symbol and interval must be the entry's.
+    let body: serde_json::Value = serde_json::from_str(&e.body).unwrap();
+    let released = Released {
+        target: body["target"].as_str().unwrap().into(),
+        symbol: body["symbol"].as_str().unwrap().into(),
+        lower: body["lower"].as_f64().unwrap(),
+        upper: body["upper"].as_f64().unwrap(),
+    };
+    let with_answer = Receipt {
+        released: Some(released.clone()),
+        ..good.clone()
+    };
+    assert!(check(with_answer.clone()).clean());
+    let mut narrower = with_answer.clone();
+    narrower.released.as_mut().unwrap().upper -= 1e-9;
+    assert!(!check(narrower).clean());
+    // 0.1.0 receipts also carried the entry's number and salt: still checked when present.
+    let old_style = Receipt {
+        entry: Some(e.seq),
+        salt: Some(e.salt.clone()),
+        ..good.clone()
+    };
+    assert!(check(old_style.clone()).clean());
+    let mut other_salt = old_style.clone();
+    other_salt.salt = Some("00".repeat(16));
     assert!(!check(other_salt).clean());
-    let mut moved = good;
-    moved.entry += 1;
+    let mut moved = old_style;
+    moved.entry = Some(e.seq + 1);
     assert!(!check(moved).clean());
+}
+
+/// The receipt the daemon hands out for an entry: holdout, the team's query number, the hash.
+fn receipt_of(holdout: &str, e: &Entry) -> Receipt {
+    let body: serde_json::Value = serde_json::from_str(&e.body).unwrap();
+    Receipt {
+        holdout: holdout.into(),
+        entry_hash: e.hash.clone(),
+        query: body["query"].as_u64().unwrap_or(0),
+        entry: None,
+        salt: None,
+        released: None,
+    }
+}
+
+fn seq_of(g: &mut Generated, hash: &str) -> u64 {
+    g.engine
+        .store()
+        .conn()
+        .query_row("SELECT seq FROM ledger WHERE hash = ?1", [hash], |r| {
+            r.get::<_, i64>(0)
+        })
+        .unwrap() as u64
 }
 
 #[test]

@@ -12,30 +12,69 @@ use super::{CANNOT_CHECK, Finding};
 use crate::engine::HoldoutPolicy;
 use crate::ledger::{self, Entry};
 
-/// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own.
-#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+/// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own. It names
+/// its entry by hash; receipts written by 0.1.0 also carry the entry's number and salt, which
+/// are checked when present.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Receipt {
     /// Holdout.
     pub holdout: String,
-    /// Entry number.
-    pub entry: u64,
     /// Entry hash.
     pub entry_hash: String,
-    /// Entry salt.
-    pub salt: String,
+    /// The team's query number (0 for a refusal, or when the receipt does not say).
+    #[serde(default)]
+    pub query: u64,
+    /// Entry number (0.1.0 receipts only).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub entry: Option<u64>,
+    /// Entry salt (0.1.0 receipts only; later receipts never carry it).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub salt: Option<String>,
+    /// What the answer released, when the receipt came with it (a whole `submit --json`
+    /// answer): checked against the entry.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub released: Option<Released>,
+}
+
+/// The released part of an answer, as its holder kept it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Released {
+    /// Target.
+    pub target: String,
+    /// Symbol.
+    pub symbol: String,
+    /// Interval, lower end.
+    pub lower: f64,
+    /// Interval, upper end.
+    pub upper: f64,
 }
 
 impl Receipt {
     /// Reads a receipt from JSON text: the receipt object, or any object holding one under
-    /// `receipt` (a whole `submit --json` answer).
+    /// `receipt` (a whole `submit --json` answer, whose released symbol and interval are kept
+    /// to be checked against the entry).
     pub fn from_json(text: &str) -> std::result::Result<Receipt, String> {
         let v: Value = serde_json::from_str(text).map_err(|e| format!("not JSON: {e}"))?;
-        let obj = if v.get("receipt").is_some_and(Value::is_object) {
-            v["receipt"].clone()
+        let (obj, released) = if v.get("receipt").is_some_and(Value::is_object) {
+            let released = match (&v["symbol"], &v["lower"], &v["upper"]) {
+                (Value::String(symbol), Value::Number(lo), Value::Number(hi)) => Some(Released {
+                    target: v["target"].as_str().unwrap_or_default().to_string(),
+                    symbol: symbol.clone(),
+                    lower: lo.as_f64().unwrap_or(f64::NAN),
+                    upper: hi.as_f64().unwrap_or(f64::NAN),
+                }),
+                _ => None,
+            };
+            (v["receipt"].clone(), released)
         } else {
-            v
+            (v, None)
         };
-        serde_json::from_value(obj).map_err(|e| format!("not a receipt: {e}"))
+        let mut r: Receipt =
+            serde_json::from_value(obj).map_err(|e| format!("not a receipt: {e}"))?;
+        if r.released.is_none() {
+            r.released = released;
+        }
+        Ok(r)
     }
 }
 
@@ -350,10 +389,11 @@ fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Repo
 fn check_receipts(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
     let chain = export.header.holdout.as_str();
     for (file, r) in &opts.receipts {
+        let found = export.entries.iter().find(|e| e.hash == r.entry_hash);
         let mut f = |field: &str, problem: String| {
             report.findings.push(Finding {
                 chain: chain.into(),
-                entry: Some(r.entry),
+                entry: found.map(|e| e.seq),
                 field: format!("receipt {file}: {field}"),
                 problem,
             })
@@ -365,39 +405,92 @@ fn check_receipts(export: &Export, opts: &AuditOptions<'_>, report: &mut Report)
             );
             continue;
         }
-        match export.entries.get(r.entry as usize) {
-            None => f(
+        let Some(e) = found else {
+            f(
+                "entry_hash",
+                format!(
+                    "no entry of this export has hash {}: the ledger was truncated or rewritten \
+                     after the receipt was issued",
+                    r.entry_hash
+                ),
+            );
+            report.receipts.push(format!("{file}: not found"));
+            continue;
+        };
+        let again = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+        if again != r.entry_hash {
+            f(
+                "entry_hash",
+                "does not match the entry's contents as exported".into(),
+            );
+        }
+        if let Some(seq) = r.entry
+            && seq != e.seq
+        {
+            f(
                 "entry",
                 format!(
-                    "the receipt names entry {} but the chain ends at entry {}: truncated",
-                    r.entry,
-                    export.entries.len() as i64 - 1
+                    "the receipt says entry {seq}, the hash is entry {}'s",
+                    e.seq
                 ),
-            ),
-            Some(e) => {
-                if e.salt != r.salt {
-                    f("salt", "differs from the entry's salt".into());
-                }
-                if e.hash != r.entry_hash {
-                    f(
-                        "entry_hash",
-                        format!(
-                            "the entry's hash is {}, the receipt says {}",
-                            e.hash, r.entry_hash
-                        ),
-                    );
-                }
-                let again = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
-                if again != r.entry_hash {
-                    f(
-                        "entry_hash",
-                        "does not match the entry's contents as exported".into(),
-                    );
-                }
-            }
+            );
         }
-        report.receipts.push(format!("{file}: entry {}", r.entry));
+        if let Some(salt) = &r.salt
+            && *salt != e.salt
+        {
+            f("salt", "differs from the entry's salt".into());
+        }
+        for problem in receipt_body_problems(e, r) {
+            f("answer", problem);
+        }
+        report
+            .receipts
+            .push(format!("{file}: entry {} ({})", e.seq, e.kind));
     }
+}
+
+/// Compares what a receipt says was released with the entry it names: the query number, and
+/// the symbol and interval when the receipt came with its answer.
+fn receipt_body_problems(e: &Entry, r: &Receipt) -> Vec<String> {
+    let mut out = Vec::new();
+    let Ok(body) = serde_json::from_str::<Value>(&e.body) else {
+        return vec!["the entry's body is not JSON".into()];
+    };
+    // A closed round's entry holds every answer of the round: find the receipt's among them.
+    let candidates: Vec<&Value> = match body.get("answers").and_then(Value::as_array) {
+        Some(answers) if e.kind == "round" => answers.iter().collect(),
+        _ => vec![&body],
+    };
+    let matches_query = |a: &&Value| r.query == 0 || a["query"].as_u64() == Some(r.query);
+    let chosen: Vec<&Value> = candidates.iter().copied().filter(matches_query).collect();
+    if chosen.is_empty() {
+        out.push(format!(
+            "the receipt says query {}, the entry records {}",
+            r.query,
+            candidates
+                .iter()
+                .filter_map(|a| a["query"].as_u64())
+                .map(|q| q.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ));
+        return out;
+    }
+    if let Some(rel) = &r.released {
+        let agrees = |a: &&Value| {
+            a["symbol"].as_str() == Some(rel.symbol.as_str())
+                && a["lower"].as_f64().map(f64::to_bits) == Some(rel.lower.to_bits())
+                && a["upper"].as_f64().map(f64::to_bits) == Some(rel.upper.to_bits())
+                && (rel.target.is_empty() || a["target"].as_str() == Some(rel.target.as_str()))
+        };
+        if !chosen.iter().any(agrees) {
+            out.push(format!(
+                "the receipt's answer ({} [{}, {}]) is not what the entry records",
+                rel.symbol, rel.lower, rel.upper
+            ));
+        }
+    }
+    out
 }
 
 /// Audits an export: every check, every discrepancy.

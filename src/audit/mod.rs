@@ -20,7 +20,7 @@ pub mod trace;
 use serde::Serialize;
 
 pub use check::{
-    AuditOptions, LabelColumns, Receipt, Report, audit, genesis_policy as check_genesis,
+    AuditOptions, LabelColumns, Receipt, Released, Report, audit, genesis_policy as check_genesis,
     labels_digest,
 };
 pub use digest::predictions_digest;

@@ -288,7 +288,9 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
             "statement": r.statement, "digest": r.digest, "at": r.at,
         },
         "guarantee": policy.guarantee(),
-        "receipt": {"holdout": args.name, "entry": entry, "entry_hash": e.hash, "salt": e.salt},
+        // The receipt names the entry by hash and never carries its salt: a certificate is
+        // handed to people who may not read exact scores.
+        "receipt": {"holdout": args.name, "query": r.query, "entry_hash": e.hash},
         "checkpoint": cp,
     });
     let text = if args.json {
@@ -300,7 +302,7 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
              predictions digest {digest}, answered {at}\n\
              policy     delta {delta}, schedule {sched}, answers {ans}, {rows} rows\n\n\
              {guarantee}\n\n\
-             receipt    entry {entry} hash {hash} salt {salt}\n\
+             receipt    {name} query {q} entry {hash}\n\
              checkpoint entry {cseq} hash {chash} at {cat}, key {key}, signature {sig}\n\
              Verify with: holdout audit EXPORT.jsonl --receipt RECEIPT --checkpoint CHECKPOINT\n",
             name = args.name,
@@ -318,9 +320,7 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
             ans = policy.input.answers,
             rows = policy.core.rows,
             guarantee = policy.guarantee(),
-            entry = entry,
             hash = e.hash,
-            salt = e.salt,
             cseq = cp.seq,
             chash = cp.head_hash,
             cat = cp.at,

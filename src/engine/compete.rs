@@ -523,10 +523,11 @@ impl Engine {
                     encode_losses(&losses)
                 ],
             )?;
+            let receipt = Receipt::of(&entry, record.query);
             Ok((
                 SubmitOutcome::Sealed {
-                    record: Box::new(record),
-                    receipt: Receipt::of(&entry),
+                    record: Box::new(team_view(record, loaded.policy.isolated())),
+                    receipt,
                     replayed: false,
                 },
                 Some((entry.seq, book)),
@@ -541,21 +542,21 @@ impl Engine {
         seq: u64,
         replayed: bool,
     ) -> Result<SubmitOutcome> {
-        let (body, hash, salt): (String, String, String) = self.store.conn().query_row(
-            "SELECT body, hash, salt FROM ledger WHERE chain = ?1 AND seq = ?2",
+        let (body, hash): (String, String) = self.store.conn().query_row(
+            "SELECT body, hash FROM ledger WHERE chain = ?1 AND seq = ?2",
             params![loaded.name, seq as i64],
-            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+            |r| Ok((r.get(0)?, r.get(1)?)),
         )?;
         let record: SealedRecord = serde_json::from_str(&body)
             .map_err(|e| Error::Internal(format!("stored sealed entry {seq}: {e}")))?;
+        let receipt = Receipt {
+            holdout: loaded.name.clone(),
+            query: record.query,
+            entry_hash: hash,
+        };
         Ok(SubmitOutcome::Sealed {
-            record: Box::new(record),
-            receipt: Receipt {
-                holdout: loaded.name.clone(),
-                entry: seq,
-                entry_hash: hash,
-                salt,
-            },
+            record: Box::new(team_view(record, loaded.policy.isolated())),
+            receipt,
             replayed,
         })
     }
@@ -893,4 +894,14 @@ impl Engine {
         self.close_round_tx(loaded, "organizer", &caller.name, now)?;
         Ok(())
     }
+}
+
+/// A sealed entry as its team sees it. Under `isolated` its position in the round would count
+/// other teams' entries (DESIGN 4.2 rule 7): the team is shown its position among its own
+/// entries instead (`query` counts per team there).
+pub(crate) fn team_view(mut record: SealedRecord, isolated: bool) -> SealedRecord {
+    if isolated {
+        record.ticket = record.query.saturating_sub(1);
+    }
+    record
 }

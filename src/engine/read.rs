@@ -142,11 +142,10 @@ impl Engine {
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut out = Vec::new();
         for e in &entries {
-            let receipt = Receipt {
+            let receipt = |query: u64| Receipt {
                 holdout: name.to_string(),
-                entry: e.seq,
+                query,
                 entry_hash: e.hash.clone(),
-                salt: e.salt.clone(),
             };
             match e.kind.as_str() {
                 "answer" => {
@@ -158,7 +157,8 @@ impl Engine {
                     if !exact {
                         r.exact = None;
                     }
-                    out.push(HistoryItem::Answer(Box::new(r), receipt));
+                    let rc = receipt(r.query);
+                    out.push(HistoryItem::Answer(Box::new(r), rc));
                 }
                 "refusal" => {
                     let r: RefusalRecord = serde_json::from_str(&e.body)
@@ -166,7 +166,7 @@ impl Engine {
                     if !see_all && r.team != caller.team {
                         continue;
                     }
-                    out.push(HistoryItem::Refusal(Box::new(r), receipt));
+                    out.push(HistoryItem::Refusal(Box::new(r), receipt(0)));
                 }
                 "sealed" => {
                     let r: super::SealedRecord = serde_json::from_str(&e.body)
@@ -174,7 +174,9 @@ impl Engine {
                     if !see_all && r.team != caller.team {
                         continue;
                     }
-                    out.push(HistoryItem::Sealed(Box::new(r), receipt));
+                    let rc = receipt(r.query);
+                    let r = super::compete::team_view(r, !see_all);
+                    out.push(HistoryItem::Sealed(Box::new(r), rc));
                 }
                 "round" => {
                     let round: super::RoundRecord = serde_json::from_str(&e.body)
@@ -186,7 +188,8 @@ impl Engine {
                         if !exact {
                             r.exact = None;
                         }
-                        out.push(HistoryItem::Answer(Box::new(r), receipt.clone()));
+                        let rc = receipt(r.query);
+                        out.push(HistoryItem::Answer(Box::new(r), rc));
                     }
                 }
                 _ => {}

@@ -63,31 +63,35 @@ pub struct SubmitRequest {
     pub mark_final: bool,
 }
 
-/// Where a ledger entry is, for the analyst to keep.
+/// What the analyst keeps of a ledger entry: the holdout, the team's own query number and the
+/// entry's hash. Never the entry's salt (with it and the hash, anyone could test each of the n+1
+/// possible exact scores, DESIGN 4.2 rule 6) and never the entry's position in the chain (under
+/// `isolated` it would count other teams' queries, rule 7). The hash names the entry: an auditor
+/// finds it in the export and recomputes it with the salt only the export holds.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Receipt {
     /// Holdout.
     pub holdout: String,
-    /// Entry number.
-    pub entry: u64,
+    /// The query number of the answer or sealed entry as its team sees it (per team under
+    /// `isolated`); 0 for a refusal, which has none.
+    pub query: u64,
     /// Entry hash.
     pub entry_hash: String,
-    /// Entry salt.
-    pub salt: String,
 }
 
 impl Receipt {
-    pub(crate) fn of(e: &Entry) -> Receipt {
+    pub(crate) fn of(e: &Entry, query: u64) -> Receipt {
         Receipt {
             holdout: e.chain.clone(),
-            entry: e.seq,
+            query,
             entry_hash: e.hash.clone(),
-            salt: e.salt.clone(),
         }
     }
 }
 
 /// The result of a submission.
+// Returned once per call and never stored in bulk, so a larger `Quote` variant costs nothing.
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Clone)]
 pub enum SubmitOutcome {
     /// Answered (or answered again at no charge when `replayed`).
@@ -380,10 +384,11 @@ impl Engine {
             self.remember_request(loaded, &team, req, &digest, entry.seq)?;
             let mut shown = record;
             shown.exact = None;
+            let receipt = Receipt::of(&entry, shown.query);
             Ok((
                 SubmitOutcome::Answer {
                     record: Box::new(shown),
-                    receipt: Receipt::of(&entry),
+                    receipt,
                     replayed: false,
                 },
                 Some((entry.seq, book)),
@@ -407,7 +412,7 @@ impl Engine {
         Ok((
             SubmitOutcome::Refusal {
                 record: Box::new(record),
-                receipt: Some(Receipt::of(&entry)),
+                receipt: Some(Receipt::of(&entry, 0)),
             },
             Some((entry.seq, book.clone())),
         ))
@@ -432,22 +437,22 @@ impl Engine {
     }
 
     fn replay_answer(&mut self, loaded: &Loaded, seq: u64) -> Result<SubmitOutcome> {
-        let (body, hash, salt): (String, String, String) = self.store.conn().query_row(
-            "SELECT body, hash, salt FROM ledger WHERE chain = ?1 AND seq = ?2",
+        let (body, hash): (String, String) = self.store.conn().query_row(
+            "SELECT body, hash FROM ledger WHERE chain = ?1 AND seq = ?2",
             params![loaded.name, seq as i64],
-            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+            |r| Ok((r.get(0)?, r.get(1)?)),
         )?;
         let mut record: AnswerRecord = serde_json::from_str(&body)
             .map_err(|e| Error::Internal(format!("stored answer {seq}: {e}")))?;
         record.exact = None;
+        let receipt = Receipt {
+            holdout: loaded.name.clone(),
+            query: record.query,
+            entry_hash: hash,
+        };
         Ok(SubmitOutcome::Answer {
             record: Box::new(record),
-            receipt: Receipt {
-                holdout: loaded.name.clone(),
-                entry: seq,
-                entry_hash: hash,
-                salt,
-            },
+            receipt,
             replayed: true,
         })
     }

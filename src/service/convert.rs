@@ -68,9 +68,8 @@ pub(super) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
 pub(super) fn receipt(r: &Receipt) -> pb::Receipt {
     pb::Receipt {
         holdout: r.holdout.clone(),
-        entry: r.entry,
+        query: r.query,
         entry_hash: r.entry_hash.clone(),
-        salt: r.salt.clone(),
     }
 }
 

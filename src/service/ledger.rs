@@ -67,12 +67,25 @@ impl Ledger for Daemon {
         &self,
         request: Request<CheckpointRequest>,
     ) -> Result<Response<SignedCheckpoint>, Status> {
-        self.caller(&request).await?;
+        let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
         let cp = self
             .db
             .call(move |engine| {
-                engine.loaded(&name)?;
+                let loaded = engine.loaded(&name)?;
+                // A checkpoint names the head's position, which counts every team's entries:
+                // under `isolated` a team must not learn how many queries the others made.
+                if loaded.policy.isolated()
+                    && !(caller.has(Role::Organizer)
+                        || caller.has(Role::Auditor)
+                        || caller.has(Role::Custodian))
+                {
+                    return Err(crate::error::Error::PermissionDenied(format!(
+                        "holdout {name} is isolated: its checkpoints count every team's \
+                         entries, so only organizers, auditors and custodians may take one; \
+                         your receipts name your entries by hash, which an auditor can check"
+                    )));
+                }
                 let at = rfc3339(engine.now());
                 anchor::checkpoint(engine.store().conn(), &name, &at)
             })

@@ -209,12 +209,17 @@ impl Submissions for Daemon {
                 Ok((items, engine.loaded(&req.holdout)?.policy.guarantee()))
             })
             .await?;
+        // Rows are numbered by their place in the caller's own view, never by their position in
+        // the chain: under `isolated` that position would count other teams' queries.
         let entries: Vec<Result<HistoryEntry, Status>> = items
             .into_iter()
-            .map(|item| {
+            .enumerate()
+            .map(|(row, item)| {
+                let row = row as u64 + 1;
                 Ok(match item {
                     HistoryItem::Answer(r, rc) => HistoryEntry {
-                        entry: rc.entry,
+                        entry: row,
+                        entry_hash: rc.entry_hash.clone(),
                         kind: "answer".into(),
                         team: r.team.clone(),
                         at: r.at.clone(),
@@ -228,7 +233,8 @@ impl Submissions for Daemon {
                         refusal: None,
                     },
                     HistoryItem::Sealed(r, rc) => HistoryEntry {
-                        entry: rc.entry,
+                        entry: row,
+                        entry_hash: rc.entry_hash.clone(),
                         kind: "sealed".into(),
                         team: r.team.clone(),
                         at: r.at.clone(),
@@ -238,7 +244,8 @@ impl Submissions for Daemon {
                         refusal: None,
                     },
                     HistoryItem::Refusal(r, rc) => HistoryEntry {
-                        entry: rc.entry,
+                        entry: row,
+                        entry_hash: rc.entry_hash.clone(),
                         kind: "refusal".into(),
                         team: r.team.clone(),
                         at: r.at.clone(),

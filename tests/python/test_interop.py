@@ -134,7 +134,7 @@ def test_submit_answers_replays_then_refuses_when_spent(setup):
     assert a.delta_i == pytest.approx(0.025) and a.level_nats == pytest.approx(math.log(40))
     assert a.code_nats == pytest.approx(math.log(101))
     assert a.digest == digest and not a.replayed and a.best_model is None
-    assert a.receipt.holdout == "tiles" and a.receipt.entry >= 1 and len(a.receipt.entry_hash) == 64
+    assert a.receipt.holdout == "tiles" and a.receipt.query == 1 and len(a.receipt.entry_hash) == 64
     assert a.budget.answered == 1 and a.budget.spent == pytest.approx(0.025)
     assert "0.05" in a.guarantee
 
@@ -150,7 +150,8 @@ def test_submit_answers_replays_then_refuses_when_spent(setup):
         client.submit("tiles", predictions(labels, 5), note="third")
     r = e.value
     assert r.reason == "budget-spent" and r.spent
-    assert r.budget.answered == 2 and r.receipt is not None and r.receipt.entry > b.receipt.entry
+    assert r.budget.answered == 2 and r.receipt is not None and r.receipt.query == 0
+    assert len(r.receipt.entry_hash) == 64 and r.receipt.entry_hash != b.receipt.entry_hash
     refusal = client.submit("tiles", predictions(labels, 5), raise_on_refusal=False)
     assert isinstance(refusal, hl.Refusal) and refusal.reason == "budget-spent"
 

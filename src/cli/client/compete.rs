@@ -354,10 +354,7 @@ pub fn sealed_text(e: &SealedEntry) -> String {
         num(e.delta_i)
     ));
     if let Some(r) = &e.receipt {
-        s.push_str(&format!(
-            "\nreceipt    entry {} hash {} salt {}",
-            r.entry, r.entry_hash, r.salt
-        ));
+        s.push_str(&format!("\nreceipt    {}", show::receipt_text(r)));
     }
     s.push_str(&format!("\nstatement  {}", e.statement));
     s.push_str(&format!("\ndigest     {}", e.digest));

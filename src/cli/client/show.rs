@@ -96,14 +96,22 @@ pub fn budget_text(b: &Budget) -> String {
     s
 }
 
+/// A receipt for people: the holdout, the query number and the entry's hash.
+pub fn receipt_text(r: &Receipt) -> String {
+    if r.query > 0 {
+        format!("{} query {} entry {}", r.holdout, r.query, r.entry_hash)
+    } else {
+        format!("{} entry {}", r.holdout, r.entry_hash)
+    }
+}
+
 /// A receipt as JSON (null when absent).
 pub fn receipt_json(r: Option<&Receipt>) -> Value {
     match r {
         Some(r) if !r.entry_hash.is_empty() => json!({
             "holdout": r.holdout,
-            "entry": r.entry,
+            "query": r.query,
             "entry_hash": r.entry_hash,
-            "salt": r.salt,
         }),
         _ => Value::Null,
     }
@@ -175,10 +183,7 @@ pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
         s.push_str(&budget_text(b));
     }
     if let Some(r) = &a.receipt {
-        s.push_str(&format!(
-            "\nreceipt    entry {} hash {} salt {}",
-            r.entry, r.entry_hash, r.salt
-        ));
+        s.push_str(&format!("\nreceipt    {}", receipt_text(r)));
     }
     if !a.statement.is_empty() {
         s.push_str(&format!("\nstatement  {}", a.statement));
@@ -212,10 +217,9 @@ pub fn refusal_text(r: &Refusal) -> String {
         s.push_str(&budget_text(b));
     }
     match &r.receipt {
-        Some(rc) if !rc.entry_hash.is_empty() => s.push_str(&format!(
-            "\nreceipt    entry {} hash {} salt {}",
-            rc.entry, rc.entry_hash, rc.salt
-        )),
+        Some(rc) if !rc.entry_hash.is_empty() => {
+            s.push_str(&format!("\nreceipt    {}", receipt_text(rc)))
+        }
         _ => s.push_str("\nnothing was recorded"),
     }
     s
@@ -372,6 +376,7 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
 pub fn history_json(e: &HistoryEntry) -> Value {
     json!({
         "entry": e.entry,
+        "entry_hash": e.entry_hash,
         "kind": e.kind,
         "team": e.team,
         "at": e.at,

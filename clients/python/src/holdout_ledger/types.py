@@ -47,12 +47,15 @@ class Budget:
 
 @dataclass(frozen=True)
 class Receipt:
-    """Proof that an answer (or refusal) is in the ledger; keep it to check against an export."""
+    """Proof that an answer (or refusal) is in the ledger; keep it to check against an export.
+
+    It names the entry by its hash and the team's own query number (0 for a refusal); it never
+    carries the entry's salt or its position in the ledger.
+    """
 
     holdout: str
-    entry: int
+    query: int
     entry_hash: str
-    salt: str
 
 
 @dataclass(frozen=True)
@@ -183,7 +186,8 @@ class HoldoutInfo:
 class HistoryEntry:
     """One released event: ``kind`` is ``"answer"`` (``answer`` set) or ``"refusal"``
     (``refusal`` set). ``exact_scores`` is filled only for ``history(..., exact=True)`` by a role
-    allowed to read exact scores (auditor; organizer once the holdout is closed)."""
+    allowed to read exact scores (auditor; organizer once the holdout is closed). ``entry`` is the
+    row's number in the history the caller sees (from 1), ``entry_hash`` names the ledger entry."""
 
     entry: int
     kind: str
@@ -193,6 +197,7 @@ class HistoryEntry:
     refusal: Optional[Refusal]
     note: str
     exact_scores: Tuple[float, ...] = field(default_factory=tuple)
+    entry_hash: str = ""
 
 
 @dataclass(frozen=True)
@@ -251,7 +256,7 @@ def _budget(m) -> Budget:
 
 
 def _receipt(m) -> Receipt:
-    return Receipt(holdout=m.holdout, entry=m.entry, entry_hash=m.entry_hash, salt=m.salt)
+    return Receipt(holdout=m.holdout, query=m.query, entry_hash=m.entry_hash)
 
 
 def _answer(m) -> Answer:
@@ -347,6 +352,7 @@ def _history_entry(m) -> HistoryEntry:
         refusal=_refusal(m.refusal) if m.HasField("refusal") else None,
         note=m.note,
         exact_scores=tuple(m.exact_scores),
+        entry_hash=m.entry_hash,
     )
 
 
