@@ -15,6 +15,10 @@ use crate::proto::v1::{
     SubmitResponse, submissions_server::Submissions, submit_chunk::Part, submit_response::Outcome,
 };
 
+/// Longest note a query may carry: notes are written to the append-only ledger and shown to
+/// other users, so they are kept short.
+pub(crate) const MAX_NOTE_CHARS: usize = 2_000;
+
 #[tonic::async_trait]
 impl Submissions for Daemon {
     async fn submit(
@@ -36,6 +40,22 @@ impl Submissions for Daemon {
             Ok(pb::SubmitMode::Validate) => SubmitMode::Validate,
             _ => return Err(Error::invalid("mode", "set the submit mode").into()),
         };
+        // 0 (the field's default) means no limit; anything else must be a finite cost.
+        if !(header.max_cost_nats.is_finite() && header.max_cost_nats >= 0.0) {
+            return Err(Error::invalid(
+                "max_cost_nats",
+                "must be a finite number of nats >= 0 (0: no limit)",
+            )
+            .into());
+        }
+        let note_chars = header.note.chars().count();
+        if note_chars > MAX_NOTE_CHARS {
+            return Err(Error::invalid(
+                "note",
+                format!("at most {MAX_NOTE_CHARS} characters, got {note_chars}"),
+            )
+            .into());
+        }
         let holdout = header.holdout.clone();
         // Rows per model are capped at the holdout's size (more is an error anyway), so a
         // runaway client cannot exhaust memory.

@@ -24,10 +24,35 @@ pub fn num(x: f64) -> String {
     }
 }
 
-/// Text columns padded to their widest cell.
+/// Widest cell a table shows; longer text (a note, a description) is cut with an ellipsis.
+pub const MAX_CELL: usize = 80;
+
+/// Text typed by a user, made safe to print on someone else's terminal: control characters
+/// (newlines, escape codes) shown escaped, and at most `max` characters, cut with an ellipsis.
+pub fn safe_text(text: &str, max: usize) -> String {
+    let mut out = String::new();
+    for (n, c) in text.chars().enumerate() {
+        if n == max {
+            out.push('…');
+            break;
+        }
+        if c.is_control() {
+            out.extend(c.escape_default());
+        } else {
+            out.push(c);
+        }
+    }
+    out
+}
+
+/// Text columns padded to their widest cell; cells are escaped and cut by [`safe_text`].
 pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
+    let rows: Vec<Vec<String>> = rows
+        .iter()
+        .map(|r| r.iter().map(|c| safe_text(c, MAX_CELL)).collect())
+        .collect();
     let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
-    for row in rows {
+    for row in &rows {
         for (w, cell) in widths.iter_mut().zip(row) {
             *w = (*w).max(cell.chars().count());
         }
@@ -41,7 +66,7 @@ pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
         padded.join("  ").trim_end().to_string()
     };
     let mut out = line(header.to_vec());
-    for row in rows {
+    for row in &rows {
         out.push('\n');
         out.push_str(&line(row.iter().map(String::as_str).collect()));
     }
@@ -352,7 +377,7 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
         h.created_at
     );
     if !h.description.is_empty() {
-        s.push_str(&format!("about      {}\n", h.description));
+        s.push_str(&format!("about      {}\n", safe_text(&h.description, 500)));
     }
     if let Some(p) = &h.policy {
         s.push_str(&format!("policy     {}\n", policy_text(p)));
@@ -458,6 +483,17 @@ mod tests {
         assert_eq!(num(1.0), "1");
         assert_eq!(num(0.0), "0");
         assert_eq!(num(2.5e-7), "2.500e-7");
+    }
+
+    #[test]
+    fn table_cells_cannot_forge_rows_or_overflow() {
+        let note = format!("ok\nforged-row\u{1b}[2J{}", "x".repeat(70_000));
+        let t = table(&["a", "b"], &[vec!["1".into(), note]]);
+        assert_eq!(t.lines().count(), 2, "{t:.200}");
+        assert!(t.contains("ok\\nforged-row\\u{1b}[2J"), "{t:.200}");
+        assert!(!t.contains('\u{1b}'));
+        assert!(t.chars().count() < 200, "long cells are cut");
+        assert!(t.ends_with('…'));
     }
 
     #[test]

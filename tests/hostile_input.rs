@@ -1,0 +1,124 @@
+//! Hostile text and numbers from one user must not charge anything, break anyone's view, or
+//! forge rows on another user's terminal.
+
+mod common;
+
+use common::{Daemon, Parts};
+use holdout_ledger::cli::client::conn::{Conn, ServerArgs};
+use holdout_ledger::proto::v1::{self as pb, SubmitChunk, SubmitHeader, submit_chunk::Part};
+
+const N: usize = 200;
+
+fn setup() -> (Daemon, String, String) {
+    let d = Daemon::start();
+    let labels = d.write("labels.csv", &Parts::new(N).labels_csv());
+    d.admin(&[
+        "create",
+        "yard",
+        "--labels",
+        &labels,
+        "--target",
+        "defect:defect:error",
+        "--classes",
+        "crack,dent,ok",
+        "--tolerance",
+        "0.5",
+        "--answers",
+        "rounded:0.05",
+    ])
+    .ok();
+    let alice = d.add_user("alice", &["analyst"], Some("blue"));
+    let bob = d.add_user("bob", &["analyst"], Some("red"));
+    (d, alice, bob)
+}
+
+fn answered(d: &Daemon, token: &str) -> u64 {
+    d.run(token, &["status", "yard", "--json"]).ok().json()["budget"]["answered"]
+        .as_u64()
+        .expect("answered")
+}
+
+#[test]
+fn long_or_forging_notes_cannot_break_or_forge_history() {
+    let (d, alice, bob) = setup();
+    let parts = Parts::new(N);
+    let f = d.write("p.csv", &parts.defect_predictions(4, 0));
+    // A 70,000-character note is refused before anything is charged.
+    let long = "n".repeat(70_000);
+    let r = d
+        .run(
+            &alice,
+            &["submit", "yard", "--predictions", &f, "--note", &long],
+        )
+        .code(2);
+    assert!(r.stderr.contains("note"), "{}", r.stderr);
+    assert_eq!(answered(&d, &alice), 0);
+    // A note with a newline and an escape code is recorded, but shown escaped on one row.
+    let forging = "fine\n1  2026-01-01T00:00:00Z  red  9  defect 0.00  [0, 0.01]\u{1b}[2J";
+    d.run(
+        &alice,
+        &["submit", "yard", "--predictions", &f, "--note", forging],
+    )
+    .ok();
+    let g = d.write("q.csv", &parts.defect_predictions(5, 1));
+    d.run(
+        &bob,
+        &["submit", "yard", "--predictions", &g, "--note", "bob's"],
+    )
+    .ok();
+    let history = d.run(&bob, &["history", "yard"]).ok().stdout;
+    assert_eq!(
+        history.lines().count(),
+        3,
+        "a header and two rows:\n{history}"
+    );
+    assert!(!history.contains('\u{1b}'), "{history}");
+    assert!(history.contains("fine\\n1"), "{history}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn max_cost_must_be_a_finite_non_negative_number() {
+    let (d, alice, _) = setup();
+    let conn = Conn::open(&ServerArgs {
+        server: d.url.clone(),
+        token: Some(alice.clone()),
+    })
+    .await
+    .expect("connect");
+    let parts = Parts::new(N);
+    let (ids, classes): (Vec<String>, Vec<String>) = parts
+        .rows
+        .iter()
+        .map(|r| (r.0.clone(), r.1.clone()))
+        .unzip();
+    for bad in [f64::NAN, -1.0, f64::INFINITY, f64::NEG_INFINITY] {
+        let chunks = vec![
+            SubmitChunk {
+                part: Some(Part::Header(SubmitHeader {
+                    holdout: "yard".into(),
+                    mode: pb::SubmitMode::Answer as i32,
+                    max_cost_nats: bad,
+                    ..Default::default()
+                })),
+            },
+            SubmitChunk {
+                part: Some(Part::Predictions(pb::PredictionChunk {
+                    model: 0,
+                    ids: ids.clone(),
+                    classes: classes.clone(),
+                    ..Default::default()
+                })),
+            },
+        ];
+        let err = conn
+            .submissions()
+            .submit(tokio_stream::iter(chunks))
+            .await
+            .expect_err("a bad max cost is refused");
+        assert_eq!(err.code(), tonic::Code::InvalidArgument, "{bad}: {err}");
+        assert!(err.message().contains("max_cost_nats"), "{err}");
+    }
+    let status = d.run(&alice, &["status", "yard", "--json"]).ok().json();
+    assert_eq!(status["budget"]["answered"], 0, "nothing was charged");
+    assert_eq!(status["budget"]["refused"], 0, "nothing was recorded");
+}
