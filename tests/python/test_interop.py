@@ -39,7 +39,8 @@ def setup(daemon):
     labels = tiles()
     with hl.connect(daemon.url, daemon.admin) as admin:
         info = admin.create_holdout(
-            "tiles", labels, metric="error", method="exact", delta=0.05, schedule="even:2",
+            "tiles", labels, metric="error", method="exact", classes=CLASSES, delta=0.05,
+            schedule="even:2",
             answers="rounded:0.01", tolerance=0.2, description="invented tile inspections",
         )
     token = daemon.add_user("ines", "analyst", team="kiln")
@@ -173,7 +174,7 @@ def test_auth_not_found_and_unreachable(setup):
         client.status("no-such-holdout")
     assert e.value.exit_code == 5 and isinstance(e.value, LookupError)
     with pytest.raises(hl.NotAuthorized) as e:
-        client.create_holdout("more-tiles", tiles())  # an analyst is not a custodian
+        client.create_holdout("more-tiles", tiles(), classes=CLASSES)  # not a custodian
     assert e.value.code == grpc.StatusCode.PERMISSION_DENIED and isinstance(e.value, PermissionError)
     with hl.connect(daemon.url, "not-a-token") as stranger:
         with pytest.raises(hl.NotAuthorized) as e:
@@ -196,7 +197,8 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
     path = tmp_path / "labels.csv"
     labels.to_csv(path, index=False)
     daemon.cli(daemon.admin, "create", "cli-tiles", "--labels", str(path), "--metric", "error",
-               "--delta", "0.05", "--answers", "rounded:0.01", "--tolerance", "0.2", check=0)
+               "--classes", ",".join(CLASSES), "--delta", "0.05", "--answers", "rounded:0.01",
+               "--tolerance", "0.2", check=0)
     frame = predictions(labels, 8)
     pred_path = tmp_path / "preds.csv"
     frame.to_csv(pred_path, index=False)
@@ -206,14 +208,14 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
         assert admin.validate("cli-tiles", frame).digest == cli["digest"]
         assert admin.holdout("cli-tiles").targets[0].classes == tuple(CLASSES)
         with pytest.raises(hl.StateConflict):  # the same rows again
-            admin.create_holdout("cli-tiles", labels)
+            admin.create_holdout("cli-tiles", labels, classes=CLASSES)
 
 
 def test_ladder_leaderboard(daemon):
     labels = tiles()
     with hl.connect(daemon.url, daemon.admin) as admin:
-        admin.create_holdout("tiles-ladder", labels, metric="error", answers="ladder:0.01",
-                             tolerance=0.2)
+        admin.create_holdout("tiles-ladder", labels, metric="error", classes=CLASSES,
+                             answers="ladder:0.01", tolerance=0.2)
     teams = {"kiln": 10, "glaze": 4}  # error 0.10 and 0.25
     for team, every in teams.items():
         with hl.connect(daemon.url, daemon.add_user(f"{team}-1", "analyst", team=team)) as c:
