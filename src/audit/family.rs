@@ -380,8 +380,8 @@ mod tests {
     use super::*;
     use proptest::prelude::*;
 
-    /// Exact value of a positive double in units of 2^-1100 would need big integers; shares of
-    /// at least 2^-60 fit in units of 2^-112 (mantissa 53 bits, exponent >= -60) inside an i128.
+    /// A double in [2^-60, 2) as an exact integer count of 2^-112 (its 53-bit mantissa shifted
+    /// by its exponent fits in an i128): an independent, obviously exact reference sum.
     fn fixed(x: f64) -> i128 {
         assert!(x >= 2f64.powi(-60) && x < 2.0);
         let bits = x.to_bits();
@@ -401,8 +401,9 @@ mod tests {
         assert!(!shares_fit(&[0.1, 0.2], 0.3));
         // 0.01 + 0.02 rounds to exactly 0.03, yet Fraction(0.01) + Fraction(0.02) >
         // Fraction(0.03) (Python fractions): the rounded sum would accept, the exact one refuses.
-        assert!(0.01 + 0.02 <= 0.03_f64);
-        assert!(!shares_fit(&[0.01, 0.02], 0.03));
+        let (a, b, t) = (std::hint::black_box(0.01_f64), 0.02_f64, 0.03_f64);
+        assert!(a + b <= t, "the rounded sum fits");
+        assert!(!shares_fit(&[a, b], t));
         // And 0.7 + 0.1 rounds below 0.8 while the exact sum is below it too (fits).
         assert!(shares_fit(&[0.7, 0.1], 0.8));
         assert!(shares_fit(&[0.025, 0.025], 0.05));

@@ -327,9 +327,9 @@ fn join_family(
         return Err(Error::FailedPrecondition(format!(
             "family {} has total delta {total}; its {members} member(s) already hold shares \
              summing to {taken}, so a share (--delta) of {share} would sum past the total. \
-             Nothing was stored. Give a smaller --delta (at most what is left: about {})",
+             Nothing was stored. Give a smaller --delta (at most what is left, about {})",
             f.name,
-            (total - taken).max(0.0)
+            round_down((total - taken).max(0.0))
         )));
     }
     Ok(Membership {
@@ -337,6 +337,15 @@ fn join_family(
         share,
         total,
     })
+}
+
+/// A positive number rounded down to 6 significant digits, for messages.
+fn round_down(x: f64) -> f64 {
+    if x <= 0.0 || !x.is_finite() {
+        return 0.0;
+    }
+    let scale = 10f64.powi(5 - x.log10().floor() as i32);
+    (x * scale).floor() / scale
 }
 
 /// Checks every label of a target against its declared domain before anything is stored,
