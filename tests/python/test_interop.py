@@ -230,3 +230,30 @@ def test_ladder_leaderboard(daemon):
     with hl.connect(daemon.url, daemon.admin) as organizer:
         with pytest.raises(hl.NotFound):
             organizer.leaderboard("no-such-ladder")
+
+
+def test_error_holdouts_need_declared_classes_and_families_cap_shares(daemon):
+    labels = tiles()
+    first, second, third = labels.iloc[:100], labels.iloc[100:200], labels.iloc[200:300]
+    with hl.connect(daemon.url, daemon.admin) as admin:
+        # No classes: refused by the client before anything is sent (the label domain is declared).
+        with pytest.raises(hl.InvalidInput) as e:
+            admin.create_holdout("no-classes", first)
+        assert "classes" in str(e.value) and e.value.exit_code == 2
+        assert admin.holdouts() == []
+        # A label outside the declared classes: refused by the daemon, naming target and row id.
+        with pytest.raises(hl.InvalidInput) as e:
+            admin.create_holdout("narrow", first, classes=["sound"])
+        assert "target label" in str(e.value) and "tile-0" in str(e.value)
+        assert admin.holdouts() == []
+        # A family: the first member fixes the total; a share past it is refused, nothing stored.
+        a = admin.create_holdout("fam-a", first, classes=CLASSES, delta=0.02, family="batch",
+                                 family_delta=0.05)
+        assert a.policy.delta == pytest.approx(0.02)
+        admin.create_holdout("fam-b", second, classes=CLASSES, delta=0.03, family="batch")
+        with pytest.raises(hl.StateConflict) as e:
+            admin.create_holdout("fam-c", third, classes=CLASSES, delta=0.01, family="batch")
+        assert "sum past the total" in str(e.value)
+        assert sorted(h.name for h in admin.holdouts()) == ["fam-a", "fam-b"]
+        with pytest.raises(hl.InvalidInput):
+            admin.create_holdout("fam-d", third, classes=CLASSES, family_delta=0.05)
