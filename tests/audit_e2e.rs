@@ -80,6 +80,8 @@ fn setup() -> Setup {
         &labels,
         "--target",
         "defect:defect:error",
+        "--classes",
+        "crack,dent,ok",
         "--target",
         "cost:cost:abs_error:100:hoeffding",
         "--tolerance",

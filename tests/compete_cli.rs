@@ -19,6 +19,8 @@ fn create(d: &Daemon, name: &str, answers: &str, extra: &[&str]) {
         &labels,
         "--metric",
         "error",
+        "--classes",
+        "crack,dent,ok",
         "--label-column",
         "defect",
         "--answers",

@@ -85,6 +85,7 @@ async fn no_read_path_returns_labels() {
                         ..Default::default()
                     }],
                     description: String::new(),
+                    ..Default::default()
                 })),
             },
             CreateHoldoutChunk {

@@ -121,6 +121,7 @@ async fn create(c: &Conn, schedule: &str, answers: &str, tolerance: f64) {
                     classes: vec!["x".into(), "y".into()],
                 }],
                 description: String::new(),
+                ..Default::default()
             })),
         },
         CreateHoldoutChunk {

@@ -9,11 +9,13 @@
 //! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
 //! | replay of every answer and refusal | `replay` ([`QuerySummary`]) |
 //! | `--find`, re-scoring, what-if replays | [`trace`] |
+//! | families: shares of one total delta, checked across exports | [`family`] |
 
 pub mod anchor;
 mod check;
 mod digest;
 pub mod export;
+pub mod family;
 mod replay;
 pub mod trace;
 

@@ -33,7 +33,8 @@ fails) and the checkpoint signatures; (2) replays every answer and refusal with 
 accounting core and compares every charge, level, symbol, interval, code and budget field; \
 (3) with --labels and --predictions, re-scores the prediction files found in the ledger; (4) \
 that refusals and quotas follow from public facts (the decision is recomputed; no exact score \
-in a refusal). Every discrepancy is listed with its entry number and field. Exit 0 when clean, \
+in a refusal); (5) with --family, audits the other members' exports too and checks that the \
+family's members agree on its total and that their shares sum to at most it. Every discrepancy is listed with its entry number and field. Exit 0 when clean, \
 8 when anything was found, 2 for unreadable input.";
 
 /// Audit commands.
@@ -141,6 +142,11 @@ pub struct AuditArgs {
     /// Replay the same queries under this schedule instead (series, even:K).
     #[arg(long, value_name = "SCHEDULE")]
     pub what_if_schedule: Option<String>,
+    /// Another member's export of this holdout's family (repeatable): each is audited too, and
+    /// the members must agree on the family's total, each share must be the member's own delta,
+    /// and the shares must sum to at most the total.
+    #[arg(long = "family", value_name = "EXPORT")]
+    pub family: Vec<PathBuf>,
     /// Print one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -445,6 +451,15 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
         b.finish_and_clear();
     }
     let mut extra = serde_json::Map::new();
+    let mut members = Vec::new();
+    for p in &args.family {
+        members.push((p.display().to_string(), Export::read(p)?));
+    }
+    let (family_findings, family) = audit::family::audit_members(&export, &members);
+    report.findings.extend(family_findings);
+    if !family.is_null() {
+        extra.insert("family".into(), family);
+    }
     let mut scratch = Vec::new();
     if let Some((policy, _)) = audit::check_genesis(&export, &mut scratch) {
         let mut found = Vec::new();
@@ -600,6 +615,11 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
                 x["actual"].as_str().unwrap_or(""),
                 x["would_be"].as_str().unwrap_or("")
             );
+        }
+    }
+    if let Some(f) = extra.get("family") {
+        for line in audit::family::text_lines(f) {
+            println!("{line}");
         }
     }
     println!("\nwhat this audit cannot check:");

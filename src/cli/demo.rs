@@ -144,6 +144,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
                 classes: vec!["late".into(), "on-time".into()],
             }],
             description: "Invented shipments of the Kestrel Parcel Cooperative, 2026".into(),
+            ..Default::default()
         })),
     }];
     for (id_part, label_part) in ids.chunks(8192).zip(labels.chunks(8192)) {

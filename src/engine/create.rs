@@ -10,6 +10,7 @@ use sha2::{Digest, Sha256};
 
 use super::account::{HoldoutPolicy, PolicyInput};
 use super::{Engine, Loaded, unknown_holdout};
+use crate::audit::family::Membership;
 use crate::auth::{Caller, Role, check_name, rfc3339};
 use crate::error::{Error, Result};
 use crate::ledger;
@@ -47,6 +48,31 @@ pub struct CreateRequest {
     pub columns: Vec<Vec<String>>,
 }
 
+/// Membership asked for at creation: the holdout joins family `name`, its own delta being its
+/// share of the family's total. The first member fixes the total (`total` must be given); later
+/// members may omit it or must repeat it exactly.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FamilyRequest {
+    /// Family name (letters, digits, '-', '_' and '.', at most 64 characters).
+    pub name: String,
+    /// The family's total delta; required for the first member.
+    pub total: Option<f64>,
+}
+
+/// Longest label value or row id quoted whole in an error message; longer ones are cut.
+const QUOTE_MAX: usize = 40;
+
+/// A value for an error message: quoted, cut after [`QUOTE_MAX`] characters with its length
+/// stated, so a huge cell never comes back whole.
+fn quote(v: &str) -> String {
+    if v.chars().count() <= QUOTE_MAX {
+        format!("{v:?}")
+    } else {
+        let head: String = v.chars().take(QUOTE_MAX).collect();
+        format!("{head:?}... ({} bytes)", v.len())
+    }
+}
+
 /// Versions recorded in every genesis entry, so later binaries replay with the right rules.
 pub(crate) fn versions() -> serde_json::Value {
     json!({
@@ -63,8 +89,31 @@ impl Engine {
         caller: &Caller,
         req: CreateRequest,
     ) -> Result<super::HoldoutView> {
+        self.create_family_member(caller, req, None)
+    }
+
+    /// Creates a holdout (custodian), as a member of a family when `family` is given: its own
+    /// delta is then its share of the family's total, and a share that would make the members'
+    /// shares sum past the total is refused with nothing stored.
+    pub fn create_family_member(
+        &mut self,
+        caller: &Caller,
+        req: CreateRequest,
+        family: Option<FamilyRequest>,
+    ) -> Result<super::HoldoutView> {
         caller.require("creating a holdout", &[Role::Custodian])?;
         check_name("holdout name", &req.name)?;
+        if let Some(f) = &family {
+            check_name("family name", &f.name)?;
+            if let Some(t) = f.total
+                && !(t > 0.0 && t < 1.0)
+            {
+                return Err(Error::invalid(
+                    "family delta",
+                    format!("the family's total delta must lie in (0, 1), got {t}"),
+                ));
+            }
+        }
         if req.ids.is_empty() {
             return Err(Error::invalid("labels", "no label rows were sent"));
         }
@@ -95,6 +144,7 @@ impl Engine {
             .map(|c| order.iter().map(|&i| c[i].trim().to_string()).collect())
             .collect();
         for (t, col) in policy.targets.iter().zip(&columns) {
+            check_domain(t, col, &ids)?;
             parse_labels(&t.metric, &t.classes, col, &ids)?;
         }
         let labels_digest = labels_digest(&policy, &columns);
@@ -149,6 +199,10 @@ impl Engine {
                 }
             }
         }
+        let membership = match &family {
+            Some(f) => Some(join_family(&tx, f, policy.input.delta, &at)?),
+            None => None,
+        };
         let policy_json = serde_json::to_string(&policy)
             .map_err(|e| Error::Internal(format!("policy encoding: {e}")))?;
         tx.execute(
@@ -166,6 +220,12 @@ impl Engine {
             ],
         )?;
         let holdout_id = tx.last_insert_rowid();
+        if let Some(m) = &membership {
+            tx.execute(
+                "INSERT INTO family_members (holdout_id, family, share) VALUES (?1, ?2, ?3)",
+                params![holdout_id, m.name, m.share],
+            )?;
+        }
         {
             let mut ins = tx.prepare_cached(
                 "INSERT INTO holdout_rows (row_id, holdout_id, pos) VALUES (?1, ?2, ?3)",
@@ -182,7 +242,7 @@ impl Engine {
                 params![holdout_id, t as i64, blob],
             )?;
         }
-        let genesis = json!({
+        let mut genesis = json!({
             "holdout": req.name,
             "description": req.description,
             "rows": ids.len(),
@@ -196,12 +256,117 @@ impl Engine {
             "created_by": caller.name,
             "at": at,
         });
+        // Additive: a genesis without a family (every one written before families existed)
+        // reads as "no family".
+        if let Some(m) = &membership {
+            genesis["family"] = m.to_json();
+        }
         let entry = ledger::append(&tx, &req.name, "genesis", &genesis)?;
         tx.commit()?;
         tracing::info!(holdout = %req.name, rows = ids.len(), by = %caller.name, "created holdout");
         let _ = entry;
         self.holdout_view(caller, &req.name)
     }
+}
+
+/// Joins (or founds) a family inside the creating transaction: checks the total against the
+/// recorded one and that the shares, this one included, sum to at most the total (exactly).
+fn join_family(
+    tx: &rusqlite::Transaction<'_>,
+    f: &FamilyRequest,
+    share: f64,
+    at: &str,
+) -> Result<Membership> {
+    let recorded: Option<f64> = tx
+        .query_row(
+            "SELECT total_delta FROM families WHERE name = ?1",
+            [&f.name],
+            |r| r.get(0),
+        )
+        .optional()?;
+    let total = match (recorded, f.total) {
+        (None, None) => {
+            return Err(Error::invalid(
+                "family delta",
+                format!(
+                    "family {} does not exist yet: its first member fixes the family's total \
+                     delta (give --family-delta TOTAL; each member's --delta is its share)",
+                    f.name
+                ),
+            ));
+        }
+        (None, Some(t)) => {
+            tx.execute(
+                "INSERT INTO families (name, total_delta, created_at) VALUES (?1, ?2, ?3)",
+                params![f.name, t, at],
+            )?;
+            t
+        }
+        (Some(r), None) => r,
+        (Some(r), Some(t)) if r == t => r,
+        (Some(r), Some(t)) => {
+            return Err(Error::invalid(
+                "family delta",
+                format!(
+                    "family {} has total delta {r}, fixed by its first member; {t} was given \
+                     (omit --family-delta, or give exactly {r})",
+                    f.name
+                ),
+            ));
+        }
+    };
+    let mut shares: Vec<f64> = {
+        let mut stmt = tx.prepare_cached("SELECT share FROM family_members WHERE family = ?1")?;
+        stmt.query_map([&f.name], |r| r.get::<_, f64>(0))?
+            .collect::<std::result::Result<_, _>>()?
+    };
+    let members = shares.len();
+    shares.push(share);
+    if !crate::audit::family::shares_fit(&shares, total) {
+        let taken: f64 = shares[..members].iter().sum();
+        return Err(Error::FailedPrecondition(format!(
+            "family {} has total delta {total}; its {members} member(s) already hold shares \
+             summing to {taken}, so a share (--delta) of {share} would sum past the total. \
+             Nothing was stored. Give a smaller --delta (at most what is left, about {})",
+            f.name,
+            round_down((total - taken).max(0.0))
+        )));
+    }
+    Ok(Membership {
+        name: f.name.clone(),
+        share,
+        total,
+    })
+}
+
+/// A positive number rounded down to 6 significant digits, for messages.
+fn round_down(x: f64) -> f64 {
+    if x <= 0.0 || !x.is_finite() {
+        return 0.0;
+    }
+    let scale = 10f64.powi(5 - x.log10().floor() as i32);
+    (x * scale).floor() / scale
+}
+
+/// Checks every label of a target against its declared domain before anything is stored,
+/// naming the target and the row id (both cut short when long) of the first label outside it.
+fn check_domain(t: &TargetDecl, col: &[String], ids: &[String]) -> Result<()> {
+    if !(t.metric.uses_classes() || t.metric.fixed_classes().is_some()) {
+        return Ok(());
+    }
+    for (v, id) in col.iter().zip(ids) {
+        if !t.classes.iter().any(|c| c == v) {
+            return Err(Error::invalid(
+                format!("labels of target {}", t.name),
+                format!(
+                    "row id {} has label {}, which is not among the declared classes",
+                    quote(id),
+                    quote(v)
+                ),
+            ));
+        }
+    }
+    Ok(())
 }
 
 fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Vec<TargetDecl>> {
@@ -220,7 +385,7 @@ fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Ve
     }
     let mut seen = HashSet::new();
     let mut out = Vec::with_capacity(targets.len());
-    for (mut t, col) in targets.into_iter().zip(columns) {
+    for mut t in targets {
         check_name("target name", &t.name)?;
         if !seen.insert(t.name.clone()) {
             return Err(Error::invalid(
@@ -253,8 +418,15 @@ fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Ve
         if let Some(fixed) = t.metric.fixed_classes() {
             t.classes = fixed;
         } else if t.metric.uses_classes() {
+            // The label domain is a declaration: read from the labels, it would publish which
+            // classes occur (a rare class that is absent, say) through everything built on it.
             if t.classes.is_empty() {
-                t.classes = crate::metric::observed_classes(col);
+                return Err(Error::invalid(
+                    format!("classes of target {}", t.name),
+                    "an `error` target needs its declared classes: the label domain is public \
+                     and must be stated, not read from the labels (CLI: --classes A,B,...; gRPC: \
+                     Target.classes; Python: classes=[...])",
+                ));
             }
             let mut uniq = HashSet::new();
             for c in &t.classes {

@@ -26,7 +26,7 @@ pub use clock::{Clock, FixedClock, SystemClock};
 pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
 };
-pub use create::{CreateRequest, TargetDecl};
+pub use create::{CreateRequest, FamilyRequest, TargetDecl};
 pub use read::{HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, RankedEntry, RefusalRecord, RoundRecord, SealedRecord,

@@ -7,7 +7,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::{Daemon, convert};
 use crate::auth::Role;
-use crate::engine::{CreateRequest, PolicyInput, TargetDecl};
+use crate::engine::{CreateRequest, FamilyRequest, PolicyInput, TargetDecl};
 use crate::error::Error;
 use crate::metric::Metric;
 use crate::proto::v1::{
@@ -53,6 +53,21 @@ impl Holdouts for Daemon {
             _ => {
                 return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
             }
+        };
+        let family = if spec.family.is_empty() {
+            if spec.family_delta != 0.0 {
+                return Err(Error::invalid(
+                    "family_delta",
+                    "a family total was given without a family name",
+                )
+                .into());
+            }
+            None
+        } else {
+            Some(FamilyRequest {
+                name: spec.family.clone(),
+                total: (spec.family_delta != 0.0).then_some(spec.family_delta),
+            })
         };
         let mut targets = Vec::with_capacity(spec.targets.len());
         for t in &spec.targets {
@@ -109,7 +124,7 @@ impl Holdouts for Daemon {
         };
         let view = self
             .db
-            .call(move |engine| engine.create_holdout(&caller, req))
+            .call(move |engine| engine.create_family_member(&caller, req, family))
             .await?;
         Ok(Response::new(convert::holdout(&view)))
     }

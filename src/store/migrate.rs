@@ -19,6 +19,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0003_sealed_entries",
         include_str!("../../migrations/0003_sealed_entries.sql"),
     ),
+    (
+        "0004_families",
+        include_str!("../../migrations/0004_families.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

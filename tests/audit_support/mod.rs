@@ -80,7 +80,7 @@ impl Generated {
                         column: "label".into(),
                         metric: "error".parse().unwrap(),
                         method: String::new(),
-                        classes: vec![],
+                        classes: vec!["0".into(), "1".into()],
                     }],
                     ids: ids.clone(),
                     columns: vec![labels.clone()],

@@ -8,7 +8,7 @@ import textwrap
 
 import holdout_ledger as hl
 
-from test_interop import predictions, tiles
+from test_interop import CLASSES, predictions, tiles
 
 # The gate of the README, verbatim: exit 0 on pass, 1 on fail, 3 when refused.
 GATE = textwrap.dedent('''
@@ -44,7 +44,7 @@ SHELL_GATE = textwrap.dedent('''
 
 def make_gate(daemon, schedule="series"):
     with hl.connect(daemon.url, daemon.admin) as admin:
-        admin.create_holdout("release-gate", tiles(), metric="error", delta=0.05,
+        admin.create_holdout("release-gate", tiles(), metric="error", classes=CLASSES, delta=0.05,
                              schedule=schedule, answers="threshold:0.2", tolerance=0.2)
     return daemon.add_user("ci-bot", "analyst")
 

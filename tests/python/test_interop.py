@@ -39,7 +39,8 @@ def setup(daemon):
     labels = tiles()
     with hl.connect(daemon.url, daemon.admin) as admin:
         info = admin.create_holdout(
-            "tiles", labels, metric="error", method="exact", delta=0.05, schedule="even:2",
+            "tiles", labels, metric="error", method="exact", classes=CLASSES, delta=0.05,
+            schedule="even:2",
             answers="rounded:0.01", tolerance=0.2, description="invented tile inspections",
         )
     token = daemon.add_user("ines", "analyst", team="kiln")
@@ -174,7 +175,7 @@ def test_auth_not_found_and_unreachable(setup):
         client.status("no-such-holdout")
     assert e.value.exit_code == 5 and isinstance(e.value, LookupError)
     with pytest.raises(hl.NotAuthorized) as e:
-        client.create_holdout("more-tiles", tiles())  # an analyst is not a custodian
+        client.create_holdout("more-tiles", tiles(), classes=CLASSES)  # not a custodian
     assert e.value.code == grpc.StatusCode.PERMISSION_DENIED and isinstance(e.value, PermissionError)
     with hl.connect(daemon.url, "not-a-token") as stranger:
         with pytest.raises(hl.NotAuthorized) as e:
@@ -197,7 +198,8 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
     path = tmp_path / "labels.csv"
     labels.to_csv(path, index=False)
     daemon.cli(daemon.admin, "create", "cli-tiles", "--labels", str(path), "--metric", "error",
-               "--delta", "0.05", "--answers", "rounded:0.01", "--tolerance", "0.2", check=0)
+               "--classes", ",".join(CLASSES), "--delta", "0.05", "--answers", "rounded:0.01",
+               "--tolerance", "0.2", check=0)
     frame = predictions(labels, 8)
     pred_path = tmp_path / "preds.csv"
     frame.to_csv(pred_path, index=False)
@@ -207,14 +209,14 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
         assert admin.validate("cli-tiles", frame).digest == cli["digest"]
         assert admin.holdout("cli-tiles").targets[0].classes == tuple(CLASSES)
         with pytest.raises(hl.StateConflict):  # the same rows again
-            admin.create_holdout("cli-tiles", labels)
+            admin.create_holdout("cli-tiles", labels, classes=CLASSES)
 
 
 def test_ladder_leaderboard(daemon):
     labels = tiles()
     with hl.connect(daemon.url, daemon.admin) as admin:
-        admin.create_holdout("tiles-ladder", labels, metric="error", answers="ladder:0.01",
-                             tolerance=0.2)
+        admin.create_holdout("tiles-ladder", labels, metric="error", classes=CLASSES,
+                             answers="ladder:0.01", tolerance=0.2)
     teams = {"kiln": 10, "glaze": 4}  # error 0.10 and 0.25
     for team, every in teams.items():
         with hl.connect(daemon.url, daemon.add_user(f"{team}-1", "analyst", team=team)) as c:
@@ -229,3 +231,30 @@ def test_ladder_leaderboard(daemon):
     with hl.connect(daemon.url, daemon.admin) as organizer:
         with pytest.raises(hl.NotFound):
             organizer.leaderboard("no-such-ladder")
+
+
+def test_error_holdouts_need_declared_classes_and_families_cap_shares(daemon):
+    labels = tiles()
+    first, second, third = labels.iloc[:100], labels.iloc[100:200], labels.iloc[200:300]
+    with hl.connect(daemon.url, daemon.admin) as admin:
+        # No classes: refused by the client before anything is sent (the label domain is declared).
+        with pytest.raises(hl.InvalidInput) as e:
+            admin.create_holdout("no-classes", first)
+        assert "classes" in str(e.value) and e.value.exit_code == 2
+        assert admin.holdouts() == []
+        # A label outside the declared classes: refused by the daemon, naming target and row id.
+        with pytest.raises(hl.InvalidInput) as e:
+            admin.create_holdout("narrow", first, classes=["sound"])
+        assert "target label" in str(e.value) and "tile-0" in str(e.value)
+        assert admin.holdouts() == []
+        # A family: the first member fixes the total; a share past it is refused, nothing stored.
+        a = admin.create_holdout("fam-a", first, classes=CLASSES, delta=0.02, family="batch",
+                                 family_delta=0.05)
+        assert a.policy.delta == pytest.approx(0.02)
+        admin.create_holdout("fam-b", second, classes=CLASSES, delta=0.03, family="batch")
+        with pytest.raises(hl.StateConflict) as e:
+            admin.create_holdout("fam-c", third, classes=CLASSES, delta=0.01, family="batch")
+        assert "sum past the total" in str(e.value)
+        assert sorted(h.name for h in admin.holdouts()) == ["fam-a", "fam-b"]
+        with pytest.raises(hl.InvalidInput):
+            admin.create_holdout("fam-d", third, classes=CLASSES, family_delta=0.05)

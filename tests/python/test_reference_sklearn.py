@@ -53,7 +53,8 @@ def test_daemon_error_and_interval_match_sklearn_and_statsmodels(daemon):
 
     with hl.connect(daemon.url, daemon.admin) as custodian:
         info = custodian.create_holdout(
-            "bc-holdout", y_hold, ids=ids_hold, metric="error", method="exact", delta=DELTA,
+            "bc-holdout", y_hold, ids=ids_hold, metric="error", method="exact",
+            classes=["0", "1"], delta=DELTA,
             schedule="series", answers=f"rounded:1/{n}", tolerance=0.5,
             description="scikit-learn breast cancer rows held out from training",
         )

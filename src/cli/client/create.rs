@@ -12,7 +12,7 @@ use super::conn::{Conn, ServerArgs};
 use super::{CHUNK_ROWS, show};
 use crate::error::{Error, Result};
 use crate::files::{self, DEFAULT_MAX_FILE_BYTES, Table, TableSpec};
-use crate::metric::{self, Metric};
+use crate::metric::Metric;
 use crate::proto::v1::{
     CreateHoldoutChunk, HoldoutSpec, LabelColumn, LabelRows, Policy, Target,
     create_holdout_chunk::Part,
@@ -66,13 +66,25 @@ pub struct CreateArgs {
     /// The label column, with --metric.
     #[arg(long, default_value = "label")]
     pub label_column: String,
-    /// Declared classes of `error` targets (comma-separated) [default: the classes observed in
-    /// the file]. Brier and log_loss labels are always 0 and 1.
+    /// Declared classes of `error` targets (comma-separated), required for them: the label
+    /// domain is public, so it is stated here, never read from the labels (which would publish,
+    /// say, that a rare class is absent). Every label must be one of them. Brier and log_loss
+    /// labels are always 0 and 1.
     #[arg(long, value_delimiter = ',', value_name = "A,B,...")]
     pub classes: Option<Vec<String>>,
-    /// Total failure probability of every interval this holdout will ever report.
+    /// Total failure probability of every interval this holdout will ever report (with
+    /// --family: this holdout's share of the family's total).
     #[arg(long, default_value_t = 0.05)]
     pub delta: f64,
+    /// Join (or found) a family of row-disjoint holdouts that share one total delta: this
+    /// holdout's --delta is its share, and the daemon refuses shares that would sum past the
+    /// total. Without a family, k holdouts hold jointly only at k times their delta.
+    #[arg(long, value_name = "NAME")]
+    pub family: Option<String>,
+    /// The family's total delta, fixed by its first member (required there); later members may
+    /// omit it or must repeat it exactly.
+    #[arg(long, value_name = "TOTAL", requires = "family")]
+    pub family_delta: Option<f64>,
     /// How the budget is spread over queries: "series" (open-ended) or "even:K".
     #[arg(long, default_value = "series")]
     pub schedule: String,
@@ -243,11 +255,20 @@ pub fn declare(
             let k = table.column_index(&t.column).ok_or_else(|| {
                 Error::invalid(table.source.clone(), format!("no column {:?}", t.column))
             })?;
-            let values: Vec<String> = table.rows.iter().map(|r| r.values[k].clone()).collect();
             let declared: Vec<String> = if t.metric.uses_classes() {
                 match classes {
                     Some(c) => c.iter().map(|x| x.trim().to_string()).collect(),
-                    None => metric::observed_classes(&values),
+                    None => {
+                        return Err(Error::invalid(
+                            "--classes",
+                            format!(
+                                "target {} (metric {}) needs its declared classes: give \
+                                 --classes A,B,... (the label domain is public, so it is \
+                                 stated, never read from the labels); nothing was sent",
+                                t.name, t.metric
+                            ),
+                        ));
+                    }
                 }
             } else {
                 t.metric.fixed_classes().unwrap_or_default()
@@ -268,8 +289,12 @@ pub fn declare(
                     return Err(Error::invalid(
                         format!("{}:{}", table.source, r.line),
                         format!(
-                            "label {v:?} of id `{}` (column {}, target {}, metric {}) is not {domain}",
-                            r.id, t.column, t.name, t.metric
+                            "label {} of id `{}` (column {}, target {}, metric {}) is not {domain}",
+                            quote(v),
+                            cut(&r.id),
+                            t.column,
+                            t.name,
+                            t.metric
                         ),
                     ));
                 }
@@ -283,6 +308,56 @@ pub fn declare(
             })
         })
         .collect()
+}
+
+/// Longest value quoted whole in a message about a label file; longer ones are cut.
+const QUOTE_MAX: usize = 40;
+
+/// A text cut after [`QUOTE_MAX`] characters, its length stated, so a huge cell never comes
+/// back whole.
+fn cut(v: &str) -> String {
+    if v.chars().count() <= QUOTE_MAX {
+        v.to_string()
+    } else {
+        let head: String = v.chars().take(QUOTE_MAX).collect();
+        format!("{head}... ({} bytes)", v.len())
+    }
+}
+
+/// [`cut`], quoted.
+fn quote(v: &str) -> String {
+    if v.chars().count() <= QUOTE_MAX {
+        format!("{v:?}")
+    } else {
+        let head: String = v.chars().take(QUOTE_MAX).collect();
+        format!("{head:?}... ({} bytes)", v.len())
+    }
+}
+
+/// The plain sentence on joint validity printed with every creation (it depends only on the
+/// command line): each holdout's delta covers that holdout alone; holdouts of one family share
+/// one total.
+pub fn joint_note(delta: f64, family: Option<&str>, family_delta: Option<f64>) -> String {
+    match (family, family_delta) {
+        (Some(f), Some(total)) => format!(
+            "Family {f}: this holdout's delta {delta} is its share of the family's total delta \
+             {total}. The daemon refuses shares that would sum past the total, so every interval \
+             of every member of {f} holds jointly with probability at least 1 - {total}."
+        ),
+        (Some(f), None) => format!(
+            "Family {f}: this holdout's delta {delta} is its share of the family's total delta \
+             (fixed by its first member). The daemon refuses shares that would sum past the \
+             total, so every interval of every member of {f} holds jointly with probability at \
+             least 1 minus that total."
+        ),
+        (None, _) => format!(
+            "This holdout's delta {delta} covers this holdout alone. Holdouts carved from one \
+             file by `holdout split` each carry their own delta, so k of them hold jointly only \
+             with probability at least 1 - k * delta; to give them one total instead, create \
+             them as one family (--family NAME, --family-delta TOTAL on the first member, each \
+             member's --delta its share)."
+        ),
+    }
 }
 
 fn policy_of(args: &CreateArgs) -> Policy {
@@ -320,6 +395,19 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
             Error::invalid("--delta", format!("must lie in (0, 1), got {}", args.delta)).into(),
         );
     }
+    if let Some(t) = args.family_delta
+        && !(t > 0.0 && t < 1.0 && args.delta <= t)
+    {
+        return Err(Error::invalid(
+            "--family-delta",
+            format!(
+                "the family's total must lie in (0, 1) and be at least this member's share \
+                 --delta {}, got {t}",
+                args.delta
+            ),
+        )
+        .into());
+    }
     if !(args.tolerance > 0.0 && args.tolerance.is_finite()) {
         return Err(Error::invalid(
             "--tolerance",
@@ -341,6 +429,11 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     let targets = declare(&table, &specs, args.classes.as_deref())?;
     let policy = policy_of(args);
     let plan = super::plan::describe(table.len() as u64, &policy, &targets, args.expected_error)?;
+    let joint = joint_note(args.delta, args.family.as_deref(), args.family_delta);
+    let family_json = args
+        .family
+        .as_ref()
+        .map(|f| json!({"name": f, "share": args.delta, "total": args.family_delta}));
     if args.json && args.preview {
         show::print_json(&json!({
             "preview": true,
@@ -348,11 +441,13 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
             "policy": show::policy_json(&policy),
             "targets": targets.iter().map(show::target_json).collect::<Vec<_>>(),
             "plan": plan.json,
+            "family": family_json,
+            "joint": joint,
         }));
         return Ok(ExitCode::SUCCESS);
     }
     if !args.json {
-        println!("{}", plan.text);
+        println!("{}\n\n{joint}", plan.text);
     }
     if args.preview {
         println!("preview only: nothing was sent");
@@ -364,6 +459,8 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         policy: Some(policy),
         targets: targets.clone(),
         description: args.description.clone(),
+        family: args.family.clone().unwrap_or_default(),
+        family_delta: args.family_delta.unwrap_or(0.0),
     };
     let positions: Vec<usize> = specs
         .iter()
@@ -399,9 +496,12 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         let mut v = show::holdout_json(&info);
         v["plan"] = plan.json;
+        v["family"] = family_json.unwrap_or(serde_json::Value::Null);
+        v["joint"] = json!(joint);
         show::print_json(&v);
     } else {
         println!("\ncreated\n{}", show::holdout_text(&info));
+        println!("\n{joint}");
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -409,6 +509,20 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn joint_sentences() {
+        let alone = joint_note(0.05, None, None);
+        assert!(alone.contains("1 - k * delta"), "{alone}");
+        assert!(alone.contains("--family"), "{alone}");
+        let first = joint_note(0.02, Some("q3"), Some(0.05));
+        assert!(
+            first.contains("share of the family's total delta 0.05") && first.contains("1 - 0.05"),
+            "{first}"
+        );
+        let later = joint_note(0.02, Some("q3"), None);
+        assert!(later.contains("fixed by its first member"), "{later}");
+    }
 
     #[test]
     fn target_specs() {
@@ -470,8 +584,15 @@ mod tests {
     #[test]
     fn label_domains() {
         let t = table(&[("a", "dog"), ("b", "cat"), ("c", "dog")]);
-        let d = declare(&t, &[spec(Metric::Error)], None).expect("observed");
-        assert_eq!(d[0].classes, ["cat", "dog"]);
+        // No default from the labels: the classes must be declared.
+        match declare(&t, &[spec(Metric::Error)], None) {
+            Err(Error::InvalidArgument { field, message }) => {
+                assert_eq!(field, "--classes");
+                assert!(message.contains("target t"), "{message}");
+                assert!(!message.contains("dog"), "{message}");
+            }
+            other => panic!("expected a refusal without --classes, got {other:?}"),
+        }
         let given = vec!["cat".to_string(), "dog".to_string(), "eel".to_string()];
         let d = declare(&t, &[spec(Metric::Error)], Some(&given)).expect("declared");
         assert_eq!(d[0].classes, given);
@@ -480,6 +601,23 @@ mod tests {
             Err(Error::InvalidArgument { field, message }) => {
                 assert_eq!(field, "labels.csv:3");
                 assert!(message.contains("`b`"), "{message}");
+            }
+            other => panic!("expected a label error, got {other:?}"),
+        }
+        // A huge label is not echoed whole.
+        let huge = "x".repeat(10_000);
+        let long = table(&[("a", "dog"), ("b", huge.as_str())]);
+        match declare(&long, &[spec(Metric::Error)], Some(&given)) {
+            Err(Error::InvalidArgument { field, message }) => {
+                assert_eq!(field, "labels.csv:3");
+                assert!(
+                    message.contains("`b`") && message.contains("target t"),
+                    "{message}"
+                );
+                assert!(
+                    message.contains("10000 bytes") && message.len() < 300,
+                    "{message}"
+                );
             }
             other => panic!("expected a label error, got {other:?}"),
         }

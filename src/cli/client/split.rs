@@ -25,12 +25,33 @@ pub const SPLIT_HELP: &str = "\
 Disjoint rows are independent draws, so each part can become its own holdout with its own \
 budget: for example a feedback holdout that answers during development and a final holdout \
 scored once at the end. Parts of one file must not be combined into one holdout, and the daemon \
-refuses a holdout whose rows overlap an existing one.
+refuses a holdout whose rows overlap an existing one. Each part's holdout carries its own delta, \
+so k parts hold jointly only with probability at least 1 - k * delta; to give them one total \
+instead, create them as one family (holdout create --family NAME, --family-delta TOTAL on the \
+first, each part's --delta its share).
 
 Each part NAME=FRACTION is written to DIR/NAME.csv with the input's columns. Fractions must lie \
 in (0, 1] and sum to at most 1; when they sum to less, the remaining rows go to DIR/rest.csv. The \
 split is deterministic for a given --seed; with --stratify, every value of the column is split \
-in the same fractions.";
+in the same fractions (see the condition printed with it).";
+
+/// What one part's holdout guarantees jointly with the others: printed by every split.
+pub const JOINT_NOTE: &str = "Each part created as its own holdout carries its own delta, so k \
+parts hold jointly only with probability at least 1 - k * delta (union bound). To give them one \
+total instead, create them as one family: holdout create NAME --labels PART.csv --family F \
+--delta SHARE, with --family-delta TOTAL on the first member; the daemon refuses shares that \
+would sum past the total.";
+
+/// The condition under which stratified parts are used: printed whenever --stratify is.
+pub const STRATIFY_CONDITION: &str = "With --stratify, the parts' class counts are tied \
+together: each part takes its fraction of every value of the column (to within one row), so its \
+counts follow from the whole file's instead of being drawn on their own, and the file's counts \
+with one part's determine the others'. Given the counts, each part's rows are still independent \
+draws within their class, so its intervals speak of the error at the part's own class mix (each \
+class's error rate weighted by its share of the part, about its share of the file), not at the \
+population's; for exact intervals this rests on a sum of independent errors with class-dependent \
+rates being no more spread in its tails than a binomial (Hoeffding 1956). Treat each part's \
+class counts as known to anyone who knows the file's.";
 
 /// One requested part.
 #[derive(Debug, Clone, PartialEq)]
@@ -71,7 +92,9 @@ pub struct SplitArgs {
     /// Seed of the shuffle: the same seed and file give the same parts.
     #[arg(long, default_value_t = 0)]
     pub seed: u64,
-    /// Split every value of this column (the label) in the same fractions.
+    /// Split every value of this column (the label) in the same fractions. This ties the parts'
+    /// class counts together; the condition it puts on the parts' intervals is printed with
+    /// the split.
     #[arg(long, value_name = "COLUMN")]
     pub stratify: Option<String>,
     /// Column of the row ids (must be unique).
@@ -376,6 +399,8 @@ fn report(
             "seed": args.seed,
             "stratify": args.stratify,
             "parts": items,
+            "joint": JOINT_NOTE,
+            "stratify_condition": args.stratify.as_ref().map(|_| STRATIFY_CONDITION),
         }));
         return;
     }
@@ -411,8 +436,11 @@ fn report(
     );
     println!(
         "Create each part as its own holdout (holdout create NAME --labels FILE ...): disjoint rows \
-         are independent, so each gets its own budget."
+         are independent, so each gets its own budget.\n{JOINT_NOTE}"
     );
+    if args.stratify.is_some() {
+        println!("{STRATIFY_CONDITION}");
+    }
 }
 
 #[cfg(test)]

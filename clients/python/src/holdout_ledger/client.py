@@ -390,23 +390,32 @@ class Client:
                        delta: float = 0.05, schedule: str = "series", answers: str = "rounded:0.01",
                        tolerance: float = 0.05, sharing: str = "shared",
                        tolerance_reference: str = "worst-case", shares: str = "none",
-                       daily_quota: int = 0, description: str = "") -> HoldoutInfo:
+                       daily_quota: int = 0, description: str = "",
+                       family: str = "", family_delta: Optional[float] = None) -> HoldoutInfo:
         """Creates a single-target holdout from labels (custodian role).
 
         ``labels`` takes the same forms as predictions (a DataFrame with ``id_column`` and
         ``label_column``, a Series indexed by id, a dict, or values with ``ids``). For metric
-        ``error`` the declared classes default to the classes observed in the labels, sorted.
+        ``error``, ``classes`` is required: the label domain is public, so it is declared, never
+        read from the labels (which would publish, say, that a rare class is absent); every
+        label must be one of them. ``family`` joins (or, with ``family_delta``, founds) a family
+        of row-disjoint holdouts sharing one total delta, ``delta`` being this holdout's share.
         The policy arguments are those of ``holdout create`` (see ``holdout create --help``);
         they are fixed for the holdout's lifetime and written to its genesis ledger entry.
         """
+        if metric.split(":", 1)[0] == "error" and not classes:
+            raise InvalidInput(
+                f"target {target} (metric error) needs its declared classes: pass classes=[...] "
+                "(the label domain is public, so it is stated, never read from the labels); "
+                "nothing was sent")
+        if family_delta is not None and not family:
+            raise InvalidInput("family_delta was given without family=")
         row_ids, values = inputs.split_predictions(
             labels, ids, id_column, label_column,
             lambda: (_ for _ in ()).throw(InvalidInput("labels given as values need ids=")),
         )
         texts = [inputs.id_text(v) if not isinstance(v, float) or v.is_integer() else repr(v)
                  for v in values]
-        if metric.split(":", 1)[0] == "error" and classes is None:
-            classes = sorted(set(texts))
         spec = _h.HoldoutSpec(
             name=name,
             description=description,
@@ -417,6 +426,8 @@ class Client:
             ),
             targets=[_t.Target(name=target, column=label_column, metric=metric, method=method,
                                classes=list(classes or []))],
+            family=family,
+            family_delta=family_delta or 0.0,
         )
 
         def chunks():
