@@ -292,7 +292,9 @@ fn core_1_keeps_judging_the_one_count_interval_and_core_2_the_reported_one() {
     assert!(w1 > 0.05, "core 1 answered at most {w1}");
     assert!(w2 <= 0.05, "core 2 answered {w2}");
     assert!(a2 < a1, "core 2 answers fewer: {a2} vs {a1}");
-    println!("n 4000, tolerance 0.05, rounded 0.01, k = n/2: core 1 answered {a1} (widest half-width {w1:.4}), core 2 answered {a2} (widest {w2:.4})");
+    println!(
+        "n 4000, tolerance 0.05, rounded 0.01, k = n/2: core 1 answered {a1} (widest half-width {w1:.4}), core 2 answered {a2} (widest {w2:.4})"
+    );
 }
 
 /// Status forecasts use the same notion as the quote: the next half-width shown equals the one
@@ -301,8 +303,7 @@ fn core_1_keeps_judging_the_one_count_interval_and_core_2_the_reported_one() {
 fn the_forecast_half_width_is_the_one_the_quote_judges() {
     for core in [1u32, 2] {
         for rule in ["rounded:0.01", "ladder:0.05", "best-of:0.02"] {
-            let mut acc =
-                Accountant::new(policy(rule, 5000, 0.2, Method::Exact, core)).unwrap();
+            let mut acc = Accountant::new(policy(rule, 5000, 0.2, Method::Exact, core)).unwrap();
             for k in [2500u64, 1000, 900, 4000] {
                 let shown = acc.status(Some("a")).targets[0].next_half_width;
                 let Ok(c) = acc.quote(&req(1)) else { break };
@@ -325,8 +326,16 @@ fn a_batch_is_reported_at_the_mean_share_and_the_union_costs_what_was_charged() 
     let p = |core| policy("best-of:0.01", 10_000, 0.5, Method::Exact, core);
     let one = Accountant::new(p(1)).unwrap().quote(&req(4)).unwrap();
     let two = Accountant::new(p(2)).unwrap().quote(&req(4)).unwrap();
-    assert!((one.level_nats - 400f64.ln()).abs() < 1e-12, "{}", one.level_nats);
-    assert!((two.level_nats - 100f64.ln()).abs() < 1e-12, "{}", two.level_nats);
+    assert!(
+        (one.level_nats - 400f64.ln()).abs() < 1e-12,
+        "{}",
+        one.level_nats
+    );
+    assert!(
+        (two.level_nats - 100f64.ln()).abs() < 1e-12,
+        "{}",
+        two.level_nats
+    );
     assert!((two.delta_charged - 0.04).abs() < 1e-15);
     // Later batches, after transcript costs: B models at the reported level cost exactly the
     // B shares charged, times exp(-L).

@@ -220,7 +220,10 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
     assert_ne!(c.2, red_entry);
     assert_eq!(kinds(&mut e).last().unwrap(), "answer");
     let after = spent(&mut e, "green");
-    assert!(after.0 > before.0 && after.1 > before.1, "charged and coded");
+    assert!(
+        after.0 > before.0 && after.1 > before.1,
+        "charged and coded"
+    );
 
     // A file whose first answer was "no improvement" released no cell: it is a charged query
     // of whoever sends it next. red: 0.20 (no improvement over 0.10); gold sends it and gets

@@ -317,7 +317,11 @@ fn core_2_tolerance_refusals_follow_the_reported_interval() {
     assert!(first.interval.half_width() <= 0.05);
     while acc.quote(&req("a")).is_ok() {
         let a = ask(&mut acc, "a", 5000);
-        assert!(a.interval.half_width() <= 0.05, "{}", a.interval.half_width());
+        assert!(
+            a.interval.half_width() <= 0.05,
+            "{}",
+            a.interval.half_width()
+        );
         answered += 1;
     }
     assert_eq!(first.queries_left, answered - 1);

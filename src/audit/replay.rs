@@ -315,7 +315,9 @@ fn replay_serial(
                             cmp.defer_budget(&book, &r.team, &r.budget);
                         }
                     }
-                    Err(err) => cmp.out.push(finding(chain, e.seq, "replay", err.to_string())),
+                    Err(err) => cmp
+                        .out
+                        .push(finding(chain, e.seq, "replay", err.to_string())),
                 }
                 memo.generation += 1;
             }

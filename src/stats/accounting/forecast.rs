@@ -105,7 +105,9 @@ impl Accountant {
     /// batches of that size. Core 1 forecast single models.
     fn forecast_batch(&self, analyst: &str) -> u32 {
         if self.core2() && matches!(self.policy.rule, Rule::BestOf(_)) {
-            self.analysts.get(analyst).map_or(1, |s| s.last_models.max(1))
+            self.analysts
+                .get(analyst)
+                .map_or(1, |s| s.last_models.max(1))
         } else {
             1
         }

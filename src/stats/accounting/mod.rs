@@ -49,8 +49,8 @@ mod types;
 
 pub(crate) use forecast::{count_fitting, ln_inv_mean_share};
 pub use types::{
-    AccountingError, Answer, Charge, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt,
-    Status, TargetStatus,
+    AccountingError, Answer, Charge, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
+    TargetStatus,
 };
 
 #[derive(Debug, Clone, Default)]
@@ -585,9 +585,7 @@ impl Accountant {
             && matches!(self.policy.rule, Rule::Ladder(_))
             && self.policy.sharing == Sharing::Shared
             && target < self.policy.targets.len()
-            && self
-                .view(analyst, target)
-                .is_ok_and(|v| cell < v.best_cell)
+            && self.view(analyst, target).is_ok_and(|v| cell < v.best_cell)
     }
 
     /// Adopts a file answered for another team as `analyst`'s new best at no charge (DESIGN
