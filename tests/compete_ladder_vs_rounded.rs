@@ -68,9 +68,11 @@ fn trace(seed: u64) -> Vec<(String, u64)> {
         .collect()
 }
 
+/// Tolerance 0.03: core 2 judges it on the reported cell interval, which on a 0.01 grid is half
+/// a step (0.005) wider than the one-count interval core 1 judged (at 0.025 then).
 fn policy(rule: &str) -> Policy {
     serde_json::from_str(&format!(
-        r#"{{"delta": 0.05, "schedule": "series", "rule": "{rule}", "tolerance": 0.025,
+        r#"{{"delta": 0.05, "schedule": "series", "rule": "{rule}", "tolerance": 0.03,
             "rows": {N}, "targets": [{{"name": "y", "binary": true, "method": "exact"}}], "core_version": 2}}"#
     ))
     .unwrap()
@@ -102,7 +104,7 @@ fn the_ladder_answers_at_least_five_times_as_many_queries_as_rounded() {
         let (ladder, bests) = answered("ladder:0.01", &t);
         let (rounded, _) = answered("rounded:0.01", &t);
         println!(
-            "seed {seed}: n = {N}, delta = 0.05, series, tolerance 0.025: ladder:0.01 answered \
+            "seed {seed}: n = {N}, delta = 0.05, series, tolerance 0.03: ladder:0.01 answered \
              {ladder} of {SUBMISSIONS} ({bests} new bests), rounded:0.01 answered {rounded}; \
              ratio {:.1}",
             ladder as f64 / rounded as f64

@@ -73,8 +73,10 @@ fn level_adds_the_transcript_cost() {
 
 #[test]
 fn tolerance_refusals_match_design_table_order_of_magnitude() {
-    // DESIGN 4.5 (Hoeffding, n = 10000, tol 0.05, rounded 0.01): 10 queries fit.
+    // DESIGN 4.5 (Hoeffding, n = 10000, tol 0.05, rounded 0.01): 10 queries fit when the
+    // tolerance is judged on the one-count interval, as core 1 does (and keeps doing).
     let mut p = policy("rounded:0.01", "series", 10_000, 0.05);
+    p.core_version = 1;
     p.targets[0].method = Method::Hoeffding;
     let mut acc = Accountant::new(p).unwrap();
     let first = ask(&mut acc, "a", 5000);
@@ -299,4 +301,29 @@ fn cached_fit_level_matches_direct_half_width_comparison() {
         }
     }
     assert!(compared > 200, "{compared}");
+}
+
+/// Core 2 judges the tolerance on the reported cell interval: with Hoeffding the cell's
+/// interval is the one-count half-width plus half a grid step (0.005 on a 0.01 grid), so the
+/// same policy answers fewer queries than core 1's 10, every one within the tolerance, and the
+/// first answer's `queries_left` still predicts the count exactly.
+#[test]
+fn core_2_tolerance_refusals_follow_the_reported_interval() {
+    let mut p = policy("rounded:0.01", "series", 10_000, 0.05);
+    p.targets[0].method = Method::Hoeffding;
+    let mut acc = Accountant::new(p).unwrap();
+    let first = ask(&mut acc, "a", 5000);
+    let mut answered = 1;
+    assert!(first.interval.half_width() <= 0.05);
+    while acc.quote(&req("a")).is_ok() {
+        let a = ask(&mut acc, "a", 5000);
+        assert!(
+            a.interval.half_width() <= 0.05,
+            "{}",
+            a.interval.half_width()
+        );
+        answered += 1;
+    }
+    assert_eq!(first.queries_left, answered - 1);
+    assert!((1..10).contains(&answered), "{answered}");
 }

@@ -306,6 +306,21 @@ fn replay_serial(
                     .unwrap_or_else(|| "unreadable read entry".into());
                 out.reads.push((e.seq, what));
             }
+            "adopt" => {
+                // A free adoption of another team's answered file (core 2 ladder): the
+                // engine's own replay step checks it against the source entry and the core.
+                match book.replay_adoption(policy, entries, e) {
+                    Ok(()) => {
+                        if let Ok(r) = serde_json::from_str::<AnswerRecord>(&e.body) {
+                            cmp.defer_budget(&book, &r.team, &r.budget);
+                        }
+                    }
+                    Err(err) => cmp
+                        .out
+                        .push(finding(chain, e.seq, "replay", err.to_string())),
+                }
+                memo.generation += 1;
+            }
             "sealed" | "round" => {
                 // Competition entries move the accountant too; the engine's own replay step
                 // checks them against the core.

@@ -344,7 +344,9 @@ mod tests {
         let rows = plan_rows(&p.args).unwrap();
         let v = serde_json::to_value(&rows).unwrap();
         assert_eq!(v[0]["rule"], "rounded:0.01");
-        assert_eq!(v[0]["queries"], 10.0);
+        // DESIGN 4.5's 10 judges the one-count interval; core 2 the reported cell (see
+        // `design_magnitudes_show_up` in cli/client/plan.rs for the arithmetic): 8.
+        assert_eq!(v[0]["queries"], 8.0);
         assert!(v[1]["queries_expected"].as_f64().unwrap() >= v[1]["queries"].as_f64().unwrap());
         let p = Plan::try_parse_from([
             "plan",
@@ -362,7 +364,10 @@ mod tests {
         .unwrap();
         let rows = plan_rows(&p.args).unwrap();
         let n = rows[0].rows.unwrap();
-        assert!((9_000..=10_000).contains(&n), "{n}");
+        // Core 2: the 10th query needs ln(40 * 110) + 9 ln 101 = 49.93 nats <= 2n (0.05 -
+        // 0.005)^2, about n >= 12,330 (our arithmetic; DESIGN 4.5's one-count figure is
+        // under 10,000).
+        assert!((12_000..=12_700).contains(&n), "{n}");
         assert!(
             serde_json::to_value(&rows).unwrap()[0]
                 .get("queries")

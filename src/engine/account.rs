@@ -16,7 +16,7 @@ use super::records::{AnswerRecord, BudgetView};
 use crate::error::{Error, Result};
 use crate::ledger::Entry;
 use crate::metric::Loss;
-use crate::stats::accounting::{Accountant, Charge, Outcome, QueryRequest, Refusal};
+use crate::stats::accounting::{Accountant, Answer, Charge, Outcome, QueryRequest, Refusal};
 use crate::stats::policy::{Policy, Sharing, TargetPolicy, ToleranceReference, guarantee_text};
 use crate::stats::rules::{Rule, Symbol};
 use crate::stats::schedule::{Schedule, Shares};
@@ -456,6 +456,7 @@ impl Book {
                     }
                 }
                 "sealed" | "round" => super::compete::replay_entry(&mut book, policy, e)?,
+                "adopt" => book.replay_adoption(policy, entries, e)?,
                 "refusal" => {
                     let team = serde_json::from_str::<serde_json::Value>(&e.body)
                         .ok()
@@ -578,6 +579,123 @@ impl Book {
             best_model,
             core: serde_json::to_value(&ans).unwrap_or_default(),
         })
+    }
+
+    /// Core 2, ladder under `shared`: the cell `team` may adopt at no charge from `src`, an
+    /// answer another team received for the same file, when its released symbol fixes
+    /// `team`'s answer (a new best at least one grid step below `team`'s best; DESIGN 4.8).
+    /// `None`: the file is answered as a charged ladder query of `team` instead.
+    pub(crate) fn adoptable(&self, team: &str, src: &AnswerRecord) -> Option<u64> {
+        if src.team == team {
+            return None;
+        }
+        let released: Answer = serde_json::from_value(src.core.clone()).ok()?;
+        match released.symbol {
+            Symbol::NewBest { cell } if self.acct.can_adopt(team, src.target_index, cell) => {
+                Some(cell)
+            }
+            _ => None,
+        }
+    }
+
+    /// Adopts `cell` from the answer recorded at entry `src_seq` as `team`'s new best, free.
+    /// The interval is the cell's at the level `src` was answered at.
+    pub(crate) fn adopt(
+        &mut self,
+        policy: &HoldoutPolicy,
+        team: &str,
+        src_seq: u64,
+        src: &AnswerRecord,
+        cell: u64,
+    ) -> Result<AnswerCore> {
+        let ans = self
+            .acct
+            .adopt(team, src.target_index, cell, src.level_nats)
+            .map_err(|e| Error::Internal(format!("accounting: {e}")))?;
+        Ok(AnswerCore {
+            query: ans.query_number,
+            symbol: symbol_text(
+                &ans.symbol,
+                ans.released_score,
+                policy.core.rule.grid(policy.core.rows).map(|g| g.cells),
+            ),
+            score: ans.released_score,
+            lower: ans.interval.lower,
+            upper: ans.interval.upper,
+            delta_i: 0.0,
+            level_nats: ans.level_nats,
+            code_nats: 0.0,
+            statement: format!(
+                "adopted at no charge: another team's answer for this same file released a new \
+                 best below this team's best, so it is this team's new best too ({}); the \
+                 interval is at the level that answer was given",
+                ans.statement
+            ),
+            best_model: None,
+            core: serde_json::json!({ "adopted_from": src_seq, "answer": ans }),
+        })
+    }
+
+    /// Replays an `adopt` entry: the source answer must be an earlier answer of another team
+    /// for the same file and target whose symbol fixes this team's answer, and the adoption
+    /// must be exactly what [`Book::adopt`] computes again.
+    pub(crate) fn replay_adoption(
+        &mut self,
+        policy: &HoldoutPolicy,
+        entries: &[Entry],
+        e: &Entry,
+    ) -> Result<()> {
+        let bad = |why: String| Error::Internal(format!("ledger entry {} (adopt): {why}", e.seq));
+        let r: AnswerRecord =
+            serde_json::from_str(&e.body).map_err(|err| bad(format!("not an answer: {err}")))?;
+        let src_seq = r
+            .core
+            .get("adopted_from")
+            .and_then(|v| v.as_u64())
+            .ok_or_else(|| bad("no adopted_from".into()))?;
+        let src_entry = entries
+            .iter()
+            .find(|x| x.seq == src_seq && x.seq < e.seq && x.kind == "answer")
+            .ok_or_else(|| bad(format!("entry {src_seq} is not an earlier answer")))?;
+        let src: AnswerRecord = serde_json::from_str(&src_entry.body)
+            .map_err(|err| bad(format!("source entry {src_seq}: {err}")))?;
+        if src.digest != r.digest || src.target_index != r.target_index {
+            return Err(bad(format!(
+                "source entry {src_seq} is another file or another target"
+            )));
+        }
+        let cell = self.adoptable(&r.team, &src).ok_or_else(|| {
+            bad(format!(
+                "the answer at entry {src_seq} does not fix team {}'s answer: the file should \
+                 have been a charged query",
+                r.team
+            ))
+        })?;
+        let again = self.adopt(policy, &r.team, src_seq, &src, cell)?;
+        if again.symbol != r.symbol
+            || again.score.map(f64::to_bits) != r.score.map(f64::to_bits)
+            || again.level_nats.to_bits() != r.level_nats.to_bits()
+            || again.lower.to_bits() != r.lower.to_bits()
+            || again.upper.to_bits() != r.upper.to_bits()
+            || again.core != r.core
+            || r.exact.is_some()
+            || r.code_nats != 0.0
+            || r.delta_i != 0.0
+        {
+            return Err(bad(format!(
+                "does not replay: recorded {} [{}, {}] at {} nats, recomputed {} [{}, {}] at {} \
+                 nats",
+                r.symbol,
+                r.lower,
+                r.upper,
+                r.level_nats,
+                again.symbol,
+                again.lower,
+                again.upper,
+                again.level_nats
+            )));
+        }
+        Ok(())
     }
 
     /// Takes a sealed entry's share now; its answer waits for [`Book::close_round`].

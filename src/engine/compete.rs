@@ -792,7 +792,12 @@ impl Engine {
         let own_only = !loaded.policy.public_leaderboard && !privileged;
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
-        for e in entries.iter().filter(|e| e.kind == "answer") {
+        // `adopt` entries (core 2): another team's answered file taken over as this team's new
+        // best, with its interval at the level that file was answered at (DESIGN 4.8).
+        for e in entries
+            .iter()
+            .filter(|e| e.kind == "answer" || e.kind == "adopt")
+        {
             let r: AnswerRecord = parse(e)?;
             // One ladder per team and target; the leaderboard shows the first target's.
             if r.target_index != 0 || (own_only && r.team != caller.team) {

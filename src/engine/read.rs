@@ -148,7 +148,8 @@ impl Engine {
                 entry_hash: e.hash.clone(),
             };
             match e.kind.as_str() {
-                "answer" => {
+                // An adoption (core 2 ladder) is shown like the answer it is.
+                "answer" | "adopt" => {
                     let mut r: AnswerRecord = serde_json::from_str(&e.body)
                         .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
                     if !see_all && r.team != caller.team {

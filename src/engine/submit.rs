@@ -279,8 +279,25 @@ impl Engine {
                 )
                 .optional()?;
             if let Some(seq) = seen {
-                self.remember_request(loaded, &team, req, &digest, seq as u64)?;
-                return Ok((self.replay_answer(loaded, seq as u64)?, None));
+                match self.replay_kind(loaded, &team, target_index, &digest, seq as u64)? {
+                    ReplayKind::Entry(seq) => {
+                        self.remember_request(loaded, &team, req, &digest, seq)?;
+                        return Ok((self.replay_answer(loaded, seq)?, None));
+                    }
+                    ReplayKind::Adopt(src_seq, src, cell) => {
+                        return self.adopt_in_tx(
+                            caller,
+                            loaded,
+                            req,
+                            (src_seq, &src, cell),
+                            &digest,
+                            &at,
+                        );
+                    }
+                    // Another team's file that does not fix this team's ladder: a charged
+                    // ladder query of this team, below.
+                    ReplayKind::Charge => {}
+                }
             }
 
             let mut book = self.book(loaded)?;
@@ -371,7 +388,7 @@ impl Engine {
             let conn = self.store.conn();
             let entry = ledger::append(conn, &loaded.name, "answer", &body)?;
             conn.execute(
-                "INSERT INTO answered_digests (holdout_id, target, scope, digest, seq)
+                "INSERT OR IGNORE INTO answered_digests (holdout_id, target, scope, digest, seq)
                  VALUES (?1, ?2, ?3, ?4, ?5)",
                 params![
                     loaded.id,
@@ -395,6 +412,112 @@ impl Engine {
             ))
         })();
         self.finish_write(&loaded.name, outcome)
+    }
+
+    /// What an identical prediction vector, already answered at entry `seq`, gets. Core 1,
+    /// or any rule but a ladder under `shared`: that answer again, free. Core 2 ladder under
+    /// `shared`, when `seq` was another team's (DESIGN 4.8): this team's own earlier entry for
+    /// the file if it has one; else a free adoption when the released symbol fixes this team's
+    /// ladder; else a charged ladder query of this team.
+    fn replay_kind(
+        &mut self,
+        loaded: &Loaded,
+        team: &str,
+        target_index: usize,
+        digest: &str,
+        seq: u64,
+    ) -> Result<ReplayKind> {
+        let policy = &loaded.policy;
+        if policy.core.core_version < 2
+            || !matches!(policy.core.rule, crate::stats::rules::Rule::Ladder(_))
+            || policy.isolated()
+        {
+            return Ok(ReplayKind::Entry(seq));
+        }
+        let body: String = self.store.conn().query_row(
+            "SELECT body FROM ledger WHERE chain = ?1 AND seq = ?2",
+            params![loaded.name, seq as i64],
+            |r| r.get(0),
+        )?;
+        let src: AnswerRecord = serde_json::from_str(&body)
+            .map_err(|e| Error::Internal(format!("stored answer {seq}: {e}")))?;
+        if src.team == team {
+            return Ok(ReplayKind::Entry(seq));
+        }
+        let own: Option<i64> = self
+            .store
+            .conn()
+            .query_row(
+                "SELECT seq FROM ledger WHERE chain = ?1 AND kind IN ('answer', 'adopt')
+                 AND json_extract(body, '$.team') = ?2 AND json_extract(body, '$.digest') = ?3
+                 AND json_extract(body, '$.target_index') = ?4 ORDER BY seq LIMIT 1",
+                params![loaded.name, team, digest, target_index as i64],
+                |r| r.get(0),
+            )
+            .optional()?;
+        if let Some(own) = own {
+            return Ok(ReplayKind::Entry(own as u64));
+        }
+        let book = self.book(loaded)?;
+        Ok(match book.adoptable(team, &src) {
+            Some(cell) => ReplayKind::Adopt(seq, Box::new(src), cell),
+            None => ReplayKind::Charge,
+        })
+    }
+
+    /// Records a free adoption (entry kind `adopt`) of another team's answered file as this
+    /// team's new best, and answers with it.
+    fn adopt_in_tx(
+        &mut self,
+        caller: &Caller,
+        loaded: &Loaded,
+        req: &SubmitRequest,
+        (src_seq, src, cell): (u64, &AnswerRecord, u64),
+        digest: &str,
+        at: &str,
+    ) -> Result<(SubmitOutcome, Option<(u64, super::account::Book)>)> {
+        let team = caller.team.clone();
+        let mut book = self.book(loaded)?;
+        let core = book.adopt(&loaded.policy, &team, src_seq, src, cell)?;
+        let budget = book.budget(&loaded.policy, &team);
+        let record = AnswerRecord {
+            holdout: loaded.name.clone(),
+            target: src.target.clone(),
+            target_index: src.target_index,
+            user: caller.name.clone(),
+            team: team.clone(),
+            query: core.query,
+            symbol: core.symbol,
+            score: core.score,
+            lower: core.lower,
+            upper: core.upper,
+            delta_i: core.delta_i,
+            level_nats: core.level_nats,
+            code_nats: core.code_nats,
+            statement: core.statement,
+            best_model: None,
+            models: 1,
+            model_names: req.model_names.clone(),
+            digest: digest.to_string(),
+            request_id: req.request_id.clone(),
+            note: req.note.clone(),
+            at: at.to_string(),
+            budget,
+            core: core.core,
+            exact: None,
+        };
+        let body = serde_json::to_value(&record)
+            .map_err(|e| Error::Internal(format!("adoption encoding: {e}")))?;
+        let entry = ledger::append(self.store.conn(), &loaded.name, "adopt", &body)?;
+        self.remember_request(loaded, &team, req, digest, entry.seq)?;
+        Ok((
+            SubmitOutcome::Answer {
+                record: Box::new(record),
+                receipt: Receipt::of(&entry),
+                replayed: true,
+            },
+            Some((entry.seq, book)),
+        ))
     }
 
     pub(super) fn record_refusal(
@@ -499,6 +622,16 @@ impl Engine {
         )?;
         Ok(n as u64)
     }
+}
+
+/// How a repeated prediction vector is answered (see `Engine::replay_kind`).
+enum ReplayKind {
+    /// The answer at this entry again, free.
+    Entry(u64),
+    /// Adopt this cell of the answer at this entry (another team's), free.
+    Adopt(u64, Box<AnswerRecord>, u64),
+    /// A charged query of the sender.
+    Charge,
 }
 
 /// Start of the next UTC day.

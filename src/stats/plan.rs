@@ -9,18 +9,31 @@
 //! models that takes `B` shares. For `sealed` (one round released as the last event) the code
 //! is 0, so the count is the non-adaptive one and can exceed `u64`: counts are f64.
 //!
+//! Plans use the accounting of the current core ([`crate::stats::CORE`]), as new holdouts do:
+//! the tolerance is judged on the interval that will be reported (for grid rules the widest
+//! cell, which is about half a grid step wider than the one-count interval), and a best-of
+//! batch is reported at the mean of its shares. [`queries_that_fit_core`] plans with core 1's
+//! rules (the one-count interval, the smallest share), which DESIGN 4.5's table follows.
+//! Planning reads binary losses from the method: `exact` is a 0-1 loss; with `kl` or
+//! `hoeffding` cells are taken as mean ranges, which are never narrower than a 0-1 loss's
+//! count ranges, so such a plan never promises more than the daemon answers.
+//!
 //! ```
-//! use holdout_ledger::stats::plan::{PlanSpec, queries_that_fit};
+//! use holdout_ledger::stats::plan::{PlanSpec, queries_that_fit, queries_that_fit_core};
 //! use holdout_ledger::stats::interval::Method;
-//! // DESIGN 4.5: Hoeffding, n = 10,000, delta = 0.05, series, tolerance 0.05, rounded 0.01: 10.
+//! // DESIGN 4.5: Hoeffding, n = 10,000, delta = 0.05, series, tolerance 0.05, rounded 0.01: 10
+//! // with the one-count interval (core 1); the reported cell interval is 0.005 wider, so
+//! // fewer fit under core 2.
 //! let spec = PlanSpec { rows: 10_000, delta: 0.05, tolerance: 0.05,
 //!     schedule: "series".parse().unwrap(), method: Method::Hoeffding, batch: 1 };
-//! assert_eq!(queries_that_fit(&spec, &"rounded:0.01".parse().unwrap(), 0.5), 10.0);
+//! let rule = "rounded:0.01".parse().unwrap();
+//! assert_eq!(queries_that_fit_core(&spec, &rule, 0.5, 1), 10.0);
+//! assert!(queries_that_fit(&spec, &rule, 0.5) < 10.0);
 //! ```
 
 use serde::{Deserialize, Serialize};
 
-use super::accounting::count_fitting;
+use super::accounting::{count_fitting, ln_inv_mean_share};
 use super::interval::{Method, reference_half_width};
 use super::rules::{Past, Rule};
 use super::schedule::Schedule;
@@ -58,7 +71,20 @@ pub struct PlanRow {
     pub rows: Option<u64>,
 }
 
-fn half_width_fits(spec: &PlanSpec, rule: &Rule, reference: f64, level: f64) -> bool {
+fn half_width_fits(spec: &PlanSpec, rule: &Rule, reference: f64, level: f64, core: u32) -> bool {
+    if core >= 2 {
+        // The worst case (reference 1/2) is the widest cell; another reference is the cell
+        // holding that expected error, as the daemon's `last-released` reference does.
+        let reference = (reference != 0.5).then_some(reference);
+        let h = rule.reported_half_width(
+            spec.rows,
+            spec.method == Method::Exact,
+            spec.method,
+            reference,
+            level,
+        );
+        return h <= spec.tolerance;
+    }
     reference_half_width(spec.method, spec.rows, reference, level, rule.sides())
         .is_ok_and(|h| h <= spec.tolerance)
 }
@@ -71,35 +97,50 @@ fn models(rule: &Rule, spec: &PlanSpec) -> u64 {
     }
 }
 
-/// Queries (batches, for best-of) that fit, at reference score `reference` (1/2: worst case).
+/// Queries (batches, for best-of) that fit, at reference score `reference` (1/2: worst case),
+/// with the current core's accounting.
 pub fn queries_that_fit(spec: &PlanSpec, rule: &Rule, reference: f64) -> f64 {
+    queries_that_fit_core(spec, rule, reference, super::CORE)
+}
+
+/// [`queries_that_fit`] with the accounting of core version `core` (1: the tolerance judged on
+/// the one-count interval and a batch reported at its smallest share).
+pub fn queries_that_fit_core(spec: &PlanSpec, rule: &Rule, reference: f64, core: u32) -> f64 {
     let ln_inv_delta = -spec.delta.ln();
     let b = models(rule, spec);
     let mut past = Past::start(rule, spec.rows);
     past.models = b as u32;
     let count = count_fitting(
         |j| {
-            let frac = spec
-                .schedule
-                .ln_inv_fraction(j.checked_add(1)?.checked_mul(b)?)?;
+            let frac = if core >= 2 && b > 1 {
+                ln_inv_mean_share(&spec.schedule, j.checked_mul(b)?.checked_add(1)?, b)?
+            } else {
+                spec.schedule
+                    .ln_inv_fraction(j.checked_add(1)?.checked_mul(b)?)?
+            };
             Some(ln_inv_delta + frac + rule.worst_case_nats(spec.rows, &past, j))
         },
-        |level| half_width_fits(spec, rule, reference, level),
+        |level| half_width_fits(spec, rule, reference, level, core),
     );
     if count < u64::MAX / 4 {
         return count as f64;
     }
     // Code-free and open-ended: invert the series schedule in f64.
-    let max_level = max_fitting_level(spec, rule, reference);
+    let max_level = max_fitting_level_core(spec, rule, reference, core);
     let y = max_level - ln_inv_delta;
     // Largest i with i (i + 1) <= e^y.
     let i = (0.5 * y).exp() - 0.5;
     i.floor().max(count as f64)
 }
 
-/// The largest level (nats) whose half-width at `reference` is within the tolerance.
+/// The largest level (nats) whose half-width at `reference` is within the tolerance (current
+/// core).
 pub fn max_fitting_level(spec: &PlanSpec, rule: &Rule, reference: f64) -> f64 {
-    let fits = |l: f64| half_width_fits(spec, rule, reference, l);
+    max_fitting_level_core(spec, rule, reference, super::CORE)
+}
+
+fn max_fitting_level_core(spec: &PlanSpec, rule: &Rule, reference: f64, core: u32) -> f64 {
+    let fits = |l: f64| half_width_fits(spec, rule, reference, l, core);
     let (mut lo, mut hi) = (0.0f64, 1.0f64);
     while fits(hi) {
         lo = hi;

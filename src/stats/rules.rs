@@ -33,7 +33,7 @@ use std::fmt;
 use std::str::FromStr;
 
 use super::interval::{Interval, IntervalError, Method, Sides};
-use super::interval::{errors_range_interval, mean_range_interval};
+use super::interval::{errors_range_interval, mean_range_interval, reference_half_width};
 
 /// A rounding grid `{0, 1/M, ..., 1}` with `M + 1` cells.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
@@ -118,6 +118,135 @@ impl Grid {
                 method
             };
             mean_range_interval(method, n, lo, hi, level_nats, sides)
+        }
+    }
+}
+
+/// Half-widths of reported cell intervals: what core 2 judges the tolerance on (DESIGN 4.3,
+/// rounded; issue 10, defect 8). A released cell is reported with the worst case over the
+/// counts (or means) it stands for, which is wider than the one-count interval at its centre by
+/// about half a grid step, so a tolerance judged on the one-count interval let answers through
+/// whose reported interval was wider than the tolerance.
+impl Grid {
+    /// The most error counts minus one that one cell can hold: `ceil(n / M) - 1`. An inner
+    /// cell is the half-open range `[(2j-1)n/(2M), (2j+1)n/(2M))` of length `n/M`, so it holds
+    /// at most `ceil(n/M)` integers; the end cells hold fewer.
+    pub fn max_span(&self, n: u64) -> u64 {
+        let (n, m) = (u128::from(n.max(1)), u128::from(self.cells.max(1)));
+        (n.div_ceil(m) - 1) as u64
+    }
+
+    /// The widest reported interval any cell of this grid can have at this level (two-sided
+    /// half-width; `+inf` when it cannot be computed).
+    ///
+    /// Binary losses: every cell is a count range `[k, k + s]` with `s <= S =`
+    /// [`Grid::max_span`], and its interval is the lower limit at `k` and the upper at `k + s`,
+    /// so no cell is wider than the widest `[k, k + S]`. That width is symmetric about
+    /// `k = (n - S)/2` (`U(k) = 1 - L(n - k)` for Clopper-Pearson, KL and Hoeffding alike) and
+    /// largest there, so the four counts around the centre are evaluated. Bounded losses: every
+    /// cell is a mean range of length at most `1/M`, widest when centred at 1/2.
+    /// Cells whose widths are equal in exact arithmetic (Hoeffding's inner cells) differ by
+    /// float rounding, so the figure carries a relative margin of `1e-12`.
+    /// `tests/accounting_core2.rs` checks the bound against every cell of many grids.
+    pub fn widest_half_width(&self, n: u64, binary: bool, method: Method, level_nats: f64) -> f64 {
+        self.widest_exact(n, binary, method, level_nats) * (1.0 + 1e-12)
+    }
+
+    fn widest_exact(&self, n: u64, binary: bool, method: Method, level_nats: f64) -> f64 {
+        let n = n.max(1);
+        if binary {
+            let s = self.max_span(n).min(n);
+            let k0 = (n - s) / 2;
+            (k0.saturating_sub(1)..=(k0 + 2).min(n - s))
+                .map(|k| {
+                    errors_range_interval(method, n, k, k + s, level_nats, Sides::Two)
+                        .map_or(f64::INFINITY, |ci| ci.half_width())
+                })
+                .fold(0.0, f64::max)
+        } else {
+            let half = 0.5 / self.cells.max(1) as f64;
+            let method = if method == Method::Exact {
+                Method::Kl
+            } else {
+                method
+            };
+            mean_range_interval(
+                method,
+                n,
+                (0.5 - half).max(0.0),
+                (0.5 + half).min(1.0),
+                level_nats,
+                Sides::Two,
+            )
+            .map_or(f64::INFINITY, |ci| ci.half_width())
+        }
+    }
+
+    /// The half-width of the reported interval of the cell that holds the mean `reference`
+    /// (for binary losses, the count `round(reference n)`).
+    pub fn cell_half_width(
+        &self,
+        n: u64,
+        binary: bool,
+        method: Method,
+        reference: f64,
+        level_nats: f64,
+    ) -> f64 {
+        let r = reference.clamp(0.0, 1.0);
+        let j = if binary {
+            let k = ((r * n.max(1) as f64).round() as u64).min(n);
+            self.cell_of_errors(n, k)
+        } else {
+            self.cell_of_mean(r)
+        };
+        self.interval(j, n, binary, method, level_nats, Sides::Two)
+            .map_or(f64::INFINITY, |ci| ci.half_width())
+    }
+}
+
+/// Threshold by cutoff (core 2; DESIGN 4.8): the largest error count `k*` in `-1..=n` whose
+/// one-sided upper limit `upper(k)` is at most `tau`, by bisection on `k`. `upper` must be the
+/// limit the direct decision would use; it increases in `k`, so "pass iff `upper(k) <= tau`" is
+/// "pass iff `k <= k*`". The counts probed depend only on `n`, `tau` and whatever `upper`
+/// depends on (the public level), never on the count being answered.
+pub fn cutoff_errors(n: u64, tau: f64, mut upper: impl FnMut(u64) -> f64) -> i64 {
+    if upper(0) > tau {
+        return -1;
+    }
+    // upper(lo) <= tau; hi = n + 1 stands for "past every count".
+    let (mut lo, mut hi) = (0u64, n + 1);
+    while hi - lo > 1 {
+        let mid = lo + (hi - lo) / 2;
+        if upper(mid) <= tau {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    lo as i64
+}
+
+/// Threshold by cutoff for a bounded loss (core 2): the largest mean `m*` in [0, 1] with
+/// `upper(m*) <= tau`, to the last representable bit (`-inf` when even a mean of 0 fails);
+/// pass iff the mean is at most `m*`. Valid whatever rounding `upper` has: a mean below `m*` has
+/// a true upper limit no larger than the true limit at `m*`, which `upper(m*)` bounds.
+pub fn cutoff_mean(tau: f64, mut upper: impl FnMut(f64) -> f64) -> f64 {
+    if upper(0.0) > tau {
+        return f64::NEG_INFINITY;
+    }
+    if upper(1.0) <= tau {
+        return 1.0;
+    }
+    let (mut lo, mut hi) = (0.0f64, 1.0f64);
+    loop {
+        let mid = lo + 0.5 * (hi - lo);
+        if mid <= lo || mid >= hi {
+            return lo;
+        }
+        if upper(mid) <= tau {
+            lo = mid;
+        } else {
+            hi = mid;
         }
     }
 }
@@ -416,6 +545,36 @@ impl Rule {
                 let _ = rows;
                 0.0
             }
+        }
+    }
+
+    /// Core 2: the half-width of the interval this rule reports at `level_nats`, which is what
+    /// the tolerance is judged on. `reference`: `None` for the worst case (the widest cell a
+    /// release can have), `Some(mean)` for the cell holding that public reference score. The
+    /// threshold rule reports `[0, TAU]` or nothing, and decides on the one-sided upper limit of
+    /// the exact count: its figure stays that limit's spread at the reference score (1/2 in the
+    /// worst case). `method` is the target's effective method (never `exact` for a bounded loss).
+    pub fn reported_half_width(
+        &self,
+        rows: u64,
+        binary: bool,
+        method: Method,
+        reference: Option<f64>,
+        level_nats: f64,
+    ) -> f64 {
+        match (self, self.grid(rows)) {
+            (Rule::Threshold { .. }, _) | (_, None) => reference_half_width(
+                method,
+                rows,
+                reference.unwrap_or(0.5),
+                level_nats,
+                self.sides(),
+            )
+            .unwrap_or(f64::INFINITY),
+            (_, Some(g)) => match reference {
+                None => g.widest_half_width(rows, binary, method, level_nats),
+                Some(r) => g.cell_half_width(rows, binary, method, r, level_nats),
+            },
         }
     }
 

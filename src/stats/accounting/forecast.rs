@@ -3,7 +3,8 @@
 
 use super::{Accountant, PoolView, QueryRequest, Refusal, Status, TargetStatus};
 use crate::stats::policy::Sharing;
-use crate::stats::rules::Past;
+use crate::stats::rules::{Past, Rule};
+use crate::stats::schedule::Schedule;
 
 impl Accountant {
     /// Budget status. With `Some(analyst)`: that analyst's pool and transcript (safe to show the
@@ -74,15 +75,14 @@ impl Accountant {
                 } else {
                     self.spent
                 };
+                let batch = self.forecast_batch(a);
                 let next_level = self
-                    .policy
-                    .schedule
-                    .ln_inv_fraction(view.used + 1)
+                    .batch_ln_inv(view.used + 1, batch)
                     .map(|f| self.ln_inv_delta + view.ln_inv_weight + f + view.transcript.nats);
                 let per_target = (0..targets)
                     .map(|t| {
                         let v = self.view(a, t).expect("checked above");
-                        self.forecast(t, &v, next_level)
+                        self.forecast(t, &v, next_level, batch)
                     })
                     .collect();
                 Status {
@@ -100,33 +100,58 @@ impl Accountant {
         }
     }
 
+    /// The batch size forecasts assume: core 2 under best-of takes the analyst's last batch
+    /// size (its own earlier request, a public fact; 1 before any), so `queries_left` counts
+    /// batches of that size. Core 1 forecast single models.
+    fn forecast_batch(&self, analyst: &str) -> u32 {
+        if self.core2() && matches!(self.policy.rule, Rule::BestOf(_)) {
+            self.analysts
+                .get(analyst)
+                .map_or(1, |s| s.last_models.max(1))
+        } else {
+            1
+        }
+    }
+
+    /// `ln(1/share)` of the share a batch of `models` whose first schedule index is `first`
+    /// is reported at: core 2, the mean of its shares; otherwise the last (smallest) share,
+    /// which for one model is its only share.
+    fn batch_ln_inv(&self, first: u64, models: u32) -> Option<f64> {
+        let schedule = &self.policy.schedule;
+        if self.core2() && models > 1 {
+            ln_inv_mean_share(schedule, first, u64::from(models))
+        } else {
+            schedule.ln_inv_fraction(first.checked_add(u64::from(models.max(1)) - 1)?)
+        }
+    }
+
     fn forecast(
         &self,
         target: usize,
         view: &PoolView<'_>,
         next_level: Option<f64>,
+        batch: u32,
     ) -> TargetStatus {
         let reference = self.reference_mean(view);
-        let next_half_width = next_level.map(|l| self.half_width(target, reference, l));
+        let next_half_width = next_level.map(|l| self.judged_half_width(target, reference, l));
         let past = Past {
             threshold: view.transcript.kt(target),
             ladder: view.past_ladder,
             best_cell: view.best_cell,
-            models: 1,
+            models: batch,
         };
         let base = self.ln_inv_delta + view.ln_inv_weight;
+        let b = u64::from(batch.max(1));
         let queries_left = count_fitting(
             |j| {
-                let frac = self
-                    .policy
-                    .schedule
-                    .ln_inv_fraction(view.used.checked_add(1 + j)?)?;
+                let first = j.checked_mul(b)?.checked_add(view.used.checked_add(1)?)?;
+                let frac = self.batch_ln_inv(first, batch)?;
                 let cost = self.policy.rule.worst_case_nats(self.policy.rows, &past, j);
                 Some(base + frac + view.transcript.nats + cost)
             },
             |level| match self.fit_level.get(target) {
                 Some(max) if reference == 0.5 => level <= *max,
-                _ => self.half_width(target, reference, level) <= self.policy.tolerance,
+                _ => self.judged_half_width(target, reference, level) <= self.policy.tolerance,
             },
         );
         TargetStatus {
@@ -155,6 +180,22 @@ impl Accountant {
         };
         Ok(self.policy.rule.worst_case_nats(self.policy.rows, &past, 1))
     }
+}
+
+/// `ln(1/mean share)` of the `count` schedule shares from index `first` on: the level (before
+/// the pool weight and the transcript) a best-of batch is reported at under core 2. Computed in
+/// log space (log-sum-exp), so shares far below the smallest f64 still give a finite level;
+/// `None` when the schedule runs out inside the batch.
+pub(crate) fn ln_inv_mean_share(schedule: &Schedule, first: u64, count: u64) -> Option<f64> {
+    let count = count.max(1);
+    let mut ln_inv = Vec::with_capacity(count.min(1 << 16) as usize);
+    for i in 0..count {
+        ln_inv.push(schedule.ln_inv_fraction(first.checked_add(i)?)?);
+    }
+    let smallest = ln_inv.iter().copied().fold(f64::INFINITY, f64::min);
+    let sum: f64 = ln_inv.iter().map(|x| (smallest - x).exp()).sum();
+    // ln(mean) = -smallest + ln(sum) - ln(count).
+    Some(smallest - sum.ln() + (count as f64).ln())
 }
 
 /// How many `j = 0, 1, ...` have `fits(level(j))`, where `level` is non-decreasing in `j` and

@@ -41,15 +41,15 @@ use std::collections::BTreeMap;
 use super::interval::reference_half_width;
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
 use super::policy::{Policy, Sharing, ToleranceReference};
-use super::rules::{KtCounts, Past, Rule, Symbol};
+use super::rules::{KtCounts, Past, Rule, Symbol, cutoff_errors, cutoff_mean};
 use super::schedule::Shares;
 
 mod forecast;
 mod types;
 
-pub(crate) use forecast::count_fitting;
+pub(crate) use forecast::{count_fitting, ln_inv_mean_share};
 pub use types::{
-    AccountingError, Answer, Charge, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
+    AccountingError, Answer, Charge, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
     TargetStatus,
 };
 
@@ -76,6 +76,11 @@ struct AnalystState {
     ladder: Vec<KtCounts>,
     best_cell: Vec<u64>,
     last_value: Vec<Option<f64>>,
+    /// Models in this analyst's last batch (1 before any): core 2 forecasts with it.
+    last_models: u32,
+    /// Ladder, per target: the largest level (nats) of a file adopted from another team's
+    /// answer (0 when none); core 2 reports this analyst's ladder intervals at no smaller nats.
+    adopted_nats: Vec<f64>,
 }
 
 /// The accounting state of one holdout. See the module documentation for the protocol.
@@ -96,6 +101,13 @@ pub struct Accountant {
     fit_level: Vec<f64>,
     /// The last reference half-width computed, by (target, reference bits, level bits).
     last_half_width: std::cell::Cell<Option<HalfWidthMemo>>,
+    /// Core 2: the last judged (reported) half-width computed, same key.
+    last_judged: std::cell::Cell<Option<HalfWidthMemo>>,
+    /// Core 2 threshold: the last cutoff computed, by (target, level bits).
+    last_cutoff: std::cell::Cell<Option<((usize, u64), Cutoff)>>,
+    /// Interval evaluations made to decide threshold answers (see
+    /// [`Accountant::threshold_evaluations`]).
+    threshold_evaluations: std::cell::Cell<u64>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -127,6 +139,9 @@ impl Accountant {
             pending: Vec::new(),
             fit_level: Vec::new(),
             last_half_width: std::cell::Cell::new(None),
+            last_judged: std::cell::Cell::new(None),
+            last_cutoff: std::cell::Cell::new(None),
+            threshold_evaluations: std::cell::Cell::new(0),
             policy,
         };
         if acc.policy.tolerance_reference == ToleranceReference::WorstCase {
@@ -140,7 +155,7 @@ impl Accountant {
     /// grow with the level, so `level <= max_fit_level` decides the same as comparing the
     /// half-width with the tolerance.
     fn max_fit_level(&self, target: usize, reference: f64) -> f64 {
-        let fits = |l: f64| self.half_width(target, reference, l) <= self.policy.tolerance;
+        let fits = |l: f64| self.judged_half_width(target, reference, l) <= self.policy.tolerance;
         let mut lo = f64::MIN_POSITIVE;
         if !fits(lo) {
             return f64::NEG_INFINITY;
@@ -200,7 +215,15 @@ impl Accountant {
             ladder: vec![KtCounts::default(); t],
             best_cell: vec![start.best_cell; t],
             last_value: vec![None; t],
+            last_models: 1,
+            adopted_nats: vec![0.0; t],
         }
+    }
+
+    /// Whether this holdout uses core 2's rules (issue 10: threshold by cutoff, tolerance on
+    /// the reported interval, best-of at the mean share, adopted ladder files).
+    fn core2(&self) -> bool {
+        self.policy.core_version >= 2
     }
 
     /// The pool of `analyst` as the next query would see it; `Err` if it has no share.
@@ -277,6 +300,75 @@ impl Accountant {
         h
     }
 
+    /// The half-width the tolerance is judged on. Core 1: the one-count interval at the
+    /// reference score. Core 2: the interval that will be reported (for grid rules, the widest
+    /// cell under the worst-case reference, else the cell holding the reference score;
+    /// [`Rule::reported_half_width`]).
+    fn judged_half_width(&self, target: usize, reference: f64, level_nats: f64) -> f64 {
+        if !self.core2() {
+            return self.half_width(target, reference, level_nats);
+        }
+        let key = (target, reference.to_bits(), level_nats.to_bits());
+        if let Some((k, h)) = self.last_judged.get()
+            && k == key
+        {
+            return h;
+        }
+        let t = &self.policy.targets[target];
+        let reference = match self.policy.tolerance_reference {
+            ToleranceReference::WorstCase => None,
+            ToleranceReference::LastReleased => Some(reference),
+        };
+        let h = self.policy.rule.reported_half_width(
+            self.policy.rows,
+            t.binary,
+            effective_method(t.binary, t.method),
+            reference,
+            level_nats,
+        );
+        self.last_judged.set(Some((key, h)));
+        h
+    }
+
+    /// Core 2 threshold rule: the cutoff for `target` at `level_nats` (DESIGN 4.8), computed
+    /// from the public level alone by bisection and remembered for the level; `None` for
+    /// another rule. A quote computes it, so the answer that follows only compares.
+    pub fn threshold_cutoff(&self, target: usize, level_nats: f64) -> Option<Cutoff> {
+        let Rule::Threshold { tau } = self.policy.rule else {
+            return None;
+        };
+        let t = self.policy.targets.get(target)?;
+        let key = (target, level_nats.to_bits());
+        if let Some((k, c)) = self.last_cutoff.get()
+            && k == key
+        {
+            return Some(c);
+        }
+        let n = self.policy.rows;
+        let method = effective_method(t.binary, t.method);
+        let evals = &self.threshold_evaluations;
+        let cutoff = if t.binary {
+            Cutoff::Errors(cutoff_errors(n, tau, |k| {
+                evals.set(evals.get() + 1);
+                errors_interval(method, n, k, level_nats, Sides::Upper).map_or(1.0, |ci| ci.upper)
+            }))
+        } else {
+            Cutoff::Mean(cutoff_mean(tau, |m| {
+                evals.set(evals.get() + 1);
+                mean_interval(method, n, m, level_nats, Sides::Upper).map_or(1.0, |ci| ci.upper)
+            }))
+        };
+        self.last_cutoff.set(Some((key, cutoff)));
+        Some(cutoff)
+    }
+
+    /// How many one-sided limits this accountant has evaluated to decide threshold answers
+    /// (all of them inside [`Accountant::threshold_cutoff`], at counts chosen from the public
+    /// level): a test can check that answering evaluates none at the exact score.
+    pub fn threshold_evaluations(&self) -> u64 {
+        self.threshold_evaluations.get()
+    }
+
     /// Decides whether the query is answered and at what charge; changes nothing.
     pub fn quote(&self, req: &QueryRequest) -> Result<Charge, Refusal> {
         let policy = &self.policy;
@@ -311,15 +403,31 @@ impl Accountant {
             ln_inv_last = base + frac;
             delta_charged += (-ln_inv_last).exp();
         }
+        if self.core2() && req.models > 1 {
+            // Best-of (DESIGN 4.8): the winner is picked by the data, so the batch is reported
+            // at the mean of its B shares: a union over the B models at that level costs
+            // exactly the B shares charged. Core 1 reported at the smallest share.
+            let first = view.used + 1;
+            ln_inv_last = base
+                + ln_inv_mean_share(&policy.schedule, first, u64::from(req.models)).ok_or(
+                    Refusal::ScheduleExhausted {
+                        answered: view.used,
+                    },
+                )?;
+        }
         let transcript_nats = view.transcript.nats;
         let level_nats = ln_inv_last + transcript_nats;
         let reference = self.reference_mean(&view);
-        let h = self.half_width(req.target, reference, level_nats);
+        let h = self.judged_half_width(req.target, reference, level_nats);
         if h > policy.tolerance {
             return Err(Refusal::ToleranceExceeded {
                 half_width: h,
                 tolerance: policy.tolerance,
             });
+        }
+        if self.core2() {
+            // Threshold: fix the cutoff now, from the public level; the answer only compares.
+            let _ = self.threshold_cutoff(req.target, level_nats);
         }
         Ok(Charge {
             sequence: self.sequence,
@@ -371,9 +479,8 @@ impl Accountant {
         Ok(())
     }
 
-    /// Takes the charge's shares and registers a new analyst; returns the analyst's state.
-    fn take_shares(&mut self, charge: &Charge) -> &mut AnalystState {
-        let analyst = &charge.request.analyst;
+    /// Registers `analyst` if new (an arrival, under on-arrival shares).
+    fn register(&mut self, analyst: &str) {
         if !self.analysts.contains_key(analyst) {
             let w = if self.per_analyst_pool() {
                 if !self.policy.shares.on_roster(analyst) {
@@ -387,14 +494,21 @@ impl Accountant {
                 None
             };
             let fresh = self.fresh_analyst(w);
-            self.analysts.insert(analyst.clone(), fresh);
+            self.analysts.insert(analyst.to_string(), fresh);
         }
+    }
+
+    /// Takes the charge's shares and registers a new analyst; returns the analyst's state.
+    fn take_shares(&mut self, charge: &Charge) -> &mut AnalystState {
+        let analyst = &charge.request.analyst;
+        self.register(analyst);
         self.sequence += 1;
         self.pool_queries += u64::from(charge.shares);
         self.spent += charge.delta_charged;
         let state = self.analysts.get_mut(analyst).expect("inserted above");
         state.queries += u64::from(charge.shares);
         state.spent += charge.delta_charged;
+        state.last_models = charge.shares;
         state
     }
 
@@ -427,7 +541,13 @@ impl Accountant {
         let rows = self.policy.rows;
         let code = rule.code_nats(rows, &past, &symbol);
         debug_assert!(code.is_finite(), "released symbol {symbol:?} has p = 0");
-        let (interval, released) = self.interval_of(req.target, &symbol, &past, charge.level_nats);
+        // A ladder that adopted another team's answered file reports at a level no larger than
+        // the one that file was answered at (DESIGN 4.8); 0 (no effect) without an adoption,
+        // and always under core 1, which never adopts.
+        let level = charge
+            .level_nats
+            .max(view_adopted_nats(self, &req.analyst, req.target));
+        let (interval, released) = self.interval_of(req.target, &symbol, &past, level);
         let isolated = self.policy.sharing == Sharing::Isolated;
         let target = req.target;
         let state = self.take_shares(charge);
@@ -454,9 +574,73 @@ impl Accountant {
             Symbol::Fail => transcript.threshold[target].record(false),
             _ => {}
         }
-        Ok(self.finish(req, charge, symbol, released, interval, code))
+        Ok(self.finish(req, charge, symbol, released, interval, code, level))
     }
 
+    /// Core 2, ladder under `shared`: whether a file already answered for another team with
+    /// `NewBest { cell }` fixes `analyst`'s answer (its cell is at least one grid step below
+    /// the analyst's best), so that it may update the analyst's ladder at no charge.
+    pub fn can_adopt(&self, analyst: &str, target: usize, cell: u64) -> bool {
+        self.core2()
+            && matches!(self.policy.rule, Rule::Ladder(_))
+            && self.policy.sharing == Sharing::Shared
+            && target < self.policy.targets.len()
+            && self.view(analyst, target).is_ok_and(|v| cell < v.best_cell)
+    }
+
+    /// Adopts a file answered for another team as `analyst`'s new best at no charge (DESIGN
+    /// 4.8, replayed files on a ladder): the symbol was public, and it fixes the analyst's
+    /// answer ([`Accountant::can_adopt`]). Nothing is charged and nothing is coded; the
+    /// interval is the cell's at `level_nats`, the level the file was answered at, and the
+    /// analyst's later ladder intervals use no smaller nats.
+    pub fn adopt(
+        &mut self,
+        analyst: &str,
+        target: usize,
+        cell: u64,
+        level_nats: f64,
+    ) -> Result<Answer, AccountingError> {
+        if !self.can_adopt(analyst, target, cell) {
+            return Err(AccountingError::WrongRule(
+                "only a ladder under shared sharing (core 2) adopts, and only a cell below the \
+                 analyst's best",
+            ));
+        }
+        if !(level_nats.is_finite() && level_nats > 0.0) {
+            return Err(AccountingError::BadOutcome(format!(
+                "an adopted file's level must be a positive number of nats, got {level_nats}"
+            )));
+        }
+        let symbol = Symbol::NewBest { cell };
+        let past = Past::start(&self.policy.rule, self.policy.rows);
+        let (interval, released) = self.interval_of(target, &symbol, &past, level_nats);
+        self.register(analyst);
+        self.sequence += 1;
+        let state = self.analysts.get_mut(analyst).expect("registered above");
+        state.best_cell[target] = cell;
+        state.last_value[target] = released;
+        state.adopted_nats[target] = state.adopted_nats[target].max(level_nats);
+        let req = QueryRequest {
+            analyst: analyst.to_string(),
+            target,
+            models: 1,
+        };
+        let charge = Charge {
+            sequence: self.sequence,
+            request: req.clone(),
+            query_number: 0,
+            shares: 0,
+            delta_i: 0.0,
+            ln_inv_delta_i: 0.0,
+            level_nats,
+            transcript_nats: 0.0,
+            delta_charged: 0.0,
+            reference_half_width: 0.0,
+        };
+        Ok(self.finish(&req, &charge, symbol, released, interval, 0.0, level_nats))
+    }
+
+    #[allow(clippy::too_many_arguments)]
     fn finish(
         &self,
         req: &QueryRequest,
@@ -465,6 +649,7 @@ impl Accountant {
         released_score: Option<f64>,
         interval: Interval,
         code_nats: f64,
+        level_nats: f64,
     ) -> Answer {
         let status = self.status(Some(&req.analyst));
         let t = &status.targets[req.target];
@@ -475,7 +660,7 @@ impl Accountant {
             interval,
             query_number: charge.query_number,
             delta_i: charge.delta_i,
-            level_nats: charge.level_nats,
+            level_nats,
             code_nats,
             spent: status.spent,
             remaining: status.remaining,
@@ -506,6 +691,18 @@ impl Accountant {
             Rule::Rounded(_) | Rule::Sealed(_) => Symbol::Cell {
                 index: self.cell_of(&outcomes[0]),
             },
+            Rule::Threshold { .. } if self.core2() => {
+                // Threshold by cutoff: one comparison with a boundary computed from the public
+                // level alone (cached by the quote), so the work does not depend on the score.
+                let cutoff = self
+                    .threshold_cutoff(target, level_nats)
+                    .expect("threshold rule");
+                if cutoff.passes(&outcomes[0], self.policy.rows) {
+                    Symbol::Pass
+                } else {
+                    Symbol::Fail
+                }
+            }
             Rule::Threshold { tau } => {
                 let t = &self.policy.targets[target];
                 let n = self.policy.rows;
@@ -685,6 +882,7 @@ impl Accountant {
                     *released,
                     *interval,
                     *code,
+                    r.charge.level_nats,
                 )
             })
             .collect())
@@ -699,6 +897,14 @@ static EMPTY_TRANSCRIPT: Transcript = Transcript {
     answers: 0,
     threshold: Vec::new(),
 };
+
+/// The largest level an analyst's adopted ladder files were answered at (0: none).
+fn view_adopted_nats(acc: &Accountant, analyst: &str, target: usize) -> f64 {
+    acc.analysts
+        .get(analyst)
+        .and_then(|s| s.adopted_nats.get(target).copied())
+        .unwrap_or(0.0)
+}
 
 /// Exact needs counts; on bounded losses KL stands in (policy validation forbids the pair).
 fn effective_method(binary: bool, method: Method) -> Method {

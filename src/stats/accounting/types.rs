@@ -171,3 +171,25 @@ pub struct SealedReceipt {
     /// The charge taken.
     pub charge: Charge,
 }
+
+/// Threshold by cutoff (core 2): the decision boundary for one target at one level, computed
+/// from the public level alone; an answer is then one comparison (DESIGN 4.8).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Cutoff {
+    /// 0-1 loss: pass iff the error count is at most this (`-1`: nothing passes).
+    Errors(i64),
+    /// Bounded loss: pass iff the mean loss is at most this (`-inf`: nothing passes).
+    Mean(f64),
+}
+
+impl Cutoff {
+    /// Whether an outcome passes: one comparison, whatever the outcome.
+    pub fn passes(&self, outcome: &Outcome, rows: u64) -> bool {
+        match (*self, *outcome) {
+            (Cutoff::Errors(c), Outcome::Errors(k)) => i128::from(k) <= i128::from(c),
+            (Cutoff::Mean(m), Outcome::LossSum(s)) => s / rows as f64 <= m,
+            _ => false,
+        }
+    }
+}
