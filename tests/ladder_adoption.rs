@@ -118,8 +118,8 @@ fn submit(e: &mut Engine, team: &str, model: ModelPredictions) -> SubmitOutcome 
     .unwrap()
 }
 
-/// (symbol, team, entry, replayed, lower, upper, level) of an answer outcome.
-fn answered(o: &SubmitOutcome) -> (String, String, u64, bool, f64, f64, f64) {
+/// (symbol, team, entry hash, replayed, lower, upper, level) of an answer outcome.
+fn answered(o: &SubmitOutcome) -> (String, String, String, bool, f64, f64, f64) {
     match o {
         SubmitOutcome::Answer {
             record,
@@ -128,7 +128,7 @@ fn answered(o: &SubmitOutcome) -> (String, String, u64, bool, f64, f64, f64) {
         } => (
             record.symbol.clone(),
             record.team.clone(),
-            receipt.entry,
+            receipt.entry_hash.clone(),
             *replayed,
             record.lower,
             record.upper,
@@ -136,6 +136,16 @@ fn answered(o: &SubmitOutcome) -> (String, String, u64, bool, f64, f64, f64) {
         ),
         other => panic!("not an answer: {other:?}"),
     }
+}
+
+/// The position of the entry a receipt names (receipts carry hashes, not positions).
+fn seq_of(e: &mut Engine, hash: &str) -> u64 {
+    ledger::read_chain(e.store().conn(), NAME)
+        .unwrap()
+        .into_iter()
+        .find(|x| x.hash == hash)
+        .expect("the receipt's entry is in the chain")
+        .seq
 }
 
 fn kinds(e: &mut Engine) -> Vec<String> {
@@ -162,7 +172,7 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
     let red_file = || file(0, 200);
     let r = answered(&submit(&mut e, "red", red_file()));
     assert_eq!((r.0.as_str(), r.3), ("new-best 0.10", false));
-    let red_entry = r.2;
+    let red_entry = r.2.clone();
     let red_level = r.6;
     let b = answered(&submit(&mut e, "blue", file(100, 600)));
     assert_eq!(b.0, "new-best 0.30");
@@ -181,7 +191,7 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
     let k = kinds(&mut e);
     assert_eq!(k.len(), entries_before + 1);
     assert_eq!(k.last().unwrap(), "adopt");
-    let adopt_entry = a.2;
+    let adopt_entry = seq_of(&mut e, &a.2);
 
     // The leaderboard now shows blue's best as 0.10 with the adopted interval.
     let board = e.leaderboard(&organizer(), NAME).unwrap();
@@ -193,13 +203,13 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
 
     // blue sends it again: its own adoption again, no new entry.
     let again = answered(&submit(&mut e, "blue", red_file()));
-    assert_eq!(again.2, adopt_entry);
+    assert_eq!(again.2, a.2);
     assert_eq!(kinds(&mut e).len(), entries_before + 1);
 
     // blue's history shows the adoption.
     let hist = e.history(&analyst("blue"), NAME, false).unwrap();
     assert!(hist.iter().any(|h| matches!(h,
-        HistoryItem::Answer(r, rc) if rc.entry == adopt_entry && r.symbol == "new-best 0.10")));
+        HistoryItem::Answer(r, rc) if rc.entry_hash == a.2 && r.symbol == "new-best 0.10")));
 
     // blue's next own query reports its ladder interval at no smaller nats than red's file.
     let next = answered(&submit(&mut e, "blue", file(50, 300)));
@@ -267,7 +277,7 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
             let charged = ex
                 .entries
                 .iter()
-                .find(|x| x.seq == c.2)
+                .find(|x| x.hash == c.2)
                 .map(|x| x.seq)
                 .unwrap();
             v["core"]["adopted_from"] = Value::from(charged);

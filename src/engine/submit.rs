@@ -510,10 +510,11 @@ impl Engine {
             .map_err(|e| Error::Internal(format!("adoption encoding: {e}")))?;
         let entry = ledger::append(self.store.conn(), &loaded.name, "adopt", &body)?;
         self.remember_request(loaded, &team, req, digest, entry.seq)?;
+        let receipt = Receipt::of(&entry, record.query);
         Ok((
             SubmitOutcome::Answer {
                 record: Box::new(record),
-                receipt: Receipt::of(&entry),
+                receipt,
                 replayed: true,
             },
             Some((entry.seq, book)),
