@@ -33,7 +33,7 @@ use std::fmt;
 use std::str::FromStr;
 
 use super::interval::{Interval, IntervalError, Method, Sides};
-use super::interval::{errors_range_interval, mean_range_interval};
+use super::interval::{Rounding, errors_range_interval_with, mean_range_interval_with};
 
 /// A rounding grid `{0, 1/M, ..., 1}` with `M + 1` cells.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
@@ -96,6 +96,8 @@ impl Grid {
     /// The reported interval for cell `j`: the worst case over the cell (DESIGN 4.3).
     /// Binary losses use the error counts of the cell; bounded losses its mean range, never
     /// Clopper-Pearson. An empty cell (possible when `n < M`) cannot be released; it gets [0, 1].
+    /// `rounding` follows the holdout's core version ([`Rounding::for_core`]).
+    #[allow(clippy::too_many_arguments)]
     pub fn interval(
         &self,
         j: u64,
@@ -104,10 +106,13 @@ impl Grid {
         method: Method,
         level_nats: f64,
         sides: Sides,
+        rounding: Rounding,
     ) -> Result<Interval, IntervalError> {
         if binary {
             match self.errors_in_cell(n, j) {
-                Some((lo, hi)) => errors_range_interval(method, n, lo, hi, level_nats, sides),
+                Some((lo, hi)) => {
+                    errors_range_interval_with(rounding, method, n, lo, hi, level_nats, sides)
+                }
                 None => Ok(Interval::FULL),
             }
         } else {
@@ -117,7 +122,7 @@ impl Grid {
             } else {
                 method
             };
-            mean_range_interval(method, n, lo, hi, level_nats, sides)
+            mean_range_interval_with(rounding, method, n, lo, hi, level_nats, sides)
         }
     }
 }

@@ -38,7 +38,7 @@
 
 use std::collections::BTreeMap;
 
-use super::interval::reference_half_width;
+use super::interval::{Rounding, reference_half_width_with};
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
 use super::policy::{Policy, Sharing, ToleranceReference};
 use super::rules::{KtCounts, Past, Rule, Symbol};
@@ -265,7 +265,8 @@ impl Accountant {
         }
         let t = &self.policy.targets[target];
         let method = effective_method(t.binary, t.method);
-        let h = reference_half_width(
+        let h = reference_half_width_with(
+            Rounding::for_core(self.policy.core_version),
             method,
             self.policy.rows,
             reference,
@@ -575,6 +576,7 @@ impl Accountant {
                     effective_method(t.binary, t.method),
                     level,
                     Sides::Two,
+                    Rounding::for_core(self.policy.core_version),
                 )
                 .unwrap_or(Interval::FULL);
             (ci, g.value(j))
