@@ -29,7 +29,11 @@ pub struct BoundArgs {
     pub mean: Option<f64>,
     /// FAILURE probability D, e.g. 0.05 for an interval that holds with probability 0.95.
     /// This is not the confidence: pass 0.05, never 0.95.
-    #[arg(long, conflicts_with = "level_nats", required_unless_present = "level_nats")]
+    #[arg(
+        long,
+        conflicts_with = "level_nats",
+        required_unless_present = "level_nats"
+    )]
     pub delta: Option<f64>,
     /// The level as ln(1/D) nats instead of --delta, for levels far below the smallest double
     /// (e.g. 30000 nats, D = e^-30000).

@@ -686,7 +686,13 @@ impl Engine {
         }
         // Core version 2 ranks each target on its own; version 1 had one mixed ranking.
         let per_target = loaded.policy.core.core_version >= 2;
-        let group = |i: usize| if per_target { sealed[i].target_index } else { 0 };
+        let group = |i: usize| {
+            if per_target {
+                sealed[i].target_index
+            } else {
+                0
+            }
+        };
         // One selected entry per team (and target): its last marked entry, else its last entry.
         let mut selected: BTreeMap<(usize, &str), usize> = BTreeMap::new();
         for (i, rec) in sealed.iter().enumerate() {

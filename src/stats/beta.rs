@@ -404,6 +404,10 @@ pub(crate) fn ln_binom_cdf_bound(n: u64, k: u64, p: Point) -> Option<TailBound> 
     let q_over_p = p.y / p.x;
     let (mut term, mut sum, mut terms) = (1.0f64, 1.0f64, 0u64);
     let mut rest = 0.0f64;
+    // Below the mean the terms first grow (ratios above 1): rescale by 2^-600 (exact) so that
+    // they never overflow, and carry the scale in `ln_scale`.
+    let mut ln_scale = 0.0f64;
+    const SCALE: f64 = 2.409_919_865_102_884e-181; // 2^-600
     let mut j = k;
     while j >= 1 {
         let jf = j as f64;
@@ -412,6 +416,11 @@ pub(crate) fn ln_binom_cdf_bound(n: u64, k: u64, p: Point) -> Option<TailBound> 
         sum += term;
         terms += 1;
         j -= 1;
+        if sum > 1e150 {
+            term *= SCALE;
+            sum *= SCALE;
+            ln_scale += 600.0 * std::f64::consts::LN_2;
+        }
         if !(term.is_finite() && sum.is_finite()) || terms > MAX_TAIL_TERMS {
             return None;
         }
@@ -427,13 +436,13 @@ pub(crate) fn ln_binom_cdf_bound(n: u64, k: u64, p: Point) -> Option<TailBound> 
     // Every term and the running sum carry at most 8 (terms + 1) UNIT of relative error.
     let rel = 8.0 * (terms as f64 + 2.0) * UNIT;
     let total = (sum + rest) * (1.0 + rel) * (1.0 + 2.0 * UNIT);
-    let ln_s = total.ln();
-    let e_s = 2.0 * UNIT * ln_s.abs();
+    let ln_s = total.ln() + ln_scale;
+    let e_s = 2.0 * UNIT * ln_s.abs() + UNIT * ln_scale;
     let ln = ln_tk + ln_s;
     let err = e_tk + e_s + 2.0 * UNIT * (ln_tk.abs() + ln_s.abs());
     Some(TailBound {
         ln: ln + err,
-        slope: -(nf - kf) / (p.y * sum),
+        slope: -(nf - kf) / (p.y * sum) * (-ln_scale).exp(),
     })
 }
 
@@ -491,6 +500,9 @@ where
     for _ in 0..2200 {
         let cand = outward(fail, step);
         if cand == end {
+            // The trivial limit holds; bisect back towards the last failing point (a flat log
+            // tail, as at levels near 0, makes Newton's step overshoot).
+            extra += 1;
             break;
         }
         if bound(cand)?.ln <= -t {
@@ -501,7 +513,8 @@ where
         step *= 2.0;
         extra += 1;
     }
-    // Bisection, only when the first Newton step fell short (then the bracket may be wide).
+    // Bisection, only when the first Newton step fell short or overshot to the end (then the
+    // bracket may be wide).
     if extra > 0 {
         for _ in 0..40 {
             let mid = 0.5 * (fail + pass);

@@ -38,8 +38,8 @@
 
 use std::collections::BTreeMap;
 
-use super::interval::{Rounding, reference_half_width_with};
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
+use super::interval::{Rounding, reference_half_width_with};
 use super::policy::{Policy, Sharing, ToleranceReference};
 use super::rules::{KtCounts, Past, Rule, Symbol};
 use super::schedule::Shares;
