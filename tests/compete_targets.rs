@@ -146,7 +146,11 @@ fn a_two_target_round_ranks_and_compares_within_each_target() {
         assert_eq!(target_of(c.ahead), target_of(c.behind), "{c:?}");
         assert_eq!(c.target, target_of(c.ahead));
         // The true differences are -0.02 (y) and -0.01 (z).
-        let truth = if c.target.as_deref() == Some("y") { -0.02 } else { -0.01 };
+        let truth = if c.target.as_deref() == Some("y") {
+            -0.02
+        } else {
+            -0.01
+        };
         assert!(c.lower <= truth && truth <= c.upper, "{c:?}");
     }
     // The reserve is split over the 2 pairs within targets, not the 6 pairs of 4 entries.
@@ -162,7 +166,11 @@ fn a_two_target_round_ranks_and_compares_within_each_target() {
         assert_eq!(c.level_nats.to_bits(), (2f64.ln() - reserve.ln()).to_bits());
         assert!(c.level_nats < ranking_level(reserve, 4));
     }
-    assert!(r.statement.contains("Each target is ranked on its own"), "{}", r.statement);
+    assert!(
+        r.statement.contains("Each target is ranked on its own"),
+        "{}",
+        r.statement
+    );
 
     // The offline audit replays the round.
     let (entries, users) = {
