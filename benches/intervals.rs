@@ -1,15 +1,24 @@
 //! Interval computation at ordinary and extreme levels (`ln(1/d)` = 3, 30, 700, 5000 nats),
-//! n from 1e3 to 1e6, and one full quote + answer of the accountant.
+//! n from 1e3 to 1e6, rounded to nearest (core version 1) and outward (core version 2), and
+//! one full quote + answer of the accountant.
 
 use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
 use holdout_ledger::stats::accounting::{Accountant, Outcome, QueryRequest};
-use holdout_ledger::stats::interval::{Method, Sides, errors_interval};
+use holdout_ledger::stats::interval::{Method, Rounding, Sides, errors_interval_with};
 use holdout_ledger::stats::policy::Policy;
 use std::hint::black_box;
 
 fn intervals(c: &mut Criterion) {
-    for method in [Method::Exact, Method::Kl, Method::Hoeffding] {
-        let mut group = c.benchmark_group(format!("interval/{method}"));
+    // Core version 1 (rounded to nearest) and core version 2 (verified, moved outward).
+    let runs = [
+        (Method::Exact, Rounding::Nearest, "exact"),
+        (Method::Exact, Rounding::Outward, "exact-outward"),
+        (Method::Kl, Rounding::Nearest, "kl"),
+        (Method::Kl, Rounding::Outward, "kl-outward"),
+        (Method::Hoeffding, Rounding::Nearest, "hoeffding"),
+    ];
+    for (method, rounding, label) in runs {
+        let mut group = c.benchmark_group(format!("interval/{label}"));
         for n in [1_000u64, 100_000, 1_000_000] {
             for level in [3.0f64, 30.0, 700.0, 5000.0] {
                 let k = n / 5;
@@ -18,7 +27,14 @@ fn intervals(c: &mut Criterion) {
                     &(n, k, level),
                     |b, &(n, k, level)| {
                         b.iter(|| {
-                            errors_interval(method, black_box(n), black_box(k), level, Sides::Two)
+                            errors_interval_with(
+                                rounding,
+                                method,
+                                black_box(n),
+                                black_box(k),
+                                level,
+                                Sides::Two,
+                            )
                         })
                     },
                 );

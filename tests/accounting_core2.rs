@@ -4,7 +4,9 @@
 //! Each behaviour is checked against core 1, which must keep its old numbers.
 
 use holdout_ledger::stats::accounting::{Accountant, Answer, Cutoff, Outcome, QueryRequest};
-use holdout_ledger::stats::interval::{Method, Sides, errors_interval, mean_interval};
+use holdout_ledger::stats::interval::{
+    Method, Rounding, Sides, errors_interval_with, mean_interval_with,
+};
 use holdout_ledger::stats::policy::{Policy, Sharing, TargetPolicy};
 use holdout_ledger::stats::rules::Grid;
 use holdout_ledger::stats::schedule::Shares;
@@ -62,8 +64,10 @@ impl Rng {
 // ---------------------------------------------------------------------------------------
 // Defect 7: threshold by cutoff.
 
+/// The limit a core-2 holdout would report at the exact count (outward rounding).
 fn direct_upper(method: Method, n: u64, k: u64, level: f64) -> f64 {
-    errors_interval(method, n, k, level, Sides::Upper).map_or(1.0, |ci| ci.upper)
+    errors_interval_with(Rounding::Outward, method, n, k, level, Sides::Upper)
+        .map_or(1.0, |ci| ci.upper)
 }
 
 proptest! {
@@ -114,7 +118,7 @@ proptest! {
         };
         let sum = mean * n as f64;
         let exact = sum / n as f64;
-        let direct = mean_interval(method, n, exact, level, Sides::Upper)
+        let direct = mean_interval_with(Rounding::Outward, method, n, exact, level, Sides::Upper)
             .map_or(1.0, |ci| ci.upper) <= tau;
         prop_assert_eq!(Cutoff::Mean(m).passes(&Outcome::LossSum(sum), n), direct,
             "n {} mean {} level {} tau {} cutoff {}", n, exact, level, tau, m);
@@ -190,7 +194,10 @@ fn the_widest_cell_bound_covers_every_cell() {
     for n in [1u64, 2, 7, 30, 99, 100, 101, 997, 4000, 12_345] {
         for m in [1u64, 2, 3, 7, 20, 100, 101, 1000] {
             let g = Grid { cells: m };
-            for level in [0.5, 3.7, 12.0, 60.0] {
+            for (level, rounding) in [0.5, 3.7, 12.0, 60.0]
+                .into_iter()
+                .flat_map(|l| [(l, Rounding::Nearest), (l, Rounding::Outward)])
+            {
                 for (binary, method) in [
                     (true, Method::Exact),
                     (true, Method::Kl),
@@ -198,10 +205,12 @@ fn the_widest_cell_bound_covers_every_cell() {
                     (false, Method::Kl),
                     (false, Method::Hoeffding),
                 ] {
-                    let bound = g.widest_half_width(n, binary, method, level);
+                    let bound = g.widest_half_width(n, binary, method, level, rounding);
                     let mut widest = 0.0f64;
                     for j in 0..=m {
-                        let ci = g.interval(j, n, binary, method, level, Sides::Two).unwrap();
+                        let ci = g
+                            .interval(j, n, binary, method, level, Sides::Two, rounding)
+                            .unwrap();
                         if binary && g.errors_in_cell(n, j).is_none() {
                             continue; // an empty cell is never released
                         }

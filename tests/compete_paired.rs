@@ -23,6 +23,7 @@ impl Rng {
 
 fn comparison(a_only: u64, b_only: u64, level_nats: f64) -> Comparison {
     Comparison {
+        target: None,
         ahead: 0,
         behind: 1,
         lower: 0.0,

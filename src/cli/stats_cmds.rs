@@ -8,7 +8,9 @@ use anyhow::{Context, bail};
 use clap::Args;
 use serde_json::json;
 
-use crate::stats::interval::{Interval, Method, Sides, errors_interval, mean_interval};
+use crate::stats::interval::{
+    Interval, Method, Rounding, Sides, display_outward, errors_interval_with, mean_interval_with,
+};
 use crate::stats::plan::{PlanRow, PlanSpec, plan_table, rows_table};
 use crate::stats::rules::Rule;
 use crate::stats::schedule::Schedule;
@@ -27,8 +29,16 @@ pub struct BoundArgs {
     pub mean: Option<f64>,
     /// FAILURE probability D, e.g. 0.05 for an interval that holds with probability 0.95.
     /// This is not the confidence: pass 0.05, never 0.95.
+    #[arg(
+        long,
+        conflicts_with = "level_nats",
+        required_unless_present = "level_nats"
+    )]
+    pub delta: Option<f64>,
+    /// The level as ln(1/D) nats instead of --delta, for levels far below the smallest double
+    /// (e.g. 30000 nats, D = e^-30000).
     #[arg(long)]
-    pub delta: f64,
+    pub level_nats: Option<f64>,
     /// exact (Clopper-Pearson, error counts only), kl or hoeffding [default: exact with
     /// --errors, kl with --mean].
     #[arg(long, value_parser = parse_method)]
@@ -36,7 +46,8 @@ pub struct BoundArgs {
     /// Print a one-sided upper bound at the full level D (the lower limit is then 0).
     #[arg(long)]
     pub one_sided: bool,
-    /// Print JSON: {"lower", "upper", "method", "delta", ...}.
+    /// Print JSON: {"lower", "upper", "method", "delta", "level_nats", ...}, limits as
+    /// round-trip floats.
     #[arg(long)]
     pub json: bool,
 }
@@ -104,8 +115,7 @@ fn check_delta(delta: f64) -> anyhow::Result<()> {
 
 /// Computes the interval of `holdout bound`.
 pub fn bound_interval(args: &BoundArgs) -> anyhow::Result<(Interval, Method)> {
-    check_delta(args.delta)?;
-    let level = -args.delta.ln();
+    let level = bound_level(args)?;
     let sides = if args.one_sided {
         Sides::Upper
     } else {
@@ -119,7 +129,8 @@ pub fn bound_interval(args: &BoundArgs) -> anyhow::Result<(Interval, Method)> {
             if k > args.rows {
                 bail!("--errors {k} is more than --rows {}", args.rows);
             }
-            (errors_interval(method, args.rows, k, level, sides)?, method)
+            let ci = errors_interval_with(Rounding::Outward, method, args.rows, k, level, sides)?;
+            (ci, method)
         }
         (None, Some(m)) => {
             let method = args.method.unwrap_or(Method::Kl);
@@ -128,21 +139,43 @@ pub fn bound_interval(args: &BoundArgs) -> anyhow::Result<(Interval, Method)> {
                     "--method exact (Clopper-Pearson) needs --errors; use kl or hoeffding with --mean"
                 );
             }
-            (mean_interval(method, args.rows, m, level, sides)?, method)
+            let ci = mean_interval_with(Rounding::Outward, method, args.rows, m, level, sides)?;
+            (ci, method)
         }
     };
     Ok(ci)
 }
 
-/// Runs `holdout bound`.
+/// `ln(1/D)` of `holdout bound`, from `--delta` or `--level-nats`.
+fn bound_level(args: &BoundArgs) -> anyhow::Result<f64> {
+    match (args.delta, args.level_nats) {
+        (Some(_), Some(_)) => bail!("give either --delta or --level-nats, not both"),
+        (None, None) => bail!("give --delta D (failure probability) or --level-nats ln(1/D)"),
+        (Some(d), None) => {
+            check_delta(d)?;
+            Ok(-d.ln())
+        }
+        (None, Some(l)) => {
+            if !(l.is_finite() && l > 0.0) {
+                bail!("--level-nats is ln(1/D) and must be a finite number > 0, got {l}");
+            }
+            Ok(l)
+        }
+    }
+}
+
+/// Runs `holdout bound`. Limits are rounded outward (core version 2): in JSON as round-trip
+/// floats, in text at 6 decimals with the lower limit rounded down and the upper one up.
 pub fn run_bound(args: &BoundArgs) -> anyhow::Result<ExitCode> {
     let (ci, method) = bound_interval(args)?;
+    let level = bound_level(args)?;
     if args.json {
         let v = json!({
             "lower": ci.lower,
             "upper": ci.upper,
             "method": method.to_string(),
             "delta": args.delta,
+            "level_nats": level,
             "rows": args.rows,
             "errors": args.errors,
             "mean": args.mean,
@@ -155,13 +188,20 @@ pub fn run_bound(args: &BoundArgs) -> anyhow::Result<ExitCode> {
         } else {
             "two-sided interval"
         };
-        println!("[{:.6}, {:.6}]", ci.lower, ci.upper);
+        let (lo, hi) = display_outward(ci.lower, ci.upper, 6);
+        println!("[{lo}, {hi}]");
+        let holds = match args.delta {
+            Some(d) => format!(
+                "holds with probability at least {} (delta = {d} is the failure probability)",
+                1.0 - d
+            ),
+            None => format!(
+                "holds with probability at least 1 - e^-{level} (failure probability e^-{level})"
+            ),
+        };
         println!(
-            "{what}, method {method}: holds with probability at least {} (delta = {} is the \
-             failure probability), for rows drawn independently and a model fixed without \
-             looking at these labels",
-            1.0 - args.delta,
-            args.delta
+            "{what}, method {method}: {holds}, for rows drawn independently and a model fixed \
+             without looking at these labels; limits rounded outward"
         );
     }
     Ok(ExitCode::SUCCESS)

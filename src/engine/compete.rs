@@ -9,7 +9,11 @@
 //! the teams' selected entries (the last one each team marked, else its last entry) are ranked
 //! by released score. Neighbours are compared with paired intervals (DESIGN 4.6) at a level
 //! from the ranking's reserve: `ranking_delta` split evenly over all `K (K - 1) / 2` pairs, so
-//! the intervals hold simultaneously for whichever pairs end up adjacent. The sealed answers
+//! the intervals hold simultaneously for whichever pairs end up adjacent. From core version 2
+//! a round with several targets ranks each target on its own (a team's selected entry per
+//! target, ranks from 1 in each, neighbours only within a target, the reserve split over the
+//! pairs within targets): entries of different targets measure different losses and are never
+//! compared. Core version 1 rounds keep their one mixed ranking, so they replay unchanged. The sealed answers
 //! use the rest of delta, so the whole holdout stays within the committed delta. The close is
 //! the holdout's last event (nothing is answered after it), so neither the cells nor the
 //! comparisons have to be coded for a later query.
@@ -28,7 +32,8 @@ use crate::auth::{Caller, Role, rfc3339};
 use crate::error::{Error, Result};
 use crate::ledger::{self, Entry};
 use crate::metric::{Labels, Loss, Metric, Predictions};
-use crate::stats::paired::{paired_bounded, paired_errors};
+use crate::stats::interval::Rounding;
+use crate::stats::paired::{paired_bounded, paired_errors_with};
 use crate::stats::rules::Rule;
 
 /// The parts of a policy that only sealed rounds have.
@@ -243,6 +248,7 @@ fn loss_of(binary: bool, v: &[f64]) -> Loss {
 
 /// The paired comparison of two per-row loss vectors at `level_nats` (DESIGN 4.6).
 pub(crate) fn compare(
+    rounding: Rounding,
     binary: bool,
     a: &[f64],
     b: &[f64],
@@ -260,13 +266,14 @@ pub(crate) fn compare(
         b_only: None,
         sum_diff: None,
         sum_sq_diff: None,
+        target: None,
     };
     let ci = if binary {
         let a_only = a.iter().zip(b).filter(|(x, y)| **x > **y).count() as u64;
         let b_only = a.iter().zip(b).filter(|(x, y)| **x < **y).count() as u64;
         c.a_only = Some(a_only);
         c.b_only = Some(b_only);
-        paired_errors(n, a_only, b_only, level_nats)
+        paired_errors_with(rounding, n, a_only, b_only, level_nats)
     } else {
         let (s, s2) = a.iter().zip(b).fold((0.0, 0.0), |(s, s2), (x, y)| {
             let d = x - y;
@@ -285,8 +292,18 @@ pub(crate) fn compare(
 
 /// Recomputes a comparison from the statistics its record carries (audit replay).
 pub fn replay_comparison(binary: bool, rows: u64, c: &Comparison) -> Option<(f64, f64)> {
+    replay_comparison_with(Rounding::Nearest, binary, rows, c)
+}
+
+/// [`replay_comparison`] with the rounding of the holdout's core version.
+pub(crate) fn replay_comparison_with(
+    rounding: Rounding,
+    binary: bool,
+    rows: u64,
+    c: &Comparison,
+) -> Option<(f64, f64)> {
     let ci = if binary {
-        paired_errors(rows, c.a_only?, c.b_only?, c.level_nats).ok()?
+        paired_errors_with(rounding, rows, c.a_only?, c.b_only?, c.level_nats).ok()?
     } else {
         paired_bounded(rows, c.sum_diff?, c.sum_sq_diff?, c.level_nats).ok()?
     };
@@ -364,7 +381,8 @@ pub(crate) fn replay_entry(book: &mut Book, policy: &HoldoutPolicy, e: &Entry) -
             .get(c.ahead as usize)
             .map(|a| policy.core.targets[a.target_index].binary)
             .unwrap_or(true);
-        match replay_comparison(binary, policy.core.rows, c) {
+        let rounding = Rounding::for_core(policy.core.core_version);
+        match replay_comparison_with(rounding, binary, policy.core.rows, c) {
             Some((lo, hi))
                 if lo.to_bits() == c.lower.to_bits() && hi.to_bits() == c.upper.to_bits() => {}
             _ => return Err(mismatch("a comparison")),
@@ -667,47 +685,73 @@ impl Engine {
                 exact: Some(vec![*loss]),
             });
         }
-        // One selected entry per team: its last marked entry, else its last entry.
-        let mut selected: BTreeMap<&str, usize> = BTreeMap::new();
+        // Core version 2 ranks each target on its own; version 1 had one mixed ranking.
+        let per_target = loaded.policy.core.core_version >= 2;
+        let group = |i: usize| {
+            if per_target {
+                sealed[i].target_index
+            } else {
+                0
+            }
+        };
+        // One selected entry per team (and target): its last marked entry, else its last entry.
+        let mut selected: BTreeMap<(usize, &str), usize> = BTreeMap::new();
         for (i, rec) in sealed.iter().enumerate() {
-            let keep = match selected.get(rec.team.as_str()) {
+            let key = (group(i), rec.team.as_str());
+            let keep = match selected.get(&key) {
                 Some(&j) => rec.marked || !sealed[j].marked,
                 None => true,
             };
             if keep {
-                selected.insert(rec.team.as_str(), i);
+                selected.insert(key, i);
             }
         }
-        // Ranked by released score (public), ties to the earlier entry.
+        // Ranked by released score (public) within each group, ties to the earlier entry.
         let mut order: Vec<usize> = selected.values().copied().collect();
         order.sort_by(|&a, &b| {
             let sa = answers[a].score.unwrap_or(f64::INFINITY);
             let sb = answers[b].score.unwrap_or(f64::INFINITY);
-            sa.total_cmp(&sb).then(a.cmp(&b))
+            group(a)
+                .cmp(&group(b))
+                .then(sa.total_cmp(&sb))
+                .then(a.cmp(&b))
         });
-        let ranking: Vec<RankedEntry> = order
-            .iter()
-            .enumerate()
-            .map(|(r, &i)| RankedEntry {
-                rank: r as u64 + 1,
+        let target_of = |i: usize| per_target.then(|| sealed[i].target.clone());
+        let mut ranking: Vec<RankedEntry> = Vec::with_capacity(order.len());
+        let mut sizes: BTreeMap<usize, u64> = BTreeMap::new();
+        for &i in &order {
+            let rank = sizes.entry(group(i)).or_insert(0);
+            *rank += 1;
+            ranking.push(RankedEntry {
+                rank: *rank,
                 team: sealed[i].team.clone(),
                 ticket: i as u64,
                 score: answers[i].score,
                 lower: answers[i].lower,
                 upper: answers[i].upper,
                 digest: sealed[i].digest.clone(),
-            })
-            .collect();
-        let k = order.len() as u64;
-        let pairs = (k * k.saturating_sub(1) / 2).max(1);
+                target: target_of(i),
+            });
+        }
+        // The reserve is split over every pair that can be compared: pairs within a group.
+        let pairs = sizes
+            .values()
+            .map(|&k| k * k.saturating_sub(1) / 2)
+            .sum::<u64>()
+            .max(1);
         let level = comparison_level(loaded.policy.ranking_delta, pairs);
+        let rounding = Rounding::for_core(loaded.policy.core.core_version);
         let mut comparisons = Vec::new();
         for w in order.windows(2) {
             let (a, b) = (w[0], w[1]);
+            if group(a) != group(b) {
+                continue;
+            }
             let binary = loaded.policy.core.targets[sealed[a].target_index].binary;
-            let (_, _, mut c) = compare(binary, &vectors[a], &vectors[b], level)?;
+            let (_, _, mut c) = compare(rounding, binary, &vectors[a], &vectors[b], level)?;
             c.ahead = a as u64;
             c.behind = b as u64;
+            c.target = target_of(a);
             comparisons.push(c);
         }
         let record = RoundRecord {
@@ -761,6 +805,7 @@ impl Engine {
         };
         let r: RoundRecord = serde_json::from_str(&body)
             .map_err(|e| Error::Internal(format!("round entry: {e}")))?;
+        let per_target = r.ranking.iter().any(|e| e.target.is_some());
         Ok(Ranking {
             holdout: r.holdout,
             closed_at: r.at,
@@ -771,8 +816,15 @@ impl Engine {
                 "Each comparison is an interval for R(ahead) - R(behind), the difference of the \
                  two entries' true errors; an interval that excludes 0 tells the two ranks apart. \
                  All comparisons hold together with probability at least 1 - {} (the ranking's \
-                 reserve, split over {} pairs), inside the holdout's total delta.",
-                r.ranking_delta, r.pairs
+                 reserve, split over {} pairs), inside the holdout's total delta.{}",
+                r.ranking_delta,
+                r.pairs,
+                if per_target {
+                    " Each target is ranked on its own: ranks count within a target and only \
+                     entries of the same target are compared."
+                } else {
+                    ""
+                }
             ),
             guarantee: loaded.policy.guarantee(),
         })

@@ -170,6 +170,9 @@ pub struct Comparison {
     pub sum_diff: Option<f64>,
     /// Bounded loss: sum of their squares.
     pub sum_sq_diff: Option<f64>,
+    /// Target both entries answer (core version 2 ranks within each target; absent before).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub target: Option<String>,
 }
 
 /// One ranked entry: a team's selected entry with its released answer.
@@ -189,6 +192,9 @@ pub struct RankedEntry {
     pub upper: f64,
     /// Digest of the entry's predictions.
     pub digest: String,
+    /// Target of the entry; ranks count within it (core version 2; absent before).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub target: Option<String>,
 }
 
 /// The close of a sealed round: every entry answered at once, then the ranking of the teams'
@@ -212,6 +218,7 @@ pub struct RoundRecord {
     pub comparisons: Vec<Comparison>,
     /// Part of delta the comparisons use, split evenly over every pair of ranked entries.
     pub ranking_delta: f64,
-    /// Pairs the reserve is split over: `K (K - 1) / 2`.
+    /// Pairs the reserve is split over: `K (K - 1) / 2`, summed over the targets from core
+    /// version 2 (entries are compared only within their target).
     pub pairs: u64,
 }

@@ -184,6 +184,7 @@ pub(super) fn ranking(r: &Ranking) -> pb::RankingResponse {
                 score: e.score,
                 interval: interval(e.lower, e.upper),
                 digest: e.digest.clone(),
+                target: e.target.clone().unwrap_or_default(),
             })
             .collect(),
         comparisons: r
@@ -195,6 +196,7 @@ pub(super) fn ranking(r: &Ranking) -> pb::RankingResponse {
                 difference: interval(c.lower, c.upper),
                 level_nats: c.level_nats,
                 distinguishable: c.distinguishable,
+                target: c.target.clone().unwrap_or_default(),
             })
             .collect(),
         statement: r.statement.clone(),

@@ -83,11 +83,21 @@ fn ln_prefactor(a: f64, b: f64, p: Point) -> f64 {
 }
 
 /// Continued fraction of `I_x(a, b)` (without the prefactor and the `1/a`), modified Lentz.
-fn beta_cf(a: f64, b: f64, x: f64) -> Option<f64> {
+///
+/// `y = 1 - x`. With `precise` (core version 2) the first denominator `1 - (a+b) x / (a+1)` is
+/// formed as `(1 - b + (a+b) y) / (a+1)` when `x > 1/2`, which does not cancel when `x` is
+/// near 1 (at n = 1e8, k = 1 the plain form lost 8 digits). Without it the numbers of core
+/// version 1 are kept bit for bit.
+fn beta_cf(a: f64, b: f64, x: f64, y: f64, precise: bool) -> Option<f64> {
     let fix = |v: f64| if v.abs() < CF_TINY { CF_TINY } else { v };
     let (qab, qap, qam) = (a + b, a + 1.0, a - 1.0);
+    let first = if precise && x > 0.5 {
+        (1.0 - b + qab * y) / qap
+    } else {
+        1.0 - qab * x / qap
+    };
     let mut c = 1.0;
-    let mut d = 1.0 / fix(1.0 - qab * x / qap);
+    let mut d = 1.0 / fix(first);
     let mut h = d;
     for m in 1..=CF_MAX_ITER {
         let m = f64::from(m);
@@ -121,6 +131,12 @@ pub(crate) fn ln_one_minus_exp(l: f64) -> f64 {
 ///
 /// `None` when the continued fraction does not converge (only for astronomically large `a + b`).
 pub(crate) fn ln_beta_reg(a: f64, b: f64, p: Point) -> Option<(f64, f64)> {
+    ln_beta_reg_with(a, b, p, false)
+}
+
+/// [`ln_beta_reg`], with the continued fraction formed without cancellation near `x = 1`
+/// when `precise` (core version 2).
+pub(crate) fn ln_beta_reg_with(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64)> {
     if p.x <= 0.0 {
         return Some((f64::NEG_INFINITY, f64::NEG_INFINITY));
     }
@@ -129,10 +145,10 @@ pub(crate) fn ln_beta_reg(a: f64, b: f64, p: Point) -> Option<(f64, f64)> {
     }
     let pre = ln_prefactor(a, b, p);
     if p.x < (a + 1.0) / (a + b + 2.0) {
-        let cf = beta_cf(a, b, p.x)?;
+        let cf = beta_cf(a, b, p.x, p.y, precise)?;
         Some((pre + cf.ln() - a.ln(), pre))
     } else {
-        let cf = beta_cf(b, a, p.y)?;
+        let cf = beta_cf(b, a, p.y, p.x, precise)?;
         let comp = pre + cf.ln() - b.ln();
         if comp >= 0.0 {
             return None;
@@ -161,6 +177,12 @@ pub fn ln_incomplete_beta(a: f64, b: f64, x: f64) -> Option<f64> {
 /// `None` when the root lies below the normal range of f64 in `x` (callers fall back to a
 /// containing interval), or when the evaluation fails.
 pub(crate) fn solve_ln_beta_reg(a: f64, b: f64, target: f64) -> Option<Point> {
+    solve_ln_beta_reg_with(a, b, target, false)
+}
+
+/// [`solve_ln_beta_reg`] with the choice of continued fraction of [`ln_beta_reg_with`].
+pub(crate) fn solve_ln_beta_reg_with(a: f64, b: f64, target: f64, precise: bool) -> Option<Point> {
+    let ln_beta_reg = |a, b, p| ln_beta_reg_with(a, b, p, precise);
     let half = Point { x: 0.5, y: 0.5 };
     let (f_half, _) = ln_beta_reg(a, b, half)?;
     let u_min = f64::MIN_POSITIVE.ln();
@@ -232,4 +254,331 @@ where
         du = dc;
     }
     Some((lo, hi))
+}
+
+// ---------------------------------------------------------------------------------------------
+// Outward limits (core version 2): certified bounds on binomial tails, and the outward search.
+//
+// A limit is accepted only when a *certified* upper bound on its tail probability is at most
+// the level: the computed value plus an absolute bound on every evaluation error. The tail is
+// evaluated independently of the continued fraction above, as a finite sum of binomial terms
+// (from the term at k towards 0, each term from the previous one by an exact ratio), whose
+// rounding errors have a simple bound: about 8 ulps per term summed, plus the errors of one
+// log-density (Loader's saddle-point form, whose parts are bounded one by one below).
+
+/// Unit roundoff of f64 (half an ulp of 1).
+pub(crate) const UNIT: f64 = f64::EPSILON / 2.0;
+
+/// Largest row count whose counts are exact as f64 and whose sums the certified tail accepts.
+const MAX_EXACT_COUNT: u64 = 1 << 52;
+
+/// Cap on the terms of one certified tail sum (about `10 sqrt(n)` are needed at most for the
+/// levels met in practice; `n = 1e9` at 3 nats takes about 1e5).
+const MAX_TAIL_TERMS: u64 = 1 << 24;
+
+/// `stirlerr(z)` for z = 1..=15, to 20 digits (mpmath 1.3.0 at 40 digits:
+/// `loggamma(z+1) - (z+1/2) ln z + z - ln sqrt(2 pi)`); index 0 is unused.
+#[allow(clippy::excessive_precision)] // the 20 digits round to the nearest double
+const STIRLERR_SMALL: [f64; 16] = [
+    0.0,
+    0.081_061_466_795_327_258,
+    0.041_340_695_955_409_294,
+    0.027_677_925_684_998_339,
+    0.020_790_672_103_765_093,
+    0.016_644_691_189_821_192,
+    0.013_876_128_823_070_748,
+    0.011_896_709_945_891_770,
+    0.010_411_265_261_972_096,
+    0.009_255_462_182_712_733,
+    0.008_330_563_433_362_871,
+    0.007_573_675_487_951_841,
+    0.006_942_840_107_209_530,
+    0.006_408_994_188_004_207,
+    0.005_951_370_112_758_848,
+    0.005_554_733_551_962_801,
+];
+
+/// `stirlerr(z)` for a whole number `z >= 1`, with an absolute error bound.
+fn stirlerr_bounded(z: f64) -> (f64, f64) {
+    if z <= 15.0 {
+        let v = STIRLERR_SMALL[z as usize];
+        (v, 2.0 * UNIT * v)
+    } else {
+        // Stirling's series is alternating with a remainder below its first omitted term,
+        // 691 / (360360 z^11) < 2.3e-16 for z > 15; five terms at a few roundings each.
+        let v = stirlerr(z);
+        (v, 2.3e-16 + 16.0 * UNIT * v.abs())
+    }
+}
+
+/// `bd0(x, m)` with an absolute error bound; `m` may carry a relative error of `2 UNIT` (it is a
+/// count times a probability), which moves `bd0` by at most `|1 - x/m| 2 UNIT m`.
+fn bd0_bounded(x: f64, m: f64) -> (f64, f64) {
+    let e_in = 2.0 * UNIT * (m - x).abs();
+    if (x - m).abs() < 0.1 * (x + m) {
+        // Series with ratio v^2 < 0.01: every term has a relative error of a few units and the
+        // sum stops when a term no longer changes it.
+        let v = bd0(x, m);
+        let first = (x - m) * (x - m) / (x + m);
+        (v, e_in + 32.0 * UNIT * (first + v.abs()))
+    } else {
+        let r = x / m;
+        let lr = r.ln();
+        let v = x * lr + (m - x);
+        (
+            v,
+            e_in + 4.0 * UNIT * (x * (1.0 + lr.abs()) + m + x + v.abs()),
+        )
+    }
+}
+
+/// `(ln p, ln q)` of a point, each from its small coordinate (which the callers hold exactly);
+/// absolute errors at most `2 UNIT |value|`.
+pub(crate) fn point_logs(p: Point) -> (f64, f64) {
+    if p.x <= p.y {
+        (p.x.ln(), (-p.x).ln_1p())
+    } else {
+        ((-p.y).ln_1p(), p.y.ln())
+    }
+}
+
+/// `ln P(X = k)` for `X ~ Bin(n, p)` with an absolute error bound (`0 <= k <= n`, `p` inside
+/// (0, 1)). Loader's form: `stirlerr(n) - stirlerr(k) - stirlerr(n-k) - bd0(k, np)
+/// - bd0(n-k, nq) + ln sqrt(n / (2 pi k (n-k)))`.
+fn ln_dbinom_bounded(n: f64, k: f64, p: Point) -> (f64, f64) {
+    let (lp, lq) = point_logs(p);
+    if k == 0.0 {
+        let v = n * lq;
+        return (v, 4.0 * UNIT * v.abs());
+    }
+    if k == n {
+        let v = n * lp;
+        return (v, 4.0 * UNIT * v.abs());
+    }
+    let (sn, esn) = stirlerr_bounded(n);
+    let (sk, esk) = stirlerr_bounded(k);
+    let (snk, esnk) = stirlerr_bounded(n - k);
+    let (b1, eb1) = bd0_bounded(k, n * p.x);
+    let (b2, eb2) = bd0_bounded(n - k, n * p.y);
+    let (ln_n, ln_k, ln_nk) = (n.ln(), k.ln(), (n - k).ln());
+    let h = 0.5 * (ln_n - ln_k - ln_nk) - LN_SQRT_2PI;
+    let eh = 2.0 * UNIT * (ln_n.abs() + ln_k.abs() + ln_nk.abs() + 1.0);
+    let v = sn - sk - snk - b1 - b2 + h;
+    let sum_abs = sn.abs() + sk.abs() + snk.abs() + b1.abs() + b2.abs() + h.abs();
+    (v, esn + esk + esnk + eb1 + eb2 + eh + 6.0 * UNIT * sum_abs)
+}
+
+/// A certified bound on a log tail probability at a point, and its slope.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct TailBound {
+    /// At least the true `ln` of the tail probability (computed value plus its error bound).
+    pub(crate) ln: f64,
+    /// Derivative of the log tail with respect to the point's coordinate (a Newton hint only).
+    pub(crate) slope: f64,
+}
+
+/// Certified upper bound on `ln P(X <= k)`, `X ~ Bin(n, p)`, by the finite sum of binomial
+/// terms from `j = k` down (see the section note). The slope is `d ln P / dp`.
+///
+/// `None` when `n > 2^52` or the sum would need more than [`MAX_TAIL_TERMS`] terms; callers
+/// then use the Chernoff (KL) bound instead.
+pub(crate) fn ln_binom_cdf_bound(n: u64, k: u64, p: Point) -> Option<TailBound> {
+    if n > MAX_EXACT_COUNT || k > n {
+        return None;
+    }
+    if k == n || p.x <= 0.0 {
+        return Some(TailBound {
+            ln: 0.0,
+            slope: 0.0,
+        });
+    }
+    if p.y <= 0.0 {
+        return Some(TailBound {
+            ln: f64::NEG_INFINITY,
+            slope: 0.0,
+        });
+    }
+    let (nf, kf) = (n as f64, k as f64);
+    let (ln_tk, e_tk) = ln_dbinom_bounded(nf, kf, p);
+    // Ratios t_{j-1} / t_j = j q / ((n-j+1) p), each with a relative error below 5 UNIT; they
+    // increase with j, so after the term of j the rest is at most term * rho / (1 - rho).
+    let q_over_p = p.y / p.x;
+    let (mut term, mut sum, mut terms) = (1.0f64, 1.0f64, 0u64);
+    let mut rest = 0.0f64;
+    // Below the mean the terms first grow (ratios above 1): rescale by 2^-600 (exact) so that
+    // they never overflow, and carry the scale in `ln_scale`.
+    let mut ln_scale = 0.0f64;
+    const SCALE: f64 = 2.409_919_865_102_884e-181; // 2^-600
+    let mut j = k;
+    while j >= 1 {
+        let jf = j as f64;
+        let rho = jf / (nf - jf + 1.0) * q_over_p;
+        term *= rho;
+        sum += term;
+        terms += 1;
+        j -= 1;
+        if sum > 1e150 {
+            term *= SCALE;
+            sum *= SCALE;
+            ln_scale += 600.0 * std::f64::consts::LN_2;
+        }
+        if !(term.is_finite() && sum.is_finite()) || terms > MAX_TAIL_TERMS {
+            return None;
+        }
+        let rho_up = rho * (1.0 + 8.0 * UNIT);
+        if j >= 1 && rho_up < 1.0 {
+            let r = term * rho_up / (1.0 - rho_up);
+            if r <= sum * f64::EPSILON {
+                rest = r;
+                break;
+            }
+        }
+    }
+    // Every term and the running sum carry at most 8 (terms + 1) UNIT of relative error.
+    let rel = 8.0 * (terms as f64 + 2.0) * UNIT;
+    let total = (sum + rest) * (1.0 + rel) * (1.0 + 2.0 * UNIT);
+    let ln_s = total.ln() + ln_scale;
+    let e_s = 2.0 * UNIT * ln_s.abs() + UNIT * ln_scale;
+    let ln = ln_tk + ln_s;
+    let err = e_tk + e_s + 2.0 * UNIT * (ln_tk.abs() + ln_s.abs());
+    Some(TailBound {
+        ln: ln + err,
+        slope: -(nf - kf) / (p.y * sum) * (-ln_scale).exp(),
+    })
+}
+
+/// Certified upper bound on `ln P(X <= k | p)` at an upper limit `u`, or on `ln P(X >= k | p)`
+/// at a lower limit (`upper = false`), by the binomial sum; the slope is per unit of `u`.
+pub(crate) fn cp_tail_bound(n: u64, k: u64, u: f64, upper: bool) -> Option<TailBound> {
+    if upper {
+        ln_binom_cdf_bound(n, k, Point::from_x(u))
+    } else {
+        // P(X >= k | L) = P(n - X <= n - k | 1 - L): the rate of n - X is 1 - L.
+        ln_binom_cdf_bound(n, n - k, Point::from_y(u)).map(|b| TailBound {
+            ln: b.ln,
+            slope: -b.slope,
+        })
+    }
+}
+
+/// Moves a limit outward from `start` until `bound(v).ln <= -t`: `up` for an upper limit (the
+/// tail bound falls as `v` grows), else a lower one. The search steps outward from a Newton
+/// estimate of the distance, doubling the step until the check holds, then bisects between the
+/// last failing and the first passing point. The end of [0, 1] in the outward direction always
+/// holds (it is the trivial limit). `None` when an evaluation fails.
+pub(crate) fn widen<B>(start: f64, up: bool, t: f64, bound: B) -> Option<f64>
+where
+    B: Fn(f64) -> Option<TailBound>,
+{
+    let end = if up { 1.0 } else { 0.0 };
+    let mut fail = start.clamp(0.0, 1.0);
+    if fail == end || t.is_nan() {
+        return Some(end);
+    }
+    let b0 = bound(fail)?;
+    if b0.ln <= -t {
+        return Some(fail);
+    }
+    let outward = |v: f64, step: f64| -> f64 {
+        let w = if up { v + step } else { v - step };
+        let w = if up {
+            w.max(v.next_up())
+        } else {
+            w.min(v.next_down())
+        };
+        w.clamp(0.0, 1.0)
+    };
+    // Newton's distance to the certified root, doubled; the floor keeps a flat slope moving.
+    let newton = 2.0 * (b0.ln + t) / b0.slope.abs();
+    let floor = 1e-15 * fail.max(1e-300);
+    let mut step = if newton.is_finite() {
+        newton.max(floor)
+    } else {
+        floor
+    };
+    let mut pass = end;
+    let mut extra = 0u32;
+    for _ in 0..2200 {
+        let cand = outward(fail, step);
+        if cand == end {
+            // The trivial limit holds; bisect back towards the last failing point (a flat log
+            // tail, as at levels near 0, makes Newton's step overshoot).
+            extra += 1;
+            break;
+        }
+        if bound(cand)?.ln <= -t {
+            pass = cand;
+            break;
+        }
+        fail = cand;
+        step *= 2.0;
+        extra += 1;
+    }
+    // Bisection, only when the first Newton step fell short or overshot to the end (then the
+    // bracket may be wide).
+    if extra > 0 {
+        for _ in 0..40 {
+            let mid = 0.5 * (fail + pass);
+            if mid == fail || mid == pass || (pass - fail).abs() <= 1e-6 * (pass - start).abs() {
+                break;
+            }
+            if bound(mid)?.ln <= -t {
+                pass = mid;
+            } else {
+                fail = mid;
+            }
+        }
+    }
+    Some(pass)
+}
+
+#[cfg(test)]
+mod outward_tests {
+    use super::*;
+
+    #[test]
+    fn small_stirlerr_table_matches_the_formula() {
+        for z in 1..=15u32 {
+            let z = f64::from(z);
+            let direct = ln_gamma(z + 1.0) - (z + 0.5) * z.ln() + z - LN_SQRT_2PI;
+            assert!((direct - stirlerr_bounded(z).0).abs() < 1e-13, "z = {z}");
+        }
+    }
+
+    #[test]
+    fn binomial_tail_bound_is_at_least_the_exact_small_case() {
+        // n = 5, k = 2, p = 0.3: P(X <= 2) = 0.83692 exactly (0.7^5 + 5*0.3*0.7^4 + 10*0.09*0.343).
+        let exact = 0.7f64.powi(5) + 5.0 * 0.3 * 0.7f64.powi(4) + 10.0 * 0.09 * 0.343;
+        let b = ln_binom_cdf_bound(5, 2, Point::from_x(0.3)).unwrap();
+        assert!(b.ln >= exact.ln(), "{} < {}", b.ln, exact.ln());
+        assert!(
+            b.ln - exact.ln() < 1e-13,
+            "bound too loose: {}",
+            b.ln - exact.ln()
+        );
+        // k = 0: (1-p)^n.
+        let b = ln_binom_cdf_bound(1000, 0, Point::from_x(1e-3)).unwrap();
+        let exact = 1000.0 * (-1e-3f64).ln_1p();
+        assert!(b.ln >= exact && b.ln - exact < 1e-12);
+    }
+
+    #[test]
+    fn binomial_tail_bound_agrees_with_the_beta_function() {
+        // P(X <= k | p) = I_{1-p}(n-k, k+1): two independent evaluations.
+        for &(n, k, p) in &[
+            (100u64, 3u64, 0.1f64),
+            (4000, 2000, 0.53),
+            (1_000_000, 200, 3e-4),
+            (50, 49, 0.999_999),
+        ] {
+            let b = ln_binom_cdf_bound(n, k, Point::from_x(p)).unwrap();
+            let (nf, kf) = (n as f64, k as f64);
+            let (cf, _) = ln_beta_reg_with(nf - kf, kf + 1.0, Point::from_y(p), true).unwrap();
+            assert!(
+                b.ln >= cf - 1e-12 && b.ln - cf < 1e-9,
+                "n={n} k={k} p={p}: {} vs {cf}",
+                b.ln
+            );
+        }
+    }
 }

@@ -25,8 +25,39 @@ use serde::{Deserialize, Serialize};
 use std::fmt;
 use std::str::FromStr;
 
-use super::beta::solve_ln_beta_reg;
+use super::beta::{UNIT, cp_tail_bound, solve_ln_beta_reg, solve_ln_beta_reg_with, widen};
 use super::kl;
+
+/// How the limits are rounded; the holdout's accounting core version decides.
+///
+/// ```
+/// use holdout_ledger::stats::interval::{errors_interval_with, Method, Rounding, Sides};
+/// // n = 1, k = 0, one-sided at 30 nats: the upper limit must leave a tail of at most e^-30,
+/// // so 1 - U <= e^-30 = 9.3576e-14 (rounded to nearest, core 1 gave 1 - U = 9.3592e-14).
+/// let ci = errors_interval_with(Rounding::Outward, Method::Exact, 1, 0, 30.0, Sides::Upper)
+///     .unwrap();
+/// assert!(1.0 - ci.upper <= (-30.0f64).exp());
+/// ```
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Rounding {
+    /// Core version 1: limits as solved, rounded to nearest; kept so that ledgers recorded
+    /// before core version 2 replay bit for bit. Some of its limits are narrower than exact.
+    Nearest,
+    /// Core version 2: every limit is verified against its tail condition with an absolute
+    /// margin that bounds every evaluation error, and moved outward until it holds.
+    Outward,
+}
+
+impl Rounding {
+    /// The rounding of a holdout whose policy records `core_version`.
+    pub fn for_core(core_version: u32) -> Rounding {
+        if core_version >= 2 {
+            Rounding::Outward
+        } else {
+            Rounding::Nearest
+        }
+    }
+}
 
 /// How an interval is computed.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
@@ -182,6 +213,77 @@ fn cp_upper(n: u64, k: u64, tail: f64) -> f64 {
         .unwrap_or_else(|| kl::upper(kf / nf, tail / nf))
 }
 
+/// The tail in nats rounded up: the float sum `level + ln 2` and the constant `ln 2` each
+/// carry at most half an ulp, so a few units of relative margin cover both.
+fn tail_up(tail: f64) -> f64 {
+    tail + tail.abs() * 4.0 * UNIT + f64::MIN_POSITIVE
+}
+
+/// Outward Clopper-Pearson lower limit (core version 2): solved at the rounded-up tail, then
+/// certified by the binomial sum (or, where the sum is out of reach, replaced by the certified
+/// KL limit, which contains it); the trivial limit 0 when nothing can be certified.
+fn cp_lower_outward(n: u64, k: u64, tail: f64) -> f64 {
+    let nf = n as f64;
+    if k == 0 || tail.is_infinite() {
+        return 0.0;
+    }
+    let t = tail_up(tail);
+    let kf = k as f64;
+    let cand = if k == n {
+        (-t / nf).exp()
+    } else {
+        solve_ln_beta_reg_with(kf, nf - kf + 1.0, -t, true)
+            .map(|p| p.x)
+            .unwrap_or_else(|| kl::lower(kf / nf, t / nf))
+    };
+    widen(cand, false, t, |v| cp_tail_bound(n, k, v, false))
+        .unwrap_or_else(|| kl::lower_outward(kf / nf, nf, t))
+}
+
+/// Outward Clopper-Pearson upper limit, as [`cp_lower_outward`].
+fn cp_upper_outward(n: u64, k: u64, tail: f64) -> f64 {
+    let nf = n as f64;
+    if k == n || tail.is_infinite() {
+        return 1.0;
+    }
+    let t = tail_up(tail);
+    let kf = k as f64;
+    let cand = if k == 0 {
+        -(-t / nf).exp_m1()
+    } else {
+        solve_ln_beta_reg_with(nf - kf, kf + 1.0, -t, true)
+            .map(|p| p.y)
+            .unwrap_or_else(|| kl::upper(kf / nf, t / nf))
+    };
+    widen(cand, true, t, |v| cp_tail_bound(n, k, v, true))
+        .unwrap_or_else(|| kl::upper_outward(kf / nf, nf, t))
+}
+
+/// Outward KL or Hoeffding limits for means in `[lo, hi]` (core version 2). The ends of the
+/// range are widened by one ulp (a cell's ends are computed in floats); Hoeffding's half-width
+/// is rounded up and so are the additions.
+fn mean_limits_outward(method: Method, n: u64, lo: f64, hi: f64, tail: f64) -> (f64, f64) {
+    let nf = n as f64;
+    let t = tail_up(tail);
+    let lo = if lo > 0.0 {
+        lo.next_down().max(0.0)
+    } else {
+        0.0
+    };
+    let hi = if hi < 1.0 { hi.next_up().min(1.0) } else { 1.0 };
+    match method {
+        Method::Hoeffding => {
+            let h = (t / (2.0 * nf)).sqrt() * (1.0 + 4.0 * UNIT);
+            let l = lo - h;
+            let u = hi + h;
+            let l = if l > 0.0 { l.next_down() } else { 0.0 };
+            let u = if u < 1.0 { u.next_up() } else { 1.0 };
+            (l.max(0.0), u.min(1.0))
+        }
+        Method::Kl | Method::Exact => (kl::lower_outward(lo, nf, t), kl::upper_outward(hi, nf, t)),
+    }
+}
+
 fn mean_limits(method: Method, n: u64, lo: f64, hi: f64, tail: f64) -> (f64, f64) {
     let nf = n as f64;
     match method {
@@ -231,9 +333,35 @@ pub fn errors_interval(
     errors_range_interval(method, n, k, k, level_nats, sides)
 }
 
+/// [`errors_interval`] with the rounding of a core version ([`Rounding::Outward`] for new
+/// holdouts; [`errors_interval`] itself is [`Rounding::Nearest`], core version 1).
+pub fn errors_interval_with(
+    rounding: Rounding,
+    method: Method,
+    n: u64,
+    k: u64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    errors_range_interval_with(rounding, method, n, k, k, level_nats, sides)
+}
+
 /// The worst case over error counts `k_lo..=k_hi`: the lower limit at `k_lo`, the upper at
 /// `k_hi` (both limits increase in `k`). This is the interval of a released rounded cell.
 pub fn errors_range_interval(
+    method: Method,
+    n: u64,
+    k_lo: u64,
+    k_hi: u64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    errors_range_interval_with(Rounding::Nearest, method, n, k_lo, k_hi, level_nats, sides)
+}
+
+/// [`errors_range_interval`] with the rounding of a core version.
+pub fn errors_range_interval_with(
+    rounding: Rounding,
     method: Method,
     n: u64,
     k_lo: u64,
@@ -249,7 +377,13 @@ pub fn errors_range_interval(
     }
     let (k_lo, k_hi) = (k_lo.min(k_hi), k_lo.max(k_hi));
     let tail = tail_nats(level_nats, sides);
+    let outward = rounding == Rounding::Outward;
     Ok(match method {
+        Method::Exact if outward => assemble(
+            sides,
+            || cp_lower_outward(n, k_lo, tail),
+            || cp_upper_outward(n, k_hi, tail),
+        ),
         Method::Exact => assemble(
             sides,
             || cp_lower(n, k_lo, tail),
@@ -257,7 +391,12 @@ pub fn errors_range_interval(
         ),
         Method::Kl | Method::Hoeffding => {
             let nf = n as f64;
-            let (lo, hi) = mean_limits(method, n, k_lo as f64 / nf, k_hi as f64 / nf, tail);
+            let (lo, hi) = (k_lo as f64 / nf, k_hi as f64 / nf);
+            let (lo, hi) = if outward {
+                mean_limits_outward(method, n, lo, hi, tail)
+            } else {
+                mean_limits(method, n, lo, hi, tail)
+            };
             assemble(sides, || lo, || hi)
         }
     })
@@ -282,8 +421,33 @@ pub fn mean_interval(
     mean_range_interval(method, n, mean, mean, level_nats, sides)
 }
 
+/// [`mean_interval`] with the rounding of a core version.
+pub fn mean_interval_with(
+    rounding: Rounding,
+    method: Method,
+    n: u64,
+    mean: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    mean_range_interval_with(rounding, method, n, mean, mean, level_nats, sides)
+}
+
 /// The worst case over means in `[lo, hi]`: the lower limit at `lo`, the upper at `hi`.
 pub fn mean_range_interval(
+    method: Method,
+    n: u64,
+    lo: f64,
+    hi: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    mean_range_interval_with(Rounding::Nearest, method, n, lo, hi, level_nats, sides)
+}
+
+/// [`mean_range_interval`] with the rounding of a core version.
+pub fn mean_range_interval_with(
+    rounding: Rounding,
     method: Method,
     n: u64,
     lo: f64,
@@ -301,7 +465,10 @@ pub fn mean_range_interval(
         }
     }
     let tail = tail_nats(level_nats, sides);
-    let (l, u) = mean_limits(method, n, lo.min(hi), lo.max(hi), tail);
+    let (l, u) = match rounding {
+        Rounding::Outward => mean_limits_outward(method, n, lo.min(hi), lo.max(hi), tail),
+        Rounding::Nearest => mean_limits(method, n, lo.min(hi), lo.max(hi), tail),
+    };
     Ok(assemble(sides, || l, || u))
 }
 
@@ -315,14 +482,33 @@ pub fn reference_half_width(
     level_nats: f64,
     sides: Sides,
 ) -> Result<f64, IntervalError> {
+    reference_half_width_with(
+        Rounding::Nearest,
+        method,
+        n,
+        reference_mean,
+        level_nats,
+        sides,
+    )
+}
+
+/// [`reference_half_width`] with the rounding of a core version.
+pub fn reference_half_width_with(
+    rounding: Rounding,
+    method: Method,
+    n: u64,
+    reference_mean: f64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<f64, IntervalError> {
     let nf = n.max(1) as f64;
     let ci = match method {
         Method::Exact => {
             let k = ((reference_mean.clamp(0.0, 1.0) * nf).round() as u64).min(n);
-            let ci = errors_interval(method, n, k, level_nats, sides)?;
+            let ci = errors_interval_with(rounding, method, n, k, level_nats, sides)?;
             return Ok(spread(ci, k as f64 / nf, sides));
         }
-        _ => mean_interval(method, n, reference_mean, level_nats, sides)?,
+        _ => mean_interval_with(rounding, method, n, reference_mean, level_nats, sides)?,
     };
     Ok(spread(ci, reference_mean, sides))
 }
@@ -332,5 +518,103 @@ fn spread(ci: Interval, center: f64, sides: Sides) -> f64 {
         Sides::Two => ci.half_width(),
         Sides::Upper => ci.upper - center,
         Sides::Lower => center - ci.lower,
+    }
+}
+
+/// Limits as decimal text with `decimals` digits after the point, rounded outward: the lower
+/// limit down (floor) and the upper limit up (ceiling), so that the shown interval contains the
+/// computed one. `decimals` is capped at 30.
+///
+/// ```
+/// use holdout_ledger::stats::interval::display_outward;
+/// assert_eq!(display_outward(0.0203305, 0.0425514, 4), ("0.0203".into(), "0.0426".into()));
+/// // A limit that is exactly a shown decimal stays as it is; signs are handled.
+/// assert_eq!(display_outward(-0.25, 0.5, 2), ("-0.25".into(), "0.50".into()));
+/// assert_eq!(display_outward(-0.00001, 1.0, 3), ("-0.001".into(), "1.000".into()));
+/// ```
+pub fn display_outward(lower: f64, upper: f64, decimals: usize) -> (String, String) {
+    (
+        decimal_directed(lower, decimals, false),
+        decimal_directed(upper, decimals, true),
+    )
+}
+
+/// `x` with `decimals` digits, rounded up (`up`) or down, from its exact decimal expansion.
+fn decimal_directed(x: f64, decimals: usize, up: bool) -> String {
+    let decimals = decimals.min(30);
+    if !x.is_finite() {
+        return format!("{x}");
+    }
+    // Every f64 has a finite decimal expansion with at most 1074 digits after the point.
+    let exact = format!("{:.1100}", x.abs());
+    let (int_part, frac) = exact.split_once('.').unwrap_or((&exact, ""));
+    let kept = &frac[..decimals];
+    let rest_nonzero = frac[decimals..].bytes().any(|b| b != b'0');
+    // Magnitude rounding: away from zero when rounding up a positive or down a negative.
+    let negative = x < 0.0;
+    let away = rest_nonzero && (up != negative);
+    let mut digits: Vec<u8> = int_part.bytes().chain(kept.bytes()).collect();
+    if away {
+        let mut i = digits.len();
+        loop {
+            if i == 0 {
+                digits.insert(0, b'1');
+                break;
+            }
+            i -= 1;
+            if digits[i] == b'9' {
+                digits[i] = b'0';
+            } else {
+                digits[i] += 1;
+                break;
+            }
+        }
+    }
+    let split = digits.len() - decimals;
+    let (ip, fp) = digits.split_at(split);
+    let ip = String::from_utf8_lossy(ip);
+    let fp = String::from_utf8_lossy(fp);
+    let zero = digits.iter().all(|&b| b == b'0');
+    let sign = if negative && !zero { "-" } else { "" };
+    if decimals == 0 {
+        format!("{sign}{ip}")
+    } else {
+        format!("{sign}{ip}.{fp}")
+    }
+}
+
+#[cfg(test)]
+mod display_tests {
+    use super::*;
+
+    #[test]
+    fn display_rounds_outward_and_contains_the_limits() {
+        assert_eq!(display_outward(0.1, 0.1, 1), ("0.1".into(), "0.2".into()));
+        // 0.1 is slightly above 1/10 as a double: its floor at 1 digit is 0.1, its ceiling 0.2.
+        assert_eq!(
+            display_outward(0.0, 1.0, 6),
+            ("0.000000".into(), "1.000000".into())
+        );
+        assert_eq!(display_outward(0.9999995, 0.99999951, 6).1, "1.000000");
+        assert_eq!(
+            display_outward(1e-300, 1e-300, 3),
+            ("0.000".into(), "0.001".into())
+        );
+        assert_eq!(
+            display_outward(-1e-300, -1e-300, 3),
+            ("-0.001".into(), "0.000".into())
+        );
+        assert_eq!(display_outward(0.5, 0.5, 0), ("0".into(), "1".into()));
+        for &(l, u) in &[
+            (0.0203305, 0.0425514),
+            (0.123456789, 0.987654321),
+            (-0.3, 0.7),
+        ] {
+            for d in 0..10 {
+                let (ls, us) = display_outward(l, u, d);
+                let (lv, uv): (f64, f64) = (ls.parse().unwrap(), us.parse().unwrap());
+                assert!(lv <= l && uv >= u, "{l} {u} {d}: {ls} {us}");
+            }
+        }
     }
 }

@@ -22,7 +22,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::interval::{IntervalError, Method, Sides, errors_interval};
+use super::interval::{IntervalError, Method, Rounding, Sides, errors_interval_with};
 
 /// An interval for a difference of risks, inside [-1, 1].
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -47,6 +47,17 @@ pub fn paired_errors(
     n01: u64,
     level_nats: f64,
 ) -> Result<DiffInterval, IntervalError> {
+    paired_errors_with(Rounding::Nearest, n, n10, n01, level_nats)
+}
+
+/// [`paired_errors`] with the limits rounded as the holdout's core version says.
+pub fn paired_errors_with(
+    rounding: Rounding,
+    n: u64,
+    n10: u64,
+    n01: u64,
+    level_nats: f64,
+) -> Result<DiffInterval, IntervalError> {
     if n10.saturating_add(n01) > n {
         return Err(IntervalError::ErrorsExceedRows {
             errors: n10.saturating_add(n01),
@@ -55,8 +66,8 @@ pub fn paired_errors(
     }
     // Each rate's two-sided interval at d/2.
     let level = level_nats + std::f64::consts::LN_2;
-    let a = errors_interval(Method::Exact, n, n10, level, Sides::Two)?;
-    let b = errors_interval(Method::Exact, n, n01, level, Sides::Two)?;
+    let a = errors_interval_with(rounding, Method::Exact, n, n10, level, Sides::Two)?;
+    let b = errors_interval_with(rounding, Method::Exact, n, n01, level, Sides::Two)?;
     Ok(DiffInterval {
         lower: (a.lower - b.upper).max(-1.0),
         upper: (a.upper - b.lower).min(1.0),

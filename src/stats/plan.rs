@@ -34,7 +34,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::accounting::{count_fitting, ln_inv_mean_share};
-use super::interval::{Method, reference_half_width};
+use super::interval::{Method, Rounding, reference_half_width};
 use super::rules::{Past, Rule};
 use super::schedule::Schedule;
 
@@ -82,6 +82,7 @@ fn half_width_fits(spec: &PlanSpec, rule: &Rule, reference: f64, level: f64, cor
             spec.method,
             reference,
             level,
+            Rounding::for_core(core),
         );
         return h <= spec.tolerance;
     }

@@ -33,7 +33,9 @@ use std::fmt;
 use std::str::FromStr;
 
 use super::interval::{Interval, IntervalError, Method, Sides};
-use super::interval::{errors_range_interval, mean_range_interval, reference_half_width};
+use super::interval::{
+    Rounding, errors_range_interval_with, mean_range_interval_with, reference_half_width_with,
+};
 
 /// A rounding grid `{0, 1/M, ..., 1}` with `M + 1` cells.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
@@ -96,6 +98,8 @@ impl Grid {
     /// The reported interval for cell `j`: the worst case over the cell (DESIGN 4.3).
     /// Binary losses use the error counts of the cell; bounded losses its mean range, never
     /// Clopper-Pearson. An empty cell (possible when `n < M`) cannot be released; it gets [0, 1].
+    /// `rounding` follows the holdout's core version ([`Rounding::for_core`]).
+    #[allow(clippy::too_many_arguments)]
     pub fn interval(
         &self,
         j: u64,
@@ -104,10 +108,13 @@ impl Grid {
         method: Method,
         level_nats: f64,
         sides: Sides,
+        rounding: Rounding,
     ) -> Result<Interval, IntervalError> {
         if binary {
             match self.errors_in_cell(n, j) {
-                Some((lo, hi)) => errors_range_interval(method, n, lo, hi, level_nats, sides),
+                Some((lo, hi)) => {
+                    errors_range_interval_with(rounding, method, n, lo, hi, level_nats, sides)
+                }
                 None => Ok(Interval::FULL),
             }
         } else {
@@ -117,7 +124,7 @@ impl Grid {
             } else {
                 method
             };
-            mean_range_interval(method, n, lo, hi, level_nats, sides)
+            mean_range_interval_with(rounding, method, n, lo, hi, level_nats, sides)
         }
     }
 }
@@ -148,19 +155,41 @@ impl Grid {
     /// Cells whose widths are equal in exact arithmetic (Hoeffding's inner cells) differ by
     /// float rounding, so the figure carries a relative margin of `1e-12`.
     /// `tests/accounting_core2.rs` checks the bound against every cell of many grids.
-    pub fn widest_half_width(&self, n: u64, binary: bool, method: Method, level_nats: f64) -> f64 {
-        self.widest_exact(n, binary, method, level_nats) * (1.0 + 1e-12)
+    pub fn widest_half_width(
+        &self,
+        n: u64,
+        binary: bool,
+        method: Method,
+        level_nats: f64,
+        rounding: Rounding,
+    ) -> f64 {
+        self.widest_exact(n, binary, method, level_nats, rounding) * (1.0 + 1e-12)
     }
 
-    fn widest_exact(&self, n: u64, binary: bool, method: Method, level_nats: f64) -> f64 {
+    fn widest_exact(
+        &self,
+        n: u64,
+        binary: bool,
+        method: Method,
+        level_nats: f64,
+        rounding: Rounding,
+    ) -> f64 {
         let n = n.max(1);
         if binary {
             let s = self.max_span(n).min(n);
             let k0 = (n - s) / 2;
             (k0.saturating_sub(1)..=(k0 + 2).min(n - s))
                 .map(|k| {
-                    errors_range_interval(method, n, k, k + s, level_nats, Sides::Two)
-                        .map_or(f64::INFINITY, |ci| ci.half_width())
+                    errors_range_interval_with(
+                        rounding,
+                        method,
+                        n,
+                        k,
+                        k + s,
+                        level_nats,
+                        Sides::Two,
+                    )
+                    .map_or(f64::INFINITY, |ci| ci.half_width())
                 })
                 .fold(0.0, f64::max)
         } else {
@@ -170,7 +199,8 @@ impl Grid {
             } else {
                 method
             };
-            mean_range_interval(
+            mean_range_interval_with(
+                rounding,
                 method,
                 n,
                 (0.5 - half).max(0.0),
@@ -191,6 +221,7 @@ impl Grid {
         method: Method,
         reference: f64,
         level_nats: f64,
+        rounding: Rounding,
     ) -> f64 {
         let r = reference.clamp(0.0, 1.0);
         let j = if binary {
@@ -199,7 +230,7 @@ impl Grid {
         } else {
             self.cell_of_mean(r)
         };
-        self.interval(j, n, binary, method, level_nats, Sides::Two)
+        self.interval(j, n, binary, method, level_nats, Sides::Two, rounding)
             .map_or(f64::INFINITY, |ci| ci.half_width())
     }
 }
@@ -561,9 +592,11 @@ impl Rule {
         method: Method,
         reference: Option<f64>,
         level_nats: f64,
+        rounding: Rounding,
     ) -> f64 {
         match (self, self.grid(rows)) {
-            (Rule::Threshold { .. }, _) | (_, None) => reference_half_width(
+            (Rule::Threshold { .. }, _) | (_, None) => reference_half_width_with(
+                rounding,
                 method,
                 rows,
                 reference.unwrap_or(0.5),
@@ -572,8 +605,8 @@ impl Rule {
             )
             .unwrap_or(f64::INFINITY),
             (_, Some(g)) => match reference {
-                None => g.widest_half_width(rows, binary, method, level_nats),
-                Some(r) => g.cell_half_width(rows, binary, method, r, level_nats),
+                None => g.widest_half_width(rows, binary, method, level_nats, rounding),
+                Some(r) => g.cell_half_width(rows, binary, method, r, level_nats, rounding),
             },
         }
     }

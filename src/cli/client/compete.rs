@@ -169,12 +169,13 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             "entries": r.entries.iter().map(|e| {
                 let (lo, hi) = iv(e.interval.as_ref());
                 json!({"rank": e.rank, "team": e.team, "ticket": e.ticket, "score": e.score,
-                       "lower": lo, "upper": hi, "digest": e.digest})
+                       "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
             }).collect::<Vec<Value>>(),
             "comparisons": r.comparisons.iter().map(|c| {
                 let (lo, hi) = iv(c.difference.as_ref());
                 json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
-                       "level_nats": c.level_nats, "distinguishable": c.distinguishable})
+                       "level_nats": c.level_nats, "distinguishable": c.distinguishable,
+                       "target": c.target})
             }).collect::<Vec<Value>>(),
             "statement": r.statement,
             "guarantee": r.guarantee,
@@ -223,7 +224,12 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     )
                 });
                 vec![
-                    e.rank.to_string(),
+                    // Ranks count within a target (core 2 rounds name it).
+                    if e.target.is_empty() {
+                        e.rank.to_string()
+                    } else {
+                        format!("{} {}", e.target, e.rank)
+                    },
                     e.team.clone(),
                     opt(e.score),
                     format!("[{}, {}]", num(lo), num(hi)),

@@ -38,8 +38,10 @@
 
 use std::collections::BTreeMap;
 
-use super::interval::reference_half_width;
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
+use super::interval::{
+    Rounding, errors_interval_with, mean_interval_with, reference_half_width_with,
+};
 use super::policy::{Policy, Sharing, ToleranceReference};
 use super::rules::{KtCounts, Past, Rule, Symbol, cutoff_errors, cutoff_mean};
 use super::schedule::Shares;
@@ -288,7 +290,8 @@ impl Accountant {
         }
         let t = &self.policy.targets[target];
         let method = effective_method(t.binary, t.method);
-        let h = reference_half_width(
+        let h = reference_half_width_with(
+            Rounding::for_core(self.policy.core_version),
             method,
             self.policy.rows,
             reference,
@@ -325,6 +328,7 @@ impl Accountant {
             effective_method(t.binary, t.method),
             reference,
             level_nats,
+            Rounding::for_core(self.policy.core_version),
         );
         self.last_judged.set(Some((key, h)));
         h
@@ -347,15 +351,18 @@ impl Accountant {
         let n = self.policy.rows;
         let method = effective_method(t.binary, t.method);
         let evals = &self.threshold_evaluations;
+        let rounding = Rounding::for_core(self.policy.core_version);
         let cutoff = if t.binary {
             Cutoff::Errors(cutoff_errors(n, tau, |k| {
                 evals.set(evals.get() + 1);
-                errors_interval(method, n, k, level_nats, Sides::Upper).map_or(1.0, |ci| ci.upper)
+                errors_interval_with(rounding, method, n, k, level_nats, Sides::Upper)
+                    .map_or(1.0, |ci| ci.upper)
             }))
         } else {
             Cutoff::Mean(cutoff_mean(tau, |m| {
                 evals.set(evals.get() + 1);
-                mean_interval(method, n, m, level_nats, Sides::Upper).map_or(1.0, |ci| ci.upper)
+                mean_interval_with(rounding, method, n, m, level_nats, Sides::Upper)
+                    .map_or(1.0, |ci| ci.upper)
             }))
         };
         self.last_cutoff.set(Some((key, cutoff)));
@@ -772,6 +779,7 @@ impl Accountant {
                     effective_method(t.binary, t.method),
                     level,
                     Sides::Two,
+                    Rounding::for_core(self.policy.core_version),
                 )
                 .unwrap_or(Interval::FULL);
             (ci, g.value(j))
