@@ -304,7 +304,7 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
     } else {
         format!(
             "Certificate for holdout {name}, query {q} (team {team}, target {target})\n\
-             answer     {sym}, interval [{lo}, {hi}] at level ln(1/d) = {lvl:.3}\n\
+             answer     {sym}, interval {iv} at level ln(1/d) = {lvl:.3}\n\
              predictions digest {digest}, answered {at}\n\
              policy     delta {delta}, schedule {sched}, answers {ans}, {rows} rows\n\n\
              {guarantee}\n\n\
@@ -316,8 +316,7 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
             team = r.team,
             target = r.target,
             sym = r.symbol,
-            lo = show::num(r.lower),
-            hi = show::num(r.upper),
+            iv = show::interval_text(r.lower, r.upper),
             lvl = r.level_nats,
             digest = r.digest,
             at = r.at,

@@ -116,7 +116,7 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     rank(r.rank),
                     r.team.clone(),
                     opt(r.best),
-                    format!("[{}, {}]", num(lo), num(hi)),
+                    show::interval_text(lo, hi),
                     r.submissions.to_string(),
                     r.improvements.to_string(),
                 ]
@@ -213,9 +213,8 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                 let vs = below(e.ticket).map_or(String::new(), |c| {
                     let (a, b) = iv(c.difference.as_ref());
                     format!(
-                        "[{}, {}] {}",
-                        num(a),
-                        num(b),
+                        "{} {}",
+                        show::interval_text(a, b),
                         if c.distinguishable {
                             "told apart"
                         } else {
@@ -232,7 +231,7 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     },
                     e.team.clone(),
                     opt(e.score),
-                    format!("[{}, {}]", num(lo), num(hi)),
+                    show::interval_text(lo, hi),
                     vs,
                 ]
             })

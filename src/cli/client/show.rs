@@ -11,6 +11,41 @@ pub fn print_json(value: &Value) {
     println!("{value}");
 }
 
+/// An interval for people, `[lower, upper]`, each end rounded outward (the lower end down, the
+/// upper end up) so the shown interval contains the reported one: four decimals, or eight when
+/// the interval is narrower than 0.001. Trailing zeros are dropped.
+pub fn interval_text(lower: f64, upper: f64) -> String {
+    if !(lower.is_finite() && upper.is_finite()) {
+        return format!("[{lower}, {upper}]");
+    }
+    let decimals = if (upper - lower).abs() < 1e-3 { 8 } else { 4 };
+    let (mut lo, mut hi) = crate::stats::interval::display_outward(lower, upper, decimals);
+    // A limit whose shortest round-trip decimal fits (0.45 for a threshold, 0.2 for a cell
+    // edge) is shown as that decimal: it differs from the double by less than one ulp, far
+    // inside the margin the outward limits already carry.
+    let short = |x: f64, out: &mut String| {
+        let t = format!("{x}");
+        if t.split_once('.').is_none_or(|(_, f)| f.len() <= decimals) && !t.contains('e') {
+            *out = t;
+        }
+    };
+    short(lower, &mut lo);
+    short(upper, &mut hi);
+    let trim = |t: String| {
+        if t.contains('.') {
+            let t = t.trim_end_matches('0').trim_end_matches('.');
+            if t == "-0" {
+                "0".to_string()
+            } else {
+                t.to_string()
+            }
+        } else {
+            t
+        }
+    };
+    format!("[{}, {}]", trim(lo), trim(hi))
+}
+
 /// A number for people: four decimals for ordinary sizes, scientific notation for tiny ones.
 pub fn num(x: f64) -> String {
     if x == 0.0 || !x.is_finite() {
@@ -191,11 +226,7 @@ pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
         s.push_str(&format!("\nbest model {m} {name}"));
     }
     if let Some(i) = &a.interval {
-        s.push_str(&format!(
-            "\ninterval   [{}, {}]",
-            num(i.lower),
-            num(i.upper)
-        ));
+        s.push_str(&format!("\ninterval   {}", interval_text(i.lower, i.upper)));
     }
     s.push_str(&format!(
         "\nlevel      ln(1/d) = {} nats; share delta_i = {}; this answer's code {} nats",
@@ -418,9 +449,9 @@ pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
         (Some(a), _) => (
             a.query.to_string(),
             format!("{} {}", a.target, a.symbol),
-            a.interval.as_ref().map_or(String::new(), |i| {
-                format!("[{}, {}]", num(i.lower), num(i.upper))
-            }),
+            a.interval
+                .as_ref()
+                .map_or(String::new(), |i| interval_text(i.lower, i.upper)),
         ),
         (None, Some(r)) => (
             String::new(),
@@ -483,6 +514,19 @@ mod tests {
         assert_eq!(num(1.0), "1");
         assert_eq!(num(0.0), "0");
         assert_eq!(num(2.5e-7), "2.500e-7");
+    }
+
+    #[test]
+    fn intervals_are_shown_rounded_outward() {
+        assert_eq!(interval_text(0.0203305, 0.0425514), "[0.0203, 0.0426]");
+        assert_eq!(interval_text(0.0, 1.0), "[0, 1]");
+        assert_eq!(interval_text(0.25, 0.5), "[0.25, 0.5]");
+        // Narrow intervals keep their digits, still outward.
+        assert_eq!(
+            interval_text(0.123456781, 0.123456789),
+            "[0.12345678, 0.12345679]"
+        );
+        assert_eq!(interval_text(-0.00001, 0.2), "[-0.0001, 0.2]");
     }
 
     #[test]
