@@ -212,12 +212,11 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
                     let iv = a.interval.unwrap_or_default();
                     let b = a.budget.unwrap_or_default();
                     println!(
-                        "#{:<2} {user:<7}({team:<12}) error {:<5} in [{:.3}, {:.3}]  level {:>6.2} nats  \
+                        "#{:<2} {user:<7}({team:<12}) error {:<5} in {:<16}  level {:>6.2} nats  \
                          transcript {:>5.1} nats  next +-{:.3}",
                         a.query,
                         a.symbol,
-                        iv.lower,
-                        iv.upper,
+                        super::client::show::interval_text(iv.lower, iv.upper),
                         a.level_nats,
                         b.transcript_nats,
                         b.next_half_width
