@@ -366,3 +366,88 @@ fn serve_writes_periodic_checkpoints() {
     )
     .ok();
 }
+
+#[test]
+fn serve_signs_the_last_heads_at_shutdown() {
+    let s = setup();
+    let copy = s.d.path("copy2.db");
+    {
+        let src = rusqlite::Connection::open(s.d.path("holdout.db")).unwrap();
+        src.execute("VACUUM INTO ?1", [copy.display().to_string()])
+            .unwrap();
+    }
+    let dir = s.d.path("anchors2");
+    // An hour between ticks: only the start and the shutdown can write checkpoints here.
+    let mut child = holdout()
+        .args([
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--checkpoint-every",
+            "3600",
+            "--db",
+        ])
+        .arg(&copy)
+        .arg("--checkpoint-dir")
+        .arg(&dir)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().unwrap())
+        .read_line(&mut line)
+        .unwrap();
+    let url = format!(
+        "http://{}",
+        line.trim().strip_prefix("listening on ").unwrap()
+    );
+    let files = |dir: &std::path::Path| -> Vec<String> {
+        let mut v: Vec<String> = std::fs::read_dir(dir)
+            .map(|r| {
+                r.filter_map(|e| e.ok().map(|e| e.file_name().to_string_lossy().to_string()))
+                    .collect()
+            })
+            .unwrap_or_default();
+        v.sort();
+        v
+    };
+    let deadline = Instant::now() + Duration::from_secs(30);
+    while files(&dir).is_empty() && Instant::now() < deadline {
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    assert_eq!(
+        files(&dir),
+        ["qc-0.checkpoint.json"],
+        "the start signs genesis"
+    );
+    let preds = s.d.write("shutdown.csv", &defect_predictions(9));
+    run(
+        holdout(),
+        &[
+            "submit",
+            "qc",
+            "--target",
+            "defect",
+            "--predictions",
+            &preds,
+            "--server",
+            &url,
+            "--token",
+            &s.analyst,
+        ],
+    )
+    .ok();
+    let term = std::process::Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert!(term.success());
+    let status = child.wait().unwrap();
+    assert!(status.success(), "{status:?}");
+    assert_eq!(
+        files(&dir),
+        ["qc-0.checkpoint.json", "qc-1.checkpoint.json"],
+        "the answer given before shutdown is covered by a checkpoint"
+    );
+}

@@ -32,7 +32,8 @@ pub struct ServeArgs {
     pub log: String,
     /// Write signed checkpoints of every holdout's chain head into this directory
     /// (`NAME-SEQ.checkpoint.json`, one per new head), at start and every --checkpoint-every
-    /// seconds; ship them elsewhere and pass them to `holdout audit --checkpoint`.
+    /// seconds, when a sealed round closes at its deadline, and once more at shutdown; ship
+    /// them elsewhere and pass them to `holdout audit --checkpoint`.
     #[arg(long, value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
     /// Seconds between checkpoints with --checkpoint-dir.
@@ -78,7 +79,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         }
         // Sealed rounds close at their deadline even if nobody calls; a call that touches the
         // holdout closes it at once anyway (the deadline is a public fact either way).
-        tokio::spawn(settle_deadlines(db.clone()));
+        tokio::spawn(settle_deadlines(db.clone(), args.checkpoint_dir.clone()));
         let listener = tokio::net::TcpListener::bind(&args.listen)
             .await
             .with_context(|| format!("listening on {}", args.listen))?;
@@ -86,7 +87,12 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         // Tests and scripts read this line to learn the port when they passed port 0.
         println!("listening on {addr}");
         std::io::stdout().flush()?;
-        serve_on(listener, Daemon::new(db), shutdown_signal()).await?;
+        serve_on(listener, Daemon::new(db.clone()), shutdown_signal()).await?;
+        // A last checkpoint of every head, so nothing appended since the last tick (a close,
+        // the last answers) is left uncovered when the daemon stops.
+        if let Some(dir) = args.checkpoint_dir.clone() {
+            checkpoint_now(&db, dir).await;
+        }
         Ok(ExitCode::SUCCESS)
     })
 }
@@ -96,32 +102,41 @@ async fn write_checkpoints(db: Db, dir: PathBuf, secs: u64) {
     let mut tick = tokio::time::interval(std::time::Duration::from_secs(secs));
     loop {
         tick.tick().await;
-        let dir = dir.clone();
-        let done = db
-            .call(move |engine| {
-                let at = auth::rfc3339(engine.now());
-                crate::audit::anchor::checkpoint_all(engine.store().conn(), &dir, &at)
-            })
-            .await;
-        match done {
-            Ok(files) => {
-                for f in files {
-                    tracing::info!(file = %f.display(), "wrote checkpoint");
-                }
-            }
-            Err(e) => tracing::warn!(error = %e, "writing checkpoints failed"),
-        }
+        checkpoint_now(&db, dir.clone()).await;
     }
 }
 
-async fn settle_deadlines(db: Db) {
+/// Signs every holdout's head not yet signed into `dir`, logging what was written.
+async fn checkpoint_now(db: &Db, dir: PathBuf) {
+    let done = db
+        .call(move |engine| {
+            let at = auth::rfc3339(engine.now());
+            crate::audit::anchor::checkpoint_all(engine.store().conn(), &dir, &at)
+        })
+        .await;
+    match done {
+        Ok(files) => {
+            for f in files {
+                tracing::info!(file = %f.display(), "wrote checkpoint");
+            }
+        }
+        Err(e) => tracing::warn!(error = %e, "writing checkpoints failed"),
+    }
+}
+
+async fn settle_deadlines(db: Db, checkpoint_dir: Option<PathBuf>) {
     let mut tick = tokio::time::interval(std::time::Duration::from_secs(5));
     loop {
         tick.tick().await;
         match db.call(|engine| engine.settle_deadlines()).await {
             Ok(closed) => {
+                let any = !closed.is_empty();
                 for name in closed {
                     tracing::info!(holdout = %name, "sealed round closed at its deadline");
+                }
+                // A close is signed at once, not at the next checkpoint tick.
+                if let (true, Some(dir)) = (any, checkpoint_dir.clone()) {
+                    checkpoint_now(&db, dir).await;
                 }
             }
             Err(e) => tracing::warn!(error = %e, "closing rounds at their deadline failed"),
