@@ -451,3 +451,38 @@ fn serve_signs_the_last_heads_at_shutdown() {
         "the answer given before shutdown is covered by a checkpoint"
     );
 }
+
+#[test]
+fn a_corrupted_labels_blob_is_a_finding_about_the_labels() {
+    let s = setup();
+    let copy = s.d.path("corrupt.db");
+    {
+        let src = rusqlite::Connection::open(s.d.path("holdout.db")).unwrap();
+        src.execute("VACUUM INTO ?1", [copy.display().to_string()])
+            .unwrap();
+    }
+    let conn = rusqlite::Connection::open(&copy).unwrap();
+    let n = conn
+        .execute(
+            "UPDATE sealed_labels SET labels = x'5b2274727563' WHERE target = 0",
+            [],
+        )
+        .unwrap();
+    assert_eq!(n, 1);
+    drop(conn);
+    let db = copy.display().to_string();
+    let out = run(holdout(), &["audit", "--db", &db, "qc"]).code(8);
+    assert!(
+        out.stdout.contains("labels") && out.stdout.contains("unreadable"),
+        "{}\n{}",
+        out.stdout,
+        out.stderr
+    );
+    let json = run(holdout(), &["audit", "--db", &db, "qc", "--json"])
+        .code(8)
+        .json();
+    assert!(
+        json.to_string().contains("sealed labels of target 0"),
+        "{json}"
+    );
+}

@@ -340,8 +340,12 @@ async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
-/// Reads a database file read-only into an export of one holdout, with the labels it seals.
-fn from_db(path: &Path, name: &str) -> anyhow::Result<(Export, LabelColumns)> {
+/// Reads a database file read-only into an export of one holdout, with the labels it seals, or
+/// what is wrong with them (a finding of the audit, not a reason to stop it).
+fn from_db(
+    path: &Path,
+    name: &str,
+) -> anyhow::Result<(Export, std::result::Result<LabelColumns, String>)> {
     let conn = rusqlite::Connection::open_with_flags(
         path,
         rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX,
@@ -362,14 +366,22 @@ fn from_db(path: &Path, name: &str) -> anyhow::Result<(Export, LabelColumns)> {
         .collect::<Result<Vec<_>, _>>()?;
     let mut stmt =
         conn.prepare("SELECT labels FROM sealed_labels WHERE holdout_id = ?1 ORDER BY target")?;
-    let columns = stmt
+    let blobs = stmt
         .query_map([id], |r| r.get::<_, Vec<u8>>(0))?
-        .map(|b| Ok(serde_json::from_slice::<Vec<String>>(&b?)?))
-        .collect::<anyhow::Result<Vec<_>>>()?;
+        .collect::<Result<Vec<_>, _>>()?;
+    let columns = blobs
+        .iter()
+        .enumerate()
+        .map(|(t, b)| {
+            serde_json::from_slice::<Vec<String>>(b).map_err(|e| {
+                format!("the sealed labels of target {t} in the database are unreadable: {e}")
+            })
+        })
+        .collect::<std::result::Result<Vec<_>, _>>();
     let at = crate::auth::rfc3339(chrono::Utc::now());
     Ok((
         Export::new(name, &at, entries, users),
-        LabelColumns { ids, columns },
+        columns.map(|columns| LabelColumns { ids, columns }),
     ))
 }
 
@@ -397,10 +409,17 @@ fn predictions_table(path: &Path, args: &AuditArgs) -> crate::error::Result<file
 }
 
 fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
+    let mut label_problem = None;
     let (export, db_labels) = match &args.db {
         Some(db) => {
             let (ex, labels) = from_db(db, &args.source)?;
-            (ex, Some(labels))
+            match labels {
+                Ok(labels) => (ex, Some(labels)),
+                Err(why) => {
+                    label_problem = Some(why);
+                    (ex, None)
+                }
+            }
         }
         None => (Export::read(Path::new(&args.source))?, None),
     };
@@ -448,6 +467,14 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
     );
     if let Some(b) = bar {
         b.finish_and_clear();
+    }
+    if let Some(problem) = label_problem {
+        report.findings.push(audit::Finding {
+            chain: export.header.holdout.clone(),
+            entry: None,
+            field: "labels".into(),
+            problem,
+        });
     }
     let mut extra = serde_json::Map::new();
     let mut members = Vec::new();
