@@ -318,6 +318,15 @@ fn refusals_are_recomputed_from_public_facts() {
     let ex = g.export();
     assert!(plain(&ex).clean(), "{:#?}", plain(&ex).findings);
     assert!(plain(&ex).refusals >= 1);
+    // Every refusal is listed with its entry, team and reason, not only counted.
+    let listed = plain(&ex).refusal_list;
+    assert_eq!(listed.len() as u64, plain(&ex).refusals);
+    assert!(
+        listed
+            .iter()
+            .any(|(entry, what)| *entry == k as u64 && what.contains("team")),
+        "{listed:?}"
+    );
 
     // A refusal carrying a score.
     let mut t = ex.clone();

@@ -117,6 +117,8 @@ pub struct Report {
     pub queries: Vec<QuerySummary>,
     /// Refusals.
     pub refusals: u64,
+    /// Each refusal (entry, who and why), every one re-decided by the replay.
+    pub refusal_list: Vec<(u64, String)>,
     /// Reads of exact scores (entry, description).
     pub reads: Vec<(u64, String)>,
     /// Checkpoints checked (file, entry, key).
@@ -503,6 +505,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         versions: Value::Null,
         queries: Vec::new(),
         refusals: 0,
+        refusal_list: Vec::new(),
         reads: Vec::new(),
         checkpoints: Vec::new(),
         receipts: Vec::new(),
@@ -583,6 +586,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     report.findings.extend(r.findings);
     report.queries = r.queries;
     report.refusals = r.refusals;
+    report.refusal_list = r.refusal_list;
     report.reads = r.reads;
     report
 }

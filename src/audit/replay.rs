@@ -44,6 +44,7 @@ pub(crate) struct Replay {
     pub(crate) findings: Vec<Finding>,
     pub(crate) queries: Vec<QuerySummary>,
     pub(crate) refusals: u64,
+    pub(crate) refusal_list: Vec<(u64, String)>,
     pub(crate) reads: Vec<(u64, String)>,
 }
 
@@ -290,6 +291,16 @@ fn replay_serial(
             }
             "refusal" => {
                 out.refusals += 1;
+                let v = serde_json::from_str::<Value>(&e.body).unwrap_or_default();
+                out.refusal_list.push((
+                    e.seq,
+                    format!(
+                        "team {}, {} ({})",
+                        v["team"].as_str().unwrap_or("?"),
+                        v["reason"].as_str().unwrap_or("?"),
+                        v["at"].as_str().unwrap_or("?")
+                    ),
+                ));
                 refusal(policy, &mut book, e, quota, &today, &mut cmp, &mut memo);
             }
             "read" => {

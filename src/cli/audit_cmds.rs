@@ -588,6 +588,9 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
             if q.replayed { "yes" } else { "NO" }
         );
     }
+    for (n, what) in &report.refusal_list {
+        println!("refusal    entry {n}: {what}");
+    }
     for (n, what) in &report.reads {
         println!("read       entry {n}: {what}");
     }
