@@ -348,13 +348,26 @@ fn serve_writes_periodic_checkpoints() {
         files = std::fs::read_dir(&dir)
             .map(|r| r.filter_map(|e| e.ok().map(|e| e.path())).collect())
             .unwrap_or_default();
-        if !files.is_empty() {
+        if files
+            .iter()
+            .any(|f| f.file_name().unwrap().to_string_lossy().starts_with("qc-"))
+        {
             break;
         }
         std::thread::sleep(Duration::from_millis(100));
     }
     let _ = child.kill();
     let _ = child.wait();
+    // The identity chain is signed beside the holdout.
+    assert!(
+        files.iter().any(|f| f
+            .file_name()
+            .unwrap()
+            .to_string_lossy()
+            .starts_with("@users-")),
+        "{files:?}"
+    );
+    files.retain(|f| f.file_name().unwrap().to_string_lossy().starts_with("qc-"));
     assert_eq!(files.len(), 1, "{files:?}");
     let name = files[0].file_name().unwrap().to_string_lossy().to_string();
     assert!(name.starts_with("qc-0.checkpoint"), "{name}");
@@ -406,6 +419,7 @@ fn serve_signs_the_last_heads_at_shutdown() {
         let mut v: Vec<String> = std::fs::read_dir(dir)
             .map(|r| {
                 r.filter_map(|e| e.ok().map(|e| e.file_name().to_string_lossy().to_string()))
+                    .filter(|f| f.starts_with("qc-"))
                     .collect()
             })
             .unwrap_or_default();
@@ -438,6 +452,42 @@ fn serve_signs_the_last_heads_at_shutdown() {
         ],
     )
     .ok();
+    // The identity chain can be checkpointed on request too, and audits with the export.
+    let users_cp = s.d.path("users.checkpoint.json").display().to_string();
+    run(
+        holdout(),
+        &[
+            "checkpoint",
+            "@users",
+            "--out",
+            &users_cp,
+            "--server",
+            &url,
+            "--token",
+            &s.auditor,
+        ],
+    )
+    .ok();
+    let users_export = s.d.path("users-export.jsonl").display().to_string();
+    run(
+        holdout(),
+        &[
+            "export",
+            "qc",
+            "--out",
+            &users_export,
+            "--server",
+            &url,
+            "--token",
+            &s.auditor,
+        ],
+    )
+    .ok();
+    run(
+        holdout(),
+        &["audit", &users_export, "--checkpoint", &users_cp],
+    )
+    .ok();
     let term = std::process::Command::new("kill")
         .args(["-TERM", &child.id().to_string()])
         .status()
@@ -447,8 +497,8 @@ fn serve_signs_the_last_heads_at_shutdown() {
     assert!(status.success(), "{status:?}");
     assert_eq!(
         files(&dir),
-        ["qc-0.checkpoint.json", "qc-1.checkpoint.json"],
-        "the answer given before shutdown is covered by a checkpoint"
+        ["qc-0.checkpoint.json", "qc-2.checkpoint.json"],
+        "the last head before shutdown (the answer, then the export's read entry) is covered"
     );
 }
 

@@ -512,3 +512,68 @@ fn the_export_file_round_trips_and_names_bad_lines() {
         "{err}"
     );
 }
+
+/// The identity chain is anchored too: a checkpoint of `@users` catches a rewritten team and a
+/// deleted identity chain, however carefully the hashes were recomputed.
+#[test]
+fn an_identity_checkpoint_catches_rewritten_or_deleted_identities() {
+    let mut g = small(11);
+    let at = holdout_ledger::auth::rfc3339(g.engine.now());
+    let cp = holdout_ledger::audit::anchor::checkpoint(
+        g.engine.store().conn(),
+        ledger::USERS_CHAIN,
+        &at,
+    )
+    .unwrap();
+    assert_eq!(cp.holdout, ledger::USERS_CHAIN);
+    let ex = g.export();
+    assert!(ex.users.len() >= 2, "the generator adds users");
+    let with_cp = |ex: &Export| {
+        run(
+            ex,
+            AuditOptions {
+                checkpoints: vec![("users.json".into(), cp.clone())],
+                ..AuditOptions::default()
+            },
+        )
+    };
+    let clean = with_cp(&ex);
+    assert!(clean.clean(), "{:#?}", clean.findings);
+    assert_eq!(clean.checkpoints.len(), 1);
+
+    // A user's team rewritten, every later hash recomputed: the chain verifies on its own, the
+    // checkpoint does not.
+    let mut moved = ex.clone();
+    let i = moved
+        .users
+        .iter()
+        .position(|e| e.body.contains("\"team\":\""))
+        .expect("a user with a team");
+    edit_body(&mut moved.users[i], |v| {
+        v["team"] = Value::from("another-team")
+    });
+    rehash(&mut moved.users, i);
+    let report = with_cp(&moved);
+    assert!(
+        report
+            .findings
+            .iter()
+            .any(|f| f.field.contains("checkpoint users.json") && f.field.contains("head_hash")),
+        "{:#?}",
+        report.findings
+    );
+
+    // Every identity event deleted.
+    let mut gone = ex.clone();
+    gone.users.clear();
+    gone.header.chains.insert(ledger::USERS_CHAIN.into(), 0);
+    let report = with_cp(&gone);
+    assert!(
+        report
+            .findings
+            .iter()
+            .any(|f| f.field.contains("checkpoint users.json") && f.problem.contains("truncated")),
+        "{:#?}",
+        report.findings
+    );
+}

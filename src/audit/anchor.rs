@@ -153,13 +153,16 @@ pub fn write(path: &Path, cp: &Checkpoint) -> Result<()> {
         .map_err(|e| Error::invalid(path.display().to_string(), format!("cannot write: {e}")))
 }
 
-/// Signs the head of every holdout into `dir` as `NAME-SEQ.checkpoint.json`, skipping heads
+/// Signs the head of every holdout, and of the identity chain (`@users-SEQ`), into `dir` as
+/// `NAME-SEQ.checkpoint.json`, skipping heads
 /// already written; returns the files written. The daemon calls this periodically
 /// (`serve --checkpoint-dir`), so the operator can ship the files elsewhere.
 pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std::path::PathBuf>> {
     let key = signing_key(conn)?;
     let mut written = Vec::new();
-    for name in holdout_names(conn)? {
+    let mut names = holdout_names(conn)?;
+    names.push(ledger::USERS_CHAIN.to_string());
+    for name in names {
         let Some((seq, head_hash)) = ledger::head(conn, &name)? else {
             continue;
         };

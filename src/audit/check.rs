@@ -340,20 +340,27 @@ fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Repo
                 format!("signed by {}, not the trusted key {k}", cp.public_key),
             );
         }
-        if cp.holdout != chain {
+        // A checkpoint anchors the holdout's chain or the identity chain the export carries.
+        let entries = if cp.holdout == chain {
+            &export.entries
+        } else if cp.holdout == ledger::USERS_CHAIN {
+            &export.users
+        } else {
             f(
                 "holdout",
                 format!("checkpoint of {}, export of {chain}", cp.holdout),
             );
             continue;
-        }
-        match export.entries.get(cp.seq as usize) {
+        };
+        match entries.get(cp.seq as usize) {
             None => f(
                 "seq",
                 format!(
-                    "the checkpoint anchors entry {} but the chain ends at entry {}: truncated",
+                    "the checkpoint anchors entry {} of {} but that chain ends at entry {}: \
+                     truncated",
                     cp.seq,
-                    export.entries.len() as i64 - 1
+                    cp.holdout,
+                    entries.len() as i64 - 1
                 ),
             ),
             Some(e) if e.hash != cp.head_hash || e.seq != cp.seq => f(

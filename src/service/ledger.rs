@@ -72,6 +72,16 @@ impl Ledger for Daemon {
         let cp = self
             .db
             .call(move |engine| {
+                if name == ledger::USERS_CHAIN {
+                    // The identity chain: who belongs to which team. Its head counts identity
+                    // events, so only the roles that manage or audit them get it.
+                    caller.require(
+                        "a checkpoint of the identity chain",
+                        &[Role::Organizer, Role::Auditor, Role::Custodian],
+                    )?;
+                    let at = rfc3339(engine.now());
+                    return anchor::checkpoint(engine.store().conn(), &name, &at);
+                }
                 let loaded = engine.loaded(&name)?;
                 // A checkpoint names the head's position, which counts every team's entries:
                 // under `isolated` a team must not learn how many queries the others made.
