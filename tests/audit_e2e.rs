@@ -321,27 +321,7 @@ fn serve_writes_periodic_checkpoints() {
             .unwrap();
     }
     let dir = s.d.path("anchors");
-    let mut child = holdout()
-        .args([
-            "serve",
-            "--listen",
-            "127.0.0.1:0",
-            "--checkpoint-every",
-            "1",
-            "--db",
-        ])
-        .arg(&copy)
-        .arg("--checkpoint-dir")
-        .arg(&dir)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().unwrap())
-        .read_line(&mut line)
-        .unwrap();
-    assert!(line.starts_with("listening on"), "{line}");
+    let (mut child, _url) = serve_with_checkpoints(&copy, &dir, "1");
     let deadline = Instant::now() + Duration::from_secs(30);
     let mut files = Vec::new();
     while Instant::now() < deadline {
@@ -391,30 +371,7 @@ fn serve_signs_the_last_heads_at_shutdown() {
     }
     let dir = s.d.path("anchors2");
     // An hour between ticks: only the start and the shutdown can write checkpoints here.
-    let mut child = holdout()
-        .args([
-            "serve",
-            "--listen",
-            "127.0.0.1:0",
-            "--checkpoint-every",
-            "3600",
-            "--db",
-        ])
-        .arg(&copy)
-        .arg("--checkpoint-dir")
-        .arg(&dir)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let mut line = String::new();
-    BufReader::new(child.stdout.take().unwrap())
-        .read_line(&mut line)
-        .unwrap();
-    let url = format!(
-        "http://{}",
-        line.trim().strip_prefix("listening on ").unwrap()
-    );
+    let (mut child, url) = serve_with_checkpoints(&copy, &dir, "3600");
     let files = |dir: &std::path::Path| -> Vec<String> {
         let mut v: Vec<String> = std::fs::read_dir(dir)
             .map(|r| {
@@ -535,4 +492,38 @@ fn a_corrupted_labels_blob_is_a_finding_about_the_labels() {
         json.to_string().contains("sealed labels of target 0"),
         "{json}"
     );
+}
+
+/// `holdout serve` on `db` with `--checkpoint-dir dir`, on an ephemeral port: the child and its
+/// URL (read from the `listening on` line).
+fn serve_with_checkpoints(
+    db: &std::path::Path,
+    dir: &std::path::Path,
+    every: &str,
+) -> (std::process::Child, String) {
+    let mut child = holdout()
+        .args([
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--checkpoint-every",
+            every,
+            "--db",
+        ])
+        .arg(db)
+        .arg("--checkpoint-dir")
+        .arg(dir)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut line = String::new();
+    BufReader::new(child.stdout.take().unwrap())
+        .read_line(&mut line)
+        .unwrap();
+    let addr = line
+        .trim()
+        .strip_prefix("listening on ")
+        .unwrap_or_else(|| panic!("serve printed {line:?}"));
+    (child, format!("http://{addr}"))
 }

@@ -397,6 +397,29 @@ pub(crate) struct Book {
     refused_total: u64,
 }
 
+/// What the engine records of an accountant's answer: symbol text, released score, interval
+/// and level. Charge, code, statement and best model start at nothing (an adoption's); a
+/// charged answer sets its own.
+fn answer_core(policy: &HoldoutPolicy, ans: &Answer, core: serde_json::Value) -> AnswerCore {
+    AnswerCore {
+        query: ans.query_number,
+        symbol: symbol_text(
+            &ans.symbol,
+            ans.released_score,
+            policy.core.rule.grid(policy.core.rows).map(|g| g.cells),
+        ),
+        score: ans.released_score,
+        lower: ans.interval.lower,
+        upper: ans.interval.upper,
+        delta_i: 0.0,
+        level_nats: ans.level_nats,
+        code_nats: 0.0,
+        statement: String::new(),
+        best_model: None,
+        core,
+    }
+}
+
 fn outcome(binary: bool, loss: &Loss) -> Outcome {
     match (binary, loss.errors) {
         (true, Some(k)) => Outcome::Errors(k),
@@ -562,22 +585,13 @@ impl Book {
             Symbol::Best { model, .. } => Some(model),
             _ => None,
         };
+        let core = serde_json::to_value(&ans).unwrap_or_default();
         Ok(AnswerCore {
-            query: ans.query_number,
-            symbol: symbol_text(
-                &ans.symbol,
-                ans.released_score,
-                policy.core.rule.grid(policy.core.rows).map(|g| g.cells),
-            ),
-            score: ans.released_score,
-            lower: ans.interval.lower,
-            upper: ans.interval.upper,
             delta_i: ans.delta_i,
-            level_nats: ans.level_nats,
             code_nats: ans.code_nats,
             statement: ans.statement.clone(),
             best_model,
-            core: serde_json::to_value(&ans).unwrap_or_default(),
+            ..answer_core(policy, &ans, core)
         })
     }
 
@@ -612,27 +626,15 @@ impl Book {
             .acct
             .adopt(team, src.target_index, cell, src.level_nats)
             .map_err(|e| Error::Internal(format!("accounting: {e}")))?;
+        let core = serde_json::json!({ "adopted_from": src_seq, "answer": ans });
         Ok(AnswerCore {
-            query: ans.query_number,
-            symbol: symbol_text(
-                &ans.symbol,
-                ans.released_score,
-                policy.core.rule.grid(policy.core.rows).map(|g| g.cells),
-            ),
-            score: ans.released_score,
-            lower: ans.interval.lower,
-            upper: ans.interval.upper,
-            delta_i: 0.0,
-            level_nats: ans.level_nats,
-            code_nats: 0.0,
             statement: format!(
                 "adopted at no charge: another team's answer for this same file released a new \
                  best below this team's best, so it is this team's new best too ({}); the \
                  interval is at the level that answer was given",
                 ans.statement
             ),
-            best_model: None,
-            core: serde_json::json!({ "adopted_from": src_seq, "answer": ans }),
+            ..answer_core(policy, &ans, core)
         })
     }
 
