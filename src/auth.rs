@@ -213,7 +213,7 @@ pub fn add_user(
     ledger::append(
         tx,
         ledger::USERS_CHAIN,
-        "user-added",
+        ledger::Kind::UserAdded,
         &json!({"user": name, "roles": role_list(&roles), "team": team, "by": by, "at": at}),
     )?;
     Ok((
@@ -291,7 +291,7 @@ pub fn revoke_user(tx: &Transaction<'_>, name: &str, by: &str, now: DateTime<Utc
     ledger::append(
         tx,
         ledger::USERS_CHAIN,
-        "user-revoked",
+        ledger::Kind::UserRevoked,
         &json!({"user": name, "by": by, "at": at}),
     )?;
     list_users(tx)?
@@ -323,7 +323,7 @@ pub fn rotate_token(tx: &Transaction<'_>, name: &str, now: DateTime<Utc>) -> Res
     ledger::append(
         tx,
         ledger::USERS_CHAIN,
-        "token-rotated",
+        ledger::Kind::TokenRotated,
         &json!({"user": name, "at": at}),
     )?;
     Ok(token)

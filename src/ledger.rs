@@ -23,6 +23,87 @@ pub const ZERO_HASH: &str = "000000000000000000000000000000000000000000000000000
 /// Name of the chain that records identity events (users, tokens).
 pub const USERS_CHAIN: &str = "@users";
 
+/// The kind of a ledger entry. Entries store and export their kind as text; this enum is the
+/// only place that text is matched ([`Kind::parse`]) or written ([`Kind::as_str`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum Kind {
+    /// First entry of a holdout's chain: the policy and the labels' digests.
+    Genesis,
+    /// A charged, released answer.
+    Answer,
+    /// A refusal, decided from public facts before scoring.
+    Refusal,
+    /// A sealed entry of a final round (charged on arrival, answered at the close).
+    Sealed,
+    /// The close of a sealed round: every entry answered, the ranking and comparisons.
+    Round,
+    /// The close of an open holdout.
+    Close,
+    /// A read of exact scores (history with exact losses, an export).
+    Read,
+    /// A free adoption of another team's answer for the same file (core 2 ladder).
+    Adopt,
+    /// Identity chain: a user was added (with roles and team).
+    UserAdded,
+    /// Identity chain: a user and its tokens were revoked.
+    UserRevoked,
+    /// Identity chain: a user's tokens were replaced.
+    TokenRotated,
+}
+
+impl Kind {
+    /// Every kind, in a fixed order (reports list counts in this order).
+    pub const ALL: [Kind; 11] = [
+        Kind::Genesis,
+        Kind::Answer,
+        Kind::Refusal,
+        Kind::Sealed,
+        Kind::Round,
+        Kind::Close,
+        Kind::Read,
+        Kind::Adopt,
+        Kind::UserAdded,
+        Kind::UserRevoked,
+        Kind::TokenRotated,
+    ];
+
+    /// The kind's text, as stored, hashed and exported.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Kind::Genesis => "genesis",
+            Kind::Answer => "answer",
+            Kind::Refusal => "refusal",
+            Kind::Sealed => "sealed",
+            Kind::Round => "round",
+            Kind::Close => "close",
+            Kind::Read => "read",
+            Kind::Adopt => "adopt",
+            Kind::UserAdded => "user-added",
+            Kind::UserRevoked => "user-revoked",
+            Kind::TokenRotated => "token-rotated",
+        }
+    }
+
+    /// The kind a stored text names, if any.
+    pub fn parse(text: &str) -> Option<Kind> {
+        Kind::ALL.into_iter().find(|k| k.as_str() == text)
+    }
+
+    /// Whether entries of this kind belong to the identity chain.
+    pub fn is_identity(self) -> bool {
+        matches!(
+            self,
+            Kind::UserAdded | Kind::UserRevoked | Kind::TokenRotated
+        )
+    }
+}
+
+impl std::fmt::Display for Kind {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
 /// One ledger entry as stored and exported.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Entry {
@@ -30,7 +111,7 @@ pub struct Entry {
     pub chain: String,
     /// Position in the chain, from 0.
     pub seq: u64,
-    /// Kind: `genesis`, `answer`, `refusal`, `close`, `read`, `user`...
+    /// Kind, as text (see [`Kind`]; [`Entry::kind`] parses it).
     pub kind: String,
     /// Canonical JSON body.
     pub body: String,
@@ -40,6 +121,13 @@ pub struct Entry {
     pub prev_hash: String,
     /// Hex hash of this entry.
     pub hash: String,
+}
+
+impl Entry {
+    /// The entry's kind, or `None` when the text names no kind this binary knows.
+    pub fn kind(&self) -> Option<Kind> {
+        Kind::parse(&self.kind)
+    }
 }
 
 /// Canonical JSON of a value (sorted keys, no whitespace).
@@ -80,7 +168,8 @@ pub fn head(tx: &Connection, chain: &str) -> Result<Option<(u64, String)>> {
 /// Appends an entry to `chain` inside the caller's transaction (a `Transaction` derefs to a
 /// `Connection`, and the engine's own `BEGIN IMMEDIATE` passes the connection) and returns it.
 /// The entry is durable only when the caller commits.
-pub fn append(tx: &Connection, chain: &str, kind: &str, body: &Value) -> Result<Entry> {
+pub fn append(tx: &Connection, chain: &str, kind: Kind, body: &Value) -> Result<Entry> {
+    let kind = kind.as_str();
     let (seq, prev_hash) = match head(tx, chain)? {
         Some((seq, hash)) => (seq + 1, hash),
         None => (0, ZERO_HASH.to_string()),
@@ -175,7 +264,7 @@ mod tests {
             append(
                 &tx,
                 "h",
-                if i == 0 { "genesis" } else { "answer" },
+                if i == 0 { Kind::Genesis } else { Kind::Answer },
                 &json!({"i": i, "score": 0.25}),
             )?;
         }

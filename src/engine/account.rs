@@ -14,7 +14,7 @@ use serde::{Deserialize, Serialize};
 use super::create::TargetDecl;
 use super::records::{AnswerRecord, BudgetView};
 use crate::error::{Error, Result};
-use crate::ledger::Entry;
+use crate::ledger::{Entry, Kind};
 use crate::metric::Loss;
 use crate::stats::accounting::{Accountant, Answer, Charge, Outcome, QueryRequest, Refusal};
 use crate::stats::policy::{Policy, Sharing, TargetPolicy, ToleranceReference, guarantee_text};
@@ -395,6 +395,9 @@ pub(crate) struct Book {
     acct: Accountant,
     refused: BTreeMap<String, u64>,
     refused_total: u64,
+    /// The latest UTC day with an answer or a sealed entry, and each team's count that day.
+    quota_day: String,
+    quota_counts: BTreeMap<String, u64>,
 }
 
 /// What the engine records of an accountant's answer: symbol text, released score, interval
@@ -435,62 +438,40 @@ impl Book {
                 .map_err(|e| Error::Internal(format!("stored policy: {e}")))?,
             refused: BTreeMap::new(),
             refused_total: 0,
+            quota_day: String::new(),
+            quota_counts: BTreeMap::new(),
         })
     }
 
-    /// Rebuilds the book from a holdout's ledger, checking every answer against the core.
-    pub(crate) fn replay(policy: &HoldoutPolicy, entries: &[Entry]) -> Result<Book> {
-        let mut book = Book::new(policy)?;
-        for e in entries {
-            match e.kind.as_str() {
-                "answer" => {
-                    let r: AnswerRecord = serde_json::from_str(&e.body)
-                        .map_err(|err| Error::Internal(format!("ledger entry {}: {err}", e.seq)))?;
-                    let losses = r.exact.clone().ok_or_else(|| {
-                        Error::Internal(format!("ledger entry {} has no exact losses", e.seq))
-                    })?;
-                    let quote = book
-                        .quote(policy, &r.team, r.target_index, r.models)
-                        .map_err(|why| {
-                            Error::Internal(format!(
-                                "ledger entry {} was answered, but replaying it is refused ({why})",
-                                e.seq
-                            ))
-                        })?;
-                    let again = book.answer(policy, &r.team, r.target_index, &quote, &losses)?;
-                    if again.symbol != r.symbol
-                        || again.level_nats.to_bits() != r.level_nats.to_bits()
-                        || again.lower.to_bits() != r.lower.to_bits()
-                        || again.upper.to_bits() != r.upper.to_bits()
-                    {
-                        return Err(Error::Internal(format!(
-                            "ledger entry {} does not replay: recorded {} [{}, {}] at {} nats, \
-                             recomputed {} [{}, {}] at {} nats",
-                            e.seq,
-                            r.symbol,
-                            r.lower,
-                            r.upper,
-                            r.level_nats,
-                            again.symbol,
-                            again.lower,
-                            again.upper,
-                            again.level_nats
-                        )));
-                    }
-                }
-                "sealed" | "round" => super::compete::replay_entry(&mut book, policy, e)?,
-                "adopt" => book.replay_adoption(policy, entries, e)?,
-                "refusal" => {
-                    let team = serde_json::from_str::<serde_json::Value>(&e.body)
-                        .ok()
-                        .and_then(|v| v.get("team").and_then(|t| t.as_str()).map(str::to_string))
-                        .unwrap_or_default();
-                    book.note_refusal(policy, &team);
-                }
-                _ => {}
-            }
+    /// Counts an answer or a sealed entry of `team` on UTC `day` toward the daily quota. Only
+    /// the latest day's counts are kept (entries are appended in time order, and the quota only
+    /// ever asks about today): an entry of a later day starts a new count.
+    pub(crate) fn count_quota(&mut self, team: &str, day: &str) {
+        if day > self.quota_day.as_str() {
+            self.quota_day = day.to_string();
+            self.quota_counts.clear();
         }
-        Ok(book)
+        if day == self.quota_day {
+            *self.quota_counts.entry(team.to_string()).or_default() += 1;
+        }
+    }
+
+    /// Answers and sealed entries `team` had on UTC `day` (the daily quota's count; 0 for a day
+    /// before the latest one counted).
+    pub(crate) fn quota_used(&self, team: &str, day: &str) -> u64 {
+        if day != self.quota_day {
+            return 0;
+        }
+        self.quota_counts.get(team).copied().unwrap_or(0)
+    }
+
+    /// Refusals shown to `team` (its own under isolated, all otherwise).
+    pub(crate) fn refused_count(&self, policy: &HoldoutPolicy, team: &str) -> u64 {
+        if policy.isolated() {
+            self.refused.get(team).copied().unwrap_or(0)
+        } else {
+            self.refused_total
+        }
     }
 
     fn request(team: &str, target: usize, models: u32) -> QueryRequest {
@@ -657,7 +638,7 @@ impl Book {
             .ok_or_else(|| bad("no adopted_from".into()))?;
         let src_entry = entries
             .iter()
-            .find(|x| x.seq == src_seq && x.seq < e.seq && x.kind == "answer")
+            .find(|x| x.seq == src_seq && x.seq < e.seq && x.kind() == Some(Kind::Answer))
             .ok_or_else(|| bad(format!("entry {src_seq} is not an earlier answer")))?;
         let src: AnswerRecord = serde_json::from_str(&src_entry.body)
             .map_err(|err| bad(format!("source entry {src_seq}: {err}")))?;

@@ -26,11 +26,12 @@ use serde::{Deserialize, Serialize};
 
 use super::account::{Book, DEFAULT_RANKING_SHARE, HoldoutPolicy, PolicyInput, Quote};
 use super::records::{AnswerRecord, Comparison, RankedEntry, RoundRecord, SealedRecord};
+use super::replay::Record;
 use super::submit::{Receipt, SubmitOutcome, SubmitRequest};
 use super::{Engine, Loaded};
 use crate::auth::{Caller, Role, rfc3339};
 use crate::error::{Error, Result};
-use crate::ledger::{self, Entry};
+use crate::ledger;
 use crate::metric::{Labels, Loss, Metric, Predictions};
 use crate::stats::interval::Rounding;
 use crate::stats::paired::{paired_bounded, paired_errors_with};
@@ -322,73 +323,92 @@ pub fn ranking_level(ranking_delta: f64, entries: u64) -> f64 {
     comparison_level(ranking_delta, entries * entries.saturating_sub(1) / 2)
 }
 
-fn parse<T: for<'de> Deserialize<'de>>(e: &Entry) -> Result<T> {
-    serde_json::from_str(&e.body)
-        .map_err(|err| Error::Internal(format!("ledger entry {}: {err}", e.seq)))
+/// `ln(1/d)` of each neighbour comparison of a round whose reserve is split over `pairs` pairs.
+pub(crate) fn ranking_level_for_pairs(ranking_delta: f64, pairs: u64) -> f64 {
+    comparison_level(ranking_delta, pairs)
 }
 
-/// Replays a `sealed` or `round` ledger entry into a book, checking it against the core.
-pub(crate) fn replay_entry(book: &mut Book, policy: &HoldoutPolicy, e: &Entry) -> Result<()> {
-    let mismatch = |what: &str| {
-        Error::Internal(format!(
-            "ledger entry {} does not replay: {what} differs from what the accounting core \
-             computes again",
-            e.seq
-        ))
+/// A round's ranking derived from its sealed entries and their released answers (public
+/// facts): used by the close to build it and by the replay to derive it again.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct RankPlan {
+    /// The teams' selected entries, best first (within each target from core version 2).
+    pub(crate) ranking: Vec<RankedEntry>,
+    /// (ahead, behind) tickets of each pair of neighbours compared, top first.
+    pub(crate) neighbours: Vec<(usize, usize)>,
+    /// Pairs the reserve is split over: `K (K - 1) / 2` summed over the groups, at least 1.
+    pub(crate) pairs: u64,
+}
+
+/// Ranks a round: one selected entry per team (and target from core version 2): its last
+/// marked entry, else its last entry; ranked by released score within each group, ties to the
+/// earlier entry; neighbours within a group are compared.
+pub(crate) fn rank(
+    policy: &HoldoutPolicy,
+    sealed: &[SealedRecord],
+    answers: &[AnswerRecord],
+) -> RankPlan {
+    // Core version 2 ranks each target on its own; version 1 had one mixed ranking.
+    let per_target = policy.core.core_version >= 2;
+    let group = |i: usize| {
+        if per_target {
+            sealed[i].target_index
+        } else {
+            0
+        }
     };
-    if e.kind == "sealed" {
-        let r: SealedRecord = parse(e)?;
-        let quote = book
-            .quote(policy, &r.team, r.target_index, 1)
-            .map_err(|why| {
-                Error::Internal(format!(
-                    "ledger entry {} was sealed, but replaying it is refused ({why})",
-                    e.seq
-                ))
-            })?;
-        if quote.level_nats.to_bits() != r.level_nats.to_bits() {
-            return Err(mismatch("the level"));
-        }
-        let ticket = book.seal(&r.team, r.target_index, &quote)?;
-        if ticket != r.ticket {
-            return Err(mismatch("the ticket"));
-        }
-        return Ok(());
-    }
-    let r: RoundRecord = parse(e)?;
-    let losses: Vec<Loss> = r
-        .answers
-        .iter()
-        .map(|a| {
-            a.exact
-                .as_ref()
-                .and_then(|v| v.first().copied())
-                .ok_or_else(|| mismatch("the exact losses"))
-        })
-        .collect::<Result<_>>()?;
-    let again = book.close_round(policy, &losses)?;
-    for (a, b) in r.answers.iter().zip(&again) {
-        if a.symbol != b.symbol
-            || a.lower.to_bits() != b.lower.to_bits()
-            || a.upper.to_bits() != b.upper.to_bits()
-        {
-            return Err(mismatch("an answer of the round"));
+    let mut selected: BTreeMap<(usize, &str), usize> = BTreeMap::new();
+    for (i, rec) in sealed.iter().enumerate() {
+        let key = (group(i), rec.team.as_str());
+        let keep = match selected.get(&key) {
+            Some(&j) => rec.marked || !sealed[j].marked,
+            None => true,
+        };
+        if keep {
+            selected.insert(key, i);
         }
     }
-    for c in &r.comparisons {
-        let binary = r
-            .answers
-            .get(c.ahead as usize)
-            .map(|a| policy.core.targets[a.target_index].binary)
-            .unwrap_or(true);
-        let rounding = Rounding::for_core(policy.core.core_version);
-        match replay_comparison_with(rounding, binary, policy.core.rows, c) {
-            Some((lo, hi))
-                if lo.to_bits() == c.lower.to_bits() && hi.to_bits() == c.upper.to_bits() => {}
-            _ => return Err(mismatch("a comparison")),
-        }
+    let mut order: Vec<usize> = selected.values().copied().collect();
+    order.sort_by(|&a, &b| {
+        let sa = answers[a].score.unwrap_or(f64::INFINITY);
+        let sb = answers[b].score.unwrap_or(f64::INFINITY);
+        group(a)
+            .cmp(&group(b))
+            .then(sa.total_cmp(&sb))
+            .then(a.cmp(&b))
+    });
+    let target_of = |i: usize| per_target.then(|| sealed[i].target.clone());
+    let mut ranking: Vec<RankedEntry> = Vec::with_capacity(order.len());
+    let mut sizes: BTreeMap<usize, u64> = BTreeMap::new();
+    for &i in &order {
+        let rank = sizes.entry(group(i)).or_insert(0);
+        *rank += 1;
+        ranking.push(RankedEntry {
+            rank: *rank,
+            team: sealed[i].team.clone(),
+            ticket: i as u64,
+            score: answers[i].score,
+            lower: answers[i].lower,
+            upper: answers[i].upper,
+            digest: sealed[i].digest.clone(),
+            target: target_of(i),
+        });
     }
-    Ok(())
+    let pairs = sizes
+        .values()
+        .map(|&k| k * k.saturating_sub(1) / 2)
+        .sum::<u64>()
+        .max(1);
+    let neighbours = order
+        .windows(2)
+        .filter(|w| group(w[0]) == group(w[1]))
+        .map(|w| (w[0], w[1]))
+        .collect();
+    RankPlan {
+        ranking,
+        neighbours,
+        pairs,
+    }
 }
 
 impl Engine {
@@ -493,7 +513,7 @@ impl Engine {
                 at: at.clone(),
                 budget: budget_now.clone(),
             };
-            if let Some((reason, message)) = self.quota_refusal(loaded, &team)? {
+            if let Some((reason, message)) = self.quota_refusal(loaded, &book, &team)? {
                 return self.record_refusal(loaded, &mut book, refusal(reason, message));
             }
             let quote: Quote = match book.quote(&loaded.policy, &team, target_index, 1) {
@@ -504,6 +524,7 @@ impl Engine {
                 }
             };
             let ticket = book.seal(&team, target_index, &quote)?;
+            book.count_quota(&team, &super::replay::day_of(&at));
             let target = &loaded.policy.targets[target_index];
             let losses = row_losses(&target.metric, &loaded.labels[target_index], preds);
             let record = SealedRecord {
@@ -525,7 +546,7 @@ impl Engine {
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("sealed entry encoding: {e}")))?;
             let conn = self.store.conn();
-            let entry = ledger::append(conn, &loaded.name, "sealed", &body)?;
+            let entry = ledger::append(conn, &loaded.name, ledger::Kind::Sealed, &body)?;
             conn.execute(
                 "INSERT INTO sealed_entries
                  (holdout_id, ticket, seq, team, digest, request_id, marked, losses)
@@ -685,75 +706,20 @@ impl Engine {
                 exact: Some(vec![*loss]),
             });
         }
-        // Core version 2 ranks each target on its own; version 1 had one mixed ranking.
-        let per_target = loaded.policy.core.core_version >= 2;
-        let group = |i: usize| {
-            if per_target {
-                sealed[i].target_index
-            } else {
-                0
-            }
-        };
-        // One selected entry per team (and target): its last marked entry, else its last entry.
-        let mut selected: BTreeMap<(usize, &str), usize> = BTreeMap::new();
-        for (i, rec) in sealed.iter().enumerate() {
-            let key = (group(i), rec.team.as_str());
-            let keep = match selected.get(&key) {
-                Some(&j) => rec.marked || !sealed[j].marked,
-                None => true,
-            };
-            if keep {
-                selected.insert(key, i);
-            }
-        }
-        // Ranked by released score (public) within each group, ties to the earlier entry.
-        let mut order: Vec<usize> = selected.values().copied().collect();
-        order.sort_by(|&a, &b| {
-            let sa = answers[a].score.unwrap_or(f64::INFINITY);
-            let sb = answers[b].score.unwrap_or(f64::INFINITY);
-            group(a)
-                .cmp(&group(b))
-                .then(sa.total_cmp(&sb))
-                .then(a.cmp(&b))
-        });
-        let target_of = |i: usize| per_target.then(|| sealed[i].target.clone());
-        let mut ranking: Vec<RankedEntry> = Vec::with_capacity(order.len());
-        let mut sizes: BTreeMap<usize, u64> = BTreeMap::new();
-        for &i in &order {
-            let rank = sizes.entry(group(i)).or_insert(0);
-            *rank += 1;
-            ranking.push(RankedEntry {
-                rank: *rank,
-                team: sealed[i].team.clone(),
-                ticket: i as u64,
-                score: answers[i].score,
-                lower: answers[i].lower,
-                upper: answers[i].upper,
-                digest: sealed[i].digest.clone(),
-                target: target_of(i),
-            });
-        }
-        // The reserve is split over every pair that can be compared: pairs within a group.
-        let pairs = sizes
-            .values()
-            .map(|&k| k * k.saturating_sub(1) / 2)
-            .sum::<u64>()
-            .max(1);
-        let level = comparison_level(loaded.policy.ranking_delta, pairs);
+        let plan = rank(&loaded.policy, &sealed, &answers);
+        let level = comparison_level(loaded.policy.ranking_delta, plan.pairs);
         let rounding = Rounding::for_core(loaded.policy.core.core_version);
+        let per_target = loaded.policy.core.core_version >= 2;
         let mut comparisons = Vec::new();
-        for w in order.windows(2) {
-            let (a, b) = (w[0], w[1]);
-            if group(a) != group(b) {
-                continue;
-            }
+        for &(a, b) in &plan.neighbours {
             let binary = loaded.policy.core.targets[sealed[a].target_index].binary;
             let (_, _, mut c) = compare(rounding, binary, &vectors[a], &vectors[b], level)?;
             c.ahead = a as u64;
             c.behind = b as u64;
-            c.target = target_of(a);
+            c.target = per_target.then(|| sealed[a].target.clone());
             comparisons.push(c);
         }
+        let (ranking, pairs) = (plan.ranking, plan.pairs);
         let record = RoundRecord {
             holdout: loaded.name.clone(),
             trigger: trigger.to_string(),
@@ -767,7 +733,7 @@ impl Engine {
         };
         let body = serde_json::to_value(&record)
             .map_err(|e| Error::Internal(format!("round encoding: {e}")))?;
-        let entry = ledger::append(self.store.conn(), &loaded.name, "round", &body)?;
+        let entry = ledger::append(self.store.conn(), &loaded.name, ledger::Kind::Round, &body)?;
         Ok((record, entry.seq, book))
     }
 
@@ -846,11 +812,9 @@ impl Engine {
         let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
         // `adopt` entries (core 2): another team's answered file taken over as this team's new
         // best, with its interval at the level that file was answered at (DESIGN 4.8).
-        for e in entries
-            .iter()
-            .filter(|e| e.kind == "answer" || e.kind == "adopt")
-        {
-            let r: AnswerRecord = parse(e)?;
+        for e in &entries {
+            let rec = Record::read(e)?;
+            let Some(r) = rec.answer() else { continue };
             // One ladder per team and target; the leaderboard shows the first target's.
             if r.target_index != 0 || (own_only && r.team != caller.team) {
                 continue;
@@ -921,16 +885,15 @@ impl Engine {
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut by_digest: BTreeMap<String, Vec<(u64, String, String)>> = BTreeMap::new();
         for e in &entries {
-            let v: serde_json::Value = match e.kind.as_str() {
-                "answer" | "sealed" => parse(e)?,
+            let (digest, team, user) = match Record::read(e)? {
+                Record::Answer(r) => (r.digest, r.team, r.user),
+                Record::Sealed(r) => (r.digest, r.team, r.user),
                 _ => continue,
             };
-            let field = |k: &str| v.get(k).and_then(|x| x.as_str()).unwrap_or("").to_string();
-            by_digest.entry(field("digest")).or_default().push((
-                e.seq,
-                field("team"),
-                field("user"),
-            ));
+            by_digest
+                .entry(digest)
+                .or_default()
+                .push((e.seq, team, user));
         }
         Ok(by_digest
             .into_iter()

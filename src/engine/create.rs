@@ -261,7 +261,7 @@ impl Engine {
         if let Some(m) = &membership {
             genesis["family"] = m.to_json();
         }
-        let entry = ledger::append(&tx, &req.name, "genesis", &genesis)?;
+        let entry = ledger::append(&tx, &req.name, ledger::Kind::Genesis, &genesis)?;
         tx.commit()?;
         tracing::info!(holdout = %req.name, rows = ids.len(), by = %caller.name, "created holdout");
         let _ = entry;

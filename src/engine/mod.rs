@@ -13,6 +13,7 @@ mod compete;
 mod create;
 mod read;
 mod records;
+mod replay;
 mod submit;
 mod worker;
 
@@ -34,8 +35,9 @@ pub use records::{
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use worker::Db;
 // The offline audit replays ledgers with the daemon's own bookkeeping.
-pub(crate) use account::{Book, RefusalReason};
-pub(crate) use compete::replay_entry as replay_competition_entry;
+pub(crate) use account::Book;
+pub(crate) use replay::{BudgetCheck, Problem, Replayer};
+pub use replay::{CloseRecord, ReadRecord, Record};
 
 use crate::error::{Error, Result};
 use crate::metric::Labels;

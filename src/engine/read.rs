@@ -107,7 +107,7 @@ impl Engine {
         let quota = loaded.policy.daily_quota;
         if quota > 0 {
             let now = self.now();
-            let used = self.answers_today(loaded, team, now)?;
+            let used = book.quota_used(team, &super::replay::day_of(&rfc3339(now)));
             budget.quota_left_today = Some(quota.saturating_sub(used as u32));
             budget.quota_resets_at = Some(rfc3339(next_midnight(now)));
         }
@@ -201,7 +201,7 @@ impl Engine {
             ledger::append(
                 self.store.conn(),
                 name,
-                "read",
+                ledger::Kind::Read,
                 &json!({"by": caller.name, "roles": crate::auth::role_list(&caller.roles),
                         "what": "exact scores (history)", "at": at}),
             )?;
@@ -251,7 +251,7 @@ impl Engine {
         ledger::append(
             &tx,
             name,
-            "close",
+            ledger::Kind::Close,
             &json!({"by": caller.name, "reason": reason, "at": at}),
         )?;
         tx.commit()?;

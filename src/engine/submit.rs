@@ -199,7 +199,7 @@ impl Engine {
             return Ok(match quote {
                 Ok(q) => SubmitOutcome::Quote {
                     quote: q,
-                    would_refuse: self.quota_refusal(&loaded, &team)?.map(|(r, _)| r),
+                    would_refuse: self.quota_refusal(&loaded, &book, &team)?.map(|(r, _)| r),
                     budget,
                 },
                 Err(r) => SubmitOutcome::Quote {
@@ -315,7 +315,7 @@ impl Engine {
                 budget,
             };
             let budget_now = book.budget(&loaded.policy, &team);
-            if let Some((reason, message)) = self.quota_refusal(loaded, &team)? {
+            if let Some((reason, message)) = self.quota_refusal(loaded, &book, &team)? {
                 return self.record_refusal(
                     loaded,
                     &mut book,
@@ -356,6 +356,7 @@ impl Engine {
                 .map(|p| metric::score(&target.metric, &loaded.labels[target_index], p))
                 .collect::<Result<_>>()?;
             let core = book.answer(&loaded.policy, &team, target_index, &quote, &losses)?;
+            book.count_quota(&team, &super::replay::day_of(&at));
             let budget = book.budget(&loaded.policy, &team);
             let record = AnswerRecord {
                 holdout: loaded.name.clone(),
@@ -386,7 +387,7 @@ impl Engine {
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("answer encoding: {e}")))?;
             let conn = self.store.conn();
-            let entry = ledger::append(conn, &loaded.name, "answer", &body)?;
+            let entry = ledger::append(conn, &loaded.name, ledger::Kind::Answer, &body)?;
             conn.execute(
                 "INSERT OR IGNORE INTO answered_digests (holdout_id, target, scope, digest, seq)
                  VALUES (?1, ?2, ?3, ?4, ?5)",
@@ -508,7 +509,7 @@ impl Engine {
         };
         let body = serde_json::to_value(&record)
             .map_err(|e| Error::Internal(format!("adoption encoding: {e}")))?;
-        let entry = ledger::append(self.store.conn(), &loaded.name, "adopt", &body)?;
+        let entry = ledger::append(self.store.conn(), &loaded.name, ledger::Kind::Adopt, &body)?;
         self.remember_request(loaded, &team, req, digest, entry.seq)?;
         let receipt = Receipt::of(&entry, record.query);
         Ok((
@@ -530,7 +531,12 @@ impl Engine {
         book.note_refusal(&loaded.policy, &record.team);
         let body = serde_json::to_value(&record)
             .map_err(|e| Error::Internal(format!("refusal encoding: {e}")))?;
-        let entry = ledger::append(self.store.conn(), &loaded.name, "refusal", &body)?;
+        let entry = ledger::append(
+            self.store.conn(),
+            &loaded.name,
+            ledger::Kind::Refusal,
+            &body,
+        )?;
         let mut record = record;
         record.budget = book.budget(&loaded.policy, &record.team);
         Ok((
@@ -585,6 +591,7 @@ impl Engine {
     pub(super) fn quota_refusal(
         &mut self,
         loaded: &Loaded,
+        book: &super::account::Book,
         team: &str,
     ) -> Result<Option<(String, String)>> {
         let quota = loaded.policy.daily_quota;
@@ -592,7 +599,7 @@ impl Engine {
             return Ok(None);
         }
         let now = self.now();
-        let used = self.answers_today(loaded, team, now)?;
+        let used = book.quota_used(team, &super::replay::day_of(&rfc3339(now)));
         if used < u64::from(quota) {
             return Ok(None);
         }
@@ -604,24 +611,6 @@ impl Engine {
                 rfc3339(reset)
             ),
         )))
-    }
-
-    /// Answers a team received since the start of `now`'s UTC day.
-    pub(crate) fn answers_today(
-        &mut self,
-        loaded: &Loaded,
-        team: &str,
-        now: chrono::DateTime<chrono::Utc>,
-    ) -> Result<u64> {
-        let day = now.format("%Y-%m-%d").to_string();
-        let n: i64 = self.store.conn().query_row(
-            "SELECT count(*) FROM ledger WHERE chain = ?1 AND kind IN ('answer', 'sealed')
-             AND json_extract(body, '$.team') = ?2
-             AND substr(json_extract(body, '$.at'), 1, 10) = ?3",
-            params![loaded.name, team, day],
-            |r| r.get(0),
-        )?;
-        Ok(n as u64)
     }
 }
 

@@ -51,7 +51,7 @@ impl Ledger for Daemon {
                 ledger::append(
                     engine.store().conn(),
                     &name,
-                    "read",
+                    ledger::Kind::Read,
                     &json!({"by": caller.name, "roles": crate::auth::role_list(&caller.roles),
                             "what": "ledger export", "at": at}),
                 )?;
