@@ -5,11 +5,12 @@ use std::fmt;
 use std::str::FromStr;
 
 use chrono::{DateTime, SecondsFormat, Utc};
-use rusqlite::{OptionalExtension, Transaction, params};
+use rusqlite::{OptionalExtension, params};
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 use sha2::{Digest, Sha256};
 
+use crate::engine::Append;
 use crate::error::{Error, Result};
 use crate::ledger;
 
@@ -172,7 +173,7 @@ pub fn rfc3339(t: DateTime<Utc>) -> String {
 
 /// Adds a user and returns its token. Records a `user-added` entry in the `@users` chain.
 pub fn add_user(
-    tx: &Transaction<'_>,
+    w: &mut dyn Append,
     name: &str,
     roles: &[Role],
     team: Option<&str>,
@@ -193,25 +194,25 @@ pub fn add_user(
     let mut roles = roles.to_vec();
     roles.sort();
     roles.dedup();
-    let exists: Option<i64> = tx
+    let exists: Option<i64> = w
+        .conn()
         .query_row("SELECT id FROM users WHERE name = ?1", [name], |r| r.get(0))
         .optional()?;
     if exists.is_some() {
         return Err(Error::AlreadyExists(format!("user {name} already exists")));
     }
     let at = rfc3339(now);
-    tx.execute(
+    w.conn().execute(
         "INSERT INTO users (name, roles, team, created_at) VALUES (?1, ?2, ?3, ?4)",
         params![name, role_list(&roles), team, at],
     )?;
-    let user_id = tx.last_insert_rowid();
+    let user_id = w.conn().last_insert_rowid();
     let token = new_token()?;
-    tx.execute(
+    w.conn().execute(
         "INSERT INTO tokens (token_hash, user_id, created_at) VALUES (?1, ?2, ?3)",
         params![token_hash(&token), user_id, at],
     )?;
-    ledger::append(
-        tx,
+    w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::UserAdded,
         &json!({"user": name, "roles": role_list(&roles), "team": team, "by": by, "at": at}),
@@ -268,14 +269,15 @@ pub fn list_users(conn: &rusqlite::Connection) -> Result<Vec<User>> {
 }
 
 /// Revokes a user and all its tokens.
-pub fn revoke_user(tx: &Transaction<'_>, name: &str, by: &str, now: DateTime<Utc>) -> Result<User> {
+pub fn revoke_user(w: &mut dyn Append, name: &str, by: &str, now: DateTime<Utc>) -> Result<User> {
     let at = rfc3339(now);
-    let n = tx.execute(
+    let n = w.conn().execute(
         "UPDATE users SET revoked_at = ?2 WHERE name = ?1 AND revoked_at IS NULL",
         params![name, at],
     )?;
     if n == 0 {
-        let known: Option<i64> = tx
+        let known: Option<i64> = w
+            .conn()
             .query_row("SELECT id FROM users WHERE name = ?1", [name], |r| r.get(0))
             .optional()?;
         return Err(match known {
@@ -283,27 +285,27 @@ pub fn revoke_user(tx: &Transaction<'_>, name: &str, by: &str, now: DateTime<Utc
             None => Error::not_found("user", name),
         });
     }
-    tx.execute(
+    w.conn().execute(
         "UPDATE tokens SET revoked_at = ?2 WHERE revoked_at IS NULL
          AND user_id = (SELECT id FROM users WHERE name = ?1)",
         params![name, at],
     )?;
-    ledger::append(
-        tx,
+    w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::UserRevoked,
         &json!({"user": name, "by": by, "at": at}),
     )?;
-    list_users(tx)?
+    list_users(w.conn())?
         .into_iter()
         .find(|u| u.name == name)
         .ok_or_else(|| Error::Internal("revoked user vanished".into()))
 }
 
 /// Replaces every token of `name` with a new one, returned once.
-pub fn rotate_token(tx: &Transaction<'_>, name: &str, now: DateTime<Utc>) -> Result<String> {
+pub fn rotate_token(w: &mut dyn Append, name: &str, now: DateTime<Utc>) -> Result<String> {
     let at = rfc3339(now);
-    let user_id: i64 = tx
+    let user_id: i64 = w
+        .conn()
         .query_row(
             "SELECT id FROM users WHERE name = ?1 AND revoked_at IS NULL",
             [name],
@@ -311,17 +313,16 @@ pub fn rotate_token(tx: &Transaction<'_>, name: &str, now: DateTime<Utc>) -> Res
         )
         .optional()?
         .ok_or_else(|| Error::not_found("user", name))?;
-    tx.execute(
+    w.conn().execute(
         "UPDATE tokens SET revoked_at = ?2 WHERE user_id = ?1 AND revoked_at IS NULL",
         params![user_id, at],
     )?;
     let token = new_token()?;
-    tx.execute(
+    w.conn().execute(
         "INSERT INTO tokens (token_hash, user_id, created_at) VALUES (?1, ?2, ?3)",
         params![token_hash(&token), user_id, at],
     )?;
-    ledger::append(
-        tx,
+    w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::TokenRotated,
         &json!({"user": name, "at": at}),
@@ -332,15 +333,23 @@ pub fn rotate_token(tx: &Transaction<'_>, name: &str, now: DateTime<Utc>) -> Res
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::engine::{Engine, SystemClock};
     use crate::store::Store;
+
+    fn engine() -> Result<Engine> {
+        Ok(Engine::new(
+            Store::open_in_memory()?,
+            std::sync::Arc::new(SystemClock),
+        ))
+    }
 
     #[test]
     fn tokens_authenticate_until_revoked_and_are_stored_hashed() -> Result<()> {
-        let mut store = Store::open_in_memory()?;
+        let mut engine = engine()?;
         let now = Utc::now();
-        let tx = store.conn().transaction()?;
-        let (user, token) = add_user(&tx, "ana", &[Role::Analyst], Some("blue"), "root", now)?;
-        tx.commit()?;
+        let (user, token) =
+            engine.write(|w| add_user(w, "ana", &[Role::Analyst], Some("blue"), "root", now))?;
+        let store = engine.store();
         assert_eq!(user.team, "blue");
         let caller = authenticate(store.conn(), &token)?;
         assert_eq!(caller.name, "ana");
@@ -352,15 +361,13 @@ mod tests {
         )?;
         assert_eq!(stored, 0, "the clear token must not be stored");
 
-        let tx = store.conn().transaction()?;
-        let new = rotate_token(&tx, "ana", now)?;
-        tx.commit()?;
+        let new = engine.write(|w| rotate_token(w, "ana", now))?;
+        let store = engine.store();
         assert!(authenticate(store.conn(), &token).is_err());
         assert!(authenticate(store.conn(), &new).is_ok());
 
-        let tx = store.conn().transaction()?;
-        revoke_user(&tx, "ana", "root", now)?;
-        tx.commit()?;
+        engine.write(|w| revoke_user(w, "ana", "root", now))?;
+        let store = engine.store();
         assert!(matches!(
             authenticate(store.conn(), &new),
             Err(Error::Unauthenticated(_))
@@ -373,14 +380,16 @@ mod tests {
 
     #[test]
     fn bad_names_and_duplicates_are_refused() -> Result<()> {
-        let mut store = Store::open_in_memory()?;
-        let tx = store.conn().transaction()?;
-        assert!(add_user(&tx, "", &[Role::Analyst], None, "root", Utc::now()).is_err());
-        assert!(add_user(&tx, "a b", &[Role::Analyst], None, "root", Utc::now()).is_err());
-        assert!(add_user(&tx, "x", &[], None, "root", Utc::now()).is_err());
-        add_user(&tx, "x", &[Role::Auditor], None, "root", Utc::now())?;
+        let mut engine = engine()?;
+        let mut add = |name: &str, roles: &[Role]| {
+            engine.write(|w| add_user(w, name, roles, None, "root", Utc::now()))
+        };
+        assert!(add("", &[Role::Analyst]).is_err());
+        assert!(add("a b", &[Role::Analyst]).is_err());
+        assert!(add("x", &[]).is_err());
+        add("x", &[Role::Auditor])?;
         assert!(matches!(
-            add_user(&tx, "x", &[Role::Auditor], None, "root", Utc::now()),
+            add("x", &[Role::Auditor]),
             Err(Error::AlreadyExists(_))
         ));
         Ok(())

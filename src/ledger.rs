@@ -165,10 +165,10 @@ pub fn head(tx: &Connection, chain: &str) -> Result<Option<(u64, String)>> {
         .optional()?)
 }
 
-/// Appends an entry to `chain` inside the caller's transaction (a `Transaction` derefs to a
-/// `Connection`, and the engine's own `BEGIN IMMEDIATE` passes the connection) and returns it.
-/// The entry is durable only when the caller commits.
-pub fn append(tx: &Connection, chain: &str, kind: Kind, body: &Value) -> Result<Entry> {
+/// Appends an entry to `chain` inside the caller's open transaction and returns it; durable
+/// only when the caller commits. Only the engine's one write path (`Engine::append`, inside
+/// `Engine::begin_write` ... `end_write`) calls this.
+pub(crate) fn append(tx: &Connection, chain: &str, kind: Kind, body: &Value) -> Result<Entry> {
     let kind = kind.as_str();
     let (seq, prev_hash) = match head(tx, chain)? {
         Some((seq, hash)) => (seq + 1, hash),

@@ -74,12 +74,11 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         .keep_db
         .clone()
         .unwrap_or_else(|| dir.path().join("demo.db"));
-    let mut store = Store::open(&path)?;
-    let (custodian_token, squads) = {
-        let tx = store.conn().transaction()?;
+    let mut engine = Engine::new(Store::open(&path)?, Arc::new(SystemClock));
+    let (custodian_token, squads) = engine.write(|w| {
         let now = chrono::Utc::now();
         let (_, custodian) = auth::add_user(
-            &tx,
+            w,
             "ada-custodian",
             &[Role::Custodian, Role::Organizer],
             None,
@@ -92,13 +91,12 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
             ("tomasz", "harbor-squad"),
             ("mira", "lantern"),
         ] {
-            let (_, token) = auth::add_user(&tx, user, &[Role::Analyst], Some(team), "demo", now)?;
+            let (_, token) = auth::add_user(w, user, &[Role::Analyst], Some(team), "demo", now)?;
             squads.push((user, team, token));
         }
-        tx.commit()?;
-        (custodian, squads)
-    };
-    let db = Db::spawn(Engine::new(store, Arc::new(SystemClock)));
+        Ok((custodian, squads))
+    })?;
+    let db = Db::spawn(engine);
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await?;
     let addr = listener.local_addr()?;
     let (stop, stopped) = tokio::sync::oneshot::channel::<()>();

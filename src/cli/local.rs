@@ -167,10 +167,13 @@ async fn shutdown_signal() {
 
 /// Creates a database and its first user.
 pub fn init(args: InitArgs) -> anyhow::Result<ExitCode> {
-    let mut store =
+    let store =
         Store::open(&args.db).with_context(|| format!("opening database {}", args.db.display()))?;
-    let conn = store.conn();
-    let users: i64 = conn.query_row("SELECT count(*) FROM users", [], |r| r.get(0))?;
+    let mut engine = Engine::new(store, std::sync::Arc::new(crate::engine::SystemClock));
+    let users: i64 = engine
+        .store()
+        .conn()
+        .query_row("SELECT count(*) FROM users", [], |r| r.get(0))?;
     if users > 0 {
         return Err(Error::FailedPrecondition(format!(
             "{} already has users; add more with `holdout user add`",
@@ -194,18 +197,23 @@ pub fn init(args: InitArgs) -> anyhow::Result<ExitCode> {
             ),
         )
     })?;
-    let tx = conn.transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-    let (user, token) = auth::add_user(
-        &tx,
-        &args.name,
-        &[Role::Custodian, Role::Organizer],
-        None,
-        "init",
-        chrono::Utc::now(),
-    )?;
-    writeln!(file, "{token}")?;
-    file.sync_all()?;
-    tx.commit()?;
+    // The token file is written and synced before the user's event commits: a token is never
+    // lost for a user that exists.
+    let (user, token) = engine.write(|w| {
+        let (user, token) = auth::add_user(
+            w,
+            &args.name,
+            &[Role::Custodian, Role::Organizer],
+            None,
+            "init",
+            chrono::Utc::now(),
+        )?;
+        writeln!(file, "{token}")
+            .and_then(|()| file.sync_all())
+            .map_err(|e| Error::invalid("--token-out", format!("cannot write the token: {e}")))?;
+        Ok((user, token))
+    })?;
+    let _ = token;
     eprintln!(
         "created {} with user {} (custodian, organizer); token written to {}",
         args.db.display(),

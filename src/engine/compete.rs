@@ -469,7 +469,7 @@ impl Engine {
     ) -> Result<SubmitOutcome> {
         let team = caller.team.clone();
         let at = rfc3339(self.now());
-        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        self.begin_write()?;
         let result = (|| -> Result<(SubmitOutcome, Option<(u64, Book)>)> {
             // A retried request id, or the same predictions again from the same team: the
             // earlier receipt, nothing charged.
@@ -545,8 +545,8 @@ impl Engine {
             };
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("sealed entry encoding: {e}")))?;
+            let entry = self.append(&loaded.name, ledger::Kind::Sealed, &body, None)?;
             let conn = self.store.conn();
-            let entry = ledger::append(conn, &loaded.name, ledger::Kind::Sealed, &body)?;
             conn.execute(
                 "INSERT INTO sealed_entries
                  (holdout_id, ticket, seq, team, digest, request_id, marked, losses)
@@ -610,7 +610,7 @@ impl Engine {
         when: DateTime<Utc>,
     ) -> Result<RoundRecord> {
         let at = rfc3339(when);
-        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        self.begin_write()?;
         let result = self
             .close_round_inner(loaded, trigger, by, &at)
             .map(|(record, seq, book)| (record, Some((seq, book))));
@@ -733,7 +733,7 @@ impl Engine {
         };
         let body = serde_json::to_value(&record)
             .map_err(|e| Error::Internal(format!("round encoding: {e}")))?;
-        let entry = ledger::append(self.store.conn(), &loaded.name, ledger::Kind::Round, &body)?;
+        let entry = self.append(&loaded.name, ledger::Kind::Round, &body, None)?;
         Ok((record, entry.seq, book))
     }
 

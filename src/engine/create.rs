@@ -3,7 +3,7 @@
 
 use std::collections::{HashMap, HashSet};
 
-use rusqlite::{OptionalExtension, TransactionBehavior, params};
+use rusqlite::{OptionalExtension, params};
 use serde::{Deserialize, Serialize};
 use serde_json::json;
 use sha2::{Digest, Sha256};
@@ -152,119 +152,121 @@ impl Engine {
 
         let now = self.now();
         let at = rfc3339(now);
-        let conn = self.store.conn();
-        let tx = conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
-        let exists: Option<i64> = tx
-            .query_row(
-                "SELECT id FROM holdouts WHERE name = ?1",
-                [&req.name],
-                |r| r.get(0),
-            )
-            .optional()?;
-        if exists.is_some() {
-            return Err(Error::AlreadyExists(format!(
-                "holdout {} already exists",
-                req.name
-            )));
-        }
-        let same_labels: Option<String> = tx
-            .query_row(
-                "SELECT name FROM holdouts WHERE labels_digest = ?1",
-                [&labels_digest],
-                |r| r.get(0),
-            )
-            .optional()?;
-        if let Some(other) = same_labels {
-            return Err(Error::AlreadyExists(format!(
-                "these labels are already sealed in holdout {other}: one set of rows gets one \
-                 budget. Add label columns as targets of one holdout (--target), or carve \
-                 row-disjoint holdouts with `holdout split`"
-            )));
-        }
-        {
-            let mut check = tx.prepare_cached(
-                "SELECT h.name FROM holdout_rows r JOIN holdouts h ON h.id = r.holdout_id
-                 WHERE r.row_id = ?1",
-            )?;
-            for id in &ids {
-                if let Some(other) = check
-                    .query_row([id], |r| r.get::<_, String>(0))
-                    .optional()?
-                {
-                    return Err(Error::AlreadyExists(format!(
-                        "row id {id} already belongs to holdout {other}: overlapping rows would \
-                         be charged twice against independent budgets. Use targets of one holdout \
-                         for several label columns, or `holdout split` for row-disjoint holdouts"
-                    )));
+        self.begin_write()?;
+        let result = (|| -> Result<()> {
+            let tx: &rusqlite::Connection = self.store.conn();
+            let exists: Option<i64> = tx
+                .query_row(
+                    "SELECT id FROM holdouts WHERE name = ?1",
+                    [&req.name],
+                    |r| r.get(0),
+                )
+                .optional()?;
+            if exists.is_some() {
+                return Err(Error::AlreadyExists(format!(
+                    "holdout {} already exists",
+                    req.name
+                )));
+            }
+            let same_labels: Option<String> = tx
+                .query_row(
+                    "SELECT name FROM holdouts WHERE labels_digest = ?1",
+                    [&labels_digest],
+                    |r| r.get(0),
+                )
+                .optional()?;
+            if let Some(other) = same_labels {
+                return Err(Error::AlreadyExists(format!(
+                    "these labels are already sealed in holdout {other}: one set of rows gets one \
+                     budget. Add label columns as targets of one holdout (--target), or carve \
+                     row-disjoint holdouts with `holdout split`"
+                )));
+            }
+            {
+                let mut check = tx.prepare_cached(
+                    "SELECT h.name FROM holdout_rows r JOIN holdouts h ON h.id = r.holdout_id
+                     WHERE r.row_id = ?1",
+                )?;
+                for id in &ids {
+                    if let Some(other) = check
+                        .query_row([id], |r| r.get::<_, String>(0))
+                        .optional()?
+                    {
+                        return Err(Error::AlreadyExists(format!(
+                            "row id {id} already belongs to holdout {other}: overlapping rows would \
+                             be charged twice against independent budgets. Use targets of one holdout \
+                             for several label columns, or `holdout split` for row-disjoint holdouts"
+                        )));
+                    }
                 }
             }
-        }
-        let membership = match &family {
-            Some(f) => Some(join_family(&tx, f, policy.input.delta, &at)?),
-            None => None,
-        };
-        let policy_json = serde_json::to_string(&policy)
-            .map_err(|e| Error::Internal(format!("policy encoding: {e}")))?;
-        tx.execute(
-            "INSERT INTO holdouts (name, description, row_count, policy_json, targets_json,
-                                   labels_digest, created_at)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
-            params![
-                req.name,
-                req.description,
-                ids.len() as i64,
-                policy_json,
-                serde_json::to_string(&policy.targets).unwrap_or_default(),
-                labels_digest,
-                at
-            ],
-        )?;
-        let holdout_id = tx.last_insert_rowid();
-        if let Some(m) = &membership {
+            let membership = match &family {
+                Some(f) => Some(join_family(tx, f, policy.input.delta, &at)?),
+                None => None,
+            };
+            let policy_json = serde_json::to_string(&policy)
+                .map_err(|e| Error::Internal(format!("policy encoding: {e}")))?;
             tx.execute(
-                "INSERT INTO family_members (holdout_id, family, share) VALUES (?1, ?2, ?3)",
-                params![holdout_id, m.name, m.share],
+                "INSERT INTO holdouts (name, description, row_count, policy_json, targets_json,
+                                       labels_digest, created_at)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                params![
+                    req.name,
+                    req.description,
+                    ids.len() as i64,
+                    policy_json,
+                    serde_json::to_string(&policy.targets).unwrap_or_default(),
+                    labels_digest,
+                    at
+                ],
             )?;
-        }
-        {
-            let mut ins = tx.prepare_cached(
-                "INSERT INTO holdout_rows (row_id, holdout_id, pos) VALUES (?1, ?2, ?3)",
-            )?;
-            for (pos, id) in ids.iter().enumerate() {
-                ins.execute(params![id, holdout_id, pos as i64])?;
+            let holdout_id = tx.last_insert_rowid();
+            if let Some(m) = &membership {
+                tx.execute(
+                    "INSERT INTO family_members (holdout_id, family, share) VALUES (?1, ?2, ?3)",
+                    params![holdout_id, m.name, m.share],
+                )?;
             }
-        }
-        for (t, col) in columns.iter().enumerate() {
-            let blob = serde_json::to_vec(col)
-                .map_err(|e| Error::Internal(format!("label encoding: {e}")))?;
-            tx.execute(
-                "INSERT INTO sealed_labels (holdout_id, target, labels) VALUES (?1, ?2, ?3)",
-                params![holdout_id, t as i64, blob],
-            )?;
-        }
-        let mut genesis = json!({
-            "holdout": req.name,
-            "description": req.description,
-            "rows": ids.len(),
-            "policy": serde_json::to_value(&policy).unwrap_or_default(),
-            "declaration": {
-                "row_ids_sha256": ids_digest,
-                "targets": serde_json::to_value(&policy.targets).unwrap_or_default(),
-            },
-            "labels_sha256": labels_digest,
-            "versions": versions(),
-            "created_by": caller.name,
-            "at": at,
-        });
-        // Additive: a genesis without a family (every one written before families existed)
-        // reads as "no family".
-        if let Some(m) = &membership {
-            genesis["family"] = m.to_json();
-        }
-        let entry = ledger::append(&tx, &req.name, ledger::Kind::Genesis, &genesis)?;
-        tx.commit()?;
+            {
+                let mut ins = tx.prepare_cached(
+                    "INSERT INTO holdout_rows (row_id, holdout_id, pos) VALUES (?1, ?2, ?3)",
+                )?;
+                for (pos, id) in ids.iter().enumerate() {
+                    ins.execute(params![id, holdout_id, pos as i64])?;
+                }
+            }
+            for (t, col) in columns.iter().enumerate() {
+                let blob = serde_json::to_vec(col)
+                    .map_err(|e| Error::Internal(format!("label encoding: {e}")))?;
+                tx.execute(
+                    "INSERT INTO sealed_labels (holdout_id, target, labels) VALUES (?1, ?2, ?3)",
+                    params![holdout_id, t as i64, blob],
+                )?;
+            }
+            let mut genesis = json!({
+                "holdout": req.name,
+                "description": req.description,
+                "rows": ids.len(),
+                "policy": serde_json::to_value(&policy).unwrap_or_default(),
+                "declaration": {
+                    "row_ids_sha256": ids_digest,
+                    "targets": serde_json::to_value(&policy.targets).unwrap_or_default(),
+                },
+                "labels_sha256": labels_digest,
+                "versions": versions(),
+                "created_by": caller.name,
+                "at": at,
+            });
+            // Additive: a genesis without a family (every one written before families existed)
+            // reads as "no family".
+            if let Some(m) = &membership {
+                genesis["family"] = m.to_json();
+            }
+            self.append(&req.name, ledger::Kind::Genesis, &genesis, None)?;
+            Ok(())
+        })();
+        self.end_write(result)?;
         tracing::info!(holdout = %req.name, rows = ids.len(), by = %caller.name, "created holdout");
-        let _ = entry;
         self.holdout_view(caller, &req.name)
     }
 }
@@ -272,7 +274,7 @@ impl Engine {
 /// Joins (or founds) a family inside the creating transaction: checks the total against the
 /// recorded one and that the shares, this one included, sum to at most the total (exactly).
 fn join_family(
-    tx: &rusqlite::Transaction<'_>,
+    tx: &rusqlite::Connection,
     f: &FamilyRequest,
     share: f64,
     at: &str,

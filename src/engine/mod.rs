@@ -1,6 +1,8 @@
 //! The daemon's operations on the store. Each operation runs on the database thread
 //! ([`Db`]) and is one SQLite transaction: a query is validated, scored, charged and appended to
 //! the ledger inside one `BEGIN IMMEDIATE` transaction, and its answer leaves only after commit.
+//! There is one write path: [`Engine::begin_write`] / [`Engine::end_write`] (or
+//! [`Engine::write`]) around [`Engine::append`], the only code that appends to any chain.
 //!
 //! The engine keeps per-holdout caches (the public declaration, the parsed labels, and the
 //! accountant replayed from the ledger). A cache is trusted only while the ledger head it was
@@ -49,6 +51,11 @@ pub struct Engine {
     clock: Arc<dyn Clock>,
     holdouts: HashMap<String, Arc<Loaded>>,
     accountants: HashMap<String, (u64, account::Book)>,
+    /// Whether a write transaction is open ([`Engine::begin_write`]).
+    in_write: bool,
+    /// Cached accounting state of each chain appended to in the open write, as it was before
+    /// the write (restored on rollback).
+    touched: HashMap<String, Option<(u64, account::Book)>>,
 }
 
 impl std::fmt::Debug for Engine {
@@ -81,6 +88,8 @@ impl Engine {
             clock,
             holdouts: HashMap::new(),
             accountants: HashMap::new(),
+            in_write: false,
+            touched: HashMap::new(),
         }
     }
 
@@ -137,38 +146,135 @@ impl Engine {
         Ok(book)
     }
 
-    /// Stores an accountant state as of ledger head `seq` (after a commit).
-    pub(crate) fn remember_book(&mut self, name: &str, seq: u64, book: account::Book) {
-        self.accountants.insert(name.to_string(), (seq, book));
+    /// Opens the one write path: an immediate transaction (taking the database's write lock
+    /// first). Every append goes through [`Engine::append`] inside it; [`Engine::end_write`]
+    /// commits or rolls back.
+    pub(crate) fn begin_write(&mut self) -> Result<()> {
+        if self.in_write {
+            return Err(Error::Internal("a write is already open".into()));
+        }
+        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        self.in_write = true;
+        self.touched.clear();
+        Ok(())
     }
 
-    /// Ends a write begun with `BEGIN IMMEDIATE`: on success commits and remembers the
-    /// accounting state as of the new ledger head; on failure rolls back and forgets the cached
-    /// state, so the next call replays from the ledger.
+    /// Ends the open write: on success commits (the cached accounting state staged by the
+    /// appends is then the state as of the new heads); on any error, or if the commit fails,
+    /// rolls back and restores the cached state the write started from.
+    pub(crate) fn end_write<T>(&mut self, result: Result<T>) -> Result<T> {
+        self.in_write = false;
+        let touched = std::mem::take(&mut self.touched);
+        let result = result.and_then(|out| {
+            self.store.conn().execute_batch("COMMIT")?;
+            Ok(out)
+        });
+        if result.is_err() {
+            let _ = self.store.conn().execute_batch("ROLLBACK");
+            for (chain, before) in touched {
+                match before {
+                    Some(state) => self.accountants.insert(chain, state),
+                    None => self.accountants.remove(&chain),
+                };
+            }
+        }
+        result
+    }
+
+    /// Ends a write whose body returns the accounting state after its last append (entry
+    /// number and book): stages that state, then [`Engine::end_write`].
     pub(crate) fn finish_write<T>(
         &mut self,
         holdout: &str,
         result: Result<(T, Option<(u64, account::Book)>)>,
     ) -> Result<T> {
-        match result {
-            Ok((out, book)) => {
-                self.store.conn().execute_batch("COMMIT")?;
-                if let Some((seq, book)) = book {
-                    self.remember_book(holdout, seq, book);
+        let result = result.map(|(out, book)| {
+            if let Some((seq, book)) = book {
+                if !self.touched.contains_key(holdout) {
+                    let before = self.accountants.get(holdout).cloned();
+                    self.touched.insert(holdout.to_string(), before);
                 }
-                Ok(out)
+                self.accountants.insert(holdout.to_string(), (seq, book));
             }
-            Err(e) => {
-                let _ = self.store.conn().execute_batch("ROLLBACK");
-                self.forget(holdout);
-                Err(e)
-            }
-        }
+            out
+        });
+        self.end_write(result)
     }
 
-    /// Forgets cached state of a holdout (after a failed transaction).
-    pub(crate) fn forget(&mut self, name: &str) {
-        self.accountants.remove(name);
+    /// Runs `f` inside one write ([`Engine::begin_write`] ... [`Engine::end_write`]). `f` may
+    /// append several entries (a batch of queued answers: each its own entry, each coded after
+    /// the one before it, since each append stages the book it leaves).
+    pub fn write<T>(&mut self, f: impl FnOnce(&mut Engine) -> Result<T>) -> Result<T> {
+        self.begin_write()?;
+        let result = f(self);
+        self.end_write(result)
+    }
+
+    /// The one place that appends to a ledger (any chain), inside the open write. `book` is the
+    /// accounting state after this entry, when the entry moves it; entries that do not (reads,
+    /// closes, identity events) keep a cached state valid by moving its head on, so a read of
+    /// exact scores costs no replay.
+    pub(crate) fn append(
+        &mut self,
+        chain: &str,
+        kind: crate::ledger::Kind,
+        body: &serde_json::Value,
+        book: Option<account::Book>,
+    ) -> Result<crate::ledger::Entry> {
+        use crate::ledger::Kind;
+        if !self.in_write {
+            return Err(Error::Internal(format!(
+                "a {kind} entry for {chain} was appended outside the write path"
+            )));
+        }
+        let entry = crate::ledger::append(self.store.conn(), chain, kind, body)?;
+        if !self.touched.contains_key(chain) {
+            let before = self.accountants.get(chain).cloned();
+            self.touched.insert(chain.to_string(), before);
+        }
+        let keeps_state = matches!(kind, Kind::Read | Kind::Close) || kind.is_identity();
+        match book {
+            Some(book) => {
+                self.accountants
+                    .insert(chain.to_string(), (entry.seq, book));
+            }
+            None => match self.accountants.get_mut(chain) {
+                Some((seq, _)) if keeps_state && *seq + 1 == entry.seq => *seq = entry.seq,
+                _ => {
+                    self.accountants.remove(chain);
+                }
+            },
+        }
+        Ok(entry)
+    }
+}
+
+/// What identity changes (src/auth.rs) need from a write: the connection for their own tables
+/// and the one append path for their ledger events.
+pub trait Append {
+    /// The connection (inside the open write).
+    fn conn(&mut self) -> &rusqlite::Connection;
+    /// Appends an entry (see [`Engine::append`]).
+    fn append(
+        &mut self,
+        chain: &str,
+        kind: crate::ledger::Kind,
+        body: &serde_json::Value,
+    ) -> Result<crate::ledger::Entry>;
+}
+
+impl Append for Engine {
+    fn conn(&mut self) -> &rusqlite::Connection {
+        self.store.conn()
+    }
+
+    fn append(
+        &mut self,
+        chain: &str,
+        kind: crate::ledger::Kind,
+        body: &serde_json::Value,
+    ) -> Result<crate::ledger::Entry> {
+        Engine::append(self, chain, kind, body, None)
     }
 }
 

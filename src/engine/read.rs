@@ -7,10 +7,10 @@
 
 use rusqlite::params;
 use serde::{Deserialize, Serialize};
-use serde_json::json;
 
 use super::account::HoldoutPolicy;
 use super::records::{AnswerRecord, BudgetView, RefusalRecord};
+use super::replay::Record;
 use super::submit::{Receipt, next_midnight};
 use super::{Engine, Loaded};
 use crate::auth::{Caller, Role, rfc3339};
@@ -147,11 +147,9 @@ impl Engine {
                 query,
                 entry_hash: e.hash.clone(),
             };
-            match e.kind.as_str() {
+            match Record::read(e)? {
                 // An adoption (core 2 ladder) is shown like the answer it is.
-                "answer" | "adopt" => {
-                    let mut r: AnswerRecord = serde_json::from_str(&e.body)
-                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                Record::Answer(mut r) | Record::Adopt(mut r) => {
                     if !see_all && r.team != caller.team {
                         continue;
                     }
@@ -159,29 +157,23 @@ impl Engine {
                         r.exact = None;
                     }
                     let rc = receipt(r.query);
-                    out.push(HistoryItem::Answer(Box::new(r), rc));
+                    out.push(HistoryItem::Answer(r, rc));
                 }
-                "refusal" => {
-                    let r: RefusalRecord = serde_json::from_str(&e.body)
-                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                Record::Refusal(r, _) => {
                     if !see_all && r.team != caller.team {
                         continue;
                     }
-                    out.push(HistoryItem::Refusal(Box::new(r), receipt(0)));
+                    out.push(HistoryItem::Refusal(r, receipt(0)));
                 }
-                "sealed" => {
-                    let r: super::SealedRecord = serde_json::from_str(&e.body)
-                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                Record::Sealed(r) => {
                     if !see_all && r.team != caller.team {
                         continue;
                     }
                     let rc = receipt(r.query);
-                    let r = super::compete::team_view(r, !see_all);
+                    let r = super::compete::team_view(*r, !see_all);
                     out.push(HistoryItem::Sealed(Box::new(r), rc));
                 }
-                "round" => {
-                    let round: super::RoundRecord = serde_json::from_str(&e.body)
-                        .map_err(|err| Error::Internal(format!("entry {}: {err}", e.seq)))?;
+                Record::Round(round) => {
                     for mut r in round.answers {
                         if !see_all && r.team != caller.team {
                             continue;
@@ -197,16 +189,24 @@ impl Engine {
             }
         }
         if exact {
-            let at = rfc3339(self.now());
-            ledger::append(
-                self.store.conn(),
-                name,
-                ledger::Kind::Read,
-                &json!({"by": caller.name, "roles": crate::auth::role_list(&caller.roles),
-                        "what": "exact scores (history)", "at": at}),
-            )?;
+            self.record_read(caller, name, "exact scores (history)")?;
         }
         Ok(out)
+    }
+
+    /// Records a read of exact scores (`what`: history, export...) by `caller`, in its own
+    /// write. The cached accounting state stays valid: a read moves nothing.
+    pub fn record_read(&mut self, caller: &Caller, name: &str, what: &str) -> Result<()> {
+        let read = super::ReadRecord {
+            by: caller.name.clone(),
+            roles: crate::auth::role_list(&caller.roles),
+            what: what.to_string(),
+            at: rfc3339(self.now()),
+        };
+        let body = serde_json::to_value(&read)
+            .map_err(|e| Error::Internal(format!("read encoding: {e}")))?;
+        self.write(|engine| engine.append(name, ledger::Kind::Read, &body, None))?;
+        Ok(())
     }
 
     /// The public declaration: targets and row ids.
@@ -235,26 +235,25 @@ impl Engine {
             return self.holdout_view(caller, name);
         }
         let at = rfc3339(self.now());
-        let tx = self
-            .store
-            .conn()
-            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-        let n = tx.execute(
-            "UPDATE holdouts SET closed_at = ?2 WHERE id = ?1 AND closed_at IS NULL",
-            params![loaded.id, at],
-        )?;
-        if n == 0 {
-            return Err(Error::FailedPrecondition(format!(
-                "holdout {name} is already closed"
-            )));
-        }
-        ledger::append(
-            &tx,
-            name,
-            ledger::Kind::Close,
-            &json!({"by": caller.name, "reason": reason, "at": at}),
-        )?;
-        tx.commit()?;
+        self.write(|engine| {
+            let n = engine.store.conn().execute(
+                "UPDATE holdouts SET closed_at = ?2 WHERE id = ?1 AND closed_at IS NULL",
+                params![loaded.id, at],
+            )?;
+            if n == 0 {
+                return Err(Error::FailedPrecondition(format!(
+                    "holdout {name} is already closed"
+                )));
+            }
+            let close = super::CloseRecord {
+                by: caller.name.clone(),
+                reason: reason.to_string(),
+                at: at.clone(),
+            };
+            let body = serde_json::to_value(&close)
+                .map_err(|e| Error::Internal(format!("close encoding: {e}")))?;
+            engine.append(name, ledger::Kind::Close, &body, None)
+        })?;
         self.holdout_view(caller, name)
     }
 }

@@ -213,11 +213,7 @@ impl Engine {
         if loaded.policy.sealed() {
             return self.seal_entry(caller, &loaded, &req, target_index, &preds[0], digest);
         }
-        let result = self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models);
-        if result.is_err() {
-            self.forget(&loaded.name);
-        }
-        result
+        self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models)
     }
 
     #[allow(clippy::too_many_arguments)]
@@ -240,10 +236,7 @@ impl Engine {
         let now = self.now();
         let at = rfc3339(now);
         // Take the write lock before reading anything the decision depends on.
-        self.store
-            .conn()
-            .execute_batch("BEGIN IMMEDIATE")
-            .map_err(Error::from)?;
+        self.begin_write()?;
         let outcome = (|| -> Result<(SubmitOutcome, Option<(u64, super::account::Book)>)> {
             // Idempotency: the request id is scoped to the team and tied to the digest.
             if let Some(rid) = &req.request_id {
@@ -386,8 +379,8 @@ impl Engine {
             };
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("answer encoding: {e}")))?;
+            let entry = self.append(&loaded.name, ledger::Kind::Answer, &body, None)?;
             let conn = self.store.conn();
-            let entry = ledger::append(conn, &loaded.name, ledger::Kind::Answer, &body)?;
             conn.execute(
                 "INSERT OR IGNORE INTO answered_digests (holdout_id, target, scope, digest, seq)
                  VALUES (?1, ?2, ?3, ?4, ?5)",
@@ -509,7 +502,7 @@ impl Engine {
         };
         let body = serde_json::to_value(&record)
             .map_err(|e| Error::Internal(format!("adoption encoding: {e}")))?;
-        let entry = ledger::append(self.store.conn(), &loaded.name, ledger::Kind::Adopt, &body)?;
+        let entry = self.append(&loaded.name, ledger::Kind::Adopt, &body, None)?;
         self.remember_request(loaded, &team, req, digest, entry.seq)?;
         let receipt = Receipt::of(&entry, record.query);
         Ok((

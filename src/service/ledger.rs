@@ -2,7 +2,6 @@
 
 use std::pin::Pin;
 
-use serde_json::json;
 use tokio_stream::Stream;
 use tonic::{Request, Response, Status};
 
@@ -45,16 +44,9 @@ impl Ledger for Daemon {
                     return ledger::read_chain(engine.store().conn(), ledger::USERS_CHAIN);
                 }
                 engine.loaded(&name)?;
-                let at = rfc3339(engine.now());
                 // The export is itself a read of exact scores: record it first, so the export
                 // contains its own read entry.
-                ledger::append(
-                    engine.store().conn(),
-                    &name,
-                    ledger::Kind::Read,
-                    &json!({"by": caller.name, "roles": crate::auth::role_list(&caller.roles),
-                            "what": "ledger export", "at": at}),
-                )?;
+                engine.record_read(&caller, &name, "ledger export")?;
                 ledger::read_chain(engine.store().conn(), &name)
             })
             .await?;

@@ -21,19 +21,13 @@ fn info(u: User) -> UserInfo {
     }
 }
 
-/// Runs `f` in one write transaction (taking the write lock first) and commits.
+/// Runs `f` in the engine's one write path, with the engine's clock.
 fn write<T>(
     engine: &mut Engine,
-    f: impl FnOnce(&rusqlite::Transaction<'_>, chrono::DateTime<chrono::Utc>) -> Result<T, Error>,
+    f: impl FnOnce(&mut Engine, chrono::DateTime<chrono::Utc>) -> Result<T, Error>,
 ) -> Result<T, Error> {
     let now = engine.now();
-    let tx = engine
-        .store()
-        .conn()
-        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)?;
-    let out = f(&tx, now)?;
-    tx.commit()?;
-    Ok(out)
+    engine.write(|w| f(w, now))
 }
 
 #[tonic::async_trait]

@@ -31,10 +31,9 @@ pub struct Generated {
 
 fn caller(engine: &mut Engine, name: &str, roles: &[Role], team: Option<&str>) -> Caller {
     let now = engine.now();
-    let conn = engine.store().conn();
-    let tx = conn.transaction().unwrap();
-    auth::add_user(&tx, name, roles, team, "custodian", now).unwrap();
-    tx.commit().unwrap();
+    engine
+        .write(|w| auth::add_user(w, name, roles, team, "custodian", now))
+        .unwrap();
     Caller {
         name: name.into(),
         roles: roles.to_vec(),
