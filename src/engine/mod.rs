@@ -51,11 +51,11 @@ pub struct Engine {
     clock: Arc<dyn Clock>,
     holdouts: HashMap<String, Arc<Loaded>>,
     accountants: HashMap<String, (u64, account::Book)>,
-    /// Whether a write transaction is open ([`Engine::begin_write`]).
-    in_write: bool,
-    /// Cached accounting state of each chain appended to in the open write, as it was before
-    /// the write (restored on rollback).
-    touched: HashMap<String, Option<(u64, account::Book)>>,
+    /// Open writes, outermost first ([`Engine::begin_write`]): for each, the cached accounting
+    /// state of every chain it appended to, as it was before (restored on rollback).
+    writes: Vec<HashMap<String, Option<(u64, account::Book)>>>,
+    /// Full replays of a chain done to rebuild a cached accounting state.
+    replays: u64,
 }
 
 impl std::fmt::Debug for Engine {
@@ -88,14 +88,21 @@ impl Engine {
             clock,
             holdouts: HashMap::new(),
             accountants: HashMap::new(),
-            in_write: false,
-            touched: HashMap::new(),
+            writes: Vec::new(),
+            replays: 0,
         }
     }
 
     /// The store, for operations outside the engine (bootstrap, tests).
     pub fn store(&mut self) -> &mut Store {
         &mut self.store
+    }
+
+    /// How many times a chain was replayed in full to rebuild its accounting state (at start,
+    /// after a rollback, or when another process wrote the file). A read of exact scores, a
+    /// close or an identity event never causes one.
+    pub fn full_replays(&self) -> u64 {
+        self.replays
     }
 
     /// Current time from the injected clock.
@@ -141,6 +148,7 @@ impl Engine {
         }
         let entries = crate::ledger::read_chain(self.store.conn(), &loaded.name)?;
         let book = account::Book::replay(&loaded.policy, &entries)?;
+        self.replays += 1;
         self.accountants
             .insert(loaded.name.clone(), (head, book.clone()));
         Ok(book)
@@ -148,37 +156,75 @@ impl Engine {
 
     /// Opens the one write path: an immediate transaction (taking the database's write lock
     /// first). Every append goes through [`Engine::append`] inside it; [`Engine::end_write`]
-    /// commits or rolls back.
+    /// commits or rolls back. A write opened inside another is a savepoint: a batch of queued
+    /// answers runs each as its own nested write, so one that fails is undone alone and the
+    /// others commit together.
     pub(crate) fn begin_write(&mut self) -> Result<()> {
-        if self.in_write {
-            return Err(Error::Internal("a write is already open".into()));
+        let depth = self.writes.len();
+        if depth == 0 {
+            self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
+        } else {
+            self.store
+                .conn()
+                .execute_batch(&format!("SAVEPOINT write_{depth}"))?;
         }
-        self.store.conn().execute_batch("BEGIN IMMEDIATE")?;
-        self.in_write = true;
-        self.touched.clear();
+        self.writes.push(HashMap::new());
         Ok(())
     }
 
-    /// Ends the open write: on success commits (the cached accounting state staged by the
-    /// appends is then the state as of the new heads); on any error, or if the commit fails,
-    /// rolls back and restores the cached state the write started from.
+    /// Ends the innermost open write: on success commits (or releases its savepoint; the cached
+    /// accounting state staged by its appends is then the state as of the new heads); on any
+    /// error, or if the commit fails, rolls it back and restores the cached state it started
+    /// from.
     pub(crate) fn end_write<T>(&mut self, result: Result<T>) -> Result<T> {
-        self.in_write = false;
-        let touched = std::mem::take(&mut self.touched);
+        let Some(touched) = self.writes.pop() else {
+            return Err(Error::Internal("no write is open".into()));
+        };
+        let depth = self.writes.len();
         let result = result.and_then(|out| {
-            self.store.conn().execute_batch("COMMIT")?;
+            if depth == 0 {
+                self.store.conn().execute_batch("COMMIT")?;
+            } else {
+                self.store
+                    .conn()
+                    .execute_batch(&format!("RELEASE write_{depth}"))?;
+            }
             Ok(out)
         });
-        if result.is_err() {
-            let _ = self.store.conn().execute_batch("ROLLBACK");
-            for (chain, before) in touched {
-                match before {
-                    Some(state) => self.accountants.insert(chain, state),
-                    None => self.accountants.remove(&chain),
+        match &result {
+            Ok(_) => {
+                // The enclosing write restores, on its own rollback, what this one found.
+                if let Some(parent) = self.writes.last_mut() {
+                    for (chain, before) in touched {
+                        parent.entry(chain).or_insert(before);
+                    }
+                }
+            }
+            Err(_) => {
+                let _ = if depth == 0 {
+                    self.store.conn().execute_batch("ROLLBACK")
+                } else {
+                    self.store
+                        .conn()
+                        .execute_batch(&format!("ROLLBACK TO write_{depth}; RELEASE write_{depth}"))
                 };
+                for (chain, before) in touched {
+                    match before {
+                        Some(state) => self.accountants.insert(chain, state),
+                        None => self.accountants.remove(&chain),
+                    };
+                }
             }
         }
         result
+    }
+
+    /// Remembers, for the innermost open write, the cached state of `chain` before it changes.
+    fn touch(&mut self, chain: &str) {
+        let before = self.accountants.get(chain).cloned();
+        if let Some(w) = self.writes.last_mut() {
+            w.entry(chain.to_string()).or_insert(before);
+        }
     }
 
     /// Ends a write whose body returns the accounting state after its last append (entry
@@ -190,10 +236,7 @@ impl Engine {
     ) -> Result<T> {
         let result = result.map(|(out, book)| {
             if let Some((seq, book)) = book {
-                if !self.touched.contains_key(holdout) {
-                    let before = self.accountants.get(holdout).cloned();
-                    self.touched.insert(holdout.to_string(), before);
-                }
+                self.touch(holdout);
                 self.accountants.insert(holdout.to_string(), (seq, book));
             }
             out
@@ -222,16 +265,13 @@ impl Engine {
         book: Option<account::Book>,
     ) -> Result<crate::ledger::Entry> {
         use crate::ledger::Kind;
-        if !self.in_write {
+        if self.writes.is_empty() {
             return Err(Error::Internal(format!(
                 "a {kind} entry for {chain} was appended outside the write path"
             )));
         }
         let entry = crate::ledger::append(self.store.conn(), chain, kind, body)?;
-        if !self.touched.contains_key(chain) {
-            let before = self.accountants.get(chain).cloned();
-            self.touched.insert(chain.to_string(), before);
-        }
+        self.touch(chain);
         let keeps_state = matches!(kind, Kind::Read | Kind::Close) || kind.is_identity();
         match book {
             Some(book) => {

@@ -107,9 +107,10 @@ impl Generated {
         self.state >> 33
     }
 
-    /// One submission by team `t`: predictions that agree with the labels on about
-    /// `accuracy` percent of rows. Returns the outcome.
-    pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
+    /// A request with predictions that agree with the labels on about `accuracy` percent of
+    /// rows.
+    #[allow(dead_code)]
+    pub fn request(&mut self, accuracy: u64) -> SubmitRequest {
         let preds: Vec<String> = (0..self.labels.len())
             .map(|i| {
                 let flip = self.rand() % 100 >= accuracy;
@@ -121,27 +122,28 @@ impl Generated {
                 }
             })
             .collect();
+        SubmitRequest {
+            holdout: self.name.clone(),
+            target: String::new(),
+            mode: SubmitMode::Answer,
+            request_id: None,
+            note: String::new(),
+            max_cost_nats: None,
+            model_names: vec![],
+            models: vec![ModelPredictions {
+                ids: self.ids.clone(),
+                values: RawValues::Classes(preds),
+            }],
+            mark_final: false,
+        }
+    }
+
+    /// One submission by team `t`: predictions that agree with the labels on about
+    /// `accuracy` percent of rows. Returns the outcome.
+    pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
+        let req = self.request(accuracy);
         let caller = self.analysts[t].clone();
-        let out = self
-            .engine
-            .submit(
-                &caller,
-                SubmitRequest {
-                    holdout: self.name.clone(),
-                    target: String::new(),
-                    mode: SubmitMode::Answer,
-                    request_id: None,
-                    note: String::new(),
-                    max_cost_nats: None,
-                    model_names: vec![],
-                    models: vec![ModelPredictions {
-                        ids: self.ids.clone(),
-                        values: RawValues::Classes(preds),
-                    }],
-                    mark_final: false,
-                },
-            )
-            .unwrap();
+        let out = self.engine.submit(&caller, req).unwrap();
         if let SubmitOutcome::Answer {
             receipt,
             replayed: false,
