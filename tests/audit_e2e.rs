@@ -494,6 +494,62 @@ fn a_corrupted_labels_blob_is_a_finding_about_the_labels() {
     );
 }
 
+#[test]
+fn serve_signs_an_organizers_close_at_once() {
+    let s = setup();
+    let copy = s.d.path("copy3.db");
+    {
+        let src = rusqlite::Connection::open(s.d.path("holdout.db")).unwrap();
+        src.execute("VACUUM INTO ?1", [copy.display().to_string()])
+            .unwrap();
+    }
+    let dir = s.d.path("anchors3");
+    // An hour between ticks: only the start, a close and the shutdown can write checkpoints.
+    let (mut child, url) = serve_with_checkpoints(&copy, &dir, "3600");
+    let files = |dir: &std::path::Path| -> Vec<String> {
+        let mut v: Vec<String> = std::fs::read_dir(dir)
+            .map(|r| {
+                r.filter_map(|e| e.ok().map(|e| e.file_name().to_string_lossy().to_string()))
+                    .filter(|f| f.starts_with("qc-"))
+                    .collect()
+            })
+            .unwrap_or_default();
+        v.sort();
+        v
+    };
+    let deadline = Instant::now() + Duration::from_secs(30);
+    while files(&dir).is_empty() && Instant::now() < deadline {
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    assert_eq!(
+        files(&dir),
+        ["qc-0.checkpoint.json"],
+        "the start signs genesis"
+    );
+    run(
+        holdout(),
+        &[
+            "close",
+            "qc",
+            "--reason",
+            "inspection finished",
+            "--server",
+            &url,
+            "--token",
+            &s.d.admin,
+        ],
+    )
+    .ok();
+    // Signed as the close committed, with the daemon still running.
+    assert_eq!(
+        files(&dir),
+        ["qc-0.checkpoint.json", "qc-1.checkpoint.json"],
+        "the close (entry 1) is signed at once"
+    );
+    let _ = child.kill();
+    let _ = child.wait();
+}
+
 /// `holdout serve` on `db` with `--checkpoint-dir dir`, on an ephemeral port: the child and its
 /// URL (read from the `listening on` line).
 fn serve_with_checkpoints(

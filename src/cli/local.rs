@@ -71,15 +71,32 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
     runtime.block_on(async move {
         let store = Store::open(&args.db)
             .with_context(|| format!("opening database {}", args.db.display()))?;
-        let db = Db::spawn(Engine::new(store, Arc::new(SystemClock)));
+        let mut engine = Engine::new(store, Arc::new(SystemClock));
         if let Some(dir) = args.checkpoint_dir.clone() {
             std::fs::create_dir_all(&dir)
                 .with_context(|| format!("creating --checkpoint-dir {}", dir.display()))?;
+            // Every close (an organizer's, or a sealed round's at its deadline) is signed as soon
+            // as it commits, not at the next tick.
+            let dir = dir.clone();
+            engine.on_close(Box::new(move |conn, closed, now| {
+                let at = auth::rfc3339(now);
+                match crate::audit::anchor::checkpoint_all(conn, &dir, &at) {
+                    Ok(files) => {
+                        for f in files {
+                            tracing::info!(file = %f.display(), holdouts = ?closed, "wrote checkpoint after a close");
+                        }
+                    }
+                    Err(e) => tracing::warn!(error = %e, "writing checkpoints after a close failed"),
+                }
+            }));
+        }
+        let db = Db::spawn(engine);
+        if let Some(dir) = args.checkpoint_dir.clone() {
             tokio::spawn(write_checkpoints(db.clone(), dir, args.checkpoint_every));
         }
         // Sealed rounds close at their deadline even if nobody calls; a call that touches the
         // holdout closes it at once anyway (the deadline is a public fact either way).
-        tokio::spawn(settle_deadlines(db.clone(), args.checkpoint_dir.clone()));
+        tokio::spawn(settle_deadlines(db.clone()));
         let listener = tokio::net::TcpListener::bind(&args.listen)
             .await
             .with_context(|| format!("listening on {}", args.listen))?;
@@ -124,19 +141,14 @@ async fn checkpoint_now(db: &Db, dir: PathBuf) {
     }
 }
 
-async fn settle_deadlines(db: Db, checkpoint_dir: Option<PathBuf>) {
+async fn settle_deadlines(db: Db) {
     let mut tick = tokio::time::interval(std::time::Duration::from_secs(5));
     loop {
         tick.tick().await;
         match db.call(|engine| engine.settle_deadlines()).await {
             Ok(closed) => {
-                let any = !closed.is_empty();
                 for name in closed {
                     tracing::info!(holdout = %name, "sealed round closed at its deadline");
-                }
-                // A close is signed at once, not at the next checkpoint tick.
-                if let (true, Some(dir)) = (any, checkpoint_dir.clone()) {
-                    checkpoint_now(&db, dir).await;
                 }
             }
             Err(e) => tracing::warn!(error = %e, "closing rounds at their deadline failed"),

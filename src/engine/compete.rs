@@ -611,6 +611,7 @@ impl Engine {
     ) -> Result<RoundRecord> {
         let at = rfc3339(when);
         self.begin_write()?;
+        self.closed_in_write(&loaded.name);
         let result = self
             .close_round_inner(loaded, trigger, by, &at)
             .map(|(record, seq, book)| (record, Some((seq, book))));

@@ -56,7 +56,18 @@ pub struct Engine {
     writes: Vec<HashMap<String, Option<(u64, account::Book)>>>,
     /// Full replays of a chain done to rebuild a cached accounting state.
     replays: u64,
+    /// Called after each commit that closed holdouts (an organizer's close, a sealed round's
+    /// close at its deadline or by an organizer), with their names: the daemon signs their
+    /// heads at once (`serve --checkpoint-dir`).
+    on_close: Option<CloseHook>,
+    /// Holdouts closed inside the open write, for `on_close` after it commits.
+    closed: Vec<String>,
 }
+
+/// What runs after a close commits: the connection (no write open), the closed holdouts'
+/// names and the time.
+pub type CloseHook =
+    Box<dyn FnMut(&rusqlite::Connection, &[String], chrono::DateTime<chrono::Utc>) + Send>;
 
 impl std::fmt::Debug for Engine {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
@@ -90,12 +101,24 @@ impl Engine {
             accountants: HashMap::new(),
             writes: Vec::new(),
             replays: 0,
+            on_close: None,
+            closed: Vec::new(),
         }
     }
 
     /// The store, for operations outside the engine (bootstrap, tests).
     pub fn store(&mut self) -> &mut Store {
         &mut self.store
+    }
+
+    /// Runs `hook` after every commit that closed holdouts (see [`CloseHook`]).
+    pub fn on_close(&mut self, hook: CloseHook) {
+        self.on_close = Some(hook);
+    }
+
+    /// Notes that `name` was closed in the open write; the close hook runs after it commits.
+    pub(crate) fn closed_in_write(&mut self, name: &str) {
+        self.closed.push(name.to_string());
     }
 
     /// How many times a chain was replayed in full to rebuild its accounting state (at start,
@@ -191,6 +214,15 @@ impl Engine {
             }
             Ok(out)
         });
+        if depth == 0 {
+            let closed = std::mem::take(&mut self.closed);
+            if result.is_ok() && !closed.is_empty() {
+                let now = self.now();
+                if let Some(hook) = self.on_close.as_mut() {
+                    hook(self.store.conn(), &closed, now);
+                }
+            }
+        }
         match &result {
             Ok(_) => {
                 // The enclosing write restores, on its own rollback, what this one found.

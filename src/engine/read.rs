@@ -252,6 +252,7 @@ impl Engine {
             };
             let body = serde_json::to_value(&close)
                 .map_err(|e| Error::Internal(format!("close encoding: {e}")))?;
+            engine.closed_in_write(name);
             engine.append(name, ledger::Kind::Close, &body, None)
         })?;
         self.holdout_view(caller, name)
