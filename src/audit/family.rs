@@ -449,7 +449,7 @@ mod tests {
         let entry = crate::ledger::Entry {
             chain: name.into(),
             seq: 0,
-            kind: "genesis".into(),
+            kind: crate::ledger::Kind::Genesis.as_str().into(),
             body: body.to_string(),
             salt: "00".into(),
             prev_hash: "00".into(),

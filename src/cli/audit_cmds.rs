@@ -553,14 +553,26 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
 
 fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     println!(
-        "holdout {}: {} entries, {} answers, {} refusals, {} reads of exact scores, {} identity \
-         events",
+        "holdout {}: {} entries, {} answers, {} sealed entries, {} rounds, {} refusals, {} reads \
+         of exact scores, {} identity events",
         report.holdout,
         report.entries,
         report.queries.len(),
+        report.sealed,
+        report.rounds.len(),
         report.refusals,
         report.reads.len(),
         report.identity_events
+    );
+    let checked: Vec<String> = report
+        .checked
+        .iter()
+        .map(|(k, n)| format!("{n} {k}"))
+        .collect();
+    println!(
+        "checked  {} (unchecked: {})",
+        checked.join(", "),
+        report.unchecked
     );
     println!("versions {}", report.versions);
     for c in &report.checkpoints {
@@ -586,6 +598,12 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
             show::num(q.lower),
             show::num(q.upper),
             if q.replayed { "yes" } else { "NO" }
+        );
+    }
+    for (n, answers, ranked) in &report.rounds {
+        println!(
+            "round      entry {n}: {answers} entries answered, {ranked} ranked; answers, ranking \
+             and comparisons re-derived"
         );
     }
     for (n, what) in &report.refusal_list {
@@ -656,7 +674,12 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
         println!("  - {c}");
     }
     if report.clean() {
-        println!("\nclean: no discrepancies");
+        println!("\nclean: no discrepancies, every entry checked");
+    } else if report.findings.is_empty() {
+        println!(
+            "\nnot clean: {} entries could not be checked",
+            report.unchecked
+        );
     } else {
         println!("\n{} discrepancies:", report.findings.len());
         for f in &report.findings {

@@ -754,8 +754,8 @@ impl Engine {
             .store
             .conn()
             .query_row(
-                "SELECT body FROM ledger WHERE chain = ?1 AND kind = 'round'",
-                [name],
+                "SELECT body FROM ledger WHERE chain = ?1 AND kind = ?2",
+                [name, ledger::Kind::Round.as_str()],
                 |r| r.get(0),
             )
             .optional()?;

@@ -442,10 +442,17 @@ impl Engine {
             .store
             .conn()
             .query_row(
-                "SELECT seq FROM ledger WHERE chain = ?1 AND kind IN ('answer', 'adopt')
+                "SELECT seq FROM ledger WHERE chain = ?1 AND kind IN (?5, ?6)
                  AND json_extract(body, '$.team') = ?2 AND json_extract(body, '$.digest') = ?3
                  AND json_extract(body, '$.target_index') = ?4 ORDER BY seq LIMIT 1",
-                params![loaded.name, team, digest, target_index as i64],
+                params![
+                    loaded.name,
+                    team,
+                    digest,
+                    target_index as i64,
+                    ledger::Kind::Answer.as_str(),
+                    ledger::Kind::Adopt.as_str()
+                ],
                 |r| r.get(0),
             )
             .optional()?;

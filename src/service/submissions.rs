@@ -240,7 +240,7 @@ impl Submissions for Daemon {
                     HistoryItem::Answer(r, rc) => HistoryEntry {
                         entry: row,
                         entry_hash: rc.entry_hash.clone(),
-                        kind: "answer".into(),
+                        kind: crate::ledger::Kind::Answer.as_str().into(),
                         team: r.team.clone(),
                         at: r.at.clone(),
                         note: r.note.clone(),
@@ -255,7 +255,7 @@ impl Submissions for Daemon {
                     HistoryItem::Sealed(r, rc) => HistoryEntry {
                         entry: row,
                         entry_hash: rc.entry_hash.clone(),
-                        kind: "sealed".into(),
+                        kind: crate::ledger::Kind::Sealed.as_str().into(),
                         team: r.team.clone(),
                         at: r.at.clone(),
                         note: r.note.clone(),
@@ -266,7 +266,7 @@ impl Submissions for Daemon {
                     HistoryItem::Refusal(r, rc) => HistoryEntry {
                         entry: row,
                         entry_hash: rc.entry_hash.clone(),
-                        kind: "refusal".into(),
+                        kind: crate::ledger::Kind::Refusal.as_str().into(),
                         team: r.team.clone(),
                         at: r.at.clone(),
                         note: r.note.clone(),
