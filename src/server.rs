@@ -62,9 +62,40 @@ where
     let addr = listener.local_addr()?;
     tracing::info!(%addr, "serving holdout.v1");
 
+    // Health follows the database thread: NOT_SERVING while it does not answer within 10 s
+    // (a wedged disk, a stopped thread), SERVING again when it does.
+    let stopping = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    {
+        let (reporter, stopping, db) = (reporter.clone(), stopping.clone(), daemon.db().clone());
+        tokio::spawn(async move {
+            let mut last = true;
+            let mut tick = tokio::time::interval(Duration::from_secs(5));
+            loop {
+                tick.tick().await;
+                if stopping.load(std::sync::atomic::Ordering::SeqCst) {
+                    break;
+                }
+                let ok = db.ping(Duration::from_secs(10)).await;
+                if ok != last && !stopping.load(std::sync::atomic::Ordering::SeqCst) {
+                    let status = if ok {
+                        tracing::info!("the database thread answers again: SERVING");
+                        ServingStatus::Serving
+                    } else {
+                        tracing::error!("the database thread does not answer: NOT_SERVING");
+                        ServingStatus::NotServing
+                    };
+                    for name in std::iter::once(&"").chain(SERVICE_NAMES) {
+                        reporter.set_service_status(*name, status).await;
+                    }
+                    last = ok;
+                }
+            }
+        });
+    }
     let shutdown_reporter = reporter.clone();
     let on_shutdown = async move {
         shutdown.await;
+        stopping.store(true, std::sync::atomic::Ordering::SeqCst);
         tracing::info!("shutting down: health NOT_SERVING, finishing in-flight calls");
         for name in std::iter::once(&"").chain(SERVICE_NAMES) {
             shutdown_reporter

@@ -301,3 +301,16 @@ fn split_through_the_binary() {
     )
     .code(2);
 }
+
+#[test]
+fn a_non_loopback_listen_without_tls_is_refused_unless_allowed() {
+    let dir = tempfile::tempdir().unwrap();
+    let db = dir.path().join("h.db").display().to_string();
+    let r = run(holdout(), &["serve", "--db", &db, "--listen", "0.0.0.0:0"]).code(2);
+    assert!(
+        r.stderr.contains("not a loopback address")
+            && r.stderr.contains("--allow-plaintext-network"),
+        "{}",
+        r.stderr
+    );
+}

@@ -20,6 +20,8 @@ pub const UNREACHABLE: u8 = 6;
 pub const PRECONDITION: u8 = 7;
 /// `submit --require-pass` got a `fail` answer.
 pub const GATE_FAILED: u8 = 9;
+/// The connection broke after the request was sent: it may or may not have been recorded.
+pub const OUTCOME_UNKNOWN: u8 = 10;
 
 /// The exit code for a gRPC status code.
 pub fn code_for_status(code: tonic::Code) -> u8 {
@@ -39,6 +41,12 @@ pub fn code_for_status(code: tonic::Code) -> u8 {
 /// crate's own errors are recognised anywhere in the chain; anything else is bad input when it
 /// is an argument or file problem, reported by the command as [`Error::InvalidArgument`].
 pub fn code_for(err: &anyhow::Error) -> u8 {
+    if err
+        .downcast_ref::<super::client::conn::OutcomeUnknown>()
+        .is_some()
+    {
+        return OUTCOME_UNKNOWN;
+    }
     for cause in err.chain() {
         if let Some(status) = cause.downcast_ref::<tonic::Status>() {
             return code_for_status(status.code());

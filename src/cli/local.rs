@@ -36,6 +36,11 @@ pub struct ServeArgs {
     /// them elsewhere and pass them to `holdout audit --checkpoint`.
     #[arg(long, value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
+    /// Accept a non-loopback --listen address without TLS. This version has no TLS of its own:
+    /// bearer tokens and predictions then cross the network in clear, so use this only on a
+    /// trusted network or behind a TLS-terminating proxy on the same host.
+    #[arg(long)]
+    pub allow_plaintext_network: bool,
     /// Seconds between checkpoints with --checkpoint-dir.
     #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
           value_parser = clap::value_parser!(u64).range(1..))]
@@ -68,9 +73,11 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()
         .context("starting the async runtime")?;
+    check_listen(&args.listen, args.allow_plaintext_network)?;
     runtime.block_on(async move {
-        let store = Store::open(&args.db)
+        let mut store = Store::open(&args.db)
             .with_context(|| format!("opening database {}", args.db.display()))?;
+        check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
         if let Some(dir) = args.checkpoint_dir.clone() {
             std::fs::create_dir_all(&dir)
@@ -112,6 +119,75 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         }
         Ok(ExitCode::SUCCESS)
     })
+}
+
+/// Refuses a non-loopback listen address without `--allow-plaintext-network` (tokens and
+/// predictions would cross the network in clear), and warns when it is given.
+fn check_listen(listen: &str, allowed: bool) -> anyhow::Result<()> {
+    let host = listen
+        .rsplit_once(':')
+        .map(|(h, _)| h)
+        .unwrap_or(listen)
+        .trim_start_matches('[')
+        .trim_end_matches(']');
+    let loopback = host.eq_ignore_ascii_case("localhost")
+        || host
+            .parse::<std::net::IpAddr>()
+            .map(|ip| ip.is_loopback())
+            .unwrap_or(false);
+    if loopback {
+        return Ok(());
+    }
+    if !allowed {
+        return Err(Error::invalid(
+            "--listen",
+            format!(
+                "{listen} is not a loopback address, and this daemon has no TLS: bearer tokens \
+                 and predictions would cross the network in clear. Listen on 127.0.0.1 behind a \
+                 TLS-terminating proxy, or pass --allow-plaintext-network on a trusted network"
+            ),
+        )
+        .into());
+    }
+    tracing::warn!(
+        %listen,
+        "listening on a non-loopback address without TLS: tokens and predictions travel in clear"
+    );
+    eprintln!(
+        "warning: listening on {listen} without TLS: bearer tokens and predictions travel in clear"
+    );
+    Ok(())
+}
+
+/// Fails at start, naming the file, when the database cannot be written (a read-only file or
+/// file system), instead of failing every write later.
+fn check_writable(store: &mut Store, path: &std::path::Path) -> anyhow::Result<()> {
+    let conn = store.conn();
+    let probe = conn.execute_batch("BEGIN IMMEDIATE").and_then(|()| {
+        let v: i64 = conn.query_row("PRAGMA user_version", [], |r| r.get(0))?;
+        conn.pragma_update(None, "user_version", v)
+    });
+    let _ = conn.execute_batch("ROLLBACK");
+    let read_only = conn.is_readonly(rusqlite::MAIN_DB).unwrap_or(true);
+    match probe {
+        Ok(()) if !read_only => Ok(()),
+        Ok(()) => Err(Error::invalid(
+            "--db",
+            format!(
+                "{} is open read-only; the daemon must write its ledger",
+                path.display()
+            ),
+        )
+        .into()),
+        Err(e) => Err(Error::invalid(
+            "--db",
+            format!(
+                "{} cannot be written ({e}); the daemon must write its ledger",
+                path.display()
+            ),
+        )
+        .into()),
+    }
 }
 
 /// Signs every holdout's head into `dir` now and every `secs` seconds, while the daemon runs.

@@ -25,7 +25,10 @@ Exit codes:
   6  cannot reach the daemon
   7  not possible in the current state (closed holdout, request id reused with other predictions)
   8  audit found discrepancies (each is listed with its entry number and field)
-  9  submit --require-pass: the threshold answer was `fail` (recorded and printed)";
+  9  submit --require-pass: the threshold answer was `fail` (recorded and printed)
+  10 outcome unknown: the connection broke after the request was sent; the daemon may have
+     recorded it. Retry with the same file (and the same --request-id if you gave one): the same
+     file from the same team is never charged twice";
 
 /// holdout-ledger: shared holdout sets whose reported scores stay trustworthy under reuse.
 ///

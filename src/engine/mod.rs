@@ -116,6 +116,18 @@ impl Engine {
         self.on_close = Some(hook);
     }
 
+    /// After a panic in a job: rolls back any open write and drops every cached accounting
+    /// state (rebuilt from the ledger when next needed).
+    pub(crate) fn recover_from_panic(&mut self) {
+        if !self.writes.is_empty() {
+            self.writes.clear();
+            let _ = self.store.conn().execute_batch("ROLLBACK");
+        }
+        self.closed.clear();
+        self.accountants.clear();
+        self.holdouts.clear();
+    }
+
     /// Notes that `name` was closed in the open write; the close hook runs after it commits.
     pub(crate) fn closed_in_write(&mut self, name: &str) {
         self.closed.push(name.to_string());

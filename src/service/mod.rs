@@ -24,6 +24,11 @@ impl Daemon {
         Daemon { db }
     }
 
+    /// The database thread's handle (health checks).
+    pub fn db(&self) -> &Db {
+        &self.db
+    }
+
     /// The bearer token of a request.
     fn token<T>(request: &Request<T>) -> Result<String, Status> {
         let value = request

@@ -135,18 +135,52 @@ impl Conn {
             .max_encoding_message_size(MAX_REQUEST_BYTES)
     }
 
-    /// Wraps a failed call; a lost connection names the URL.
+    /// Wraps a failed call. The connection was open when the call began ([`Conn::open`]
+    /// connects eagerly), so a status that comes from the transport rather than from the daemon
+    /// means the connection broke with the request on its way or in the daemon's hands: the
+    /// outcome is unknown (exit code 10), and the message says how to retry safely.
     pub fn fail(&self, status: Status) -> anyhow::Error {
+        let from_transport = std::error::Error::source(&status).is_some()
+            && matches!(
+                status.code(),
+                tonic::Code::Unavailable | tonic::Code::Unknown | tonic::Code::Cancelled
+            );
         let lost = matches!(
             status.code(),
             tonic::Code::Unavailable | tonic::Code::DeadlineExceeded
         );
         let err = anyhow::Error::new(status);
-        if lost {
+        if from_transport {
+            err.context(OutcomeUnknown {
+                url: self.url.clone(),
+            })
+        } else if lost {
             err.context(format!("lost the daemon at {}", self.url))
         } else {
             err
         }
+    }
+}
+
+/// The connection to the daemon broke after a request was sent: the daemon may or may not have
+/// recorded it (exit code 10).
+#[derive(Debug, Clone)]
+pub struct OutcomeUnknown {
+    /// The daemon's address.
+    pub url: String,
+}
+
+impl std::error::Error for OutcomeUnknown {}
+
+impl std::fmt::Display for OutcomeUnknown {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "the connection to {} broke after the request was sent, so it may or may not have \
+             been recorded; retry with the same file (and the same --request-id if you gave \
+             one): the same file from the same team is never charged twice",
+            self.url
+        )
     }
 }
 
