@@ -114,3 +114,34 @@ impl From<Error> for Status {
         Status::new(code, message)
     }
 }
+
+/// A short, escaped prefix of a user's value for error messages: at most 40 characters, with
+/// control characters escaped, and the length when it was cut. A bad value is never echoed
+/// whole (a 100 MB cell must not come back in a message).
+pub fn short(value: &str) -> String {
+    const KEEP: usize = 40;
+    let mut out: String = value
+        .chars()
+        .take(KEEP)
+        .flat_map(char::escape_debug)
+        .collect();
+    if value.chars().nth(KEEP).is_some() {
+        out.push_str(&format!("... ({} bytes)", value.len()));
+    }
+    format!("\"{out}\"")
+}
+
+#[cfg(test)]
+mod short_tests {
+    use super::short;
+
+    #[test]
+    fn short_values_are_quoted_escaped_and_cut() {
+        assert_eq!(short("abc"), "\"abc\"");
+        assert_eq!(short("a\nb\u{1b}[31m"), "\"a\\nb\\u{1b}[31m\"");
+        let long = "x".repeat(100_000);
+        let s = short(&long);
+        assert!(s.len() < 80, "{s}");
+        assert!(s.ends_with("(100000 bytes)\""), "{s}");
+    }
+}

@@ -122,3 +122,80 @@ async fn max_cost_must_be_a_finite_non_negative_number() {
     assert_eq!(status["budget"]["answered"], 0, "nothing was charged");
     assert_eq!(status["budget"]["refused"], 0, "nothing was recorded");
 }
+
+/// A stream that sends the header and then never ends: the daemon must answer from the header
+/// alone, buffering nothing.
+fn header_then_silence(
+    header: SubmitHeader,
+) -> impl tokio_stream::Stream<Item = SubmitChunk> + Send + 'static {
+    use tokio_stream::StreamExt;
+    tokio_stream::iter(vec![SubmitChunk {
+        part: Some(Part::Header(header)),
+    }])
+    .chain(tokio_stream::pending())
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn roles_and_ids_are_checked_before_anything_is_buffered() {
+    let (d, alice, _) = setup();
+    let auditor = d.add_user("audra", &["auditor"], None);
+    let open = |token: String| {
+        let url = d.url.clone();
+        async move {
+            Conn::open(&ServerArgs {
+                server: url,
+                token: Some(token),
+            })
+            .await
+            .expect("connect")
+        }
+    };
+    // An auditor's submit is refused on the header, while the stream is still open.
+    let conn = open(auditor).await;
+    let refused = tokio::time::timeout(
+        std::time::Duration::from_secs(20),
+        conn.submissions().submit(header_then_silence(SubmitHeader {
+            holdout: "yard".into(),
+            mode: pb::SubmitMode::Answer as i32,
+            ..Default::default()
+        })),
+    )
+    .await
+    .expect("the role must be checked on the header, not after the stream ends")
+    .expect_err("an auditor cannot submit");
+    assert_eq!(refused.code(), tonic::Code::PermissionDenied, "{refused}");
+
+    // An id longer than any id of the holdout is refused at its chunk, quoted short.
+    let conn = open(alice.clone()).await;
+    let long_id = "p".repeat(1_000_000);
+    let chunks = vec![
+        SubmitChunk {
+            part: Some(Part::Header(SubmitHeader {
+                holdout: "yard".into(),
+                mode: pb::SubmitMode::Answer as i32,
+                ..Default::default()
+            })),
+        },
+        SubmitChunk {
+            part: Some(Part::Predictions(pb::PredictionChunk {
+                model: 0,
+                ids: vec![long_id],
+                classes: vec!["ok".into()],
+                ..Default::default()
+            })),
+        },
+    ];
+    let err = conn
+        .submissions()
+        .submit(tokio_stream::iter(chunks))
+        .await
+        .expect_err("an overlong id is refused");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument, "{err}");
+    assert!(err.message().contains("longer than any id"), "{err}");
+    assert!(
+        err.message().len() < 300,
+        "the message must quote a short prefix, got {} bytes",
+        err.message().len()
+    );
+    assert_eq!(answered(&d, &alice), 0, "nothing was charged");
+}

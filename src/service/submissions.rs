@@ -19,6 +19,9 @@ use crate::proto::v1::{
 /// other users, so they are kept short.
 pub(crate) const MAX_NOTE_CHARS: usize = 2_000;
 
+/// Longest class name a prediction may carry (declared classes are short names).
+pub(crate) const MAX_CLASS_BYTES: usize = 256;
+
 #[tonic::async_trait]
 impl Submissions for Daemon {
     async fn submit(
@@ -56,12 +59,20 @@ impl Submissions for Daemon {
             )
             .into());
         }
+        // Who may send is checked on the header, before anything is buffered.
+        if mode != SubmitMode::Validate {
+            caller.require("submitting predictions", &[crate::auth::Role::Analyst])?;
+        }
         let holdout = header.holdout.clone();
-        // Rows per model are capped at the holdout's size (more is an error anyway), so a
-        // runaway client cannot exhaust memory.
-        let rows = self
+        // Rows per model are capped at the holdout's size (more is an error anyway), and every
+        // id at the longest declared id, so a runaway client cannot exhaust memory.
+        let (rows, longest_id) = self
             .db
-            .call(move |engine| Ok(engine.loaded(&holdout)?.ids.len()))
+            .call(move |engine| {
+                let loaded = engine.loaded(&holdout)?;
+                let longest = loaded.ids.iter().map(String::len).max().unwrap_or(0);
+                Ok((loaded.ids.len(), longest))
+            })
             .await?;
         let models = header.models.max(1) as usize;
         if models > 64 {
@@ -123,6 +134,26 @@ impl Submissions for Daemon {
                     return Err(Error::invalid(name, "mixes class names and numbers").into());
                 }
                 _ => {}
+            }
+            if let Some(long) = chunk.ids.iter().find(|id| id.len() > longest_id) {
+                return Err(Error::invalid(
+                    name,
+                    format!(
+                        "row id {} is longer than any id of the holdout ({longest_id} bytes)",
+                        crate::error::short(long)
+                    ),
+                )
+                .into());
+            }
+            if let Some(long) = chunk.classes.iter().find(|c| c.len() > MAX_CLASS_BYTES) {
+                return Err(Error::invalid(
+                    name,
+                    format!(
+                        "class name {} is longer than {MAX_CLASS_BYTES} bytes",
+                        crate::error::short(long)
+                    ),
+                )
+                .into());
             }
             if target.ids.len() + chunk.ids.len() > rows {
                 return Err(Error::invalid(
