@@ -594,7 +594,7 @@ fn a_free_adoption_is_certified_as_one() {
     g.submit_values(1, worse, "team1 first");
     g.advance(60);
     // team1 sends team0's file: its released new best fixes team1's ladder, so it is adopted.
-    let out = g.submit_values(1, good, "team1 took the shared file");
+    let out = g.submit_values(1, good.clone(), "team1 took the shared file");
     let (record, hash) = answer_of(&out);
     let ex = g.export();
     let adopt = ex.entries.iter().find(|e| e.hash == hash).unwrap();
@@ -649,6 +649,19 @@ fn a_free_adoption_is_certified_as_one() {
         text.contains("an adoption (no query number of its own) (team team1, target y)"),
         "{text}"
     );
+
+    // --find names both entries the file has: team0's answer and team1's adoption.
+    let file = write(d, "good.csv", &g.predictions_csv(&good));
+    let found = offline(&["audit", &export, "--find", &file, "--json"])
+        .ok()
+        .json();
+    let kinds: Vec<(&str, &str)> = found["find"][0]["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| (m["kind"].as_str().unwrap(), m["team"].as_str().unwrap()))
+        .collect();
+    assert_eq!(kinds, [("answer", "team0"), ("adopt", "team1")]);
     assert!(text.contains(&format!("answer      {words}")), "{text}");
 }
 

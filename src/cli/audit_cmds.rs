@@ -857,17 +857,18 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
                         .map(|m| {
                             let team = m["team"].as_str().unwrap_or("");
                             let symbol = m["symbol"].as_str().unwrap_or("");
-                            match (m["kind"].as_str(), m["round"].as_u64()) {
-                                (Some("sealed"), Some(round)) => format!(
+                            let kind = m["kind"].as_str().and_then(ledger::Kind::parse);
+                            match (kind, m["round"].as_u64()) {
+                                (Some(ledger::Kind::Sealed), Some(round)) => format!(
                                     "sealed entry {} (query {}, {team}), answered {symbol} by \
                                      the round at entry {round}",
                                     m["entry"], m["query"]
                                 ),
-                                (Some("sealed"), None) => format!(
+                                (Some(ledger::Kind::Sealed), None) => format!(
                                     "sealed entry {} (query {}, {team}), its round not closed",
                                     m["entry"], m["query"]
                                 ),
-                                (Some("adopt"), _) => {
+                                (Some(ledger::Kind::Adopt), _) => {
                                     format!("entry {} (adopted free, {team}, {symbol})", m["entry"])
                                 }
                                 _ => format!(
