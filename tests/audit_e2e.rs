@@ -282,6 +282,11 @@ fn export_checkpoint_audit_receipts_find_certify_and_db() {
         .ok()
         .json();
     assert_eq!(cert["answer"]["query"], 1);
+    assert_eq!(cert["kind"], "answer");
+    // Two targets: the answer in words names its target and metric.
+    let words = cert["answer"]["in_words"].as_str().unwrap();
+    assert!(words.starts_with("target defect: error "), "{words}");
+    assert!(words.contains(", between "), "{words}");
     assert!(cert["guarantee"].as_str().unwrap().contains("probability"));
     let rfile = d.write("cert-receipt.json", &cert["receipt"].to_string());
     let cpfile = d.write("cert-cp.json", &cert["checkpoint"].to_string());

@@ -327,65 +327,83 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
     Some((policy, body))
 }
 
+/// What is wrong with a checkpoint as an anchor of this export, as (field, problem) pairs; empty
+/// when its signature verifies (with `trusted_key` when given) and the chain it names (the
+/// holdout's or `@users`) still has entry `seq` with hash `head_hash`. A `holdout` problem means
+/// the checkpoint anchors neither chain of the export. The audit and `certify` both use it.
+pub fn checkpoint_problems(
+    export: &Export,
+    cp: &Checkpoint,
+    trusted_key: Option<&str>,
+) -> Vec<(&'static str, String)> {
+    let chain = export.header.holdout.as_str();
+    let mut out = Vec::new();
+    if let Err(why) = cp.verify_signature() {
+        out.push(("signature", why));
+    }
+    if let Some(k) = trusted_key
+        && !k.eq_ignore_ascii_case(&cp.public_key)
+    {
+        out.push((
+            "public_key",
+            format!("signed by {}, not the trusted key {k}", cp.public_key),
+        ));
+    }
+    // A checkpoint anchors the holdout's chain or the identity chain the export carries.
+    let entries = if cp.holdout == chain {
+        &export.entries
+    } else if cp.holdout == ledger::USERS_CHAIN {
+        &export.users
+    } else {
+        out.push((
+            "holdout",
+            format!("checkpoint of {}, export of {chain}", cp.holdout),
+        ));
+        return out;
+    };
+    match entries.get(cp.seq as usize) {
+        None => out.push((
+            "seq",
+            format!(
+                "the checkpoint anchors entry {} of {} but that chain ends at entry {}: \
+                 truncated",
+                cp.seq,
+                cp.holdout,
+                entries.len() as i64 - 1
+            ),
+        )),
+        Some(e) if e.hash != cp.head_hash || e.seq != cp.seq => out.push((
+            "head_hash",
+            format!(
+                "entry {} has hash {}, the checkpoint signed {}: the chain was rebuilt or \
+                 changed",
+                cp.seq, e.hash, cp.head_hash
+            ),
+        )),
+        Some(_) => {}
+    }
+    out
+}
+
 fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
     let chain = export.header.holdout.as_str();
     for (file, cp) in &opts.checkpoints {
-        let mut f = |field: &str, problem: String| {
+        let problems = checkpoint_problems(export, cp, opts.trusted_key.as_deref());
+        let foreign = problems.iter().any(|(field, _)| *field == "holdout");
+        for (field, problem) in problems {
             report.findings.push(Finding {
                 chain: chain.into(),
                 entry: Some(cp.seq),
                 field: format!("checkpoint {file}: {field}"),
                 problem,
-            })
-        };
-        if let Err(why) = cp.verify_signature() {
-            f("signature", why);
+            });
         }
-        if let Some(k) = &opts.trusted_key
-            && !k.eq_ignore_ascii_case(&cp.public_key)
-        {
-            f(
-                "public_key",
-                format!("signed by {}, not the trusted key {k}", cp.public_key),
-            );
+        if !foreign {
+            report.checkpoints.push(format!(
+                "{file}: entry {} at {} (key {})",
+                cp.seq, cp.at, cp.public_key
+            ));
         }
-        // A checkpoint anchors the holdout's chain or the identity chain the export carries.
-        let entries = if cp.holdout == chain {
-            &export.entries
-        } else if cp.holdout == ledger::USERS_CHAIN {
-            &export.users
-        } else {
-            f(
-                "holdout",
-                format!("checkpoint of {}, export of {chain}", cp.holdout),
-            );
-            continue;
-        };
-        match entries.get(cp.seq as usize) {
-            None => f(
-                "seq",
-                format!(
-                    "the checkpoint anchors entry {} of {} but that chain ends at entry {}: \
-                     truncated",
-                    cp.seq,
-                    cp.holdout,
-                    entries.len() as i64 - 1
-                ),
-            ),
-            Some(e) if e.hash != cp.head_hash || e.seq != cp.seq => f(
-                "head_hash",
-                format!(
-                    "entry {} has hash {}, the checkpoint signed {}: the chain was rebuilt or \
-                     changed",
-                    cp.seq, e.hash, cp.head_hash
-                ),
-            ),
-            Some(_) => {}
-        }
-        report.checkpoints.push(format!(
-            "{file}: entry {} at {} (key {})",
-            cp.seq, cp.at, cp.public_key
-        ));
     }
     let keys: std::collections::BTreeSet<&str> = opts
         .checkpoints

@@ -9,9 +9,11 @@
 //! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
 //! | replay of every answer and refusal | `replay` ([`QuerySummary`]) |
 //! | `--find`, re-scoring, what-if replays | [`trace`] |
+//! | certificates of one answer from an export and a checkpoint | [`certify`] |
 //! | families: shares of one total delta, checked across exports | [`family`] |
 
 pub mod anchor;
+pub mod certify;
 mod check;
 mod digest;
 pub mod export;
@@ -22,8 +24,8 @@ pub mod trace;
 use serde::Serialize;
 
 pub use check::{
-    AuditOptions, LabelColumns, Receipt, Released, Report, audit, genesis_policy as check_genesis,
-    labels_digest,
+    AuditOptions, LabelColumns, Receipt, Released, Report, audit, checkpoint_problems,
+    genesis_policy as check_genesis, labels_digest,
 };
 pub use digest::predictions_digest;
 pub use replay::QuerySummary;

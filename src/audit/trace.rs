@@ -1,5 +1,6 @@
-//! Tracing predictions to the entries that scored them (`--find`), re-scoring them against the
-//! labels, and what-if replays under another policy.
+//! Tracing predictions to the entries that scored them (`--find`: answers, adoptions, and sealed
+//! entries with the round answer that scored them), re-scoring them against the labels, and
+//! what-if replays under another policy.
 
 use serde::Serialize;
 
@@ -7,19 +8,108 @@ use super::Finding;
 use super::check::LabelColumns;
 use super::export::Export;
 use super::predictions_digest;
-use crate::engine::{AnswerRecord, Book, HoldoutPolicy, PolicyInput};
+use crate::engine::{AnswerRecord, Book, HoldoutPolicy, PolicyInput, Record};
 use crate::error::{Error, Result};
 use crate::files::Table;
+use crate::ledger::Kind;
 use crate::metric::{self, Metric, Predictions};
 
-/// The answers recorded in an export, with their entry numbers.
+/// The charged answers recorded in an export (`answer` entries), with their entry numbers.
 pub fn answers(export: &Export) -> Vec<(u64, AnswerRecord)> {
     export
         .entries
         .iter()
-        .filter(|e| e.kind == "answer")
-        .filter_map(|e| Some((e.seq, serde_json::from_str(&e.body).ok()?)))
+        .filter(|e| e.kind() == Some(Kind::Answer))
+        .filter_map(|e| match Record::parse(e) {
+            Ok(Record::Answer(r)) => Some((e.seq, *r)),
+            _ => None,
+        })
         .collect()
+}
+
+/// An entry that scored a file, or will: a charged answer, a free adoption, or a sealed entry
+/// (answered by the round that closed it).
+#[derive(Debug, Clone)]
+pub struct Scoring {
+    /// Entry number of the answer, adoption or sealed entry.
+    pub entry: u64,
+    /// Its kind.
+    pub kind: Kind,
+    /// Team.
+    pub team: String,
+    /// Target.
+    pub target: String,
+    /// Query number (0 for an adoption).
+    pub query: u64,
+    /// Digest of the predictions.
+    pub digest: String,
+    /// When it was submitted.
+    pub at: String,
+    /// The answer: the entry's own, or a sealed entry's from its round (`None` while the round
+    /// is open).
+    pub answer: Option<AnswerRecord>,
+    /// A sealed entry's round: its entry number and the answer's place in it.
+    pub round: Option<(u64, usize)>,
+}
+
+/// Every answer, adoption and sealed entry of an export, in chain order; a sealed entry gets
+/// the answer of the round that closed it (rounds answer the entries sealed since the last
+/// round, in order).
+pub fn scorings(export: &Export) -> Vec<Scoring> {
+    let mut out: Vec<Scoring> = Vec::new();
+    let mut pending: Vec<usize> = Vec::new();
+    for e in &export.entries {
+        if !matches!(
+            e.kind(),
+            Some(Kind::Answer | Kind::Adopt | Kind::Sealed | Kind::Round)
+        ) {
+            continue;
+        }
+        match Record::parse(e) {
+            Ok(Record::Answer(r)) | Ok(Record::Adopt(r)) => out.push(Scoring {
+                entry: e.seq,
+                kind: e.kind().unwrap_or(Kind::Answer),
+                team: r.team.clone(),
+                target: r.target.clone(),
+                query: r.query,
+                digest: r.digest.clone(),
+                at: r.at.clone(),
+                answer: Some(*r),
+                round: None,
+            }),
+            Ok(Record::Sealed(s)) => {
+                pending.push(out.len());
+                out.push(Scoring {
+                    entry: e.seq,
+                    kind: Kind::Sealed,
+                    team: s.team,
+                    target: s.target,
+                    query: s.query,
+                    digest: s.digest,
+                    at: s.at,
+                    answer: None,
+                    round: None,
+                });
+            }
+            Ok(Record::Round(r)) => {
+                // A round that does not answer exactly the entries sealed before it is the
+                // replay's finding; here its answers are matched only to entries they name.
+                for (k, (i, a)) in std::mem::take(&mut pending)
+                    .into_iter()
+                    .zip(r.answers)
+                    .enumerate()
+                {
+                    let s = &mut out[i];
+                    if a.team == s.team && a.query == s.query && a.digest == s.digest {
+                        s.round = Some((e.seq, k));
+                        s.answer = Some(a);
+                    }
+                }
+            }
+            _ => {}
+        }
+    }
+    out
 }
 
 /// Parses one predictions table for a target in canonical (row-id) order; `None` when the
@@ -59,28 +149,52 @@ pub fn parse_predictions(
 /// One entry that scored a predictions file.
 #[derive(Debug, Clone, Serialize)]
 pub struct Match {
-    /// Entry number.
+    /// Entry number (of the answer, adoption or sealed entry).
     pub entry: u64,
+    /// Its kind: `answer`, `adopt` or `sealed`.
+    pub kind: String,
     /// Query number.
     pub query: u64,
     /// Target.
     pub target: String,
     /// Team.
     pub team: String,
-    /// Released symbol.
-    pub symbol: String,
+    /// Released symbol (`None` for a sealed entry whose round is still open).
+    pub symbol: Option<String>,
     /// Interval.
-    pub lower: f64,
+    pub lower: Option<f64>,
     /// Interval.
-    pub upper: f64,
-    /// Time.
+    pub upper: Option<f64>,
+    /// Time of the submission.
     pub at: String,
     /// The digest matched.
     pub digest: String,
+    /// A sealed entry's round (entry number) that answered it.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub round: Option<u64>,
 }
 
-/// The entries whose prediction digest equals this table's, for any target.
+/// The entries that scored (or, sealed, will score) this table's predictions, for any target.
 pub fn find(export: &Export, policy: &HoldoutPolicy, table: &Table) -> Vec<Match> {
+    matches(export, policy, table)
+        .into_iter()
+        .map(|s| Match {
+            entry: s.entry,
+            kind: s.kind.as_str().to_string(),
+            query: s.query,
+            target: s.target,
+            team: s.team,
+            symbol: s.answer.as_ref().map(|a| a.symbol.clone()),
+            lower: s.answer.as_ref().map(|a| a.lower),
+            upper: s.answer.as_ref().map(|a| a.upper),
+            at: s.at,
+            digest: s.digest,
+            round: s.round.map(|(seq, _)| seq),
+        })
+        .collect()
+}
+
+fn matches(export: &Export, policy: &HoldoutPolicy, table: &Table) -> Vec<Scoring> {
     let digests: Vec<(String, String)> = policy
         .targets
         .iter()
@@ -92,29 +206,20 @@ pub fn find(export: &Export, policy: &HoldoutPolicy, table: &Table) -> Vec<Match
             ))
         })
         .collect();
-    answers(export)
+    scorings(export)
         .into_iter()
-        .filter(|(_, r)| {
+        .filter(|s| {
             digests
                 .iter()
-                .any(|(t, d)| *t == r.target && *d == r.digest)
-        })
-        .map(|(entry, r)| Match {
-            entry,
-            query: r.query,
-            target: r.target,
-            team: r.team,
-            symbol: r.symbol,
-            lower: r.lower,
-            upper: r.upper,
-            at: r.at,
-            digest: r.digest,
+                .any(|(t, d)| *t == s.target && *d == s.digest)
         })
         .collect()
 }
 
-/// Re-scores a predictions file against the labels and compares with every entry that scored
-/// it. Returns the entries checked; discrepancies go to `findings`.
+/// Re-scores a predictions file against the labels and compares with the exact loss recorded
+/// for every entry that scored it: an answer's own, a sealed entry's in the round that answered
+/// it. Returns the entries checked (answers and sealed entries; an adoption records no exact
+/// loss, and a sealed entry of an open round none yet); discrepancies go to `findings`.
 pub fn rescore(
     export: &Export,
     policy: &HoldoutPolicy,
@@ -130,7 +235,13 @@ pub fn rescore(
         .map(|&i| labels.ids[i].trim().to_string())
         .collect();
     let mut checked = Vec::new();
-    for m in find(export, policy, table) {
+    for m in matches(export, policy, table) {
+        let Some(answer) = &m.answer else {
+            continue;
+        };
+        if m.kind == Kind::Adopt {
+            continue;
+        }
         let Some(t) = policy.targets.iter().position(|t| t.name == m.target) else {
             continue;
         };
@@ -150,20 +261,23 @@ pub fn rescore(
             .collect();
         let parsed = metric::parse_labels(&target.metric, &target.classes, &col, &ids)?;
         let loss = metric::score(&target.metric, &parsed, &preds)?;
-        let recorded = export
-            .entries
-            .get(m.entry as usize)
-            .and_then(|e| serde_json::from_str::<AnswerRecord>(&e.body).ok())
-            .and_then(|r| r.exact)
-            .and_then(|x| x.first().copied());
+        let recorded = answer.exact.as_ref().and_then(|x| x.first().copied());
         if recorded != Some(loss) {
+            let (entry, field) = match m.round {
+                Some((round, k)) => (round, format!("answers[{k}].exact[0]")),
+                None => (m.entry, "exact[0]".to_string()),
+            };
+            let whose = match m.round {
+                Some(_) => format!(" for the sealed entry {}", m.entry),
+                None => String::new(),
+            };
             findings.push(Finding {
                 chain: export.header.holdout.clone(),
-                entry: Some(m.entry),
-                field: "exact[0]".into(),
+                entry: Some(entry),
+                field,
                 problem: format!(
                     "re-scoring {file} against the labels gives {loss:?}, the ledger records \
-                     {recorded:?}"
+                     {recorded:?}{whose}"
                 ),
             });
         }

@@ -1,6 +1,7 @@
-//! Audit commands: `export`, `checkpoint`, `certify` (talk to the daemon) and `audit` (offline,
-//! no daemon): verify an export's chains, genesis, checkpoints and receipts, replay its
-//! accounting, trace prediction files, and replay it under another policy.
+//! Audit commands: `export`, `checkpoint` (talk to the daemon), `certify` (offline from an
+//! export and a checkpoint, or through the daemon) and `audit` (offline, no daemon): verify an
+//! export's chains, genesis, checkpoints and receipts, replay its accounting, trace prediction
+//! files, and replay it under another policy.
 
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -13,6 +14,7 @@ use serde_json::{Value, json};
 use super::client::conn::{Conn, ServerArgs};
 use super::client::show;
 use crate::audit::anchor::{self, Checkpoint};
+use crate::audit::certify::{self, Certified, Refused, Subject, Which};
 use crate::audit::export::Export;
 use crate::audit::{self, AuditOptions, LabelColumns, Receipt, Report, trace};
 use crate::engine::AnswerRecord;
@@ -47,8 +49,11 @@ pub enum AuditCommand {
     /// Write a checkpoint of a holdout's chain head, signed by the daemon's key. Keep it outside
     /// the daemon; `holdout audit --checkpoint` later proves the chain was not rebuilt or cut.
     Checkpoint(CheckpointArgs),
-    /// Write a short certificate of one answer (auditor) that a model card can cite: the policy,
-    /// the answer and interval, the guarantee and its assumptions, the receipt and a checkpoint.
+    /// Write a short certificate of one answer that a model card can cite: the policy, the
+    /// answer in words with its interval, the submission's note and digest, the guarantee and
+    /// its assumptions, the receipt and a checkpoint. Offline from an export and a checkpoint
+    /// (--export, --checkpoint; no daemon), or through the daemon (auditor role). Answers,
+    /// free adoptions and sealed entries (with the round that answered them) are certified.
     Certify(CertifyArgs),
     /// Audit a ledger export (or a database file with --db) offline. See --help.
     #[command(after_long_help = AUDIT_HELP)]
@@ -84,14 +89,30 @@ pub struct CheckpointArgs {
 /// `holdout certify`.
 #[derive(Debug, Args)]
 pub struct CertifyArgs {
-    /// Holdout name.
-    pub name: String,
-    /// Query number of the answer to certify.
-    #[arg(long)]
-    pub query: u64,
+    /// Holdout name (with --export it may be left out: the export names its holdout).
+    #[arg(required_unless_present = "export")]
+    pub name: Option<String>,
+    /// Query number of the answer (or sealed entry) to certify, as the team's history shows it.
+    #[arg(long, required_unless_present = "entry", conflicts_with = "entry")]
+    pub query: Option<u64>,
+    /// The entry to certify, by the hash its receipt names (an adoption has no query number of
+    /// its own).
+    #[arg(long, value_name = "HASH")]
+    pub entry: Option<String>,
     /// Team, when each team has its own query numbers (isolated holdouts).
-    #[arg(long)]
+    #[arg(long, conflicts_with = "entry")]
     pub team: Option<String>,
+    /// Certify offline, with no daemon, from this export (`holdout export`); needs
+    /// --checkpoint, which must anchor the certified answer.
+    #[arg(long, value_name = "FILE.jsonl", requires = "checkpoint")]
+    pub export: Option<PathBuf>,
+    /// The signed checkpoint of this holdout the certificate cites (with --export). It must
+    /// verify, the export's chain must hold its head, and the answer must be at or before it.
+    #[arg(long, value_name = "FILE", requires = "export")]
+    pub checkpoint: Option<PathBuf>,
+    /// Hex public key the checkpoint must be signed with.
+    #[arg(long, value_name = "HEX")]
+    pub public_key: Option<String>,
     /// Write the certificate here (JSON with --json, text otherwise) instead of stdout.
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
@@ -156,6 +177,7 @@ pub struct AuditArgs {
 pub fn run(cmd: AuditCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         AuditCommand::Audit(args) => run_audit(&args),
+        AuditCommand::Certify(args) if args.export.is_some() => certify_offline(&args),
         other => {
             let rt = tokio::runtime::Builder::new_current_thread()
                 .enable_all()
@@ -267,77 +289,309 @@ async fn checkpoint(args: &CheckpointArgs) -> anyhow::Result<ExitCode> {
 }
 
 async fn certify(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
+    let name = args
+        .name
+        .clone()
+        .ok_or_else(|| Error::invalid("NAME", "name the holdout, or certify from --export"))?;
     let conn = Conn::open(&args.server).await?;
-    let ex = fetch_export(&conn, &args.name).await?;
-    let cp = fetch_checkpoint(&conn, &args.name).await?;
-    let mut findings = Vec::new();
-    let (policy, _) = audit::check_genesis(&ex, &mut findings)
-        .ok_or_else(|| Error::Internal("the genesis entry is unreadable".into()))?;
-    let (entry, r): (u64, AnswerRecord) = trace::answers(&ex)
-        .into_iter()
-        .find(|(_, r)| r.query == args.query && args.team.as_ref().is_none_or(|t| *t == r.team))
-        .ok_or_else(|| {
-            Error::not_found("query", format!("{} of holdout {}", args.query, args.name))
-        })?;
-    let e = &ex.entries[entry as usize];
-    let cert = json!({
-        "certificate": "holdout-ledger-certificate/1",
-        "holdout": args.name,
-        "policy": {
-            "delta": policy.input.delta, "schedule": policy.input.schedule,
-            "answers": policy.input.answers, "tolerance": policy.input.tolerance,
-            "sharing": policy.input.sharing, "rows": policy.core.rows,
-        },
-        "answer": {
-            "query": r.query, "team": r.team, "target": r.target, "symbol": r.symbol,
-            "interval": [r.lower, r.upper], "level_nats": r.level_nats, "delta_i": r.delta_i,
-            "statement": r.statement, "digest": r.digest, "at": r.at,
-        },
-        "guarantee": policy.guarantee(),
-        // The receipt names the entry by hash and never carries its salt: a certificate is
-        // handed to people who may not read exact scores.
-        "receipt": {"holdout": args.name, "query": r.query, "entry_hash": e.hash},
-        "checkpoint": cp,
-    });
-    let text = if args.json {
-        serde_json::to_string_pretty(&cert)? + "\n"
-    } else {
-        format!(
-            "Certificate for holdout {name}, query {q} (team {team}, target {target})\n\
-             answer     {sym}, interval {iv} at level ln(1/d) = {lvl:.3}\n\
-             predictions digest {digest}, answered {at}\n\
-             policy     delta {delta}, schedule {sched}, answers {ans}, {rows} rows\n\n\
-             {guarantee}\n\n\
-             receipt    {name} query {q} entry {hash}\n\
-             checkpoint entry {cseq} hash {chash} at {cat}, key {key}, signature {sig}\n\
-             Verify with: holdout audit EXPORT.jsonl --receipt RECEIPT --checkpoint CHECKPOINT\n",
-            name = args.name,
-            q = r.query,
-            team = r.team,
-            target = r.target,
-            sym = r.symbol,
-            iv = show::interval_text(r.lower, r.upper),
-            lvl = r.level_nats,
-            digest = r.digest,
-            at = r.at,
-            delta = policy.input.delta,
-            sched = policy.input.schedule,
-            ans = policy.input.answers,
-            rows = policy.core.rows,
-            guarantee = policy.guarantee(),
-            hash = e.hash,
-            cseq = cp.seq,
-            chash = cp.head_hash,
-            cat = cp.at,
-            key = cp.public_key,
-            sig = cp.signature,
+    let ex = fetch_export(&conn, &name).await?;
+    let cp = fetch_checkpoint(&conn, &name).await?;
+    write_certificate(&ex, &cp, args)
+}
+
+/// `holdout certify --export FILE --checkpoint CP`: the same certificate from files alone.
+fn certify_offline(args: &CertifyArgs) -> anyhow::Result<ExitCode> {
+    let (Some(export), Some(checkpoint)) = (&args.export, &args.checkpoint) else {
+        return Err(Error::invalid(
+            "--export",
+            "certifying offline needs --export and --checkpoint",
         )
+        .into());
+    };
+    let ex = Export::read(export)?;
+    if let Some(name) = &args.name
+        && *name != ex.header.holdout
+    {
+        return Err(Error::invalid(
+            export.display().to_string(),
+            format!("an export of {}, not of {name}", ex.header.holdout),
+        )
+        .into());
+    }
+    let cp = Checkpoint::read(checkpoint)?;
+    write_certificate(&ex, &cp, args)
+}
+
+/// Certifies the entry `args` names, anchored by `cp`, and writes the certificate. An export
+/// the checkpoint does not anchor is a finding (exit 8), as in the audit.
+fn write_certificate(ex: &Export, cp: &Checkpoint, args: &CertifyArgs) -> anyhow::Result<ExitCode> {
+    let which = match (&args.entry, args.query) {
+        (Some(hash), _) => Which::Entry(hash.clone()),
+        (None, Some(query)) => Which::Query {
+            query,
+            team: args.team.clone(),
+        },
+        (None, None) => return Err(Error::invalid("--query", "give --query or --entry").into()),
+    };
+    let c = match certify::certify(ex, cp, &which, args.public_key.as_deref()) {
+        Ok(c) => c,
+        Err(Refused::Other(e)) => return Err(e.into()),
+        Err(why @ Refused::Untrusted(_)) => {
+            eprintln!("error: {why}");
+            return Ok(ExitCode::from(AUDIT_FAILED));
+        }
+    };
+    let text = if args.json {
+        serde_json::to_string_pretty(&certificate_json(&c))? + "\n"
+    } else {
+        certificate_text(&c)
     };
     match &args.out {
         Some(p) => std::fs::write(p, text).with_context(|| format!("writing {}", p.display()))?,
         None => print!("{text}"),
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Version of the certificate's JSON form. 2: every answer kind (`kind`), the answer in words,
+/// the submission's note, the round of a sealed entry.
+pub const CERTIFICATE_FORMAT: &str = "holdout-ledger-certificate/2";
+
+/// The metric of the target an answer is about, as the policy names it.
+fn metric_name(c: &Certified, target_index: usize) -> String {
+    c.policy
+        .targets
+        .get(target_index)
+        .map_or_else(|| "score".to_string(), |t| t.metric.to_string())
+}
+
+/// An answer in plain words, e.g. `error 0.12, between 0.1 and 0.14`: the released value (or
+/// symbol) and the reported interval rounded outward as everywhere else it is shown.
+fn in_words(c: &Certified, r: &AnswerRecord) -> String {
+    let metric = metric_name(c, r.target_index);
+    let iv = show::interval_text(r.lower, r.upper);
+    let ends = iv.strip_prefix('[').and_then(|t| t.strip_suffix(']'));
+    let between = match ends.and_then(|t| t.split_once(", ")) {
+        Some((lo, hi)) => format!("between {lo} and {hi}"),
+        None => format!("in {iv}"),
+    };
+    let target = if c.policy.targets.len() > 1 {
+        format!("target {}: ", r.target)
+    } else {
+        String::new()
+    };
+    match r.score {
+        Some(score) => {
+            // The symbol ends with the released value as its grid writes it (0.10 on a 0.01
+            // grid); other words in it (new-best, best=model-1) are said after the interval.
+            let value = r
+                .symbol
+                .rsplit(' ')
+                .next()
+                .filter(|v| v.parse::<f64>().is_ok())
+                .map_or_else(|| show::num(score), str::to_string);
+            let released = if r.symbol == value {
+                String::new()
+            } else {
+                format!(" (released as {})", r.symbol)
+            };
+            format!("{target}{metric} {value}, {between}{released}")
+        }
+        None => format!("{target}{metric}: {}, {between}", r.symbol),
+    }
+}
+
+fn receipt_json(c: &Certified, hash: &str) -> Value {
+    json!({"holdout": c.holdout, "query": c.query, "entry_hash": hash})
+}
+
+/// The certificate as JSON. It holds the certified team's own records only, without exact
+/// losses, salts or the core's record; the whole object is also a receipt `holdout audit
+/// --receipt` reads.
+fn certificate_json(c: &Certified) -> Value {
+    let p = &c.policy;
+    let answer = c.answer().map(|r| {
+        json!({
+            "query": c.query, "team": r.team, "target": r.target,
+            "metric": metric_name(c, r.target_index), "symbol": r.symbol, "score": r.score,
+            "interval": [r.lower, r.upper], "interval_text": show::interval_text(r.lower, r.upper),
+            "in_words": in_words(c, r), "level_nats": r.level_nats, "delta_i": r.delta_i,
+            "statement": r.statement, "digest": r.digest, "at": r.at, "models": r.models,
+            "best_model": r.best_model,
+            "best_model_name": r.best_model.and_then(|m| r.model_names.get(m as usize)),
+        })
+    });
+    let (kind, submission, charge, round) = match &c.subject {
+        Subject::Answer(r) => (
+            "answer",
+            json!({"team": r.team, "target": r.target, "note": r.note, "digest": r.digest,
+                   "submitted_at": r.at}),
+            json!({"charged": true, "delta_i": r.delta_i, "level_nats": r.level_nats,
+                   "models": r.models}),
+            Value::Null,
+        ),
+        Subject::Adoption(r) => (
+            "adoption",
+            json!({"team": r.team, "target": r.target, "note": r.note, "digest": r.digest,
+                   "submitted_at": r.at}),
+            json!({"charged": false, "delta_i": 0.0, "level_nats": r.level_nats}),
+            Value::Null,
+        ),
+        Subject::Sealed { sealed, round, .. } => (
+            "sealed",
+            json!({"team": sealed.team, "target": sealed.target, "note": sealed.note,
+                   "digest": sealed.digest, "submitted_at": sealed.at}),
+            json!({"charged": true, "delta_i": sealed.delta_i, "level_nats": sealed.level_nats}),
+            round.as_ref().map_or(Value::Null, |r| {
+                json!({"entry_hash": r.entry_hash, "closed_at": r.at, "trigger": r.trigger,
+                       "receipt": receipt_json(c, &r.entry_hash)})
+            }),
+        ),
+    };
+    json!({
+        "certificate": CERTIFICATE_FORMAT,
+        "holdout": c.holdout,
+        "kind": kind,
+        "status": status(c),
+        "policy": {
+            "delta": p.input.delta, "schedule": p.input.schedule,
+            "answers": p.input.answers, "tolerance": p.input.tolerance,
+            "sharing": p.input.sharing, "rows": p.core.rows, "core_version": p.core.core_version,
+        },
+        "answer": answer,
+        "charge": charge,
+        "submission": submission,
+        "guarantee": p.guarantee(),
+        // The receipt names the entry by hash and never carries its salt: a certificate is
+        // handed to people who may not read exact scores.
+        "receipt": receipt_json(c, &c.entry_hash),
+        "round": round,
+        "checkpoint": c.checkpoint,
+        "verify": "holdout audit EXPORT.jsonl --receipt THIS-CERTIFICATE.json --checkpoint CHECKPOINT.json",
+    })
+}
+
+/// What kind of answer is certified, in one sentence.
+fn status(c: &Certified) -> String {
+    match &c.subject {
+        Subject::Answer(_) => "a charged answer".into(),
+        Subject::Adoption(_) => "a free adoption: this team sent a file another team's answer \
+                                 had already placed below this team's best, so it was adopted \
+                                 as this team's new best at no charge, at the level of that \
+                                 answer"
+            .into(),
+        Subject::Sealed { round: Some(_), .. } => {
+            "a sealed entry of a final round, charged when it was sealed and answered when the \
+             round closed"
+                .into()
+        }
+        Subject::Sealed {
+            closed_after_checkpoint: true,
+            ..
+        } => "a sealed entry, unanswered as of the checkpoint: its round closed after the \
+              checkpoint's head, so only its charge is certified (certify again with a later \
+              checkpoint for its answer)"
+            .into(),
+        Subject::Sealed { .. } => "a sealed entry, not answered yet: its round has not closed, \
+                                   so only its charge is certified"
+            .into(),
+    }
+}
+
+/// The certificate for people.
+fn certificate_text(c: &Certified) -> String {
+    let p = &c.policy;
+    let cp = &c.checkpoint;
+    let safe = |t: &str| show::safe_text(t, 200);
+    let (target, note, digest, submitted) = match &c.subject {
+        Subject::Answer(r) | Subject::Adoption(r) => (&r.target, &r.note, &r.digest, &r.at),
+        Subject::Sealed { sealed, .. } => {
+            (&sealed.target, &sealed.note, &sealed.digest, &sealed.at)
+        }
+    };
+    let what = match &c.subject {
+        Subject::Adoption(_) => "an adoption (no query number of its own)".to_string(),
+        Subject::Sealed { .. } => format!("sealed entry, query {}", c.query),
+        Subject::Answer(_) => format!("query {}", c.query),
+    };
+    let mut s = format!(
+        "Certificate for holdout {}, {what} (team {}, target {})\n",
+        safe(&c.holdout),
+        safe(c.team()),
+        safe(target)
+    );
+    s.push_str(&format!("kind        {}\n", status(c)));
+    match c.answer() {
+        Some(r) => {
+            s.push_str(&format!("answer      {}\n", in_words(c, r)));
+            s.push_str(&format!(
+                "            interval {} at level ln(1/d) = {:.3} nats; answered {}\n",
+                show::interval_text(r.lower, r.upper),
+                r.level_nats,
+                r.at
+            ));
+            if let Some(m) = r.best_model {
+                let name = r.model_names.get(m as usize).map_or("", String::as_str);
+                s.push_str(&format!("            best model {m} {}\n", safe(name)));
+            }
+            s.push_str(&format!("statement   {}\n", r.statement));
+        }
+        None => s.push_str("answer      none yet (sealed, unanswered)\n"),
+    }
+    match &c.subject {
+        Subject::Answer(r) => s.push_str(&format!(
+            "charge      share delta_i = {} per model ({} model{}), ln(1/d_i) = {:.3} nats\n",
+            show::num(r.delta_i),
+            r.models,
+            if r.models == 1 { "" } else { "s" },
+            r.level_nats
+        )),
+        Subject::Adoption(_) => s.push_str("charge      none (a free adoption)\n"),
+        Subject::Sealed { sealed, .. } => s.push_str(&format!(
+            "charge      share delta_i = {}, ln(1/d_i) = {:.3} nats, taken when sealed\n",
+            show::num(sealed.delta_i),
+            sealed.level_nats
+        )),
+    }
+    s.push_str(&format!(
+        "submission  note \"{}\", predictions digest {digest}, submitted {submitted}\n",
+        safe(note)
+    ));
+    s.push_str(&format!(
+        "policy      delta {}, schedule {}, answers {}, tolerance {}, sharing {}, {} rows\n\n",
+        p.input.delta,
+        p.input.schedule,
+        p.input.answers,
+        p.input.tolerance,
+        p.input.sharing,
+        p.core.rows
+    ));
+    s.push_str(&p.guarantee());
+    s.push_str("\n\n");
+    s.push_str(&format!("receipt     {}\n", receipt_json(c, &c.entry_hash)));
+    if let Subject::Sealed { round: Some(r), .. } = &c.subject {
+        s.push_str(&format!(
+            "round       entry {} closed {} ({}); as a receipt: {}\n",
+            r.entry_hash,
+            r.at,
+            r.trigger,
+            receipt_json(c, &r.entry_hash)
+        ));
+    }
+    s.push_str(&format!(
+        "checkpoint  {} entry {} hash {} at {}, key {}, signature {}\n",
+        safe(&cp.holdout),
+        cp.seq,
+        cp.head_hash,
+        cp.at,
+        cp.public_key,
+        cp.signature
+    ));
+    s.push_str(
+        "Verify with: holdout audit EXPORT.jsonl --checkpoint CHECKPOINT.json --receipt R.json \
+         (R.json: the receipt line above, or this certificate in --json form)\n",
+    );
+    s
 }
 
 /// Reads a database file read-only into an export of one holdout, with the labels it seals, or
@@ -619,10 +873,27 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
                 .map(|a| {
                     a.iter()
                         .map(|m| {
-                            format!(
-                                "entry {} (query {}, {}, {})",
-                                m["entry"], m["query"], m["team"], m["symbol"]
-                            )
+                            let team = m["team"].as_str().unwrap_or("");
+                            let symbol = m["symbol"].as_str().unwrap_or("");
+                            let kind = m["kind"].as_str().and_then(ledger::Kind::parse);
+                            match (kind, m["round"].as_u64()) {
+                                (Some(ledger::Kind::Sealed), Some(round)) => format!(
+                                    "sealed entry {} (query {}, {team}), answered {symbol} by \
+                                     the round at entry {round}",
+                                    m["entry"], m["query"]
+                                ),
+                                (Some(ledger::Kind::Sealed), None) => format!(
+                                    "sealed entry {} (query {}, {team}), its round not closed",
+                                    m["entry"], m["query"]
+                                ),
+                                (Some(ledger::Kind::Adopt), _) => {
+                                    format!("entry {} (adopted free, {team}, {symbol})", m["entry"])
+                                }
+                                _ => format!(
+                                    "entry {} (query {}, {team}, {symbol})",
+                                    m["entry"], m["query"]
+                                ),
+                            }
                         })
                         .collect()
                 })
@@ -643,11 +914,13 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     }
     if let Some(Value::Array(r)) = extra.get("rescored") {
         for f in r {
-            println!(
-                "rescored   {}: entries {}",
-                f["file"].as_str().unwrap_or(""),
-                f["entries"]
-            );
+            let file = f["file"].as_str().unwrap_or("");
+            match f["entries"].as_array() {
+                Some(e) if !e.is_empty() => println!("rescored   {file}: entries {}", f["entries"]),
+                _ => println!(
+                    "rescored   {file}: matches no entry (not submitted, or changed since it was)"
+                ),
+            }
         }
     }
     if let Some(Value::Array(w)) = extra.get("what_if") {

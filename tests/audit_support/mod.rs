@@ -107,11 +107,16 @@ impl Generated {
         self.state >> 33
     }
 
-    /// A request with predictions that agree with the labels on about `accuracy` percent of
-    /// rows.
-    #[allow(dead_code)]
-    pub fn request(&mut self, accuracy: u64) -> SubmitRequest {
-        let preds: Vec<String> = (0..self.labels.len())
+    /// One submission by team `t`: predictions that agree with the labels on about
+    /// `accuracy` percent of rows. Returns the outcome.
+    pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
+        let preds = self.predictions(accuracy);
+        self.submit_values(t, preds, "")
+    }
+
+    /// Predictions that agree with the labels on about `accuracy` percent of rows.
+    pub fn predictions(&mut self, accuracy: u64) -> Vec<String> {
+        (0..self.labels.len())
             .map(|i| {
                 let flip = self.rand() % 100 >= accuracy;
                 let l = &self.labels[i];
@@ -121,7 +126,14 @@ impl Generated {
                     l.clone()
                 }
             })
-            .collect();
+            .collect()
+    }
+
+    /// A request with predictions that agree with the labels on about `accuracy` percent of
+    /// rows.
+    #[allow(dead_code)]
+    pub fn request(&mut self, accuracy: u64) -> SubmitRequest {
+        let preds = self.predictions(accuracy);
         SubmitRequest {
             holdout: self.name.clone(),
             target: String::new(),
@@ -138,12 +150,29 @@ impl Generated {
         }
     }
 
-    /// One submission by team `t`: predictions that agree with the labels on about
-    /// `accuracy` percent of rows. Returns the outcome.
-    pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
-        let req = self.request(accuracy);
+    /// One submission of `preds` (in row order) by team `t`, with a note.
+    pub fn submit_values(&mut self, t: usize, preds: Vec<String>, note: &str) -> SubmitOutcome {
         let caller = self.analysts[t].clone();
-        let out = self.engine.submit(&caller, req).unwrap();
+        let out = self
+            .engine
+            .submit(
+                &caller,
+                SubmitRequest {
+                    holdout: self.name.clone(),
+                    target: String::new(),
+                    mode: SubmitMode::Answer,
+                    request_id: None,
+                    note: note.into(),
+                    max_cost_nats: None,
+                    model_names: vec![],
+                    models: vec![ModelPredictions {
+                        ids: self.ids.clone(),
+                        values: RawValues::Classes(preds),
+                    }],
+                    mark_final: false,
+                },
+            )
+            .unwrap();
         if let SubmitOutcome::Answer {
             receipt,
             replayed: false,
@@ -183,6 +212,24 @@ impl Generated {
         let entries = ledger::read_chain(conn, &self.name).unwrap();
         let users = ledger::read_chain(conn, ledger::USERS_CHAIN).unwrap();
         Export::new(&self.name, "2026-03-02T00:00:00Z", entries, users)
+    }
+
+    /// A predictions file (`id,prediction`) for `preds` in row order.
+    pub fn predictions_csv(&self, preds: &[String]) -> String {
+        let mut s = String::from("id,prediction\n");
+        for (id, p) in self.ids.iter().zip(preds) {
+            s.push_str(&format!("{id},{p}\n"));
+        }
+        s
+    }
+
+    /// The labels file (`id,label`) an auditor holds.
+    pub fn labels_csv(&self) -> String {
+        let mut s = String::from("id,label\n");
+        for (id, l) in self.ids.iter().zip(&self.labels) {
+            s.push_str(&format!("{id},{l}\n"));
+        }
+        s
     }
 
     /// The labels as an auditor would read them from the labels file.
