@@ -382,10 +382,58 @@ fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Repo
             ),
             Some(_) => {}
         }
-        report.checkpoints.push(format!(
-            "{file}: entry {} at {} (key {})",
-            cp.seq, cp.at, cp.public_key
-        ));
+        // Format /2 also anchors the identity chain's head of the same moment: a rewritten
+        // (hashes recomputed) or deleted identity chain no longer has that entry.
+        let users = cp.users_head();
+        if let Some(u) = &users {
+            let mut g = |field: &str, problem: String| {
+                report.findings.push(Finding {
+                    chain: ledger::USERS_CHAIN.into(),
+                    entry: Some(u.seq),
+                    field: format!("checkpoint {file}: {field}"),
+                    problem,
+                })
+            };
+            match export.users.get(u.seq as usize) {
+                None => g(
+                    "users_seq",
+                    format!(
+                        "the checkpoint anchors entry {} of {} but the export's {} ends at \
+                         entry {}: truncated or deleted identity events",
+                        u.seq,
+                        ledger::USERS_CHAIN,
+                        ledger::USERS_CHAIN,
+                        export.users.len() as i64 - 1
+                    ),
+                ),
+                Some(e) if e.hash != u.hash || e.seq != u.seq => g(
+                    "users_head_hash",
+                    format!(
+                        "{} entry {} has hash {}, the checkpoint signed {}: the identity chain \
+                         was rebuilt or changed",
+                        ledger::USERS_CHAIN,
+                        u.seq,
+                        e.hash,
+                        u.hash
+                    ),
+                ),
+                Some(_) => {}
+            }
+        }
+        report.checkpoints.push(match users {
+            Some(u) => format!(
+                "{file}: entry {} and {} entry {} at {} (key {})",
+                cp.seq,
+                ledger::USERS_CHAIN,
+                u.seq,
+                cp.at,
+                cp.public_key
+            ),
+            None => format!(
+                "{file}: entry {} at {} (key {})",
+                cp.seq, cp.at, cp.public_key
+            ),
+        });
     }
     let keys: std::collections::BTreeSet<&str> = opts
         .checkpoints
