@@ -524,7 +524,7 @@ fn receipt_body_problems(e: &Entry, r: &Receipt) -> Vec<String> {
     };
     // A closed round's entry holds every answer of the round: find the receipt's among them.
     let candidates: Vec<&Value> = match body.get("answers").and_then(Value::as_array) {
-        Some(answers) if e.kind == "round" => answers.iter().collect(),
+        Some(answers) if e.kind() == Some(ledger::Kind::Round) => answers.iter().collect(),
         _ => vec![&body],
     };
     let matches_query = |a: &&Value| r.query == 0 || a["query"].as_u64() == Some(r.query);
