@@ -111,6 +111,10 @@ pub struct Report {
     pub entries: u64,
     /// Entries in the identity chain.
     pub identity_events: u64,
+    /// Answers, adoptions, sealed entries and round answers whose user and team were checked
+    /// against the identity chain (each must name a user added at or before it, not revoked
+    /// before it, in that team).
+    pub identity_checked: u64,
     /// Versions recorded in the genesis entry.
     pub versions: Value,
     /// Answered queries, in order.
@@ -566,6 +570,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         holdout: chain.clone(),
         entries: export.entries.len() as u64,
         identity_events: export.users.len() as u64,
+        identity_checked: 0,
         versions: Value::Null,
         queries: Vec::new(),
         checked: Default::default(),
@@ -627,6 +632,9 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     }
     check_checkpoints(export, &opts, &mut report);
     check_receipts(export, &opts, &mut report);
+    let identities = super::identity::check(export);
+    report.identity_checked = identities.checked;
+    report.findings.extend(identities.findings);
     let Some((policy, genesis)) = genesis_policy(export, &mut report.findings) else {
         return report;
     };

@@ -7,6 +7,7 @@
 //! | the daemon's key, signed checkpoints | [`anchor`] |
 //! | prediction digests shared with the daemon | `digest` ([`predictions_digest`]) |
 //! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
+//! | every entry's user and team against the identity chain | `identity` |
 //! | replay of every answer and refusal | `replay` ([`QuerySummary`]) |
 //! | `--find`, re-scoring, what-if replays | [`trace`] |
 //! | families: shares of one total delta, checked across exports | [`family`] |
@@ -16,6 +17,7 @@ mod check;
 mod digest;
 pub mod export;
 pub mod family;
+mod identity;
 mod replay;
 pub mod trace;
 
