@@ -111,6 +111,13 @@ impl Generated {
     /// One submission by team `t`: predictions that agree with the labels on about
     /// `accuracy` percent of rows. Returns the outcome.
     pub fn submit(&mut self, t: usize, accuracy: u64) -> SubmitOutcome {
+        let caller = self.analysts[t].clone();
+        self.submit_as(&caller, accuracy)
+    }
+
+    /// One submission by `caller` as given (the engine takes the caller's name and team as
+    /// authenticated; tests use this to write entries the identity chain does not back).
+    pub fn submit_as(&mut self, caller: &Caller, accuracy: u64) -> SubmitOutcome {
         let preds: Vec<String> = (0..self.labels.len())
             .map(|i| {
                 let flip = self.rand() % 100 >= accuracy;
@@ -122,11 +129,10 @@ impl Generated {
                 }
             })
             .collect();
-        let caller = self.analysts[t].clone();
         let out = self
             .engine
             .submit(
-                &caller,
+                caller,
                 SubmitRequest {
                     holdout: self.name.clone(),
                     target: String::new(),
@@ -170,6 +176,22 @@ impl Generated {
         caller(&mut self.engine, name, roles, team)
     }
 
+    /// Revokes a user now (a `user-revoked` event, as `holdout user revoke` records it).
+    pub fn revoke(&mut self, name: &str) {
+        let now = self.engine.now();
+        let tx = self.engine.store().conn().transaction().unwrap();
+        auth::revoke_user(&tx, name, "custodian", now).unwrap();
+        tx.commit().unwrap();
+    }
+
+    /// Rotates a user's token now (a `token-rotated` event).
+    pub fn rotate(&mut self, name: &str) {
+        let now = self.engine.now();
+        let tx = self.engine.store().conn().transaction().unwrap();
+        auth::rotate_token(&tx, name, now).unwrap();
+        tx.commit().unwrap();
+    }
+
     /// Advances the fixed clock.
     pub fn advance(&mut self, secs: i64) {
         let now = self.engine.now() + chrono::Duration::seconds(secs);
@@ -198,6 +220,28 @@ impl Generated {
         let name = self.name.clone();
         holdout_ledger::audit::anchor::checkpoint(self.engine.store().conn(), &name, &at).unwrap()
     }
+}
+
+/// Recomputes links and hashes from position `from` on, as someone rebuilding a chain would.
+pub fn rehash(entries: &mut [ledger::Entry], from: usize) {
+    for i in from..entries.len() {
+        let prev = if i == 0 {
+            ledger::ZERO_HASH.to_string()
+        } else {
+            entries[i - 1].hash.clone()
+        };
+        let e = &mut entries[i];
+        e.seq = i as u64;
+        e.prev_hash = prev;
+        e.hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+    }
+}
+
+/// Changes an entry's body (kept canonical); the hashes are left for [`rehash`].
+pub fn edit_body(e: &mut ledger::Entry, f: impl FnOnce(&mut serde_json::Value)) {
+    let mut v: serde_json::Value = serde_json::from_str(&e.body).unwrap();
+    f(&mut v);
+    e.body = ledger::canonical_json(&v);
 }
 
 /// A small ledger with answers, a refusal past the tolerance, two teams and a read.
