@@ -7,7 +7,6 @@ use std::str::FromStr;
 use chrono::{DateTime, SecondsFormat, Utc};
 use rusqlite::{OptionalExtension, params};
 use serde::{Deserialize, Serialize};
-use serde_json::json;
 use sha2::{Digest, Sha256};
 
 use crate::engine::Append;
@@ -116,6 +115,47 @@ pub struct User {
     pub revoked: bool,
 }
 
+/// The body of a `user-added` event on the identity chain.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct UserAdded {
+    /// User name.
+    pub user: String,
+    /// Roles granted, comma-separated ([`role_list`]).
+    pub roles: String,
+    /// Team: the accounting identity the user's entries carry.
+    pub team: String,
+    /// Who added the user (`init` for the first user).
+    pub by: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
+/// The body of a `user-revoked` event on the identity chain.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct UserRevoked {
+    /// User name.
+    pub user: String,
+    /// Who revoked the user.
+    pub by: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
+/// The body of a `token-rotated` event on the identity chain.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct TokenRotated {
+    /// User name.
+    pub user: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
+/// An identity event's body as JSON for the ledger.
+fn event_json<T: Serialize>(event: &T) -> Result<serde_json::Value> {
+    serde_json::to_value(event)
+        .map_err(|e| Error::Internal(format!("identity event encoding: {e}")))
+}
+
 /// Comma-separated role names.
 pub fn role_list(roles: &[Role]) -> String {
     if roles.is_empty() {
@@ -215,7 +255,13 @@ pub fn add_user(
     w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::UserAdded,
-        &json!({"user": name, "roles": role_list(&roles), "team": team, "by": by, "at": at}),
+        &event_json(&UserAdded {
+            user: name.to_string(),
+            roles: role_list(&roles),
+            team: team.clone(),
+            by: by.to_string(),
+            at: at.clone(),
+        })?,
     )?;
     Ok((
         User {
@@ -293,7 +339,11 @@ pub fn revoke_user(w: &mut dyn Append, name: &str, by: &str, now: DateTime<Utc>)
     w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::UserRevoked,
-        &json!({"user": name, "by": by, "at": at}),
+        &event_json(&UserRevoked {
+            user: name.to_string(),
+            by: by.to_string(),
+            at: at.clone(),
+        })?,
     )?;
     list_users(w.conn())?
         .into_iter()
@@ -325,7 +375,10 @@ pub fn rotate_token(w: &mut dyn Append, name: &str, now: DateTime<Utc>) -> Resul
     w.append(
         ledger::USERS_CHAIN,
         ledger::Kind::TokenRotated,
-        &json!({"user": name, "at": at}),
+        &event_json(&TokenRotated {
+            user: name.to_string(),
+            at: at.clone(),
+        })?,
     )?;
     Ok(token)
 }
@@ -375,6 +428,26 @@ mod tests {
         let chain = ledger::read_chain(store.conn(), ledger::USERS_CHAIN)?;
         assert_eq!(chain.len(), 3);
         assert!(ledger::verify_chain(&chain).is_empty());
+        // The typed events write the bodies 0.1.0 wrote (keys sorted, same fields).
+        let at = rfc3339(now);
+        let kinds: Vec<_> = chain.iter().map(|e| e.kind()).collect();
+        assert_eq!(
+            kinds,
+            [
+                Some(ledger::Kind::UserAdded),
+                Some(ledger::Kind::TokenRotated),
+                Some(ledger::Kind::UserRevoked)
+            ]
+        );
+        assert_eq!(
+            chain[0].body,
+            format!(r#"{{"at":"{at}","by":"root","roles":"analyst","team":"blue","user":"ana"}}"#)
+        );
+        assert_eq!(chain[1].body, format!(r#"{{"at":"{at}","user":"ana"}}"#));
+        assert_eq!(
+            chain[2].body,
+            format!(r#"{{"at":"{at}","by":"root","user":"ana"}}"#)
+        );
         Ok(())
     }
 

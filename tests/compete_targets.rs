@@ -9,7 +9,7 @@ use std::sync::Arc;
 use chrono::{TimeZone, Utc};
 use holdout_ledger::audit::export::Export;
 use holdout_ledger::audit::{AuditOptions, LabelColumns, audit};
-use holdout_ledger::auth::{Caller, Role};
+use holdout_ledger::auth::{self, Caller, Role};
 use holdout_ledger::engine::{
     CreateRequest, Engine, FixedClock, ModelPredictions, PolicyInput, RawValues, SubmitMode,
     SubmitRequest, TargetDecl, ranking_level,
@@ -24,6 +24,15 @@ fn caller(name: &str, roles: &[Role], team: &str) -> Caller {
         roles: roles.to_vec(),
         team: team.into(),
     }
+}
+
+/// Records `who` in the identity chain as the daemon does when a user is added, so the ledger's
+/// entries name users the audit can find.
+fn register(engine: &mut Engine, who: &Caller) {
+    let now = engine.now();
+    engine
+        .write(|w| auth::add_user(w, &who.name, &who.roles, Some(&who.team), "cora", now))
+        .unwrap();
 }
 
 fn ids(n: usize) -> Vec<String> {
@@ -66,6 +75,14 @@ fn a_two_target_round_ranks_and_compares_within_each_target() {
     ));
     let mut engine = Engine::new(store, clock.clone());
     let custodian = caller("cora", &[Role::Custodian, Role::Organizer], "cora");
+    register(&mut engine, &custodian);
+    register(&mut engine, &caller("olek", &[Role::Organizer], "olek"));
+    for team in ["t1", "t2", "t3", "t4"] {
+        register(
+            &mut engine,
+            &caller(&format!("{team}-m"), &[Role::Analyst], team),
+        );
+    }
     let target = |name: &str| TargetDecl {
         name: name.into(),
         column: name.into(),
@@ -192,4 +209,6 @@ fn a_two_target_round_ranks_and_compares_within_each_target() {
         },
     );
     assert!(report.clean(), "{:#?}", report.findings);
+    // Four sealed entries and their four answers in the round, each against @users.
+    assert_eq!(report.identity_checked, 8);
 }

@@ -10,7 +10,7 @@ use std::sync::Arc;
 use chrono::{TimeZone, Utc};
 use holdout_ledger::audit::export::Export;
 use holdout_ledger::audit::{AuditOptions, audit};
-use holdout_ledger::auth::{Caller, Role};
+use holdout_ledger::auth::{self, Caller, Role};
 use holdout_ledger::engine::{
     CreateRequest, Engine, FixedClock, HistoryItem, ModelPredictions, PolicyInput, RawValues,
     SubmitMode, SubmitOutcome, SubmitRequest, TargetDecl,
@@ -56,7 +56,23 @@ fn engine(path: &std::path::Path) -> Engine {
     Engine::new(Store::open(path).unwrap(), clock)
 }
 
+/// Records `who` in the identity chain as the daemon does when a user is added, so the ledger's
+/// entries name users the audit can find.
+fn register(e: &mut Engine, who: &Caller) {
+    let now = e.now();
+    e.write(|w| auth::add_user(w, &who.name, &who.roles, Some(&who.team), "cora", now))
+        .unwrap();
+}
+
 fn create(e: &mut Engine) {
+    register(
+        e,
+        &caller("cora", &[Role::Custodian, Role::Organizer], "cora"),
+    );
+    register(e, &organizer());
+    for team in ["red", "blue", "green", "gold"] {
+        register(e, &analyst(team));
+    }
     e.create_holdout(
         &caller("cora", &[Role::Custodian, Role::Organizer], "cora"),
         CreateRequest {
@@ -258,6 +274,13 @@ fn a_replayed_file_that_fixes_the_ladder_is_adopted_free_and_one_that_does_not_i
     let report = audit(&ex, AuditOptions::default());
     assert!(report.clean(), "{:#?}", report.findings);
     assert!(ex.entries.iter().any(|x| x.kind == "adopt"));
+    // Every answer and adoption names a user and team of @users, and each was checked.
+    let named = ex
+        .entries
+        .iter()
+        .filter(|x| matches!(x.kind(), Some(ledger::Kind::Answer | ledger::Kind::Adopt)))
+        .count() as u64;
+    assert_eq!(report.identity_checked, named);
 
     // A tampered adoption is found: its interval edited, or its source swapped for a file
     // whose answer fixes nothing.

@@ -2,7 +2,9 @@
 //!
 //! A checkpoint says "chain NAME had entry SEQ with hash H at time T", signed by the daemon.
 //! Kept outside the daemon, it makes a rebuilt or truncated chain detectable: the audit checks
-//! that the exported chain still has entry SEQ with hash H.
+//! that the exported chain still has entry SEQ with hash H. A checkpoint of a holdout
+//! (format `/2`) also signs the identity chain's head read at the same moment, so the users and
+//! teams the holdout's entries name are anchored with them.
 
 use std::path::Path;
 
@@ -13,13 +15,19 @@ use serde::{Deserialize, Serialize};
 use crate::error::{Error, Result};
 use crate::ledger;
 
-/// Version tag of a checkpoint file and of the signed text.
-pub const CHECKPOINT_FORMAT: &str = "holdout-ledger-checkpoint/1";
+/// Version tag of the checkpoints this binary writes for a holdout: the holdout's head and the
+/// identity chain's head, both in the signed text.
+pub const CHECKPOINT_FORMAT: &str = "holdout-ledger-checkpoint/2";
+
+/// Version tag of a checkpoint of one chain head only: written by 0.1.0, for the identity
+/// chain itself (`@users`), and for callers who may not learn the identity chain's head.
+/// Such files still verify.
+pub const CHECKPOINT_FORMAT_V1: &str = "holdout-ledger-checkpoint/1";
 
 /// A signed checkpoint of a chain head, as written to a file.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Checkpoint {
-    /// Always [`CHECKPOINT_FORMAT`].
+    /// [`CHECKPOINT_FORMAT`] or [`CHECKPOINT_FORMAT_V1`].
     pub format: String,
     /// Chain (holdout) name.
     pub holdout: String,
@@ -27,6 +35,12 @@ pub struct Checkpoint {
     pub seq: u64,
     /// Hex hash of the head entry.
     pub head_hash: String,
+    /// Format `/2`: number of the identity chain's head entry at the same moment.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub users_seq: Option<u64>,
+    /// Format `/2`: hex hash of that entry.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub users_head_hash: Option<String>,
     /// Time of signing, RFC 3339 UTC.
     pub at: String,
     /// Hex Ed25519 public key of the daemon.
@@ -35,20 +49,57 @@ pub struct Checkpoint {
     pub signature: String,
 }
 
+/// The head of a chain: its last entry's number and hash.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Head {
+    /// Entry number.
+    pub seq: u64,
+    /// Hex hash.
+    pub hash: String,
+}
+
 impl Checkpoint {
-    /// The exact bytes signed: the format tag and each field on its own line.
-    pub fn signed_text(holdout: &str, seq: u64, head_hash: &str, at: &str) -> String {
-        format!("{CHECKPOINT_FORMAT}\n{holdout}\n{seq}\n{head_hash}\n{at}\n")
+    /// The exact bytes signed: the format tag and each field on its own line. `/1`:
+    /// `FORMAT\nHOLDOUT\nSEQ\nHEAD_HASH\nAT\n`; `/2` adds `USERS_SEQ\nUSERS_HEAD_HASH\n`
+    /// before `AT`. A field the format does not sign must be absent (an unsigned field would
+    /// be taken for a signed one), and one it signs must be present.
+    pub fn signed_text(&self) -> std::result::Result<String, String> {
+        let (holdout, seq, head, at) = (&self.holdout, self.seq, &self.head_hash, &self.at);
+        match (self.format.as_str(), self.users_seq, &self.users_head_hash) {
+            (CHECKPOINT_FORMAT_V1, None, None) => Ok(format!(
+                "{CHECKPOINT_FORMAT_V1}\n{holdout}\n{seq}\n{head}\n{at}\n"
+            )),
+            (CHECKPOINT_FORMAT_V1, ..) => Err(format!(
+                "a {CHECKPOINT_FORMAT_V1} checkpoint signs no identity head, but this one has \
+                 users_seq or users_head_hash"
+            )),
+            (CHECKPOINT_FORMAT, Some(users_seq), Some(users_head)) => Ok(format!(
+                "{CHECKPOINT_FORMAT}\n{holdout}\n{seq}\n{head}\n{users_seq}\n{users_head}\n{at}\n"
+            )),
+            (CHECKPOINT_FORMAT, ..) => Err(format!(
+                "a {CHECKPOINT_FORMAT} checkpoint must carry users_seq and users_head_hash"
+            )),
+            (other, ..) => Err(format!(
+                "format is {other:?}, this binary reads {CHECKPOINT_FORMAT_V1} and \
+                 {CHECKPOINT_FORMAT}"
+            )),
+        }
+    }
+
+    /// The identity chain's head this checkpoint signs (format `/2`), if any.
+    pub fn users_head(&self) -> Option<Head> {
+        match (self.users_seq, &self.users_head_hash) {
+            (Some(seq), Some(hash)) => Some(Head {
+                seq,
+                hash: hash.clone(),
+            }),
+            _ => None,
+        }
     }
 
     /// Checks the signature against the key the checkpoint names. Returns why it fails.
     pub fn verify_signature(&self) -> std::result::Result<(), String> {
-        if self.format != CHECKPOINT_FORMAT {
-            return Err(format!(
-                "format is {:?}, this binary reads {CHECKPOINT_FORMAT}",
-                self.format
-            ));
-        }
+        let text = self.signed_text()?;
         let key: [u8; 32] = hex::decode(&self.public_key)
             .ok()
             .and_then(|b| b.try_into().ok())
@@ -58,7 +109,6 @@ impl Checkpoint {
             .ok()
             .and_then(|b| b.try_into().ok())
             .ok_or("signature is not 64 hex bytes")?;
-        let text = Checkpoint::signed_text(&self.holdout, self.seq, &self.head_hash, &self.at);
         key.verify_strict(text.as_bytes(), &Signature::from_bytes(&sig))
             .map_err(|_| "the signature does not match the checkpoint's fields".to_string())
     }
@@ -114,26 +164,82 @@ pub fn signing_key(conn: &Connection) -> Result<SigningKey> {
     Ok(key)
 }
 
-/// Signs a checkpoint of `holdout`'s current head.
-pub fn checkpoint(conn: &Connection, holdout: &str, at: &str) -> Result<Checkpoint> {
-    let (seq, head_hash) =
-        ledger::head(conn, holdout)?.ok_or_else(|| Error::not_found("holdout", holdout))?;
-    let key = signing_key(conn)?;
-    Ok(sign(&key, holdout, seq, &head_hash, at))
+fn head_of(conn: &Connection, chain: &str) -> Result<Option<Head>> {
+    Ok(ledger::head(conn, chain)?.map(|(seq, hash)| Head { seq, hash }))
 }
 
-/// Signs the given head with `key`.
-pub fn sign(key: &SigningKey, holdout: &str, seq: u64, head_hash: &str, at: &str) -> Checkpoint {
-    let text = Checkpoint::signed_text(holdout, seq, head_hash, at);
-    Checkpoint {
-        format: CHECKPOINT_FORMAT.to_string(),
+/// Starts a read transaction on `conn` unless it is inside one already (then its snapshot is
+/// the caller's), so heads read until it ends are the heads of one moment.
+fn snapshot(conn: &Connection) -> Result<Option<rusqlite::Transaction<'_>>> {
+    Ok(if conn.is_autocommit() {
+        Some(conn.unchecked_transaction()?)
+    } else {
+        None
+    })
+}
+
+/// Reads the heads of `chain` and of the identity chain in one read transaction (when the
+/// connection is not already inside one), so both are the heads of the same moment.
+fn heads(conn: &Connection, chain: &str) -> Result<(Option<Head>, Option<Head>)> {
+    let tx = snapshot(conn)?;
+    let out = (head_of(conn, chain)?, head_of(conn, ledger::USERS_CHAIN)?);
+    if let Some(tx) = tx {
+        tx.commit()?;
+    }
+    Ok(out)
+}
+
+/// Signs a checkpoint of `holdout`'s current head and, for a holdout, of the identity chain's
+/// head at the same moment (format `/2`). A checkpoint of the identity chain itself, or of a
+/// holdout in a database without identity events, signs the one head (format `/1`).
+pub fn checkpoint(conn: &Connection, holdout: &str, at: &str) -> Result<Checkpoint> {
+    let key = signing_key(conn)?;
+    let (head, users) = heads(conn, holdout)?;
+    let head = head.ok_or_else(|| Error::not_found("holdout", holdout))?;
+    let users = users.filter(|_| holdout != ledger::USERS_CHAIN);
+    Ok(sign(&key, holdout, &head, users.as_ref(), at))
+}
+
+/// Signs a checkpoint of `holdout`'s current head alone (format `/1`), for callers who may
+/// not learn the identity chain's head (its number counts every user and token event).
+pub fn checkpoint_without_identity(
+    conn: &Connection,
+    holdout: &str,
+    at: &str,
+) -> Result<Checkpoint> {
+    let key = signing_key(conn)?;
+    let head = head_of(conn, holdout)?.ok_or_else(|| Error::not_found("holdout", holdout))?;
+    Ok(sign(&key, holdout, &head, None, at))
+}
+
+/// Signs the given head with `key`, with the identity chain's head when given (format `/2`).
+pub fn sign(
+    key: &SigningKey,
+    holdout: &str,
+    head: &Head,
+    users: Option<&Head>,
+    at: &str,
+) -> Checkpoint {
+    let mut cp = Checkpoint {
+        format: match users {
+            Some(_) => CHECKPOINT_FORMAT,
+            None => CHECKPOINT_FORMAT_V1,
+        }
+        .to_string(),
         holdout: holdout.to_string(),
-        seq,
-        head_hash: head_hash.to_string(),
+        seq: head.seq,
+        head_hash: head.hash.clone(),
+        users_seq: users.map(|u| u.seq),
+        users_head_hash: users.map(|u| u.hash.clone()),
         at: at.to_string(),
         public_key: hex::encode(key.verifying_key().to_bytes()),
-        signature: hex::encode(key.sign(text.as_bytes()).to_bytes()),
-    }
+        signature: String::new(),
+    };
+    let text = cp
+        .signed_text()
+        .expect("the format matches the identity fields it was built with");
+    cp.signature = hex::encode(key.sign(text.as_bytes()).to_bytes());
+    cp
 }
 
 /// Names of every holdout with a chain.
@@ -153,24 +259,34 @@ pub fn write(path: &Path, cp: &Checkpoint) -> Result<()> {
         .map_err(|e| Error::invalid(path.display().to_string(), format!("cannot write: {e}")))
 }
 
-/// Signs the head of every holdout, and of the identity chain (`@users-SEQ`), into `dir` as
-/// `NAME-SEQ.checkpoint.json`, skipping heads
-/// already written; returns the files written. The daemon calls this periodically
-/// (`serve --checkpoint-dir`), so the operator can ship the files elsewhere.
+/// Signs the head of every holdout (with the identity chain's head, format `/2`), and of the
+/// identity chain itself (`@users-SEQ`, format `/1`), into `dir` as `NAME-SEQ.checkpoint.json`,
+/// skipping heads already written; returns the files written. Every head is read in one read
+/// transaction, so the files of one call describe one moment. The daemon calls this
+/// periodically (`serve --checkpoint-dir`), so the operator can ship the files elsewhere.
 pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std::path::PathBuf>> {
     let key = signing_key(conn)?;
+    let tx = snapshot(conn)?;
+    let users = head_of(conn, ledger::USERS_CHAIN)?;
+    let mut signed = Vec::new();
+    for name in holdout_names(conn)? {
+        if let Some(h) = head_of(conn, &name)? {
+            signed.push(sign(&key, &name, &h, users.as_ref(), at));
+        }
+    }
+    if let Some(u) = &users {
+        signed.push(sign(&key, ledger::USERS_CHAIN, u, None, at));
+    }
+    if let Some(tx) = tx {
+        tx.commit()?;
+    }
     let mut written = Vec::new();
-    let mut names = holdout_names(conn)?;
-    names.push(ledger::USERS_CHAIN.to_string());
-    for name in names {
-        let Some((seq, head_hash)) = ledger::head(conn, &name)? else {
-            continue;
-        };
-        let path = dir.join(format!("{name}-{seq}.checkpoint.json"));
+    for cp in signed {
+        let path = dir.join(format!("{}-{}.checkpoint.json", cp.holdout, cp.seq));
         if path.exists() {
             continue;
         }
-        write(&path, &sign(&key, &name, seq, &head_hash, at))?;
+        write(&path, &cp)?;
         written.push(path);
     }
     Ok(written)
@@ -187,14 +303,116 @@ mod tests {
         let a = signing_key(store.conn())?;
         let b = signing_key(store.conn())?;
         assert_eq!(a.to_bytes(), b.to_bytes());
-        let cp = sign(&a, "h", 3, &"ab".repeat(32), "2026-01-01T00:00:00Z");
+        let head = Head {
+            seq: 3,
+            hash: "ab".repeat(32),
+        };
+        let cp = sign(&a, "h", &head, None, "2026-01-01T00:00:00Z");
+        assert_eq!(cp.format, CHECKPOINT_FORMAT_V1);
         assert_eq!(cp.verify_signature(), Ok(()));
         let mut forged = cp.clone();
         forged.seq = 2;
         assert!(forged.verify_signature().is_err());
-        let mut other_hash = cp;
+        let mut other_hash = cp.clone();
         other_hash.head_hash = "cd".repeat(32);
         assert!(other_hash.verify_signature().is_err());
+        // Identity fields added to a /1 checkpoint are not signed: refused, not ignored.
+        let mut unsigned = cp;
+        unsigned.users_seq = Some(0);
+        unsigned.users_head_hash = Some("ef".repeat(32));
+        assert!(
+            unsigned
+                .verify_signature()
+                .unwrap_err()
+                .contains("signs no identity")
+        );
+        Ok(())
+    }
+
+    #[test]
+    fn a_v2_checkpoint_signs_both_heads() -> Result<()> {
+        let mut store = Store::open_in_memory()?;
+        let key = signing_key(store.conn())?;
+        let head = Head {
+            seq: 3,
+            hash: "ab".repeat(32),
+        };
+        let users = Head {
+            seq: 7,
+            hash: "cd".repeat(32),
+        };
+        let cp = sign(&key, "h", &head, Some(&users), "2026-01-01T00:00:00Z");
+        assert_eq!(cp.format, CHECKPOINT_FORMAT);
+        assert_eq!(
+            cp.signed_text().unwrap(),
+            format!(
+                "holdout-ledger-checkpoint/2\nh\n3\n{}\n7\n{}\n2026-01-01T00:00:00Z\n",
+                head.hash, users.hash
+            )
+        );
+        assert_eq!(cp.verify_signature(), Ok(()));
+        assert_eq!(cp.users_head(), Some(users));
+        let mut moved = cp.clone();
+        moved.users_seq = Some(6);
+        assert!(moved.verify_signature().is_err());
+        let mut rehashed = cp.clone();
+        rehashed.users_head_hash = Some("ee".repeat(32));
+        assert!(rehashed.verify_signature().is_err());
+        // Dropping the identity head does not turn it into a valid /1 checkpoint.
+        let mut stripped = cp.clone();
+        stripped.users_seq = None;
+        stripped.users_head_hash = None;
+        assert!(stripped.verify_signature().is_err());
+        stripped.format = CHECKPOINT_FORMAT_V1.into();
+        assert!(stripped.verify_signature().is_err());
+        // The identity fields round-trip through the file format.
+        let text = serde_json::to_string(&cp).unwrap();
+        assert!(text.contains("\"users_seq\":7"), "{text}");
+        assert_eq!(serde_json::from_str::<Checkpoint>(&text).unwrap(), cp);
+        Ok(())
+    }
+
+    #[test]
+    fn a_holdout_checkpoint_signs_the_identity_head_of_the_same_moment() -> Result<()> {
+        use serde_json::json;
+        let mut engine = crate::engine::Engine::new(
+            Store::open_in_memory()?,
+            std::sync::Arc::new(crate::engine::SystemClock),
+        );
+        engine.write(|e| e.append("h", ledger::Kind::Genesis, &json!({"i": 0}), None))?;
+        let store = engine.store();
+        // No identity event yet: nothing to anchor but the holdout.
+        let cp = checkpoint(store.conn(), "h", "2026-01-01T00:00:00Z")?;
+        assert_eq!(cp.format, CHECKPOINT_FORMAT_V1);
+        engine.write(|w| {
+            crate::auth::add_user(
+                w,
+                "ana",
+                &[crate::auth::Role::Analyst],
+                Some("blue"),
+                "root",
+                chrono::Utc::now(),
+            )
+        })?;
+        let store = engine.store();
+        let users = ledger::read_chain(store.conn(), ledger::USERS_CHAIN)?;
+        let cp = checkpoint(store.conn(), "h", "2026-01-01T00:00:00Z")?;
+        assert_eq!(cp.format, CHECKPOINT_FORMAT);
+        assert_eq!(cp.users_seq, Some(0));
+        assert_eq!(cp.users_head_hash.as_deref(), Some(users[0].hash.as_str()));
+        assert_eq!(cp.verify_signature(), Ok(()));
+        // The identity chain's own checkpoint, and one without identity, sign one head.
+        let own = checkpoint(store.conn(), ledger::USERS_CHAIN, "2026-01-01T00:00:00Z")?;
+        assert_eq!(
+            (own.format.as_str(), own.users_seq),
+            (CHECKPOINT_FORMAT_V1, None)
+        );
+        let bare = checkpoint_without_identity(store.conn(), "h", "2026-01-01T00:00:00Z")?;
+        assert_eq!(
+            (bare.format.as_str(), bare.users_seq),
+            (CHECKPOINT_FORMAT_V1, None)
+        );
+        assert_eq!(bare.verify_signature(), Ok(()));
         Ok(())
     }
 

@@ -111,6 +111,10 @@ pub struct Report {
     pub entries: u64,
     /// Entries in the identity chain.
     pub identity_events: u64,
+    /// Answers, adoptions, sealed entries and round answers whose user and team were checked
+    /// against the identity chain (each must name a user added at or before it, not revoked
+    /// before it, in that team).
+    pub identity_checked: u64,
     /// Versions recorded in the genesis entry.
     pub versions: Value,
     /// Answered queries, in order.
@@ -399,10 +403,57 @@ fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Repo
             });
         }
         if !foreign {
-            report.checkpoints.push(format!(
-                "{file}: entry {} at {} (key {})",
-                cp.seq, cp.at, cp.public_key
-            ));
+            report.checkpoints.push(match cp.users_head() {
+                Some(u) => format!(
+                    "{file}: entry {} and {} entry {} at {} (key {})",
+                    cp.seq,
+                    ledger::USERS_CHAIN,
+                    u.seq,
+                    cp.at,
+                    cp.public_key
+                ),
+                None => format!(
+                    "{file}: entry {} at {} (key {})",
+                    cp.seq, cp.at, cp.public_key
+                ),
+            });
+        }
+        // Format /2 also anchors the identity chain's head of the same moment: a rewritten
+        // (hashes recomputed) or deleted identity chain no longer has that entry.
+        if let Some(u) = cp.users_head() {
+            let mut g = |field: &str, problem: String| {
+                report.findings.push(Finding {
+                    chain: ledger::USERS_CHAIN.into(),
+                    entry: Some(u.seq),
+                    field: format!("checkpoint {file}: {field}"),
+                    problem,
+                })
+            };
+            match export.users.get(u.seq as usize) {
+                None => g(
+                    "users_seq",
+                    format!(
+                        "the checkpoint anchors entry {} of {} but the export's {} ends at \
+                         entry {}: truncated or deleted identity events",
+                        u.seq,
+                        ledger::USERS_CHAIN,
+                        ledger::USERS_CHAIN,
+                        export.users.len() as i64 - 1
+                    ),
+                ),
+                Some(e) if e.hash != u.hash || e.seq != u.seq => g(
+                    "users_head_hash",
+                    format!(
+                        "{} entry {} has hash {}, the checkpoint signed {}: the identity chain \
+                         was rebuilt or changed",
+                        ledger::USERS_CHAIN,
+                        u.seq,
+                        e.hash,
+                        u.hash
+                    ),
+                ),
+                Some(_) => {}
+            }
         }
     }
     let keys: std::collections::BTreeSet<&str> = opts
@@ -536,6 +587,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         holdout: chain.clone(),
         entries: export.entries.len() as u64,
         identity_events: export.users.len() as u64,
+        identity_checked: 0,
         versions: Value::Null,
         queries: Vec::new(),
         checked: Default::default(),
@@ -597,6 +649,9 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     }
     check_checkpoints(export, &opts, &mut report);
     check_receipts(export, &opts, &mut report);
+    let identities = super::identity::check(export);
+    report.identity_checked = identities.checked;
+    report.findings.extend(identities.findings);
     let Some((policy, genesis)) = genesis_policy(export, &mut report.findings) else {
         return report;
     };

@@ -7,6 +7,7 @@
 //! | the daemon's key, signed checkpoints | [`anchor`] |
 //! | prediction digests shared with the daemon | `digest` ([`predictions_digest`]) |
 //! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
+//! | every entry's user and team against the identity chain | `identity` |
 //! | replay of every answer and refusal | `replay` ([`QuerySummary`]) |
 //! | `--find`, re-scoring, what-if replays | [`trace`] |
 //! | certificates of one answer from an export and a checkpoint | [`certify`] |
@@ -18,6 +19,7 @@ mod check;
 mod digest;
 pub mod export;
 pub mod family;
+mod identity;
 mod replay;
 pub mod trace;
 

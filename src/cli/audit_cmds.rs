@@ -243,11 +243,25 @@ async fn fetch_checkpoint(conn: &Conn, name: &str) -> anyhow::Result<Checkpoint>
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
+    // A daemon before format /2 leaves `format` empty and signs the holdout's head alone. The
+    // identity head is kept only when the format signs it: an unknown format keeps its tag and
+    // fails verification rather than being read as another.
+    let format = match c.format.as_str() {
+        "" => anchor::CHECKPOINT_FORMAT_V1.to_string(),
+        _ => c.format,
+    };
+    let (users_seq, users_head_hash) = if format == anchor::CHECKPOINT_FORMAT {
+        (Some(c.users_seq), Some(c.users_head_hash))
+    } else {
+        (None, None)
+    };
     Ok(Checkpoint {
-        format: anchor::CHECKPOINT_FORMAT.into(),
+        format,
         holdout: c.holdout,
         seq: c.seq,
         head_hash: c.head_hash,
+        users_seq,
+        users_head_hash,
         at: c.at,
         public_key: c.public_key,
         signature: c.signature,

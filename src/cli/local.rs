@@ -30,10 +30,11 @@ pub struct ServeArgs {
     /// Log filter (tracing's env-filter syntax), e.g. `info` or `holdout_ledger=debug`.
     #[arg(long, env = "HOLDOUT_LOG", default_value = "info")]
     pub log: String,
-    /// Write signed checkpoints of every holdout's chain head into this directory
-    /// (`NAME-SEQ.checkpoint.json`, one per new head), at start and every --checkpoint-every
-    /// seconds, when a sealed round closes at its deadline, and once more at shutdown; ship
-    /// them elsewhere and pass them to `holdout audit --checkpoint`.
+    /// Write signed checkpoints of every holdout's chain head, each with the identity chain's
+    /// head of the same moment, into this directory (`NAME-SEQ.checkpoint.json`, one per new
+    /// head; `@users-SEQ.checkpoint.json` for the identity chain alone), at start and every
+    /// --checkpoint-every seconds, when a sealed round closes at its deadline, and once more at
+    /// shutdown; ship them elsewhere and pass them to `holdout audit --checkpoint`.
     #[arg(long, value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
     /// Accept a non-loopback --listen address without TLS. This version has no TLS of its own:
@@ -199,7 +200,8 @@ async fn write_checkpoints(db: Db, dir: PathBuf, secs: u64) {
     }
 }
 
-/// Signs every holdout's head not yet signed into `dir`, logging what was written.
+/// Signs every holdout's head not yet signed (with the identity chain's head, format /2) and
+/// the identity chain's own head into `dir`, logging what was written.
 async fn checkpoint_now(db: &Db, dir: PathBuf) {
     let done = db
         .call(move |engine| {

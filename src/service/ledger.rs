@@ -89,7 +89,17 @@ impl Ledger for Daemon {
                     )));
                 }
                 let at = rfc3339(engine.now());
-                anchor::checkpoint(engine.store().conn(), &name, &at)
+                // The identity chain's head is signed with the holdout's (format /2) for the
+                // roles that may take a checkpoint of @users; others get the holdout's head
+                // alone (/1), since the identity head counts every user and token event.
+                if caller.has(Role::Organizer)
+                    || caller.has(Role::Auditor)
+                    || caller.has(Role::Custodian)
+                {
+                    anchor::checkpoint(engine.store().conn(), &name, &at)
+                } else {
+                    anchor::checkpoint_without_identity(engine.store().conn(), &name, &at)
+                }
             })
             .await?;
         Ok(Response::new(SignedCheckpoint {
@@ -99,6 +109,9 @@ impl Ledger for Daemon {
             at: cp.at,
             public_key: cp.public_key,
             signature: cp.signature,
+            format: cp.format,
+            users_seq: cp.users_seq.unwrap_or_default(),
+            users_head_hash: cp.users_head_hash.unwrap_or_default(),
         }))
     }
 }

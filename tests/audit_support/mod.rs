@@ -114,6 +114,14 @@ impl Generated {
         self.submit_values(t, preds, "")
     }
 
+    /// One submission by `caller` as given (the engine takes the caller's name and team as
+    /// authenticated; tests use this to write entries the identity chain does not back).
+    #[allow(dead_code)]
+    pub fn submit_as(&mut self, caller: &Caller, accuracy: u64) -> SubmitOutcome {
+        let preds = self.predictions(accuracy);
+        self.submit_values_as(caller, preds, "")
+    }
+
     /// Predictions that agree with the labels on about `accuracy` percent of rows.
     pub fn predictions(&mut self, accuracy: u64) -> Vec<String> {
         (0..self.labels.len())
@@ -153,10 +161,20 @@ impl Generated {
     /// One submission of `preds` (in row order) by team `t`, with a note.
     pub fn submit_values(&mut self, t: usize, preds: Vec<String>, note: &str) -> SubmitOutcome {
         let caller = self.analysts[t].clone();
+        self.submit_values_as(&caller, preds, note)
+    }
+
+    /// One submission of `preds` (in row order) by `caller` as given, with a note.
+    pub fn submit_values_as(
+        &mut self,
+        caller: &Caller,
+        preds: Vec<String>,
+        note: &str,
+    ) -> SubmitOutcome {
         let out = self
             .engine
             .submit(
-                &caller,
+                caller,
                 SubmitRequest {
                     holdout: self.name.clone(),
                     target: String::new(),
@@ -198,6 +216,22 @@ impl Generated {
     /// Adds a user and returns them as a caller.
     pub fn user(&mut self, name: &str, roles: &[Role], team: Option<&str>) -> Caller {
         caller(&mut self.engine, name, roles, team)
+    }
+
+    /// Revokes a user now (a `user-revoked` event, as `holdout user revoke` records it).
+    pub fn revoke(&mut self, name: &str) {
+        let now = self.engine.now();
+        self.engine
+            .write(|w| auth::revoke_user(w, name, "custodian", now))
+            .unwrap();
+    }
+
+    /// Rotates a user's token now (a `token-rotated` event).
+    pub fn rotate(&mut self, name: &str) {
+        let now = self.engine.now();
+        self.engine
+            .write(|w| auth::rotate_token(w, name, now))
+            .unwrap();
     }
 
     /// Advances the fixed clock.
@@ -246,6 +280,28 @@ impl Generated {
         let name = self.name.clone();
         holdout_ledger::audit::anchor::checkpoint(self.engine.store().conn(), &name, &at).unwrap()
     }
+}
+
+/// Recomputes links and hashes from position `from` on, as someone rebuilding a chain would.
+pub fn rehash(entries: &mut [ledger::Entry], from: usize) {
+    for i in from..entries.len() {
+        let prev = if i == 0 {
+            ledger::ZERO_HASH.to_string()
+        } else {
+            entries[i - 1].hash.clone()
+        };
+        let e = &mut entries[i];
+        e.seq = i as u64;
+        e.prev_hash = prev;
+        e.hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+    }
+}
+
+/// Changes an entry's body (kept canonical); the hashes are left for [`rehash`].
+pub fn edit_body(e: &mut ledger::Entry, f: impl FnOnce(&mut serde_json::Value)) {
+    let mut v: serde_json::Value = serde_json::from_str(&e.body).unwrap();
+    f(&mut v);
+    e.body = ledger::canonical_json(&v);
 }
 
 /// A small ledger with answers, a refusal past the tolerance, two teams and a read.
