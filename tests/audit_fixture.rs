@@ -1,7 +1,9 @@
 //! Compatibility: ledgers written by each released version are kept under
 //! `tests/fixtures/ledgers/` (export, labels, a signed checkpoint), and every later version must
 //! audit them clean. Regenerate this version's fixture with
-//! `cargo test --test audit_fixture -- --ignored write_fixture` (never overwrite an older one).
+//! `cargo test --test audit_fixture -- --ignored write_` (never overwrite an older one): an open
+//! holdout (`vX.Y.Z`) and, from 0.2.0, a closed sealed round with a daily quota
+//! (`vX.Y.Z-round`).
 
 mod audit_support;
 
@@ -56,6 +58,49 @@ fn write_fixture() {
     let ex = g.export();
     let kinds: Vec<&str> = ex.entries.iter().map(|e| e.kind.as_str()).collect();
     assert!(kinds.contains(&"answer") && kinds.contains(&"refusal") && kinds.contains(&"close"));
+    ex.write_file(&export_path).unwrap();
+    let mut csv = String::from("id,label\n");
+    for (id, l) in g.ids.iter().zip(&g.labels) {
+        csv.push_str(&format!("{id},{l}\n"));
+    }
+    std::fs::write(file("labels.csv"), csv).unwrap();
+    anchor::write(&file("checkpoint.json"), &g.checkpoint()).unwrap();
+}
+
+#[test]
+#[ignore = "writes this version's sealed-round fixture; run by hand at release time"]
+fn write_round_fixture() {
+    let version = env!("CARGO_PKG_VERSION");
+    let file = |what: &str| dir().join(format!("v{version}-round.{what}"));
+    let export_path = file("export.jsonl");
+    assert!(
+        !export_path.exists(),
+        "{} exists: fixtures of a released version are never rewritten",
+        export_path.display()
+    );
+    let policy = PolicyInput {
+        delta: 0.05,
+        schedule: "series".into(),
+        answers: "sealed:0.01".into(),
+        tolerance: 0.3,
+        daily_quota: 2,
+        ..PolicyInput::default()
+    };
+    let mut g = audit_support::Generated::new("round-fixture", 300, policy, 3, 2027);
+    // Three teams; team 0 sends a third entry the same day (refused for the quota).
+    for (t, accuracy) in [(0, 70), (1, 80), (2, 88), (0, 74), (0, 76), (1, 82)] {
+        g.advance(900);
+        g.submit(t, accuracy);
+    }
+    let organizer = g.user("olga", &[Role::Organizer], None);
+    g.advance(60);
+    let name = g.name.clone();
+    g.engine
+        .close_holdout(&organizer, &name, "round complete")
+        .unwrap();
+    let ex = g.export();
+    let kinds: Vec<&str> = ex.entries.iter().map(|e| e.kind.as_str()).collect();
+    assert!(kinds.contains(&"sealed") && kinds.contains(&"refusal") && kinds.contains(&"round"));
     ex.write_file(&export_path).unwrap();
     let mut csv = String::from("id,label\n");
     for (id, l) in g.ids.iter().zip(&g.labels) {

@@ -49,7 +49,7 @@ from .types import (
     Validation,
 )
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 __all__ = [
     "connect", "Client", "DEFAULT_SERVER", "CHUNK_ROWS",
