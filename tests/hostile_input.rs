@@ -199,3 +199,34 @@ async fn roles_and_ids_are_checked_before_anything_is_buffered() {
     );
     assert_eq!(answered(&d, &alice), 0, "nothing was charged");
 }
+
+#[test]
+fn explicit_zero_ranking_share_and_long_descriptions_are_refused() {
+    let d = Daemon::start();
+    let labels = d.write("labels.csv", &Parts::new(N).labels_csv());
+    let base = [
+        "create",
+        "round",
+        "--labels",
+        labels.as_str(),
+        "--target",
+        "defect:defect:error",
+        "--classes",
+        "crack,dent,ok",
+        "--answers",
+        "sealed:0.05",
+    ];
+    let mut args = base.to_vec();
+    args.extend(["--ranking-share", "0"]);
+    let r = d.admin(&args).code(2);
+    assert!(r.stderr.contains("--ranking-share"), "{}", r.stderr);
+    let long = "d".repeat(100_000);
+    let mut args = base.to_vec();
+    args.extend(["--description", long.as_str()]);
+    let r = d.admin(&args).code(2);
+    assert!(r.stderr.contains("description"), "{}", r.stderr);
+    assert!(r.stderr.len() < 2_000, "the error must not echo the value");
+    // Nothing was created by either; `list` keeps working.
+    let list = d.admin(&["list", "--json"]).ok().stdout;
+    assert!(!list.contains("\"round\""), "{list}");
+}

@@ -82,6 +82,9 @@ pub(crate) fn versions() -> serde_json::Value {
     })
 }
 
+/// Longest holdout description: it is shown to every user and written to the ledger.
+pub(crate) const MAX_DESCRIPTION_CHARS: usize = 4_000;
+
 impl Engine {
     /// Creates a holdout (custodian).
     pub fn create_holdout(
@@ -103,6 +106,16 @@ impl Engine {
     ) -> Result<super::HoldoutView> {
         caller.require("creating a holdout", &[Role::Custodian])?;
         check_name("holdout name", &req.name)?;
+        let description_chars = req.description.chars().count();
+        if description_chars > MAX_DESCRIPTION_CHARS {
+            return Err(Error::invalid(
+                "description",
+                format!(
+                    "at most {MAX_DESCRIPTION_CHARS} characters, got {description_chars} (it is \
+                     shown to every user and kept in the append-only ledger)"
+                ),
+            ));
+        }
         if let Some(f) = &family {
             check_name("family name", &f.name)?;
             if let Some(t) = f.total

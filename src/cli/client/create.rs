@@ -415,6 +415,16 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         )
         .into());
     }
+    // 0 on the wire means "the default"; given explicitly it is a mistake, not the default.
+    if let Some(s) = args.ranking_share
+        && !(s > 0.0 && s < 1.0)
+    {
+        return Err(Error::invalid(
+            "--ranking-share",
+            format!("must lie in (0, 1) (a fraction of delta), got {s}"),
+        )
+        .into());
+    }
     let specs = targets_of(args)?;
     let mut columns: Vec<String> = Vec::new();
     for s in &specs {
