@@ -12,7 +12,7 @@ use clap::Args;
 use crate::auth::{self, Role};
 use crate::engine::{Db, Engine, SystemClock};
 use crate::error::Error;
-use crate::server::{DEFAULT_LISTEN, serve as serve_on};
+use crate::server::{DEFAULT_LISTEN, Limits, serve_with_limits as serve_on};
 use crate::service::Daemon;
 use crate::store::Store;
 
@@ -42,6 +42,23 @@ pub struct ServeArgs {
     /// trusted network or behind a TLS-terminating proxy on the same host.
     #[arg(long)]
     pub allow_plaintext_network: bool,
+    /// Connections served at once; more wait to be accepted (each holds a file descriptor).
+    #[arg(long, value_name = "N", default_value_t = 512,
+          value_parser = clap::value_parser!(u64).range(1..=1_000_000))]
+    pub max_connections: u64,
+    /// Seconds a new connection may stay silent before it is closed (clients speak at once).
+    #[arg(long, value_name = "SECS", default_value_t = 5,
+          value_parser = clap::value_parser!(u64).range(1..=3600))]
+    pub handshake_timeout: u64,
+    /// Seconds a connection may stay silent after that (live clients answer the daemon's
+    /// keepalive pings every 20 s, so only dead or idle peers are closed).
+    #[arg(long, value_name = "SECS", default_value_t = 120,
+          value_parser = clap::value_parser!(u64).range(30..=86_400))]
+    pub idle_timeout: u64,
+    /// Concurrent calls per connection.
+    #[arg(long, value_name = "N", default_value_t = 64,
+          value_parser = clap::value_parser!(u32).range(1..=10_000))]
+    pub max_streams_per_connection: u32,
     /// Seconds between checkpoints with --checkpoint-dir.
     #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
           value_parser = clap::value_parser!(u64).range(1..))]
@@ -112,7 +129,13 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         // Tests and scripts read this line to learn the port when they passed port 0.
         println!("listening on {addr}");
         std::io::stdout().flush()?;
-        serve_on(listener, Daemon::new(db.clone()), shutdown_signal()).await?;
+        let limits = Limits {
+            max_connections: args.max_connections as usize,
+            handshake_timeout: std::time::Duration::from_secs(args.handshake_timeout),
+            idle_timeout: std::time::Duration::from_secs(args.idle_timeout),
+            max_streams: args.max_streams_per_connection,
+        };
+        serve_on(listener, Daemon::new(db.clone()), shutdown_signal(), limits).await?;
         // A last checkpoint of every head, so nothing appended since the last tick (a close,
         // the last answers) is left uncovered when the daemon stops.
         if let Some(dir) = args.checkpoint_dir.clone() {

@@ -123,6 +123,11 @@ impl Drop for Daemon {
 impl Daemon {
     /// Initialises a database and starts serving it on an ephemeral port.
     pub fn start() -> Daemon {
+        Daemon::start_with(&[])
+    }
+
+    /// As [`Daemon::start`], with extra `holdout serve` flags.
+    pub fn start_with(extra: &[&str]) -> Daemon {
         let dir = tempfile::tempdir().expect("tempdir");
         let db = dir.path().join("holdout.db");
         let token_file = dir.path().join("admin.token");
@@ -146,6 +151,7 @@ impl Daemon {
         let mut child = holdout()
             .args(["serve", "--listen", "127.0.0.1:0", "--db"])
             .arg(&db)
+            .args(extra)
             .stdin(Stdio::null())
             .stdout(Stdio::piped())
             .stderr(Stdio::from(log))
