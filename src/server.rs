@@ -46,6 +46,18 @@ pub struct Limits {
     pub max_streams: u32,
 }
 
+/// TLS for the daemon: its certificate chain and key (PEM), and optionally the CA that client
+/// certificates must chain to (mutual TLS: clients without one are refused).
+#[derive(Debug, Clone)]
+pub struct Tls {
+    /// Certificate chain, PEM.
+    pub cert_pem: Vec<u8>,
+    /// Private key, PEM.
+    pub key_pem: Vec<u8>,
+    /// CA for client certificates, PEM.
+    pub client_ca_pem: Option<Vec<u8>>,
+}
+
 impl Default for Limits {
     fn default() -> Limits {
         Limits {
@@ -184,7 +196,7 @@ pub async fn serve<F>(listener: TcpListener, daemon: Daemon, shutdown: F) -> Res
 where
     F: Future<Output = ()> + Send + 'static,
 {
-    serve_with_limits(listener, daemon, shutdown, Limits::default()).await
+    serve_with_limits(listener, daemon, shutdown, Limits::default(), None).await
 }
 
 /// Serves the daemon on an already-bound listener until `shutdown` completes.
@@ -196,6 +208,7 @@ pub async fn serve_with_limits<F>(
     daemon: Daemon,
     shutdown: F,
     limits: Limits,
+    tls: Option<Tls>,
 ) -> Result<()>
 where
     F: Future<Output = ()> + Send + 'static,
@@ -264,7 +277,20 @@ where
         }
     };
 
-    Server::builder()
+    let mut builder = Server::builder();
+    if let Some(tls) = tls {
+        let mut config = tonic::transport::ServerTlsConfig::new().identity(
+            tonic::transport::Identity::from_pem(tls.cert_pem, tls.key_pem),
+        );
+        if let Some(ca) = tls.client_ca_pem {
+            config = config.client_ca_root(tonic::transport::Certificate::from_pem(ca));
+        }
+        builder = builder
+            .tls_config(config)
+            .map_err(|e| Error::invalid("--tls-cert", format!("TLS setup failed: {e}")))?;
+        tracing::info!("TLS on");
+    }
+    builder
         .initial_stream_window_size(WINDOW)
         .initial_connection_window_size(WINDOW)
         .http2_keepalive_interval(Some(KEEPALIVE))

@@ -231,6 +231,9 @@ async fn the_daemon_refuses_missing_classes_and_undeclared_labels_storing_nothin
     let conn = Conn::open(&ServerArgs {
         server: d.url.clone(),
         token: Some(d.admin.clone()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     })
     .await
     .expect("connect");

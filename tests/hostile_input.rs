@@ -82,6 +82,9 @@ async fn max_cost_must_be_a_finite_non_negative_number() {
     let conn = Conn::open(&ServerArgs {
         server: d.url.clone(),
         token: Some(alice.clone()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     })
     .await
     .expect("connect");
@@ -145,6 +148,9 @@ async fn roles_and_ids_are_checked_before_anything_is_buffered() {
             Conn::open(&ServerArgs {
                 server: url,
                 token: Some(token),
+                ca: None,
+                client_cert: None,
+                client_key: None,
             })
             .await
             .expect("connect")

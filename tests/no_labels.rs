@@ -24,6 +24,9 @@ async fn open(url: &str, token: &str) -> Conn {
     Conn::open(&ServerArgs {
         server: url.into(),
         token: Some(token.into()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     })
     .await
     .expect("connect")

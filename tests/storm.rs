@@ -75,6 +75,9 @@ async fn conn(url: &str, token: &str) -> Conn {
     Conn::open(&ServerArgs {
         server: url.to_string(),
         token: Some(token.to_string()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     })
     .await
     .expect("connect")
@@ -175,6 +178,9 @@ async fn export(url: &str, auditor: &str) -> Vec<Entry> {
     let c = Conn::open(&ServerArgs {
         server: url.to_string(),
         token: Some(auditor.to_string()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     })
     .await
     .expect("connect");

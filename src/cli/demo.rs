@@ -53,6 +53,9 @@ fn conn(addr: std::net::SocketAddr, token: &str) -> ServerArgs {
     ServerArgs {
         server: format!("http://{addr}"),
         token: Some(token.to_string()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
     }
 }
 

@@ -12,7 +12,7 @@ use clap::Args;
 use crate::auth::{self, Role};
 use crate::engine::{Db, Engine, SystemClock};
 use crate::error::Error;
-use crate::server::{DEFAULT_LISTEN, Limits, serve_with_limits as serve_on};
+use crate::server::{DEFAULT_LISTEN, Limits, Tls, serve_with_limits as serve_on};
 use crate::service::Daemon;
 use crate::store::Store;
 
@@ -37,9 +37,18 @@ pub struct ServeArgs {
     /// shutdown; ship them elsewhere and pass them to `holdout audit --checkpoint`.
     #[arg(long, value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
-    /// Accept a non-loopback --listen address without TLS. This version has no TLS of its own:
-    /// bearer tokens and predictions then cross the network in clear, so use this only on a
-    /// trusted network or behind a TLS-terminating proxy on the same host.
+    /// TLS: the daemon's certificate chain (PEM). With --tls-key, every connection is TLS.
+    #[arg(long, value_name = "FILE", requires = "tls_key")]
+    pub tls_cert: Option<PathBuf>,
+    /// TLS: the daemon's private key (PEM).
+    #[arg(long, value_name = "FILE", requires = "tls_cert")]
+    pub tls_key: Option<PathBuf>,
+    /// Mutual TLS: clients must present a certificate issued by this CA (PEM).
+    #[arg(long, value_name = "FILE", requires = "tls_cert")]
+    pub tls_client_ca: Option<PathBuf>,
+    /// Accept a non-loopback --listen address without TLS (--tls-cert): bearer tokens and
+    /// predictions then cross the network in clear, so use this only on a trusted network or
+    /// behind a TLS-terminating proxy on the same host.
     #[arg(long)]
     pub allow_plaintext_network: bool,
     /// Connections served at once; more wait to be accepted (each holds a file descriptor).
@@ -91,7 +100,28 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         .enable_all()
         .build()
         .context("starting the async runtime")?;
-    check_listen(&args.listen, args.allow_plaintext_network)?;
+    let tls = match (&args.tls_cert, &args.tls_key) {
+        (Some(cert), Some(key)) => {
+            let read = |flag: &str, p: &PathBuf| {
+                std::fs::read(p).map_err(|e| {
+                    Error::invalid(
+                        flag.to_string(),
+                        format!("cannot read {}: {e}", p.display()),
+                    )
+                })
+            };
+            Some(Tls {
+                cert_pem: read("--tls-cert", cert)?,
+                key_pem: read("--tls-key", key)?,
+                client_ca_pem: match &args.tls_client_ca {
+                    Some(p) => Some(read("--tls-client-ca", p)?),
+                    None => None,
+                },
+            })
+        }
+        _ => None,
+    };
+    check_listen(&args.listen, args.allow_plaintext_network || tls.is_some())?;
     runtime.block_on(async move {
         let mut store = Store::open(&args.db)
             .with_context(|| format!("opening database {}", args.db.display()))?;
@@ -135,7 +165,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             idle_timeout: std::time::Duration::from_secs(args.idle_timeout),
             max_streams: args.max_streams_per_connection,
         };
-        serve_on(listener, Daemon::new(db.clone()), shutdown_signal(), limits).await?;
+        serve_on(listener, Daemon::new(db.clone()), shutdown_signal(), limits, tls).await?;
         // A last checkpoint of every head, so nothing appended since the last tick (a close,
         // the last answers) is left uncovered when the daemon stops.
         if let Some(dir) = args.checkpoint_dir.clone() {
@@ -166,9 +196,9 @@ fn check_listen(listen: &str, allowed: bool) -> anyhow::Result<()> {
         return Err(Error::invalid(
             "--listen",
             format!(
-                "{listen} is not a loopback address, and this daemon has no TLS: bearer tokens \
-                 and predictions would cross the network in clear. Listen on 127.0.0.1 behind a \
-                 TLS-terminating proxy, or pass --allow-plaintext-network on a trusted network"
+                "{listen} is not a loopback address and no --tls-cert/--tls-key was given: bearer \
+                 tokens and predictions would cross the network in clear. Give the daemon a \
+                 certificate, or pass --allow-plaintext-network on a trusted network"
             ),
         )
         .into());

@@ -37,6 +37,26 @@ pub struct ServerArgs {
         value_name = "TOKEN"
     )]
     pub token: Option<String>,
+    /// TLS: the CA certificate (PEM) the daemon's certificate must chain to; use an https://
+    /// --server address. Without it, https:// trusts the system's roots.
+    #[arg(long, env = "HOLDOUT_CA", value_name = "FILE")]
+    pub ca: Option<std::path::PathBuf>,
+    /// Mutual TLS: this client's certificate (PEM), with --client-key.
+    #[arg(
+        long,
+        env = "HOLDOUT_CLIENT_CERT",
+        value_name = "FILE",
+        requires = "client_key"
+    )]
+    pub client_cert: Option<std::path::PathBuf>,
+    /// Mutual TLS: this client's private key (PEM).
+    #[arg(
+        long,
+        env = "HOLDOUT_CLIENT_KEY",
+        value_name = "FILE",
+        requires = "client_cert"
+    )]
+    pub client_key: Option<std::path::PathBuf>,
 }
 
 /// Adds `authorization: Bearer TOKEN` to every request.
@@ -91,8 +111,44 @@ impl Conn {
                     })?,
             ),
         };
-        let endpoint = Endpoint::from_shared(url.clone())
-            .map_err(|e| Error::invalid("--server", format!("{url:?} is not a valid URL: {e}")))?
+        let mut endpoint = Endpoint::from_shared(url.clone())
+            .map_err(|e| Error::invalid("--server", format!("{url:?} is not a valid URL: {e}")))?;
+        let tls = url.starts_with("https://");
+        if !tls && (args.ca.is_some() || args.client_cert.is_some()) {
+            return Err(Error::invalid(
+                "--server",
+                format!("--ca and --client-cert need an https:// address, got {url}"),
+            )
+            .into());
+        }
+        if tls {
+            let read = |flag: &str, p: &std::path::Path| {
+                std::fs::read(p).map_err(|e| {
+                    Error::invalid(
+                        flag.to_string(),
+                        format!("cannot read {}: {e}", p.display()),
+                    )
+                })
+            };
+            let mut config = tonic::transport::ClientTlsConfig::new();
+            match &args.ca {
+                Some(ca) => {
+                    config = config
+                        .ca_certificate(tonic::transport::Certificate::from_pem(read("--ca", ca)?))
+                }
+                None => config = config.with_enabled_roots(),
+            }
+            if let (Some(c), Some(k)) = (&args.client_cert, &args.client_key) {
+                config = config.identity(tonic::transport::Identity::from_pem(
+                    read("--client-cert", c)?,
+                    read("--client-key", k)?,
+                ));
+            }
+            endpoint = endpoint
+                .tls_config(config)
+                .map_err(|e| Error::invalid("--ca", format!("TLS setup failed: {e}")))?;
+        }
+        let endpoint = endpoint
             .connect_timeout(Duration::from_secs(5))
             .initial_stream_window_size(WINDOW_BYTES)
             .initial_connection_window_size(WINDOW_BYTES)
