@@ -37,9 +37,31 @@ impl Rng {
 }
 
 const INTERESTING: &[&[u8]] = &[
-    b"", b",", b"\"", b"\n", b"\r\n", b"\0", b"NaN", b"inf", b"-1", b"1e308", b"1e-400", b"{",
-    b"}", b"[", b"]", b":", b"\xff\xfe", b"\xe2\x80\xae", b"id", b"prediction", b"label",
-    b"0.5", b"99999999999999999999", b"ok", b"\t",
+    b"",
+    b",",
+    b"\"",
+    b"\n",
+    b"\r\n",
+    b"\0",
+    b"NaN",
+    b"inf",
+    b"-1",
+    b"1e308",
+    b"1e-400",
+    b"{",
+    b"}",
+    b"[",
+    b"]",
+    b":",
+    b"\xff\xfe",
+    b"\xe2\x80\xae",
+    b"id",
+    b"prediction",
+    b"label",
+    b"0.5",
+    b"99999999999999999999",
+    b"ok",
+    b"\t",
 ];
 
 fn mutate(rng: &mut Rng, samples: &[Vec<u8>]) -> Vec<u8> {
@@ -100,8 +122,20 @@ fn parsers(bytes: &[u8], _: &std::path::Path) {
     let _ = s.parse::<Metric>();
     let _ = s.parse::<Method>();
     // A whole policy with the text in each free-form field and numbers derived from it.
-    let n = bytes.iter().fold(0u64, |a, &b| a.wrapping_mul(31).wrapping_add(b as u64));
-    let num = [f64::NAN, f64::INFINITY, -1.0, 0.0, 1e-300, 0.05, 0.5, 1.0, 7.0][(n % 9) as usize];
+    let n = bytes
+        .iter()
+        .fold(0u64, |a, &b| a.wrapping_mul(31).wrapping_add(b as u64));
+    let num = [
+        f64::NAN,
+        f64::INFINITY,
+        -1.0,
+        0.0,
+        1e-300,
+        0.05,
+        0.5,
+        1.0,
+        7.0,
+    ][(n % 9) as usize];
     for field in 0..5 {
         let mut input = PolicyInput {
             delta: if field == 4 { num } else { 0.05 },
@@ -141,9 +175,23 @@ fn samples(name: &str) -> Vec<Vec<u8>> {
             b"\xef\xbb\xbfid;prediction\r\nr1;1\r\n".to_vec(),
         ],
         "parsers" => [
-            "rounded:0.01", "threshold:0.2", "ladder:0.01", "best-of:4", "sealed:0.01",
-            "series", "even:10", "error", "abs_error:100", "brier", "exact", "kl",
-            "hoeffding", "roster:a,b:0.2", "on-arrival", "2026-06-30T12:00:00Z", "isolated",
+            "rounded:0.01",
+            "threshold:0.2",
+            "ladder:0.01",
+            "best-of:4",
+            "sealed:0.01",
+            "series",
+            "even:10",
+            "error",
+            "abs_error:100",
+            "brier",
+            "exact",
+            "kl",
+            "hoeffding",
+            "roster:a,b:0.2",
+            "on-arrival",
+            "2026-06-30T12:00:00Z",
+            "isolated",
         ]
         .iter()
         .map(|s| s.as_bytes().to_vec())

@@ -53,7 +53,13 @@ fn a_tls_round_trip_and_plaintext_or_untrusting_clients_refused() {
     let https = format!("https://{}", d.addr);
     let ok = run(
         d.client(Some(&d.admin)),
-        &["whoami", "--server", &https, "--ca", &p(certs.path(), "ca.pem")],
+        &[
+            "whoami",
+            "--server",
+            &https,
+            "--ca",
+            &p(certs.path(), "ca.pem"),
+        ],
     )
     .ok();
     assert!(!ok.stdout.trim().is_empty(), "{}", ok.stdout);
@@ -65,7 +71,10 @@ fn a_tls_round_trip_and_plaintext_or_untrusting_clients_refused() {
     assert_ne!(plain.code, 0, "a plaintext client was served over TLS");
     // A client that does not trust the test CA refuses the daemon's certificate.
     let untrusting = run(d.client(Some(&d.admin)), &["whoami", "--server", &https]);
-    assert_ne!(untrusting.code, 0, "a client without the CA accepted the certificate");
+    assert_ne!(
+        untrusting.code, 0,
+        "a client without the CA accepted the certificate"
+    );
 }
 
 #[test]

@@ -104,6 +104,19 @@ impl Engine {
         req: CreateRequest,
         family: Option<FamilyRequest>,
     ) -> Result<super::HoldoutView> {
+        self.create_expecting(caller, req, family, 1)
+    }
+
+    /// Creates a holdout that must afford at least `expect` answers: a policy that, on a fresh
+    /// holdout, fits fewer within its tolerance at worst-case cost is refused before anything is
+    /// stored (its rows and labels stay free for another create), as is a deadline already past.
+    pub fn create_expecting(
+        &mut self,
+        caller: &Caller,
+        req: CreateRequest,
+        family: Option<FamilyRequest>,
+        expect: u32,
+    ) -> Result<super::HoldoutView> {
         caller.require("creating a holdout", &[Role::Custodian])?;
         check_name("holdout name", &req.name)?;
         let description_chars = req.description.chars().count();
@@ -132,6 +145,39 @@ impl Engine {
         }
         let targets = check_targets(req.targets, &req.columns)?;
         let policy = HoldoutPolicy::build(&req.policy, targets, req.ids.len() as u64)?;
+        if let Some(deadline) = policy.closes_at
+            && deadline <= self.now()
+        {
+            return Err(Error::invalid(
+                "closes_at",
+                format!(
+                    "{} is already past: the round would refuse every entry; nothing was sealed",
+                    req.policy.closes_at
+                ),
+            ));
+        }
+        // With one pool (no per-team shares) the fresh budget is everyone's: it must afford the
+        // answers asked for. Per-team pools are checked by `plan`, not here.
+        if policy.core.shares == crate::stats::schedule::Shares::None {
+            let fresh = super::account::Book::new(&policy)?.budget(&policy, "");
+            let expect = u64::from(expect.max(1));
+            if fresh.queries_left < expect {
+                return Err(Error::invalid(
+                    "policy",
+                    format!(
+                        "it affords {} answers within the tolerance {} at worst case on {} rows, \
+                         fewer than the {expect} expected; nothing was sealed and the labels \
+                         stay free. Widen --tolerance, add rows, or pick a rule or schedule that \
+                         fits (`holdout plan --rows {} --tolerance {}`)",
+                        fresh.queries_left,
+                        req.policy.tolerance,
+                        req.ids.len(),
+                        req.ids.len(),
+                        req.policy.tolerance
+                    ),
+                ));
+            }
+        }
 
         // Canonical order: rows sorted by id, so digests do not depend on file order.
         let mut order: Vec<usize> = (0..req.ids.len()).collect();

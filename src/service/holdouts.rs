@@ -54,6 +54,7 @@ impl Holdouts for Daemon {
                 return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
             }
         };
+        let expect = spec.expect_answers.max(1);
         let family = if spec.family.is_empty() {
             if spec.family_delta != 0.0 {
                 return Err(Error::invalid(
@@ -124,7 +125,7 @@ impl Holdouts for Daemon {
         };
         let view = self
             .db
-            .call(move |engine| engine.create_family_member(&caller, req, family))
+            .call(move |engine| engine.create_expecting(&caller, req, family, expect))
             .await?;
         Ok(Response::new(convert::holdout(&view)))
     }

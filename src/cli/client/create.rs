@@ -105,6 +105,11 @@ pub struct CreateArgs {
     /// gets delta / (j (j+1))).
     #[arg(long, default_value = "none")]
     pub shares: String,
+    /// Answers the policy must afford (at worst case, within the tolerance) for create to go
+    /// ahead; a policy that affords fewer is refused and nothing is sealed.
+    #[arg(long, value_name = "N", default_value_t = 1,
+          value_parser = clap::value_parser!(u32).range(1..))]
+    pub expect_answers: u32,
     /// Sealed rounds: deadline, RFC 3339 (e.g. 2026-06-30T12:00:00Z). Entries after it are
     /// refused and the round closes by itself; without it an organizer closes the round.
     #[arg(long, value_name = "TIME")]
@@ -471,6 +476,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         description: args.description.clone(),
         family: args.family.clone().unwrap_or_default(),
         family_delta: args.family_delta.unwrap_or(0.0),
+        expect_answers: args.expect_answers,
     };
     let positions: Vec<usize> = specs
         .iter()
