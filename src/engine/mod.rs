@@ -1,8 +1,8 @@
 //! The daemon's operations on the store. Each operation runs on the database thread
 //! ([`Db`]) and is one SQLite transaction: a query is validated, scored, charged and appended to
 //! the ledger inside one `BEGIN IMMEDIATE` transaction, and its answer leaves only after commit.
-//! There is one write path: [`Engine::begin_write`] / [`Engine::end_write`] (or
-//! [`Engine::write`]) around [`Engine::append`], the only code that appends to any chain.
+//! There is one write path: `Engine::begin_write` / `Engine::end_write` (or
+//! [`Engine::write`]) around `Engine::append`, the only code that appends to any chain.
 //!
 //! The engine keeps per-holdout caches (the public declaration, the parsed labels, and the
 //! accountant replayed from the ledger). A cache is trusted only while the ledger head it was
@@ -288,7 +288,7 @@ impl Engine {
         self.end_write(result)
     }
 
-    /// Runs `f` inside one write ([`Engine::begin_write`] ... [`Engine::end_write`]). `f` may
+    /// Runs `f` inside one write (`Engine::begin_write` ... `Engine::end_write`). `f` may
     /// append several entries (a batch of queued answers: each its own entry, each coded after
     /// the one before it, since each append stages the book it leaves).
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Engine) -> Result<T>) -> Result<T> {
@@ -338,7 +338,7 @@ impl Engine {
 pub trait Append {
     /// The connection (inside the open write).
     fn conn(&mut self) -> &rusqlite::Connection;
-    /// Appends an entry (see [`Engine::append`]).
+    /// Appends an entry through the engine's one append path.
     fn append(
         &mut self,
         chain: &str,
