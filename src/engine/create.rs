@@ -156,28 +156,6 @@ impl Engine {
                 ),
             ));
         }
-        // With one pool (no per-team shares) the fresh budget is everyone's: it must afford the
-        // answers asked for. Per-team pools are checked by `plan`, not here.
-        if policy.core.shares == crate::stats::schedule::Shares::None {
-            let fresh = super::account::Book::new(&policy)?.budget(&policy, "");
-            let expect = u64::from(expect.max(1));
-            if fresh.queries_left < expect {
-                return Err(Error::invalid(
-                    "policy",
-                    format!(
-                        "it affords {} answers within the tolerance {} at worst case on {} rows, \
-                         fewer than the {expect} expected; nothing was sealed and the labels \
-                         stay free. Widen --tolerance, add rows, or pick a rule or schedule that \
-                         fits (`holdout plan --rows {} --tolerance {}`)",
-                        fresh.queries_left,
-                        req.policy.tolerance,
-                        req.ids.len(),
-                        req.ids.len(),
-                        req.policy.tolerance
-                    ),
-                ));
-            }
-        }
 
         // Canonical order: rows sorted by id, so digests do not depend on file order.
         let mut order: Vec<usize> = (0..req.ids.len()).collect();
@@ -205,6 +183,28 @@ impl Engine {
         for (t, col) in policy.targets.iter().zip(&columns) {
             check_domain(t, col, &ids)?;
             parse_labels(&t.metric, &t.classes, col, &ids)?;
+        }
+        // With one pool (no per-team shares) the fresh budget is everyone's: it must afford the
+        // answers asked for. Per-team pools are checked by `plan`, not here.
+        if policy.core.shares == crate::stats::schedule::Shares::None {
+            let fresh = super::account::Book::new(&policy)?.budget(&policy, "");
+            let expect = u64::from(expect.max(1));
+            if fresh.queries_left < expect {
+                return Err(Error::invalid(
+                    "policy",
+                    format!(
+                        "it affords {} answers within the tolerance {} at worst case on {} rows, \
+                         fewer than the {expect} expected; nothing was sealed and the labels \
+                         stay free. Widen --tolerance, add rows, or pick a rule or schedule that \
+                         fits (`holdout plan --rows {} --tolerance {}`)",
+                        fresh.queries_left,
+                        req.policy.tolerance,
+                        req.ids.len(),
+                        req.ids.len(),
+                        req.policy.tolerance
+                    ),
+                ));
+            }
         }
         let labels_digest = labels_digest(&policy, &columns);
         let ids_digest = ids_digest(&ids);

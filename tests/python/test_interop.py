@@ -209,7 +209,7 @@ def test_cli_created_holdout_and_cli_digest_agree_with_python(daemon, tmp_path):
         assert admin.validate("cli-tiles", frame).digest == cli["digest"]
         assert admin.holdout("cli-tiles").targets[0].classes == tuple(CLASSES)
         with pytest.raises(hl.StateConflict):  # the same rows again
-            admin.create_holdout("cli-tiles", labels, classes=CLASSES)
+            admin.create_holdout("cli-tiles", labels, classes=CLASSES, tolerance=0.2)
 
 
 def test_ladder_leaderboard(daemon):
@@ -248,13 +248,13 @@ def test_error_holdouts_need_declared_classes_and_families_cap_shares(daemon):
         assert "target label" in str(e.value) and "tile-0" in str(e.value)
         assert admin.holdouts() == []
         # A family: the first member fixes the total; a share past it is refused, nothing stored.
-        a = admin.create_holdout("fam-a", first, classes=CLASSES, delta=0.02, family="batch",
+        a = admin.create_holdout("fam-a", first, classes=CLASSES, tolerance=0.5, delta=0.02, family="batch",
                                  family_delta=0.05)
         assert a.policy.delta == pytest.approx(0.02)
-        admin.create_holdout("fam-b", second, classes=CLASSES, delta=0.03, family="batch")
+        admin.create_holdout("fam-b", second, classes=CLASSES, tolerance=0.5, delta=0.03, family="batch")
         with pytest.raises(hl.StateConflict) as e:
-            admin.create_holdout("fam-c", third, classes=CLASSES, delta=0.01, family="batch")
+            admin.create_holdout("fam-c", third, classes=CLASSES, tolerance=0.5, delta=0.01, family="batch")
         assert "sum past the total" in str(e.value)
         assert sorted(h.name for h in admin.holdouts()) == ["fam-a", "fam-b"]
         with pytest.raises(hl.InvalidInput):
-            admin.create_holdout("fam-d", third, classes=CLASSES, family_delta=0.05)
+            admin.create_holdout("fam-d", third, classes=CLASSES, tolerance=0.5, family_delta=0.05)
