@@ -136,7 +136,22 @@ pub(crate) fn ln_beta_reg(a: f64, b: f64, p: Point) -> Option<(f64, f64)> {
 
 /// [`ln_beta_reg`], with the continued fraction formed without cancellation near `x = 1`
 /// when `precise` (core version 2).
+///
+/// Remembered per thread by the exact bits of its arguments ([`memo`]): every inversion
+/// starts its search from the same points (`x = 1/2`, the bottom of the normal range, the
+/// first midpoints), whatever its level, so most evaluations repeat earlier ones exactly.
 pub(crate) fn ln_beta_reg_with(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64)> {
+    let key = memo::Key::new(a, b, p, precise);
+    if let Some(v) = memo::get(&key) {
+        return v;
+    }
+    let v = ln_beta_reg_eval(a, b, p, precise);
+    memo::put(key, v);
+    v
+}
+
+/// [`ln_beta_reg_with`] evaluated, never remembered.
+fn ln_beta_reg_eval(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64)> {
     if p.x <= 0.0 {
         return Some((f64::NEG_INFINITY, f64::NEG_INFINITY));
     }
@@ -254,6 +269,127 @@ where
         du = dc;
     }
     Some((lo, hi))
+}
+
+pub mod memo {
+    //! A per-thread memo of `ln I_x(a, b)` evaluations, keyed by the exact bits of `a`, `b`,
+    //! the point `(x, 1 - x)` and the continued-fraction variant.
+    //!
+    //! The evaluation is a pure function of those bits, so a remembered value is the value:
+    //! results are bit for bit those of an uncached evaluation (`tests/stats_memo.rs` checks
+    //! intervals both ways). Each inversion of a Beta limit starts its search from points that
+    //! do not depend on the level (`x = 1/2`, the bottom of the normal range, the first
+    //! bisection midpoints), so an audit replaying many answers at the same row counts meets
+    //! the same evaluations again and again.
+    //!
+    //! The memo is per thread (no locks, nothing shared between the daemon's and the audit's
+    //! threads) and bounded: 2-way sets, a new entry goes to the probation way and moves to
+    //! the protected way when it is hit again, so the evaluations that recur are not pushed
+    //! out by the one-off ones around each root.
+
+    use super::Point;
+    use std::cell::{Cell, RefCell};
+
+    /// Sets (of two ways each): 4096 entries in all, about 300 KB per thread.
+    const SETS: usize = 2048;
+
+    #[derive(Debug, Clone, Copy, PartialEq, Eq)]
+    pub(super) struct Key {
+        a: u64,
+        b: u64,
+        x: u64,
+        y: u64,
+        precise: bool,
+    }
+
+    impl Key {
+        pub(super) fn new(a: f64, b: f64, p: Point, precise: bool) -> Key {
+            Key {
+                a: a.to_bits(),
+                b: b.to_bits(),
+                x: p.x.to_bits(),
+                y: p.y.to_bits(),
+                precise,
+            }
+        }
+
+        fn set(&self) -> usize {
+            let h = self.a
+                ^ self.b.rotate_left(17)
+                ^ self.x.rotate_left(31)
+                ^ self.y.rotate_left(47)
+                ^ u64::from(self.precise);
+            let h = (h ^ (h >> 29)).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+            (h >> 40) as usize % SETS
+        }
+    }
+
+    type Value = Option<(f64, f64)>;
+    type Way = Option<(Key, Value)>;
+
+    thread_local! {
+        static TABLE: RefCell<Vec<[Way; 2]>> = const { RefCell::new(Vec::new()) };
+        static ENABLED: Cell<bool> = const { Cell::new(true) };
+        static HITS: Cell<u64> = const { Cell::new(0) };
+        static MISSES: Cell<u64> = const { Cell::new(0) };
+    }
+
+    pub(super) fn get(key: &Key) -> Option<Value> {
+        if !ENABLED.get() {
+            return None;
+        }
+        let found = TABLE.with_borrow_mut(|t| {
+            let set = t.get_mut(key.set())?;
+            match set {
+                [Some((k, v)), _] if k == key => Some(*v),
+                [_, Some((k, v))] if k == key => {
+                    let v = *v;
+                    // Hit in probation: promote, demoting the protected entry.
+                    set.swap(0, 1);
+                    Some(v)
+                }
+                _ => None,
+            }
+        });
+        match found {
+            Some(_) => HITS.set(HITS.get() + 1),
+            None => MISSES.set(MISSES.get() + 1),
+        }
+        found
+    }
+
+    pub(super) fn put(key: Key, value: Value) {
+        if !ENABLED.get() {
+            return;
+        }
+        TABLE.with_borrow_mut(|t| {
+            if t.is_empty() {
+                t.resize(SETS, [None, None]);
+            }
+            t[key.set()][1] = Some((key, value));
+        });
+    }
+
+    /// Runs `f` on this thread with the memo switched off (`false`: every evaluation is made
+    /// afresh and nothing is remembered) or on, then restores the previous setting. For tests
+    /// and benchmarks that compare the two.
+    pub fn with_memo<R>(enabled: bool, f: impl FnOnce() -> R) -> R {
+        let before = ENABLED.replace(enabled);
+        let out = f();
+        ENABLED.set(before);
+        out
+    }
+
+    /// `(hits, misses)` of this thread's memo so far: lets a test check that the cached path
+    /// was really taken.
+    pub fn counts() -> (u64, u64) {
+        (HITS.get(), MISSES.get())
+    }
+
+    /// Forgets every remembered evaluation of this thread (counts are kept).
+    pub fn clear() {
+        TABLE.with_borrow_mut(|t| t.clear());
+    }
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -535,6 +671,52 @@ where
 #[cfg(test)]
 mod outward_tests {
     use super::*;
+
+    #[test]
+    fn remembered_evaluations_are_the_evaluations() {
+        // A pool of points larger than the memo, drawn again and again in a scrambled order,
+        // so that entries are inserted, promoted, demoted and evicted; every answer must be
+        // bit for bit the direct evaluation.
+        let mut state = 0x2545_f491_4f6c_dd1du64;
+        let mut next = move || {
+            state = state
+                .wrapping_mul(6_364_136_223_846_793_005)
+                .wrapping_add(1_442_695_040_888_963_407);
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let pool: Vec<(f64, f64, Point, bool)> = (0..6000)
+            .map(|i| {
+                let a = (1.0 + 3000.0 * next()).floor();
+                let b = (1.0 + 3000.0 * next()).floor();
+                let s = next();
+                let p = if i % 2 == 0 {
+                    Point::from_x(s)
+                } else {
+                    Point::from_y(s)
+                };
+                (a, b, p, i % 3 != 0)
+            })
+            .collect();
+        let bits = |v: Option<(f64, f64)>| v.map(|(f, g)| (f.to_bits(), g.to_bits()));
+        let (hits0, _) = memo::counts();
+        for round in 0..4 {
+            for i in 0..pool.len() {
+                // Some points recur often (the first 100), the rest now and then.
+                let j = if i % 3 == 0 {
+                    i % 100
+                } else {
+                    (i * 7919 + round * 31) % pool.len()
+                };
+                let (a, b, p, precise) = pool[j];
+                assert_eq!(
+                    bits(ln_beta_reg_with(a, b, p, precise)),
+                    bits(ln_beta_reg_eval(a, b, p, precise)),
+                    "a={a} b={b} p={p:?} precise={precise}"
+                );
+            }
+        }
+        assert!(memo::counts().0 > hits0, "the memo was never hit");
+    }
 
     #[test]
     fn small_stirlerr_table_matches_the_formula() {
