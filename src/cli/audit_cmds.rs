@@ -227,14 +227,16 @@ async fn fetch_chain(conn: &Conn, chain: &str) -> anyhow::Result<Vec<Entry>> {
     Ok(entries)
 }
 
-async fn fetch_export(conn: &Conn, name: &str) -> anyhow::Result<Export> {
+/// A holdout's export (its chain and the identity chain) through the daemon (auditor role).
+pub(crate) async fn fetch_export(conn: &Conn, name: &str) -> anyhow::Result<Export> {
     let entries = fetch_chain(conn, name).await?;
     let users = fetch_chain(conn, ledger::USERS_CHAIN).await?;
     let at = crate::auth::rfc3339(chrono::Utc::now());
     Ok(Export::new(name, &at, entries, users))
 }
 
-async fn fetch_checkpoint(conn: &Conn, name: &str) -> anyhow::Result<Checkpoint> {
+/// A signed checkpoint of a holdout's head through the daemon.
+pub(crate) async fn fetch_checkpoint(conn: &Conn, name: &str) -> anyhow::Result<Checkpoint> {
     let c = conn
         .ledger()
         .checkpoint(CheckpointRequest {

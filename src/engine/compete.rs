@@ -784,7 +784,7 @@ impl Engine {
                  two entries' true errors; an interval that excludes 0 tells the two ranks apart. \
                  All comparisons hold together with probability at least 1 - {} (the ranking's \
                  reserve, split over {} pairs), inside the holdout's total delta.{}",
-                r.ranking_delta,
+                seven_digits(r.ranking_delta),
                 r.pairs,
                 if per_target {
                     " Each target is ranked on its own: ranks count within a target and only \
@@ -925,4 +925,12 @@ pub(crate) fn team_view(mut record: SealedRecord, isolated: bool) -> SealedRecor
         record.ticket = record.query.saturating_sub(1);
     }
     record
+}
+
+/// `x` to seven significant digits, shortest form (0.010000000000000002 reads 0.01): for
+/// probabilities in sentences, where float noise in the last place means nothing.
+fn seven_digits(x: f64) -> String {
+    format!("{x:.6e}")
+        .parse::<f64>()
+        .map_or_else(|_| x.to_string(), |y| y.to_string())
 }

@@ -12,7 +12,8 @@ use serde_json::{Value, json};
 use super::conn::{Conn, ServerArgs};
 use super::show::{self, num};
 use crate::proto::v1::{
-    DuplicatesRequest, Interval, LeaderboardRequest, RankingRequest, SealedEntry,
+    DuplicatesRequest, Interval, LeaderboardRequest, LeaderboardResponse, RankingRequest,
+    RankingResponse, SealedEntry,
 };
 
 /// `holdout leaderboard`, `holdout ranking`, `holdout duplicates`.
@@ -67,27 +68,8 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
-    let rank = |r: u64| {
-        if r == 0 {
-            "-".to_string()
-        } else {
-            r.to_string()
-        }
-    };
     if args.json {
-        show::print_json(&json!({
-            "holdout": b.holdout,
-            "target": b.target,
-            "own_team_only": b.own_team_only,
-            "rows": b.rows.iter().map(|r| {
-                let (lo, hi) = iv(r.interval.as_ref());
-                json!({"rank": r.rank, "team": r.team, "best": r.best, "lower": lo, "upper": hi,
-                       "submissions": r.submissions, "improvements": r.improvements,
-                       "best_at": r.best_at})
-            }).collect::<Vec<Value>>(),
-            "statement": b.statement,
-            "guarantee": b.guarantee,
-        }));
+        show::print_json(&leaderboard_json(&b));
     } else if args.csv {
         println!("rank,team,best,lower,upper,submissions,improvements,best_at");
         for r in &b.rows {
@@ -107,39 +89,11 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             );
         }
     } else {
-        let rows: Vec<Vec<String>> = b
-            .rows
-            .iter()
-            .map(|r| {
-                let (lo, hi) = iv(r.interval.as_ref());
-                vec![
-                    rank(r.rank),
-                    r.team.clone(),
-                    opt(r.best),
-                    show::interval_text(lo, hi),
-                    r.submissions.to_string(),
-                    r.improvements.to_string(),
-                ]
-            })
-            .collect();
         println!("leaderboard of {} (target {})", b.holdout, b.target);
         if b.own_team_only {
             println!("(only your team's row: this leaderboard is shown in full to organizers)");
         }
-        println!(
-            "{}",
-            show::table(
-                &[
-                    "rank",
-                    "team",
-                    "best",
-                    "best true error among its submissions",
-                    "answered",
-                    "new bests"
-                ],
-                &rows
-            )
-        );
+        println!("{}", leaderboard_table(&b));
         println!("\n{}\n\n{}", b.statement, b.guarantee);
     }
     Ok(ExitCode::SUCCESS)
@@ -162,24 +116,7 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
     if args.json {
-        show::print_json(&json!({
-            "holdout": r.holdout,
-            "closed_at": r.closed_at,
-            "trigger": r.trigger,
-            "entries": r.entries.iter().map(|e| {
-                let (lo, hi) = iv(e.interval.as_ref());
-                json!({"rank": e.rank, "team": e.team, "ticket": e.ticket, "score": e.score,
-                       "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
-            }).collect::<Vec<Value>>(),
-            "comparisons": r.comparisons.iter().map(|c| {
-                let (lo, hi) = iv(c.difference.as_ref());
-                json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
-                       "level_nats": c.level_nats, "distinguishable": c.distinguishable,
-                       "target": c.target})
-            }).collect::<Vec<Value>>(),
-            "statement": r.statement,
-            "guarantee": r.guarantee,
-        }));
+        show::print_json(&ranking_json(&r));
     } else if args.csv {
         println!("rank,team,ticket,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
         for e in &r.entries {
@@ -205,48 +142,11 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             );
         }
     } else {
-        let rows: Vec<Vec<String>> = r
-            .entries
-            .iter()
-            .map(|e| {
-                let (lo, hi) = iv(e.interval.as_ref());
-                let vs = below(e.ticket).map_or(String::new(), |c| {
-                    let (a, b) = iv(c.difference.as_ref());
-                    format!(
-                        "{} {}",
-                        show::interval_text(a, b),
-                        if c.distinguishable {
-                            "told apart"
-                        } else {
-                            "not told apart"
-                        }
-                    )
-                });
-                vec![
-                    // Ranks count within a target (core 2 rounds name it).
-                    if e.target.is_empty() {
-                        e.rank.to_string()
-                    } else {
-                        format!("{} {}", e.target, e.rank)
-                    },
-                    e.team.clone(),
-                    opt(e.score),
-                    show::interval_text(lo, hi),
-                    vs,
-                ]
-            })
-            .collect();
         println!(
             "ranking of {} (closed {} by {})",
             r.holdout, r.closed_at, r.trigger
         );
-        println!(
-            "{}",
-            show::table(
-                &["rank", "team", "score", "interval", "minus the next rank"],
-                &rows
-            )
-        );
+        println!("{}", ranking_table(&r));
         println!("\n{}\n\n{}", r.statement, r.guarantee);
     }
     Ok(ExitCode::SUCCESS)
@@ -368,4 +268,119 @@ pub fn sealed_text(e: &SealedEntry) -> String {
         s.push_str(&e.guarantee);
     }
     s
+}
+
+/// A ladder leaderboard as one JSON object.
+pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
+    json!({
+        "holdout": b.holdout,
+        "target": b.target,
+        "own_team_only": b.own_team_only,
+        "rows": b.rows.iter().map(|r| {
+            let (lo, hi) = iv(r.interval.as_ref());
+            json!({"rank": r.rank, "team": r.team, "best": r.best, "lower": lo, "upper": hi,
+                   "submissions": r.submissions, "improvements": r.improvements,
+                   "best_at": r.best_at})
+        }).collect::<Vec<Value>>(),
+        "statement": b.statement,
+        "guarantee": b.guarantee,
+    })
+}
+
+/// A ladder leaderboard's rows as a table for people (without its statement and guarantee).
+pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
+    let rows: Vec<Vec<String>> = b
+        .rows
+        .iter()
+        .map(|r| {
+            let (lo, hi) = iv(r.interval.as_ref());
+            vec![
+                if r.rank == 0 {
+                    "-".to_string()
+                } else {
+                    r.rank.to_string()
+                },
+                r.team.clone(),
+                opt(r.best),
+                show::interval_text(lo, hi),
+                r.submissions.to_string(),
+                r.improvements.to_string(),
+            ]
+        })
+        .collect();
+    show::table(
+        &[
+            "rank",
+            "team",
+            "best",
+            "best true error among its submissions",
+            "answered",
+            "new bests",
+        ],
+        &rows,
+    )
+}
+
+/// A closed round's ranking as one JSON object.
+pub fn ranking_json(r: &RankingResponse) -> Value {
+    json!({
+        "holdout": r.holdout,
+        "closed_at": r.closed_at,
+        "trigger": r.trigger,
+        "entries": r.entries.iter().map(|e| {
+            let (lo, hi) = iv(e.interval.as_ref());
+            json!({"rank": e.rank, "team": e.team, "ticket": e.ticket, "score": e.score,
+                   "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
+        }).collect::<Vec<Value>>(),
+        "comparisons": r.comparisons.iter().map(|c| {
+            let (lo, hi) = iv(c.difference.as_ref());
+            json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
+                   "level_nats": c.level_nats, "distinguishable": c.distinguishable,
+                   "target": c.target})
+        }).collect::<Vec<Value>>(),
+        "statement": r.statement,
+        "guarantee": r.guarantee,
+    })
+}
+
+/// A closed round's ranking as a table for people: each entry, its interval and the paired
+/// comparison with the entry ranked just below (without the statement and guarantee).
+pub fn ranking_table(r: &RankingResponse) -> String {
+    // The comparison with the entry ranked just below, by ticket of the entry ahead.
+    let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
+    let rows: Vec<Vec<String>> = r
+        .entries
+        .iter()
+        .map(|e| {
+            let (lo, hi) = iv(e.interval.as_ref());
+            let vs = below(e.ticket).map_or(String::new(), |c| {
+                let (a, b) = iv(c.difference.as_ref());
+                format!(
+                    "{} {}",
+                    show::interval_text(a, b),
+                    if c.distinguishable {
+                        "told apart"
+                    } else {
+                        "not told apart"
+                    }
+                )
+            });
+            vec![
+                // Ranks count within a target (core 2 rounds name it).
+                if e.target.is_empty() {
+                    e.rank.to_string()
+                } else {
+                    format!("{} {}", e.target, e.rank)
+                },
+                e.team.clone(),
+                opt(e.score),
+                show::interval_text(lo, hi),
+                vs,
+            ]
+        })
+        .collect();
+    show::table(
+        &["rank", "team", "score", "interval", "minus the next rank"],
+        &rows,
+    )
 }
