@@ -30,6 +30,7 @@ pub mod files;
 pub mod ledger;
 pub mod metric;
 pub mod proto;
+pub mod report;
 pub mod server;
 pub mod service;
 pub mod stats;

@@ -23,6 +23,7 @@ pub mod compete;
 pub mod conn;
 pub mod create;
 pub mod plan;
+pub mod report;
 pub mod show;
 pub mod split;
 pub mod submit;
@@ -60,6 +61,9 @@ pub enum ClientCommand {
     Status(admin::StatusArgs),
     /// Released answers and refusals of a holdout, oldest first.
     History(admin::HistoryArgs),
+    /// Charts of a holdout: the budget burn-down and every released interval, by team, with the
+    /// guarantee under them; SVG, PNG or HTML by the extension of --out.
+    Report(report::ReportArgs),
     /// Holdouts visible to you.
     List(admin::ListArgs),
     /// Close a holdout: it answers no more queries (organizer). Closing a sealed round answers
@@ -107,6 +111,7 @@ async fn dispatch(cmd: ClientCommand) -> anyhow::Result<ExitCode> {
         ClientCommand::Submit(args) => submit::submit(&args).await,
         ClientCommand::Status(args) => admin::status(&args).await,
         ClientCommand::History(args) => admin::history(&args).await,
+        ClientCommand::Report(args) => report::run(&args).await,
         ClientCommand::List(args) => admin::list(&args).await,
         ClientCommand::Close(args) => admin::close(&args).await,
         ClientCommand::Leaderboard(args) => compete::leaderboard(&args).await,
