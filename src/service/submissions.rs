@@ -28,14 +28,25 @@ impl Submissions for Daemon {
         &self,
         request: Request<Streaming<SubmitChunk>>,
     ) -> Result<Response<SubmitResponse>, Status> {
+        // Authentication comes from the call's metadata, before any message is read.
         let caller = self.caller(&request).await?;
+        let mut bytes = super::StreamBytes::new(
+            "a submission",
+            self.limits.max_submit_bytes,
+            "--max-submit-bytes",
+            self.limits.max_message_bytes,
+        );
         let mut stream = request.into_inner();
-        let header = match stream.next().await {
-            Some(Ok(SubmitChunk {
-                part: Some(Part::Header(h)),
-            })) => h,
-            Some(Err(e)) => return Err(e),
-            _ => return Err(Error::invalid("stream", "the first chunk must be the header").into()),
+        let first = match stream.next().await {
+            Some(Ok(chunk)) => {
+                bytes.add(&chunk)?;
+                chunk.part
+            }
+            Some(Err(e)) => return Err(bytes.receive_error(e)),
+            None => None,
+        };
+        let Some(Part::Header(header)) = first else {
+            return Err(Error::invalid("stream", "the first chunk must be the header").into());
         };
         let mode = match pb::SubmitMode::try_from(header.mode) {
             Ok(pb::SubmitMode::Answer) => SubmitMode::Answer,
@@ -86,7 +97,10 @@ impl Submissions for Daemon {
             .collect();
         let mut kinds: Vec<Option<bool>> = vec![None; models];
         while let Some(chunk) = stream.next().await {
-            let chunk = match chunk?.part {
+            let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
+            // Counted before it is kept: the stream is refused as soon as it passes the limit.
+            bytes.add(&chunk)?;
+            let chunk = match chunk.part {
                 Some(Part::Predictions(c)) => c,
                 Some(Part::Header(_)) => {
                     return Err(Error::invalid("stream", "the header was sent twice").into());
