@@ -45,7 +45,7 @@ impl Holdouts for Daemon {
         // Refuse early, before reading labels the caller may not upload.
         caller.require("creating a holdout", &[Role::Custodian])?;
         let mut bytes = super::StreamBytes::new(
-            "a holdout's labels",
+            "a holdout creation",
             self.limits.max_create_bytes,
             "--max-create-bytes",
             self.limits.max_message_bytes,
