@@ -139,8 +139,20 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
     };
     check_listen(&args.listen, args.allow_plaintext_network || tls.is_some())?;
     runtime.block_on(async move {
-        let mut store = Store::open(&args.db)
-            .with_context(|| format!("opening database {}", args.db.display()))?;
+        let mut store = match Store::open(&args.db) {
+            Ok(store) => store,
+            // A read-only directory fails already here (WAL needs files beside the database).
+            Err(Error::Storage(rusqlite::Error::SqliteFailure(e, detail)))
+                if e.code == rusqlite::ErrorCode::ReadOnly =>
+            {
+                let why = detail.unwrap_or_else(|| e.to_string());
+                return Err(unwritable(&args.db, &why).into());
+            }
+            Err(e) => {
+                return Err(anyhow::Error::new(e)
+                    .context(format!("opening database {}", args.db.display())));
+            }
+        };
         check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
         if let Some(dir) = args.checkpoint_dir.clone() {
@@ -247,23 +259,21 @@ fn check_writable(store: &mut Store, path: &std::path::Path) -> anyhow::Result<(
     let read_only = conn.is_readonly(rusqlite::MAIN_DB).unwrap_or(true);
     match probe {
         Ok(()) if !read_only => Ok(()),
-        Ok(()) => Err(Error::invalid(
-            "--db",
-            format!(
-                "{} is open read-only; the daemon must write its ledger",
-                path.display()
-            ),
-        )
-        .into()),
-        Err(e) => Err(Error::invalid(
-            "--db",
-            format!(
-                "{} cannot be written ({e}); the daemon must write its ledger",
-                path.display()
-            ),
-        )
-        .into()),
+        Ok(()) => Err(unwritable(path, "it is open read-only").into()),
+        Err(e) => Err(unwritable(path, &e.to_string()).into()),
     }
+}
+
+/// The start-up error for a database the daemon cannot write.
+fn unwritable(path: &std::path::Path, why: &str) -> Error {
+    Error::invalid(
+        "--db",
+        format!(
+            "{} cannot be written ({why}); the daemon must write its ledger: check the \
+             permissions of the file, of its directory, and of its -wal and -shm files if any",
+            path.display()
+        ),
+    )
 }
 
 /// Signs every holdout's head into `dir` now and every `secs` seconds, while the daemon runs.
