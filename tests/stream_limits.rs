@@ -114,9 +114,8 @@ fn huge_submission_chunks() -> impl Iterator<Item = SubmitChunk> + Send {
 /// [`huge_submission_chunks`] as a stream the transport pulls from; `sent` counts the bytes of
 /// the chunks made so far.
 fn huge_submission(sent: Arc<AtomicU64>) -> impl tokio_stream::Stream<Item = SubmitChunk> + Send {
-    tokio_stream::iter(huge_submission_chunks().map(move |c| {
+    tokio_stream::iter(huge_submission_chunks().inspect(move |c| {
         sent.fetch_add(c.encoded_len() as u64, Ordering::SeqCst);
-        c
     }))
 }
 
@@ -148,9 +147,8 @@ fn huge_creation(
             }],
         })),
     });
-    tokio_stream::iter(std::iter::once(spec).chain(rows).map(move |c| {
+    tokio_stream::iter(std::iter::once(spec).chain(rows).inspect(move |c| {
         sent.fetch_add(c.encoded_len() as u64, Ordering::SeqCst);
-        c
     }))
 }
 
