@@ -44,14 +44,21 @@ fn memory_kb(pid: u32) -> (u64, u64) {
     (field("VmHWM:"), field("VmRSS:"))
 }
 
-fn setup(extra: &[&str], rows: usize) -> (Daemon, String) {
+/// A daemon with `extra` flags and a holdout `yard` of `rows` rows answering with `answers`.
+fn setup(extra: &[&str], rows: usize, answers: &str) -> (Daemon, String) {
     let d = Daemon::start_with(extra);
     let labels = d.write("labels.csv", &Parts::new(rows).labels_csv());
+    create(&d, "yard", &labels, answers);
+    let alice = d.add_user("alice", &["analyst"], Some("blue"));
+    (d, alice)
+}
+
+fn create(d: &Daemon, name: &str, labels: &str, answers: &str) {
     d.admin(&[
         "create",
-        "yard",
+        name,
         "--labels",
-        &labels,
+        labels,
         "--target",
         "defect:defect:error",
         "--classes",
@@ -59,11 +66,9 @@ fn setup(extra: &[&str], rows: usize) -> (Daemon, String) {
         "--tolerance",
         "0.5",
         "--answers",
-        "rounded:0.05",
+        answers,
     ])
     .ok();
-    let alice = d.add_user("alice", &["analyst"], Some("blue"));
-    (d, alice)
 }
 
 async fn open(d: &Daemon, token: &str) -> Conn {
@@ -81,12 +86,12 @@ async fn open(d: &Daemon, token: &str) -> Conn {
 /// A submission of 64 models, each predicting every row with a 256-byte class name (the longest
 /// a class may be): every message passes the daemon's row, id and class checks, and the whole
 /// stream is about 350 MB. Chunks are made only when asked for.
-fn huge_submission_chunks() -> impl Iterator<Item = SubmitChunk> + Send {
+fn huge_submission_chunks(holdout: &str) -> impl Iterator<Item = SubmitChunk> + Send {
     let ids: Vec<String> = Parts::new(N).rows.into_iter().map(|r| r.0).collect();
     let class = "c".repeat(256);
     let header = SubmitChunk {
         part: Some(Part::Header(SubmitHeader {
-            holdout: "yard".into(),
+            holdout: holdout.into(),
             target: "defect".into(),
             mode: pb::SubmitMode::Answer as i32,
             models: 64,
@@ -113,8 +118,11 @@ fn huge_submission_chunks() -> impl Iterator<Item = SubmitChunk> + Send {
 
 /// [`huge_submission_chunks`] as a stream the transport pulls from; `sent` counts the bytes of
 /// the chunks made so far.
-fn huge_submission(sent: Arc<AtomicU64>) -> impl tokio_stream::Stream<Item = SubmitChunk> + Send {
-    tokio_stream::iter(huge_submission_chunks().inspect(move |c| {
+fn huge_submission(
+    holdout: &str,
+    sent: Arc<AtomicU64>,
+) -> impl tokio_stream::Stream<Item = SubmitChunk> + Send {
+    tokio_stream::iter(huge_submission_chunks(holdout).inspect(move |c| {
         sent.fetch_add(c.encoded_len() as u64, Ordering::SeqCst);
     }))
 }
@@ -155,12 +163,21 @@ fn huge_creation(
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn oversized_and_unauthorised_streams_are_refused_early_with_memory_bounded() {
     let limit = LIMIT.to_string();
+    // A best-of holdout takes batches of up to 64 models; `plain` answers one at a time.
     let (d, alice) = setup(
         &["--max-submit-bytes", &limit, "--max-create-bytes", &limit],
         N,
+        "best-of:0.05",
+    );
+    let other_rows = Parts::new(100).labels_csv().replace("part-", "bolt-");
+    create(
+        &d,
+        "plain",
+        &d.write("plain.csv", &other_rows),
+        "rounded:0.05",
     );
     let auditor = d.add_user("audra", &["auditor"], None);
-    let total: u64 = huge_submission_chunks()
+    let total: u64 = huge_submission_chunks("yard")
         .map(|c| c.encoded_len() as u64)
         .sum();
     assert!(total > 300_000_000, "the submission is {total} bytes");
@@ -175,7 +192,7 @@ async fn oversized_and_unauthorised_streams_are_refused_early_with_memory_bounde
     let err = open(&d, &alice)
         .await
         .submissions()
-        .submit(huge_submission(sent.clone()))
+        .submit(huge_submission("yard", sent.clone()))
         .await
         .expect_err("a submission over the limit is refused");
     assert_eq!(err.code(), tonic::Code::InvalidArgument, "{err}");
@@ -195,10 +212,22 @@ async fn oversized_and_unauthorised_streams_are_refused_early_with_memory_bounde
     let err = open(&d, &auditor)
         .await
         .submissions()
-        .submit(huge_submission(sent.clone()))
+        .submit(huge_submission("yard", sent.clone()))
         .await
         .expect_err("an auditor cannot submit");
     assert_eq!(err.code(), tonic::Code::PermissionDenied, "{err}");
+    assert!(sent.load(Ordering::SeqCst) < early, "{sent:?}");
+
+    // A batch on a holdout that answers one model at a time: refused on the header.
+    let sent = Arc::new(AtomicU64::new(0));
+    let err = open(&d, &alice)
+        .await
+        .submissions()
+        .submit(huge_submission("plain", sent.clone()))
+        .await
+        .expect_err("a batch needs a best-of holdout");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument, "{err}");
+    assert!(err.message().contains("best-of"), "{err}");
     assert!(sent.load(Ordering::SeqCst) < early, "{sent:?}");
 
     // An analyst may not create: refused before the first message is read.
@@ -237,9 +266,11 @@ async fn oversized_and_unauthorised_streams_are_refused_early_with_memory_bounde
     );
 
     // Nothing was charged or created, and the daemon serves a real submission.
-    let status = d.run(&alice, &["status", "yard", "--json"]).ok().json();
-    assert_eq!(status["budget"]["answered"], 0, "{status}");
-    assert_eq!(status["budget"]["refused"], 0, "{status}");
+    for name in ["yard", "plain"] {
+        let status = d.run(&alice, &["status", name, "--json"]).ok().json();
+        assert_eq!(status["budget"]["answered"], 0, "{status}");
+        assert_eq!(status["budget"]["refused"], 0, "{status}");
+    }
     d.admin(&["status", "huge"]).code(5);
     let f = d.write("p.csv", &Parts::new(N).defect_predictions(4, 0));
     d.run(&alice, &["submit", "yard", "--predictions", &f]).ok();
@@ -249,7 +280,7 @@ async fn oversized_and_unauthorised_streams_are_refused_early_with_memory_bounde
 async fn a_message_over_the_message_limit_is_refused_naming_the_flag() {
     // 2,000 rows: the CLI's messages (create and submit) stay under 64 KiB.
     const SMALL: usize = 2_000;
-    let (d, alice) = setup(&["--max-message-bytes", "65536"], SMALL);
+    let (d, alice) = setup(&["--max-message-bytes", "65536"], SMALL, "rounded:0.05");
     let ids: Vec<String> = Parts::new(SMALL).rows.into_iter().map(|r| r.0).collect();
     let chunks = vec![
         SubmitChunk {

@@ -77,17 +77,35 @@ impl Submissions for Daemon {
         let holdout = header.holdout.clone();
         // Rows per model are capped at the holdout's size (more is an error anyway), and every
         // id at the longest declared id, so a runaway client cannot exhaust memory.
-        let (rows, longest_id) = self
+        let (rows, longest_id, batches, answers) = self
             .db
             .call(move |engine| {
                 let loaded = engine.loaded(&holdout)?;
                 let longest = loaded.ids.iter().map(String::len).max().unwrap_or(0);
-                Ok((loaded.ids.len(), longest))
+                let policy = &loaded.policy;
+                Ok((
+                    loaded.ids.len(),
+                    longest,
+                    policy.allows_batches(),
+                    policy.answers_spec(),
+                ))
             })
             .await?;
         let models = header.models.max(1) as usize;
         if models > 64 {
             return Err(Error::invalid("models", "a batch holds at most 64 models").into());
+        }
+        // A batch on a holdout that answers one model at a time is refused on the header (as
+        // the engine would refuse it), not after the whole batch was streamed.
+        if models > 1 && !batches {
+            return Err(Error::invalid(
+                "predictions",
+                format!(
+                    "a batch of {models} models needs a best-of holdout; this one answers with \
+                     {answers}"
+                ),
+            )
+            .into());
         }
         let mut preds: Vec<ModelPredictions> = (0..models)
             .map(|_| ModelPredictions {
