@@ -1,6 +1,7 @@
 //! Idle connections cannot keep legitimate clients out: a daemon limited to 16 connections,
-//! with 200 silent TCP connections opened against it, serves a real client again once the
-//! silent ones are closed at their handshake deadline (bounded wait, loopback only).
+//! with 200 silent TCP connections opened against it, serves a real client (silent connections
+//! are shed when a new one needs their slot, and closed at their handshake deadline anyway;
+//! bounded wait, loopback only).
 
 mod common;
 

@@ -13,7 +13,7 @@ use crate::auth::{self, Role};
 use crate::engine::{Db, Engine, SystemClock};
 use crate::error::Error;
 use crate::server::{DEFAULT_LISTEN, Limits, Tls, serve_with_limits as serve_on};
-use crate::service::Daemon;
+use crate::service::{DEFAULT_MAX_MESSAGE_BYTES, DEFAULT_MAX_STREAM_BYTES, Daemon, StreamLimits};
 use crate::store::Store;
 
 /// `holdout serve`.
@@ -68,6 +68,22 @@ pub struct ServeArgs {
     #[arg(long, value_name = "N", default_value_t = 64,
           value_parser = clap::value_parser!(u32).range(1..=10_000))]
     pub max_streams_per_connection: u32,
+    /// Largest single gRPC message a client may send, in bytes (the client sends 8,192 rows a
+    /// message, far less). Larger messages are refused before they are read.
+    #[arg(long, value_name = "BYTES", default_value_t = DEFAULT_MAX_MESSAGE_BYTES as u64,
+          value_parser = clap::value_parser!(u64).range(1024..=1 << 30))]
+    pub max_message_bytes: u64,
+    /// Bytes one submission (`submit`, every model of a batch) may stream to the daemon; a
+    /// larger one is refused as soon as it passes the limit, having buffered no more than that.
+    /// The default, 1 GiB, holds 10 million rows with 40-byte ids.
+    #[arg(long, value_name = "BYTES", default_value_t = DEFAULT_MAX_STREAM_BYTES,
+          value_parser = clap::value_parser!(u64).range(1024..))]
+    pub max_submit_bytes: u64,
+    /// Bytes one holdout creation (`create`: ids and labels) may stream to the daemon; refused
+    /// as soon as it passes. The default, 1 GiB, holds 10 million rows with 40-byte ids.
+    #[arg(long, value_name = "BYTES", default_value_t = DEFAULT_MAX_STREAM_BYTES,
+          value_parser = clap::value_parser!(u64).range(1024..))]
+    pub max_create_bytes: u64,
     /// Seconds between checkpoints with --checkpoint-dir.
     #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
           value_parser = clap::value_parser!(u64).range(1..))]
@@ -123,8 +139,20 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
     };
     check_listen(&args.listen, args.allow_plaintext_network || tls.is_some())?;
     runtime.block_on(async move {
-        let mut store = Store::open(&args.db)
-            .with_context(|| format!("opening database {}", args.db.display()))?;
+        let mut store = match Store::open(&args.db) {
+            Ok(store) => store,
+            // A read-only directory fails already here (WAL needs files beside the database).
+            Err(Error::Storage(rusqlite::Error::SqliteFailure(e, detail)))
+                if e.code == rusqlite::ErrorCode::ReadOnly =>
+            {
+                let why = detail.unwrap_or_else(|| e.to_string());
+                return Err(unwritable(&args.db, &why).into());
+            }
+            Err(e) => {
+                return Err(anyhow::Error::new(e)
+                    .context(format!("opening database {}", args.db.display())));
+            }
+        };
         check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
         if let Some(dir) = args.checkpoint_dir.clone() {
@@ -164,6 +192,12 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             handshake_timeout: std::time::Duration::from_secs(args.handshake_timeout),
             idle_timeout: std::time::Duration::from_secs(args.idle_timeout),
             max_streams: args.max_streams_per_connection,
+            streams: StreamLimits {
+                max_message_bytes: usize::try_from(args.max_message_bytes)
+                    .unwrap_or(DEFAULT_MAX_MESSAGE_BYTES),
+                max_submit_bytes: args.max_submit_bytes,
+                max_create_bytes: args.max_create_bytes,
+            },
         };
         serve_on(listener, Daemon::new(db.clone()), shutdown_signal(), limits, tls).await?;
         // A last checkpoint of every head, so nothing appended since the last tick (a close,
@@ -225,23 +259,21 @@ fn check_writable(store: &mut Store, path: &std::path::Path) -> anyhow::Result<(
     let read_only = conn.is_readonly(rusqlite::MAIN_DB).unwrap_or(true);
     match probe {
         Ok(()) if !read_only => Ok(()),
-        Ok(()) => Err(Error::invalid(
-            "--db",
-            format!(
-                "{} is open read-only; the daemon must write its ledger",
-                path.display()
-            ),
-        )
-        .into()),
-        Err(e) => Err(Error::invalid(
-            "--db",
-            format!(
-                "{} cannot be written ({e}); the daemon must write its ledger",
-                path.display()
-            ),
-        )
-        .into()),
+        Ok(()) => Err(unwritable(path, "it is open read-only").into()),
+        Err(e) => Err(unwritable(path, &e.to_string()).into()),
     }
+}
+
+/// The start-up error for a database the daemon cannot write.
+fn unwritable(path: &std::path::Path, why: &str) -> Error {
+    Error::invalid(
+        "--db",
+        format!(
+            "{} cannot be written ({why}); the daemon must write its ledger: check the \
+             permissions of the file, of its directory, and of its -wal and -shm files if any",
+            path.display()
+        ),
+    )
 }
 
 /// Signs every holdout's head into `dir` now and every `secs` seconds, while the daemon runs.

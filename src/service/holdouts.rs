@@ -44,15 +44,23 @@ impl Holdouts for Daemon {
         let caller = self.caller(&request).await?;
         // Refuse early, before reading labels the caller may not upload.
         caller.require("creating a holdout", &[Role::Custodian])?;
+        let mut bytes = super::StreamBytes::new(
+            "a holdout creation",
+            self.limits.max_create_bytes,
+            "--max-create-bytes",
+            self.limits.max_message_bytes,
+        );
         let mut stream = request.into_inner();
-        let spec = match stream.next().await {
-            Some(Ok(CreateHoldoutChunk {
-                part: Some(Part::Spec(spec)),
-            })) => spec,
-            Some(Err(e)) => return Err(e),
-            _ => {
-                return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
+        let first = match stream.next().await {
+            Some(Ok(chunk)) => {
+                bytes.add(&chunk)?;
+                chunk.part
             }
+            Some(Err(e)) => return Err(bytes.receive_error(e)),
+            None => None,
+        };
+        let Some(Part::Spec(spec)) = first else {
+            return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
         };
         let expect = spec.expect_answers.max(1);
         let family = if spec.family.is_empty() {
@@ -84,7 +92,10 @@ impl Holdouts for Daemon {
         let mut ids = Vec::new();
         let mut columns: Vec<Vec<String>> = vec![Vec::new(); targets.len()];
         while let Some(chunk) = stream.next().await {
-            match chunk?.part {
+            let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
+            // Counted before it is kept: the stream is refused as soon as it passes the limit.
+            bytes.add(&chunk)?;
+            match chunk.part {
                 Some(Part::Rows(rows)) => {
                     if rows.columns.len() != targets.len() {
                         return Err(Error::invalid(

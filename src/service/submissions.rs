@@ -28,14 +28,25 @@ impl Submissions for Daemon {
         &self,
         request: Request<Streaming<SubmitChunk>>,
     ) -> Result<Response<SubmitResponse>, Status> {
+        // Authentication comes from the call's metadata, before any message is read.
         let caller = self.caller(&request).await?;
+        let mut bytes = super::StreamBytes::new(
+            "a submission",
+            self.limits.max_submit_bytes,
+            "--max-submit-bytes",
+            self.limits.max_message_bytes,
+        );
         let mut stream = request.into_inner();
-        let header = match stream.next().await {
-            Some(Ok(SubmitChunk {
-                part: Some(Part::Header(h)),
-            })) => h,
-            Some(Err(e)) => return Err(e),
-            _ => return Err(Error::invalid("stream", "the first chunk must be the header").into()),
+        let first = match stream.next().await {
+            Some(Ok(chunk)) => {
+                bytes.add(&chunk)?;
+                chunk.part
+            }
+            Some(Err(e)) => return Err(bytes.receive_error(e)),
+            None => None,
+        };
+        let Some(Part::Header(header)) = first else {
+            return Err(Error::invalid("stream", "the first chunk must be the header").into());
         };
         let mode = match pb::SubmitMode::try_from(header.mode) {
             Ok(pb::SubmitMode::Answer) => SubmitMode::Answer,
@@ -66,17 +77,35 @@ impl Submissions for Daemon {
         let holdout = header.holdout.clone();
         // Rows per model are capped at the holdout's size (more is an error anyway), and every
         // id at the longest declared id, so a runaway client cannot exhaust memory.
-        let (rows, longest_id) = self
+        let (rows, longest_id, batches, answers) = self
             .db
             .call(move |engine| {
                 let loaded = engine.loaded(&holdout)?;
                 let longest = loaded.ids.iter().map(String::len).max().unwrap_or(0);
-                Ok((loaded.ids.len(), longest))
+                let policy = &loaded.policy;
+                Ok((
+                    loaded.ids.len(),
+                    longest,
+                    policy.allows_batches(),
+                    policy.answers_spec(),
+                ))
             })
             .await?;
         let models = header.models.max(1) as usize;
         if models > 64 {
             return Err(Error::invalid("models", "a batch holds at most 64 models").into());
+        }
+        // A batch on a holdout that answers one model at a time is refused on the header (as
+        // the engine would refuse it), not after the whole batch was streamed.
+        if models > 1 && !batches {
+            return Err(Error::invalid(
+                "predictions",
+                format!(
+                    "a batch of {models} models needs a best-of holdout; this one answers with \
+                     {answers}"
+                ),
+            )
+            .into());
         }
         let mut preds: Vec<ModelPredictions> = (0..models)
             .map(|_| ModelPredictions {
@@ -86,7 +115,10 @@ impl Submissions for Daemon {
             .collect();
         let mut kinds: Vec<Option<bool>> = vec![None; models];
         while let Some(chunk) = stream.next().await {
-            let chunk = match chunk?.part {
+            let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
+            // Counted before it is kept: the stream is refused as soon as it passes the limit.
+            bytes.add(&chunk)?;
+            let chunk = match chunk.part {
                 Some(Part::Predictions(c)) => c,
                 Some(Part::Header(_)) => {
                     return Err(Error::invalid("stream", "the header was sent twice").into());

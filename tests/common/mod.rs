@@ -128,6 +128,13 @@ impl Daemon {
 
     /// As [`Daemon::start`], with extra `holdout serve` flags.
     pub fn start_with(extra: &[&str]) -> Daemon {
+        Daemon::start_under(&[], extra)
+    }
+
+    /// As [`Daemon::start_with`], with the daemon started through `launcher` (a program and
+    /// its arguments, followed by the binary and its arguments; it must `exec` the binary, so
+    /// the child's id stays the daemon's), e.g. `sh -c 'ulimit -n 1024 && exec "$@"' sh`.
+    pub fn start_under(launcher: &[&str], extra: &[&str]) -> Daemon {
         let dir = tempfile::tempdir().expect("tempdir");
         let db = dir.path().join("holdout.db");
         let token_file = dir.path().join("admin.token");
@@ -148,7 +155,19 @@ impl Daemon {
             .to_string();
         assert!(!admin.is_empty(), "init wrote an empty token");
         let log = std::fs::File::create(dir.path().join("daemon.log")).expect("log file");
-        let mut child = holdout()
+        let mut daemon = match launcher.split_first() {
+            None => holdout(),
+            Some((program, args)) => {
+                let mut cmd = Command::new(program);
+                cmd.env_clear();
+                if let Some(path) = std::env::var_os("PATH") {
+                    cmd.env("PATH", path);
+                }
+                cmd.args(args).arg(BIN);
+                cmd
+            }
+        };
+        let mut child = daemon
             .args(["serve", "--listen", "127.0.0.1:0", "--db"])
             .arg(&db)
             .args(extra)
@@ -188,6 +207,11 @@ impl Daemon {
             admin,
             dir,
         }
+    }
+
+    /// The daemon's process id (for `/proc/PID/status` and `/proc/PID/limits`).
+    pub fn pid(&self) -> u32 {
+        self.child.id()
     }
 
     /// A path inside the scratch directory.
