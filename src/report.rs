@@ -318,7 +318,12 @@ fn draw_intervals<DB: DrawingBackend>(
 }
 
 /// A burn-down panel: caption, unit, the figure drawn, and its limit line.
-type Panel = (&'static str, &'static str, fn(&AnswerPoint) -> f64, Option<f64>);
+type Panel = (
+    &'static str,
+    &'static str,
+    fn(&AnswerPoint) -> f64,
+    Option<f64>,
+);
 
 fn draw_burn_down<DB: DrawingBackend>(
     area: &DrawingArea<DB, plotters::coord::Shift>,

@@ -284,7 +284,7 @@ pub async fn list(args: &ListArgs) -> anyhow::Result<ExitCode> {
                 if h.open { "open" } else { "closed" }.to_string(),
                 b.answered.to_string(),
                 show::num(b.remaining),
-                b.queries_left.to_string(),
+                show::queries_left_text(b.queries_left),
                 h.description.clone(),
             ]
         })

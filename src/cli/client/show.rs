@@ -113,6 +113,20 @@ pub fn plural(n: u64, one: &str, many: &str) -> String {
     format!("{n} {}", if n == 1 { one } else { many })
 }
 
+/// Queries left as JSON: `null` when unbounded (the forecast saturates), never a sentinel.
+pub fn queries_left_json(n: u64) -> Value {
+    if n == u64::MAX { Value::Null } else { json!(n) }
+}
+
+/// Queries left for people: "unbounded" when the forecast saturates.
+pub fn queries_left_text(n: u64) -> String {
+    if n == u64::MAX {
+        "unbounded".into()
+    } else {
+        n.to_string()
+    }
+}
+
 /// A budget as JSON.
 pub fn budget_json(b: &Budget) -> Value {
     json!({
@@ -121,7 +135,7 @@ pub fn budget_json(b: &Budget) -> Value {
         "remaining": b.remaining,
         "transcript_nats": b.transcript_nats,
         "next_half_width": b.next_half_width,
-        "queries_left": b.queries_left,
+        "queries_left": queries_left_json(b.queries_left),
         "answered": b.answered,
         "refused": b.refused,
         "open": b.open,
@@ -142,7 +156,11 @@ pub fn budget_text(b: &Budget) -> String {
         num(b.remaining),
         num(b.transcript_nats),
         num(b.next_half_width),
-        plural(b.queries_left, "more query fits", "more queries fit"),
+        if b.queries_left == u64::MAX {
+            "an unbounded number of queries fit".to_string()
+        } else {
+            plural(b.queries_left, "more query fits", "more queries fit")
+        },
         b.answered,
         b.refused,
         if b.open { "open" } else { "closed" }
@@ -202,7 +220,7 @@ pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
         "remaining": b.remaining,
         "transcript_nats": b.transcript_nats,
         "next_half_width": b.next_half_width,
-        "queries_left": b.queries_left,
+        "queries_left": queries_left_json(b.queries_left),
         "budget": budget_json(&b),
         "receipt": receipt_json(a.receipt.as_ref()),
         "guarantee": a.guarantee,
@@ -506,6 +524,20 @@ pub fn user_row(u: &UserInfo) -> Vec<String> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn unbounded_queries_left_is_null_or_a_word_never_a_sentinel() {
+        assert_eq!(queries_left_json(u64::MAX), Value::Null);
+        assert_eq!(queries_left_json(7), json!(7));
+        assert_eq!(queries_left_text(u64::MAX), "unbounded");
+        let b = Budget {
+            queries_left: u64::MAX,
+            ..Default::default()
+        };
+        assert_eq!(budget_json(&b)["queries_left"], Value::Null);
+        assert!(budget_text(&b).contains("an unbounded number of queries fit"));
+        assert!(!budget_text(&b).contains("18446744073709551615"));
+    }
 
     #[test]
     fn numbers_for_people() {

@@ -37,7 +37,8 @@ class Budget:
     remaining: float
     transcript_nats: float
     next_half_width: float
-    queries_left: int
+    #: None when unbounded (the daemon's forecast saturates); never a sentinel integer.
+    queries_left: Optional[int]
     answered: int
     refused: int
     open: bool
@@ -246,7 +247,7 @@ def _budget(m) -> Budget:
         remaining=m.remaining,
         transcript_nats=m.transcript_nats,
         next_half_width=m.next_half_width,
-        queries_left=m.queries_left,
+        queries_left=None if m.queries_left == 2**64 - 1 else m.queries_left,
         answered=m.answered,
         refused=m.refused,
         open=m.open,
