@@ -14,7 +14,10 @@
 //!
 //! Environment: `HOLDOUT_LOAD_CLIENTS` (N, default 32), `HOLDOUT_LOAD_SECS` (seconds per mode,
 //! default 10), `HOLDOUT_LOAD_ANSWERS` (stop each mode after this many replies instead),
-//! `HOLDOUT_LOAD_ROWS` (n, default 1000), `HOLDOUT_LOAD_BATCHES`, `HOLDOUT_LOAD_DIR` (where the
+//! `HOLDOUT_LOAD_ROWS` (n, default 1000), `HOLDOUT_LOAD_BATCHES`, `HOLDOUT_LOAD_PATH` (`grpc`,
+//! the default, or `db`: call the database thread directly as the Submit RPC does, without gRPC
+//! or authentication), `HOLDOUT_LOAD_RULE` (the answer rule, default `threshold:0.5`;
+//! `rounded:0.01` affords only 2,888 answers at n = 1,000), `HOLDOUT_LOAD_DIR` (where the
 //! database files go; default the system temp directory, which must be a real disk for the
 //! fsync to mean anything).
 //!
@@ -28,7 +31,10 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 
 use holdout_ledger::auth::{self, Caller, Role};
-use holdout_ledger::engine::{CreateRequest, Db, Engine, PolicyInput, SystemClock, TargetDecl};
+use holdout_ledger::engine::{
+    CreateRequest, Db, Engine, ModelPredictions, PolicyInput, RawValues, SubmitMode, SubmitOutcome,
+    SubmitRequest, SystemClock, TargetDecl,
+};
 use holdout_ledger::ledger;
 use holdout_ledger::proto::v1::{
     self as pb, PredictionChunk, SubmitChunk, SubmitHeader, submissions_client::SubmissionsClient,
@@ -123,6 +129,91 @@ fn percentile(sorted: &[Duration], p: f64) -> Duration {
     sorted[rank.clamp(1, sorted.len()) - 1]
 }
 
+type Grpc = SubmissionsClient<
+    tonic::service::interceptor::InterceptedService<
+        tonic::transport::Channel,
+        Box<dyn FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Send>,
+    >,
+>;
+
+/// A client: a gRPC connection to the daemon, or (`HOLDOUT_LOAD_PATH=db`) a direct caller of
+/// the database thread, as the Submit RPC calls it, without gRPC or authentication.
+enum Client {
+    Grpc(Grpc),
+    Direct { db: Db, caller: Caller },
+}
+
+enum Reply {
+    Answer,
+    Refusal,
+    Other(String),
+}
+
+impl Client {
+    async fn submit(&mut self, ids: Vec<String>, classes: Vec<String>) -> Result<Reply, String> {
+        match self {
+            Client::Grpc(client) => {
+                let chunks = vec![
+                    SubmitChunk {
+                        part: Some(submit_chunk::Part::Header(SubmitHeader {
+                            holdout: HOLDOUT.into(),
+                            mode: pb::SubmitMode::Answer as i32,
+                            ..Default::default()
+                        })),
+                    },
+                    SubmitChunk {
+                        part: Some(submit_chunk::Part::Predictions(PredictionChunk {
+                            model: 0,
+                            ids,
+                            classes,
+                            values: vec![],
+                        })),
+                    },
+                ];
+                let reply = client
+                    .submit(tokio_stream::iter(chunks))
+                    .await
+                    .map_err(|e| e.to_string())?;
+                Ok(match reply.into_inner().outcome {
+                    Some(Outcome::Answer(a)) if !a.replayed => Reply::Answer,
+                    Some(Outcome::Refusal(_)) => Reply::Refusal,
+                    other => Reply::Other(format!("{other:?}")),
+                })
+            }
+            Client::Direct { db, caller } => {
+                let caller = caller.clone();
+                let req = SubmitRequest {
+                    holdout: HOLDOUT.into(),
+                    target: String::new(),
+                    mode: SubmitMode::Answer,
+                    request_id: None,
+                    note: String::new(),
+                    max_cost_nats: None,
+                    model_names: vec![],
+                    models: vec![ModelPredictions {
+                        ids,
+                        values: RawValues::Classes(classes),
+                    }],
+                    mark_final: false,
+                };
+                let out = db
+                    .call_batched(move |e| e.submit(&caller, req))
+                    .await
+                    .map_err(|e| e.to_string())?;
+                Ok(match out {
+                    SubmitOutcome::Answer {
+                        replayed: false, ..
+                    } => Reply::Answer,
+                    SubmitOutcome::Refusal {
+                        receipt: Some(_), ..
+                    } => Reply::Refusal,
+                    other => Reply::Other(format!("{other:?}")),
+                })
+            }
+        }
+    }
+}
+
 async fn run_mode(
     max_batch: usize,
     clients: usize,
@@ -130,6 +221,7 @@ async fn run_mode(
     secs: u64,
     fixed: Option<u64>,
     rule: &str,
+    direct: bool,
     dir: &std::path::Path,
 ) -> Mode {
     let tmp = tempfile::Builder::new()
@@ -221,20 +313,34 @@ async fn run_mode(
             .await
             .expect("connect");
         let bearer: tonic::metadata::MetadataValue<_> = format!("Bearer {token}").parse().unwrap();
-        conns.push(SubmissionsClient::with_interceptor(
-            channel,
-            move |mut r: tonic::Request<()>| {
-                r.metadata_mut().insert("authorization", bearer.clone());
-                Ok(r)
-            },
-        ));
+        let auth: Box<
+            dyn FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Send,
+        > = Box::new(move |mut r: tonic::Request<()>| {
+            r.metadata_mut().insert("authorization", bearer.clone());
+            Ok(r)
+        });
+        conns.push(SubmissionsClient::with_interceptor(channel, auth));
     }
+    let clients: Vec<Client> = if direct {
+        (0..clients)
+            .map(|c| Client::Direct {
+                db: db.clone(),
+                caller: Caller {
+                    name: format!("analyst-{c}"),
+                    roles: vec![Role::Analyst],
+                    team: format!("team-{c}"),
+                },
+            })
+            .collect()
+    } else {
+        conns.into_iter().map(Client::Grpc).collect()
+    };
     let issued = Arc::new(AtomicU64::new(0));
     let cpu_before = cpu();
     let start = Instant::now();
     let deadline = start + Duration::from_secs(secs);
     let mut tasks = Vec::new();
-    for (c, mut client) in conns.into_iter().enumerate() {
+    for (c, mut client) in clients.into_iter().enumerate() {
         let issued = issued.clone();
         tasks.push(tokio::spawn(async move {
             let (mut answers, mut refusals, mut errors) = (0u64, 0u64, 0u64);
@@ -247,30 +353,15 @@ async fn run_mode(
                     _ => {}
                 }
                 // Unique per (client, round): k is unique across clients.
-                let chunks = vec![
-                    SubmitChunk {
-                        part: Some(submit_chunk::Part::Header(SubmitHeader {
-                            holdout: HOLDOUT.into(),
-                            mode: pb::SubmitMode::Answer as i32,
-                            ..Default::default()
-                        })),
-                    },
-                    SubmitChunk {
-                        part: Some(submit_chunk::Part::Predictions(PredictionChunk {
-                            model: 0,
-                            ids: (0..rows).map(|i| format!("row-{i:07}")).collect(),
-                            classes: predictions(rows, k),
-                            values: vec![],
-                        })),
-                    },
-                ];
+                let ids: Vec<String> = (0..rows).map(|i| format!("row-{i:07}")).collect();
+                let classes = predictions(rows, k);
                 let t0 = Instant::now();
-                let reply = client.submit(tokio_stream::iter(chunks)).await;
+                let reply = client.submit(ids, classes).await;
                 latencies.push(t0.elapsed());
-                match reply.map(|r| r.into_inner().outcome) {
-                    Ok(Some(Outcome::Answer(a))) if !a.replayed => answers += 1,
-                    Ok(Some(Outcome::Refusal(_))) => refusals += 1,
-                    Ok(other) => panic!("client {c}: unexpected reply {other:?}"),
+                match reply {
+                    Ok(Reply::Answer) => answers += 1,
+                    Ok(Reply::Refusal) => refusals += 1,
+                    Ok(Reply::Other(other)) => panic!("client {c}: unexpected reply {other}"),
                     Err(e) => {
                         errors += 1;
                         if errors <= 3 {
@@ -349,6 +440,11 @@ fn main() {
                 .max(1)
         })
         .collect();
+    let direct = match std::env::var("HOLDOUT_LOAD_PATH").as_deref() {
+        Err(_) | Ok("grpc") => false,
+        Ok("db") => true,
+        Ok(other) => panic!("HOLDOUT_LOAD_PATH is grpc (default) or db, got {other:?}"),
+    };
     let rule = std::env::var("HOLDOUT_LOAD_RULE").unwrap_or_else(|_| "threshold:0.5".into());
     let dir = std::env::var_os("HOLDOUT_LOAD_DIR")
         .map(std::path::PathBuf::from)
@@ -358,8 +454,13 @@ fn main() {
         .build()
         .expect("runtime");
     println!(
-        "load: n = {rows} rows, answers {rule}, {clients} concurrent gRPC clients, {}, \
+        "load: n = {rows} rows, answers {rule}, {clients} concurrent {} clients, {}, \
          database in {} (synchronous = FULL, WAL), {} cores",
+        if direct {
+            "database-thread (no gRPC)"
+        } else {
+            "gRPC"
+        },
         match fixed {
             Some(t) => format!("{t} submissions per mode"),
             None => format!("{secs} s per mode"),
@@ -382,7 +483,9 @@ fn main() {
     );
     let mut rates = Vec::new();
     for &max_batch in &batches {
-        let m = runtime.block_on(run_mode(max_batch, clients, rows, secs, fixed, &rule, &dir));
+        let m = runtime.block_on(run_mode(
+            max_batch, clients, rows, secs, fixed, &rule, direct, &dir,
+        ));
         let rate = m.answers as f64 / m.elapsed.as_secs_f64();
         let mean = if m.stats.batches == 0 {
             1.0
