@@ -129,11 +129,10 @@ fn percentile(sorted: &[Duration], p: f64) -> Duration {
     sorted[rank.clamp(1, sorted.len()) - 1]
 }
 
+/// The interceptor that adds a client's bearer token.
+type Auth = Box<dyn FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Send>;
 type Grpc = SubmissionsClient<
-    tonic::service::interceptor::InterceptedService<
-        tonic::transport::Channel,
-        Box<dyn FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Send>,
-    >,
+    tonic::service::interceptor::InterceptedService<tonic::transport::Channel, Auth>,
 >;
 
 /// A client: a gRPC connection to the daemon, or (`HOLDOUT_LOAD_PATH=db`) a direct caller of
@@ -214,16 +213,27 @@ impl Client {
     }
 }
 
-async fn run_mode(
-    max_batch: usize,
+/// What every mode of a run shares.
+struct Settings {
     clients: usize,
     rows: usize,
     secs: u64,
     fixed: Option<u64>,
-    rule: &str,
+    rule: String,
     direct: bool,
-    dir: &std::path::Path,
-) -> Mode {
+    dir: std::path::PathBuf,
+}
+
+async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
+    let Settings {
+        clients,
+        rows,
+        secs,
+        fixed,
+        ref rule,
+        direct,
+        ref dir,
+    } = *set;
     let tmp = tempfile::Builder::new()
         .prefix("holdout-load-")
         .tempdir_in(dir)
@@ -313,9 +323,7 @@ async fn run_mode(
             .await
             .expect("connect");
         let bearer: tonic::metadata::MetadataValue<_> = format!("Bearer {token}").parse().unwrap();
-        let auth: Box<
-            dyn FnMut(tonic::Request<()>) -> Result<tonic::Request<()>, tonic::Status> + Send,
-        > = Box::new(move |mut r: tonic::Request<()>| {
+        let auth: Auth = Box::new(move |mut r: tonic::Request<()>| {
             r.metadata_mut().insert("authorization", bearer.clone());
             Ok(r)
         });
@@ -449,6 +457,15 @@ fn main() {
     let dir = std::env::var_os("HOLDOUT_LOAD_DIR")
         .map(std::path::PathBuf::from)
         .unwrap_or_else(std::env::temp_dir);
+    let settings = Settings {
+        clients,
+        rows,
+        secs,
+        fixed,
+        rule: rule.clone(),
+        direct,
+        dir: dir.clone(),
+    };
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
@@ -483,9 +500,7 @@ fn main() {
     );
     let mut rates = Vec::new();
     for &max_batch in &batches {
-        let m = runtime.block_on(run_mode(
-            max_batch, clients, rows, secs, fixed, &rule, direct, &dir,
-        ));
+        let m = runtime.block_on(run_mode(max_batch, &settings));
         let rate = m.answers as f64 / m.elapsed.as_secs_f64();
         let mean = if m.stats.batches == 0 {
             1.0
