@@ -8,6 +8,7 @@
 //! submission of the batch is queued (`call_batched` queues its job when called).
 
 mod audit_support;
+mod common;
 
 use std::collections::HashSet;
 
@@ -380,4 +381,182 @@ async fn with_group_commit_off_each_submission_commits_alone() {
     let (entries, users) = chains(&db, &name).await;
     assert_eq!(answer_queries(&entries), [1, 2, 3, 4, 5]);
     assert_audits_clean(&name, entries, users);
+}
+
+#[test]
+fn serve_refuses_a_batch_size_of_zero() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_holdout"))
+        .args([
+            "serve",
+            "--listen",
+            "127.0.0.1:0",
+            "--max-batch",
+            "0",
+            "--db",
+        ])
+        .arg(dir.path().join("h.db"))
+        .env_clear()
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2), "a usage error");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("--max-batch"), "{err}");
+    assert!(
+        !dir.path().join("h.db").exists(),
+        "nothing is created on a usage error"
+    );
+}
+
+/// Through the real daemon (the binary, group commit on by default): 16 analysts submit 6
+/// distinct files each, all at once, over gRPC; every acknowledged answer is in the exported
+/// ledger once with the query number it was told, the numbers are dense, and `holdout audit`
+/// of the export (with the labels) is clean.
+#[test]
+fn concurrent_submitters_through_the_daemon_audit_clean() {
+    use holdout_ledger::cli::client::conn::{Conn, ServerArgs};
+    use holdout_ledger::proto::v1::{
+        self as pb, PredictionChunk, SubmitChunk, SubmitHeader, submit_chunk,
+        submit_response::Outcome,
+    };
+
+    let d = common::Daemon::start();
+    let rows = 300;
+    let truth = |i: usize| if i.is_multiple_of(3) { "x" } else { "y" };
+    let mut labels = String::from("id,label\n");
+    for i in 0..rows {
+        labels.push_str(&format!("r{i:04},{}\n", truth(i)));
+    }
+    let labels = d.write("labels.csv", &labels);
+    d.admin(&[
+        "create",
+        "busy",
+        "--labels",
+        &labels,
+        "--metric",
+        "error",
+        "--classes",
+        "x,y",
+        "--label-column",
+        "label",
+        "--schedule",
+        "series",
+        "--answers",
+        "rounded:0.01",
+        "--tolerance",
+        "0.5",
+        "--expect-answers",
+        "100",
+        "--json",
+    ])
+    .ok();
+    let auditor = d.add_user("auditor", &["auditor"], None);
+    let tokens: Vec<String> = (0..16)
+        .map(|t| d.add_user(&format!("a{t}"), &["analyst"], Some(&format!("team{t}"))))
+        .collect();
+
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(4)
+        .enable_all()
+        .build()
+        .unwrap();
+    let receipts: Vec<(u64, String)> = rt.block_on(async {
+        let mut tasks = Vec::new();
+        for (t, token) in tokens.into_iter().enumerate() {
+            let url = d.url.clone();
+            tasks.push(tokio::spawn(async move {
+                let c = Conn::open(&ServerArgs {
+                    server: url,
+                    token: Some(token),
+                    ca: None,
+                    client_cert: None,
+                    client_key: None,
+                })
+                .await
+                .expect("connect");
+                let mut got = Vec::new();
+                for round in 0..6usize {
+                    // Distinct per (team, round): wrong on 10 + t rows starting at 40 * round.
+                    let k = t * 6 + round;
+                    let classes: Vec<String> = (0..rows)
+                        .map(|i| {
+                            let wrong = (40 * round..40 * round + 10 + t).contains(&i);
+                            let l = truth(i);
+                            (if wrong {
+                                if l == "x" { "y" } else { "x" }
+                            } else {
+                                l
+                            })
+                            .to_string()
+                        })
+                        .collect();
+                    let chunks = vec![
+                        SubmitChunk {
+                            part: Some(submit_chunk::Part::Header(SubmitHeader {
+                                holdout: "busy".into(),
+                                mode: pb::SubmitMode::Answer as i32,
+                                note: format!("file {k}"),
+                                ..Default::default()
+                            })),
+                        },
+                        SubmitChunk {
+                            part: Some(submit_chunk::Part::Predictions(PredictionChunk {
+                                model: 0,
+                                ids: (0..rows).map(|i| format!("r{i:04}")).collect(),
+                                classes,
+                                values: vec![],
+                            })),
+                        },
+                    ];
+                    let reply = c
+                        .submissions()
+                        .submit(tokio_stream::iter(chunks))
+                        .await
+                        .expect("submit")
+                        .into_inner();
+                    match reply.outcome {
+                        Some(Outcome::Answer(a)) if !a.replayed => {
+                            let r = a.receipt.expect("receipt");
+                            got.push((r.query, r.entry_hash));
+                        }
+                        other => panic!("unexpected {other:?}"),
+                    }
+                }
+                got
+            }));
+        }
+        let mut all = Vec::new();
+        for t in tasks {
+            all.extend(t.await.unwrap());
+        }
+        all
+    });
+    assert_eq!(receipts.len(), 96);
+    let mut queries: Vec<u64> = receipts.iter().map(|(q, _)| *q).collect();
+    queries.sort();
+    assert_eq!(queries, (1..=96).collect::<Vec<u64>>(), "dense and unique");
+
+    let out = d.path("busy.export").display().to_string();
+    d.run(&auditor, &["export", "busy", "--out", &out]).ok();
+    let text = std::fs::read_to_string(&out).unwrap();
+    for (query, hash) in &receipts {
+        let lines: Vec<&str> = text
+            .lines()
+            .filter(|l| l.contains(&format!("\"hash\":\"{hash}\"")))
+            .collect();
+        assert_eq!(lines.len(), 1, "query {query}: {} entries", lines.len());
+        let entry: serde_json::Value = serde_json::from_str(lines[0]).unwrap();
+        let body: serde_json::Value =
+            serde_json::from_str(entry["body"].as_str().unwrap()).unwrap();
+        assert_eq!(entry["kind"], "answer");
+        assert_eq!(body["query"].as_u64(), Some(*query));
+    }
+    let report = common::run(
+        common::holdout(),
+        &["audit", &out, "--labels", &labels, "--json"],
+    )
+    .ok()
+    .json();
+    assert_eq!(report["clean"], true, "{report:#}");
+    assert_eq!(report["labels_checked"], true);
 }
