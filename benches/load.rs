@@ -91,16 +91,18 @@ struct Mode {
     cpu: Cpu,
 }
 
-/// On-CPU time of this process's live threads from `/proc/self/task/*/schedstat` (Linux;
-/// zeros elsewhere), in ns: all of them, and the database thread(s).
+/// On-CPU time used between two snapshots, in ns: by all of this process's threads, and by the
+/// database thread(s).
 #[derive(Debug, Clone, Copy, Default)]
 struct Cpu {
     all: u64,
     db: u64,
 }
 
-fn cpu() -> Cpu {
-    let mut out = Cpu::default();
+/// On-CPU ns of each live thread of this process, by thread id, from
+/// `/proc/self/task/*/schedstat` (Linux; empty elsewhere), and whether it is a database thread.
+fn threads() -> std::collections::HashMap<String, (u64, bool)> {
+    let mut out = std::collections::HashMap::new();
     let Ok(tasks) = std::fs::read_dir("/proc/self/task") else {
         return out;
     };
@@ -109,13 +111,26 @@ fn cpu() -> Cpu {
         let Ok(stat) = std::fs::read_to_string(p.join("schedstat")) else {
             continue;
         };
-        let mut f = stat
+        let run = stat
             .split_whitespace()
-            .map(|v| v.parse::<u64>().unwrap_or(0));
-        let run = f.next().unwrap_or(0);
-        out.all += run;
-        if std::fs::read_to_string(p.join("comm")).is_ok_and(|c| c.trim() == "holdout-db") {
-            out.db += run;
+            .next()
+            .and_then(|v| v.parse::<u64>().ok())
+            .unwrap_or(0);
+        let db = std::fs::read_to_string(p.join("comm")).is_ok_and(|c| c.trim() == "holdout-db");
+        out.insert(task.file_name().to_string_lossy().into_owned(), (run, db));
+    }
+    out
+}
+
+/// CPU used since `before` by the threads alive now (a thread that ended in between is not
+/// counted; one that started is counted from its start).
+fn cpu_since(before: &std::collections::HashMap<String, (u64, bool)>) -> Cpu {
+    let mut out = Cpu::default();
+    for (tid, (run, db)) in threads() {
+        let used = run.saturating_sub(before.get(&tid).map_or(0, |b| b.0));
+        out.all += used;
+        if db {
+            out.db += used;
         }
     }
     out
@@ -344,7 +359,7 @@ async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
         conns.into_iter().map(Client::Grpc).collect()
     };
     let issued = Arc::new(AtomicU64::new(0));
-    let cpu_before = cpu();
+    let cpu_before = threads();
     let start = Instant::now();
     let deadline = start + Duration::from_secs(secs);
     let mut tasks = Vec::new();
@@ -391,7 +406,7 @@ async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
         latencies.extend(l);
     }
     let elapsed = start.elapsed();
-    let cpu_after = cpu();
+    let cpu_used = cpu_since(&cpu_before);
     latencies.sort();
 
     // Every reply counted was committed: the chain holds them all and verifies.
@@ -424,10 +439,7 @@ async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
         latencies,
         stats,
         entries: chain.len(),
-        cpu: Cpu {
-            all: cpu_after.all.saturating_sub(cpu_before.all),
-            db: cpu_after.db.saturating_sub(cpu_before.db),
-        },
+        cpu: cpu_used,
     }
 }
 
