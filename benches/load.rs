@@ -365,6 +365,7 @@ async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
     let mut tasks = Vec::new();
     for (c, mut client) in clients.into_iter().enumerate() {
         let issued = issued.clone();
+        let all_ids: Vec<String> = (0..rows).map(|i| format!("row-{i:07}")).collect();
         tasks.push(tokio::spawn(async move {
             let (mut answers, mut refusals, mut errors) = (0u64, 0u64, 0u64);
             let mut latencies = Vec::new();
@@ -376,7 +377,7 @@ async fn run_mode(max_batch: usize, set: &Settings) -> Mode {
                     _ => {}
                 }
                 // Unique per (client, round): k is unique across clients.
-                let ids: Vec<String> = (0..rows).map(|i| format!("row-{i:07}")).collect();
+                let ids = all_ids.clone();
                 let classes = predictions(rows, k);
                 let t0 = Instant::now();
                 let reply = client.submit(ids, classes).await;
