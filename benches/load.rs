@@ -97,11 +97,13 @@ struct Mode {
 struct Cpu {
     all: u64,
     db: u64,
+    /// ns the database thread(s) waited runnable for a core (another process had it).
+    db_waiting: u64,
 }
 
 /// On-CPU ns of each live thread of this process, by thread id, from
 /// `/proc/self/task/*/schedstat` (Linux; empty elsewhere), and whether it is a database thread.
-fn threads() -> std::collections::HashMap<String, (u64, bool)> {
+fn threads() -> std::collections::HashMap<String, (u64, u64, bool)> {
     let mut out = std::collections::HashMap::new();
     let Ok(tasks) = std::fs::read_dir("/proc/self/task") else {
         return out;
@@ -111,26 +113,30 @@ fn threads() -> std::collections::HashMap<String, (u64, bool)> {
         let Ok(stat) = std::fs::read_to_string(p.join("schedstat")) else {
             continue;
         };
-        let run = stat
+        let mut fields = stat
             .split_whitespace()
-            .next()
-            .and_then(|v| v.parse::<u64>().ok())
-            .unwrap_or(0);
+            .map(|v| v.parse::<u64>().unwrap_or(0));
+        let (run, waiting) = (fields.next().unwrap_or(0), fields.next().unwrap_or(0));
         let db = std::fs::read_to_string(p.join("comm")).is_ok_and(|c| c.trim() == "holdout-db");
-        out.insert(task.file_name().to_string_lossy().into_owned(), (run, db));
+        out.insert(
+            task.file_name().to_string_lossy().into_owned(),
+            (run, waiting, db),
+        );
     }
     out
 }
 
 /// CPU used since `before` by the threads alive now (a thread that ended in between is not
 /// counted; one that started is counted from its start).
-fn cpu_since(before: &std::collections::HashMap<String, (u64, bool)>) -> Cpu {
+fn cpu_since(before: &std::collections::HashMap<String, (u64, u64, bool)>) -> Cpu {
     let mut out = Cpu::default();
-    for (tid, (run, db)) in threads() {
-        let used = run.saturating_sub(before.get(&tid).map_or(0, |b| b.0));
+    for (tid, (run, waiting, db)) in threads() {
+        let (run0, waiting0) = before.get(&tid).map_or((0, 0), |b| (b.0, b.1));
+        let used = run.saturating_sub(run0);
         out.all += used;
         if db {
             out.db += used;
+            out.db_waiting += waiting.saturating_sub(waiting0);
         }
     }
     out
@@ -541,10 +547,12 @@ fn main() {
         let per = |ns: u64| ns as f64 / 1e6 / m.answers.max(1) as f64;
         println!(
             "          cpu per answer: {:.3} ms in the whole process (daemon and clients), {:.3} ms \
-             on the database thread; the process ran on {:.2} cores on average",
+             on the database thread; the process ran on {:.2} cores on average; the database \
+             thread waited runnable for a core {:.0}% of the run",
             per(m.cpu.all),
             per(m.cpu.db),
             m.cpu.all as f64 / m.elapsed.as_nanos().max(1) as f64,
+            100.0 * m.cpu.db_waiting as f64 / m.elapsed.as_nanos().max(1) as f64,
         );
         rates.push((max_batch, rate));
     }
