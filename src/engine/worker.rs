@@ -211,6 +211,15 @@ impl Db {
                         }
                         Err(panicked())
                     });
+                // A job must close every write it opened; one left open (a bug) would swallow
+                // the batch's commit, so it is undone here and its caller told so.
+                let out = if depth > 0 && engine.write_depth() > depth {
+                    tracing::error!("a batched job left a write open; it was rolled back");
+                    engine.recover_from_panic_to(depth);
+                    Err(panicked())
+                } else {
+                    out
+                };
                 Box::new(move |failed: Option<&str>| {
                     let out = match failed {
                         None => out,
@@ -388,6 +397,18 @@ mod tests {
                 panic!("injected failure in a batch");
             })
         });
+        // A job that returns with a write of its own still open (a bug): undone, and its
+        // caller told so; it must not swallow the batch's commit.
+        let unclosed = db.call_batched(|engine: &mut Engine| -> Result<()> {
+            engine.begin_write()?;
+            engine.append(
+                "scratch",
+                Kind::Read,
+                &serde_json::json!({"by": "t", "what": "unclosed", "at": "x"}),
+                None,
+            )?;
+            Ok(())
+        });
         let last = db.call_batched(note("last"));
         release.send(()).unwrap();
         first.await.unwrap();
@@ -395,9 +416,13 @@ mod tests {
             Err(Error::Internal(msg)) => assert!(msg.contains("nothing from it"), "{msg}"),
             other => panic!("a panicking job must fail with Internal, got {other:?}"),
         }
+        match unclosed.await {
+            Err(Error::Internal(msg)) => assert!(msg.contains("nothing from it"), "{msg}"),
+            other => panic!("a job that left a write open must fail, got {other:?}"),
+        }
         last.await.unwrap();
         let stats = db.batch_stats();
-        assert_eq!((stats.batches, stats.largest), (1, 3), "{stats:?}");
+        assert_eq!((stats.batches, stats.largest), (1, 4), "{stats:?}");
         let chain = db
             .call(|engine| ledger::read_chain(engine.store().conn(), "scratch"))
             .await
