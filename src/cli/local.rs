@@ -84,6 +84,12 @@ pub struct ServeArgs {
     #[arg(long, value_name = "BYTES", default_value_t = DEFAULT_MAX_STREAM_BYTES,
           value_parser = clap::value_parser!(u64).range(1024..))]
     pub max_create_bytes: u64,
+    /// Submissions committed together at most (group commit): answers and refusals queued while
+    /// a transaction is open share the next one, each still its own ledger entry, each reply
+    /// sent after that commit, so one fsync covers many answers. 1 turns group commit off.
+    #[arg(long, value_name = "N", default_value_t = crate::engine::DEFAULT_MAX_BATCH as u64,
+          value_parser = clap::value_parser!(u64).range(1..=4096))]
+    pub max_batch: u64,
     /// Seconds between checkpoints with --checkpoint-dir.
     #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
           value_parser = clap::value_parser!(u64).range(1..))]
@@ -173,7 +179,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
                 }
             }));
         }
-        let db = Db::spawn(engine);
+        let db = Db::spawn_with(engine, args.max_batch as usize);
         if let Some(dir) = args.checkpoint_dir.clone() {
             tokio::spawn(write_checkpoints(db.clone(), dir, args.checkpoint_every));
         }

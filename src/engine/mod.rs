@@ -1,6 +1,9 @@
 //! The daemon's operations on the store. Each operation runs on the database thread
 //! ([`Db`]) and is one SQLite transaction: a query is validated, scored, charged and appended to
 //! the ledger inside one `BEGIN IMMEDIATE` transaction, and its answer leaves only after commit.
+//! Submissions queued together share that transaction (group commit, [`Db::call_batched`]):
+//! each runs as a savepoint inside it, so each is still its own entry and a failing one is
+//! undone alone, and every reply waits for the one commit.
 //! There is one write path: `Engine::begin_write` / `Engine::end_write` (or
 //! [`Engine::write`]) around `Engine::append`, the only code that appends to any chain.
 //!
@@ -35,7 +38,7 @@ pub use records::{
     AnswerRecord, BudgetView, Comparison, RankedEntry, RefusalRecord, RoundRecord, SealedRecord,
 };
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
-pub use worker::Db;
+pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
@@ -124,6 +127,24 @@ impl Engine {
             let _ = self.store.conn().execute_batch("ROLLBACK");
         }
         self.closed.clear();
+        self.accountants.clear();
+        self.holdouts.clear();
+    }
+
+    /// How many writes are open (0: none; 1: a transaction; more: savepoints inside it).
+    pub(crate) fn write_depth(&self) -> usize {
+        self.writes.len()
+    }
+
+    /// After a panic in a job that ran inside an enclosing write left open at `depth` (a group
+    /// commit): rolls back the writes the job left open above `depth` (restoring the cached
+    /// state each started from) and drops every cached accounting state and holdout (rebuilt
+    /// from the ledger, inside the enclosing write, when next needed). The enclosing write
+    /// stays open for the other jobs of its batch.
+    pub(crate) fn recover_from_panic_to(&mut self, depth: usize) {
+        while self.writes.len() > depth.max(1) {
+            let _ = self.end_write::<()>(Err(Error::Internal("a job panicked".into())));
+        }
         self.accountants.clear();
         self.holdouts.clear();
     }

@@ -212,9 +212,11 @@ impl Submissions for Daemon {
             mark_final: header.mark_final,
         };
         let holdout = req.holdout.clone();
+        // Group commit: queued submissions share one transaction; the reply leaves after it
+        // committed (src/engine/worker.rs).
         let (outcome, guarantee, closes_at) = self
             .db
-            .call(move |engine| {
+            .call_batched(move |engine| {
                 let out = engine.submit(&caller, req)?;
                 let policy = &engine.loaded(&holdout)?.policy;
                 let closes_at = policy.closes_at.map(crate::auth::rfc3339);
