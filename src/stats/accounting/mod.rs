@@ -110,6 +110,10 @@ pub struct Accountant {
     /// Interval evaluations made to decide threshold answers (see
     /// [`Accountant::threshold_evaluations`]).
     threshold_evaluations: std::cell::Cell<u64>,
+    /// The last analyst status computed ([`Accountant::status`]), by (sequence, analyst).
+    /// An answer computes it for the numbers it releases, and the budget shown with the same
+    /// answer asks for it again; every change of state forgets it ([`Accountant::changed`]).
+    last_status: std::cell::RefCell<Option<StatusMemo>>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -144,6 +148,7 @@ impl Accountant {
             last_judged: std::cell::Cell::new(None),
             last_cutoff: std::cell::Cell::new(None),
             threshold_evaluations: std::cell::Cell::new(0),
+            last_status: std::cell::RefCell::new(None),
             policy,
         };
         if acc.policy.tolerance_reference == ToleranceReference::WorstCase {
@@ -486,8 +491,16 @@ impl Accountant {
         Ok(())
     }
 
+    /// Forgets what was remembered of the state (the last status): called by every method
+    /// that changes the state, before it changes anything. The other memos are keyed by
+    /// everything their values depend on and need no forgetting.
+    fn changed(&mut self) {
+        *self.last_status.get_mut() = None;
+    }
+
     /// Registers `analyst` if new (an arrival, under on-arrival shares).
     fn register(&mut self, analyst: &str) {
+        self.changed();
         if !self.analysts.contains_key(analyst) {
             let w = if self.per_analyst_pool() {
                 if !self.policy.shares.on_roster(analyst) {
@@ -507,6 +520,7 @@ impl Accountant {
 
     /// Takes the charge's shares and registers a new analyst; returns the analyst's state.
     fn take_shares(&mut self, charge: &Charge) -> &mut AnalystState {
+        self.changed();
         let analyst = &charge.request.analyst;
         self.register(analyst);
         self.sequence += 1;
@@ -527,6 +541,7 @@ impl Accountant {
         charge: &Charge,
         outcomes: &[Outcome],
     ) -> Result<Answer, AccountingError> {
+        self.changed();
         self.check_charge(req, charge)?;
         if matches!(self.policy.rule, Rule::Sealed(_)) {
             return Err(AccountingError::WrongRule(
@@ -607,6 +622,7 @@ impl Accountant {
         cell: u64,
         level_nats: f64,
     ) -> Result<Answer, AccountingError> {
+        self.changed();
         if !self.can_adopt(analyst, target, cell) {
             return Err(AccountingError::WrongRule(
                 "only a ladder under shared sharing (core 2) adopts, and only a cell below the \
@@ -814,6 +830,7 @@ impl Accountant {
         req: &QueryRequest,
         charge: &Charge,
     ) -> Result<SealedReceipt, AccountingError> {
+        self.changed();
         self.check_charge(req, charge)?;
         if !matches!(self.policy.rule, Rule::Sealed(_)) {
             return Err(AccountingError::WrongRule(
@@ -839,6 +856,7 @@ impl Accountant {
     /// are added to the transcript after all answers are formed, so a later round pays for
     /// them; if the close is the holdout's last event, nobody does.
     pub fn close_round(&mut self, outcomes: &[Outcome]) -> Result<Vec<Answer>, AccountingError> {
+        self.changed();
         if outcomes.len() != self.pending.len() {
             return Err(AccountingError::BadOutcome(format!(
                 "{} outcomes for {} sealed submissions",
@@ -899,6 +917,9 @@ impl Accountant {
 
 /// (target, reference bits, level bits) and the half-width computed for them.
 type HalfWidthMemo = ((usize, u64, u64), f64);
+
+/// (sequence, analyst) and the status computed for them.
+type StatusMemo = ((u64, String), Status);
 
 static EMPTY_TRANSCRIPT: Transcript = Transcript {
     nats: 0.0,
