@@ -9,7 +9,7 @@ use super::anchor::Checkpoint;
 use super::export::Export;
 use super::replay::{QuerySummary, replay};
 use super::{CANNOT_CHECK, Finding};
-use crate::engine::HoldoutPolicy;
+use crate::engine::{HoldoutPolicy, Record};
 use crate::ledger::{self, Entry};
 
 /// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own. It names
@@ -626,22 +626,28 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
             ));
         }
     }
-    // The chains' links and hashes and the identity cross-check need nothing the replay
-    // computes: they run on a second thread while this one replays, and their findings take
-    // their places in the report as if everything had run in order.
+    // The chains' links and hashes, and the parsing of the entries with the identity
+    // cross-check, need nothing the replay computes: they run on two other threads while this
+    // one replays (the replay takes the parsed records in order through a bounded channel), and
+    // their findings take their places in the report as if everything had run in order.
     let head = std::mem::take(&mut report.findings);
-    let ((chains, identities), mid) = std::thread::scope(|scope| {
-        let side = scope.spawn(|| {
+    let (chains, identities, mid) = std::thread::scope(|scope| {
+        let hashes = scope.spawn(|| {
             let mut found = Vec::new();
             chain_faults(&chain, &export.entries, &mut found);
             chain_faults(ledger::USERS_CHAIN, &export.users, &mut found);
-            (found, super::identity::check(export))
+            found
         });
-        let mid = audit_in_order(export, &mut opts, &mut report);
-        let side = side
+        let (tx, rx) = std::sync::mpsc::sync_channel(PARSED_CHUNKS);
+        let parser = scope.spawn(move || parse_and_check_identities(export, tx));
+        let mid = audit_in_order(export, &mut opts, &mut report, rx);
+        let identities = parser
             .join()
             .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
-        (side, mid)
+        let chains = hashes
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        (chains, identities, mid)
     });
     let tail = std::mem::take(&mut report.findings);
     report.identity_checked = identities.checked;
@@ -653,6 +659,47 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     report
 }
 
+/// Entries parsed per message to the replay, and messages in flight.
+const PARSED_CHUNK: usize = 256;
+const PARSED_CHUNKS: usize = 32;
+
+/// Parsed records of the holdout's entries after the genesis, in order, in chunks.
+type Parsed = Vec<Result<Record, String>>;
+
+/// Parses every entry of the holdout's chain once ([`Record::parse`]), checks the identities
+/// of those that name a user on the way, and sends the records after the genesis to the replay
+/// through `tx`. When the replay does not run (or stops taking them), only the entries the
+/// identity check needs are parsed from then on.
+fn parse_and_check_identities(
+    export: &Export,
+    tx: std::sync::mpsc::SyncSender<Parsed>,
+) -> super::identity::IdentityCheck {
+    use super::identity::Checker;
+    let mut checker = Checker::new(export);
+    let mut tx = Some(tx);
+    let mut chunk = Vec::with_capacity(PARSED_CHUNK);
+    for (i, e) in export.entries.iter().enumerate() {
+        let Some(to) = tx.as_ref().filter(|_| i > 0) else {
+            if Checker::wants(e) {
+                checker.entry(e, Record::parse(e).ok().as_ref());
+            }
+            continue;
+        };
+        let rec = Record::parse(e);
+        checker.entry(e, rec.as_ref().ok());
+        chunk.push(rec);
+        if chunk.len() == PARSED_CHUNK && to.send(std::mem::take(&mut chunk)).is_err() {
+            tx = None;
+        }
+    }
+    if let Some(to) = tx
+        && !chunk.is_empty()
+    {
+        let _ = to.send(chunk);
+    }
+    checker.finish()
+}
+
 /// The checks of [`audit`] that follow the chain checks, in order, on the calling thread:
 /// identity events' kinds, checkpoints, receipts, then (after the identity cross-check, which
 /// runs on another thread) the genesis, the labels and the replay. Returns the findings made
@@ -661,12 +708,13 @@ fn audit_in_order(
     export: &Export,
     opts: &mut AuditOptions<'_>,
     report: &mut Report,
+    parsed: std::sync::mpsc::Receiver<Parsed>,
 ) -> Vec<Finding> {
     let chain = export.header.holdout.clone();
     for e in &export.users {
         // Identity events are checked by their links and hashes (above) and by the answers
         // that name their users; here, that each is an identity event with a readable body.
-        match crate::engine::Record::parse(e) {
+        match Record::parse(e) {
             Ok(r) if r.kind().is_identity() => {
                 *report.checked.entry(r.kind().as_str().into()).or_default() += 1
             }
@@ -727,7 +775,12 @@ fn audit_in_order(
         Some(p) => p,
         None => &mut noop,
     };
-    let r = replay(&policy, &export.entries, progress);
+    let r = replay(
+        &policy,
+        &export.entries,
+        &mut parsed.into_iter().flatten(),
+        progress,
+    );
     report.findings.extend(r.findings);
     report.queries = r.queries;
     for (kind, n) in r.checked {

@@ -65,8 +65,10 @@ fn finding(chain: &str, p: Problem) -> Finding {
 }
 
 /// Replays `entries` (the genesis first) under `policy` with the engine's one replay step
-/// ([`Replayer::step`]), reporting every discrepancy. `progress` is called with the number of
-/// entries done.
+/// ([`Replayer::step`]), reporting every discrepancy. `records` yields the entries after the
+/// genesis parsed ([`Record::parse`]), in order (the audit parses them on another thread; an
+/// entry it does not yield is parsed here). `progress` is called with the number of entries
+/// done.
 ///
 /// The budget each answer shows (next half-width, queries left) is compared as the replay goes:
 /// the accountant remembers the status the answer itself computed, so recomputing the budget
@@ -74,9 +76,10 @@ fn finding(chain: &str, p: Problem) -> Finding {
 pub(crate) fn replay(
     policy: &HoldoutPolicy,
     entries: &[Entry],
+    records: &mut dyn Iterator<Item = Result<Record, String>>,
     progress: &mut dyn FnMut(u64),
 ) -> Replay {
-    let mut out = replay_serial(policy, entries, progress);
+    let mut out = replay_serial(policy, entries, records, progress);
     out.findings.sort_by_key(|f| f.entry);
     let flagged: std::collections::HashSet<u64> =
         out.findings.iter().filter_map(|f| f.entry).collect();
@@ -105,6 +108,7 @@ fn summary(entry: u64, r: &AnswerRecord) -> QuerySummary {
 fn replay_serial(
     policy: &HoldoutPolicy,
     entries: &[Entry],
+    records: &mut dyn Iterator<Item = Result<Record, String>>,
     progress: &mut dyn FnMut(u64),
 ) -> Replay {
     let mut out = Replay::default();
@@ -141,7 +145,7 @@ fn replay_serial(
         if i % 4096 == 0 {
             progress(i as u64);
         }
-        let rec = match Record::parse(e) {
+        let rec = match records.next().unwrap_or_else(|| Record::parse(e)) {
             Ok(r) => r,
             Err(why) => {
                 out.unchecked += 1;
