@@ -11,6 +11,7 @@ use super::replay::{QuerySummary, replay};
 use super::{CANNOT_CHECK, Finding};
 use crate::engine::{HoldoutPolicy, Record};
 use crate::ledger::{self, Entry};
+use crate::stats::interval::shared;
 
 /// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own. It names
 /// its entry by hash; receipts written by 0.1.0 also carry the entry's number and salt, which
@@ -639,8 +640,16 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
             found
         });
         let (tx, rx) = std::sync::mpsc::sync_channel(PARSED_CHUNKS);
-        let parser = scope.spawn(move || parse_and_check_identities(export, tx));
-        let mid = audit_in_order(export, &mut opts, &mut report, rx);
+        let ahead = std::sync::Arc::new(shared::Table::default());
+        let fill = ahead.clone();
+        let parser = scope.spawn(move || {
+            shared::with(fill, shared::Role::Fill, || {
+                parse_and_check_identities(export, tx)
+            })
+        });
+        let mid = shared::with(ahead, shared::Role::Take, || {
+            audit_in_order(export, &mut opts, &mut report, rx)
+        });
         let identities = parser
             .join()
             .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
@@ -667,15 +676,18 @@ const PARSED_CHUNKS: usize = 32;
 type Parsed = Vec<Result<Record, String>>;
 
 /// Parses every entry of the holdout's chain once ([`Record::parse`]), checks the identities
-/// of those that name a user on the way, and sends the records after the genesis to the replay
-/// through `tx`. When the replay does not run (or stops taking them), only the entries the
-/// identity check needs are parsed from then on.
+/// of those that name a user on the way, computes ahead the intervals the replay will ask for
+/// ([`compute_ahead`]), and sends the records after the genesis to the replay through `tx`.
+/// When the replay does not run (or stops taking them), only the entries the identity check
+/// needs are parsed from then on.
 fn parse_and_check_identities(
     export: &Export,
     tx: std::sync::mpsc::SyncSender<Parsed>,
 ) -> super::identity::IdentityCheck {
     use super::identity::Checker;
     let mut checker = Checker::new(export);
+    // The policy as the replay will read it (its findings are the replay thread's to report).
+    let policy = genesis_policy(export, &mut Vec::new()).map(|(p, _)| p);
     let mut tx = Some(tx);
     let mut chunk = Vec::with_capacity(PARSED_CHUNK);
     for (i, e) in export.entries.iter().enumerate() {
@@ -687,8 +699,18 @@ fn parse_and_check_identities(
         };
         let rec = Record::parse(e);
         checker.entry(e, rec.as_ref().ok());
+        if let (Some(policy), Ok(Record::Answer(r))) = (&policy, &rec) {
+            compute_ahead(policy, r, e.seq);
+        }
         chunk.push(rec);
-        if chunk.len() == PARSED_CHUNK && to.send(std::mem::take(&mut chunk)).is_err() {
+        if chunk.len() == PARSED_CHUNK
+            && to
+                .send(std::mem::replace(
+                    &mut chunk,
+                    Vec::with_capacity(PARSED_CHUNK),
+                ))
+                .is_err()
+        {
             tx = None;
         }
     }
@@ -698,6 +720,55 @@ fn parse_and_check_identities(
         let _ = to.send(chunk);
     }
     checker.finish()
+}
+
+/// Computes, on the parsing thread with a [`shared`] table filling, the intervals the replay
+/// of answer `r` (entry `seq`) will ask for if `r` records its level truly: under a rounded
+/// rule the interval of the cell `r`'s exact errors fall in, and, for every other entry (the
+/// replay's thread computes the rest itself, so that the two threads share the work), under
+/// core 2 with the tolerance judged at the worst case, the widest cell at `r`'s level (what
+/// the forecast of the answer before it computes for its next level, and what the quote of `r`
+/// is judged on). Whatever `r` records, the replay recomputes what it does not find, so a
+/// false record changes no finding.
+fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, seq: u64) {
+    use crate::stats::interval::{Method, Rounding, Sides};
+    use crate::stats::policy::ToleranceReference;
+    use crate::stats::rules::Rule;
+    let core = &policy.core;
+    let (Some(t), Some(grid)) = (core.targets.get(r.target_index), core.rule.grid(core.rows))
+    else {
+        return;
+    };
+    if !t.binary || !(r.level_nats.is_finite() && r.level_nats > 0.0) {
+        return;
+    }
+    let rounding = Rounding::for_core(core.core_version);
+    if seq % 2 == 0
+        && core.core_version >= 2
+        && core.tolerance_reference == ToleranceReference::WorstCase
+    {
+        let _ = grid.widest_half_width(core.rows, true, t.method, r.level_nats, rounding);
+    }
+    let errors = r
+        .exact
+        .as_ref()
+        .and_then(|l| l.first())
+        .and_then(|l| l.errors);
+    if let (Rule::Rounded(_), Some(k)) = (core.rule, errors)
+        && k <= core.rows
+        && t.method == Method::Exact
+    {
+        let j = grid.cell_of_errors(core.rows, k);
+        let _ = grid.interval(
+            j,
+            core.rows,
+            true,
+            t.method,
+            r.level_nats,
+            Sides::Two,
+            rounding,
+        );
+    }
 }
 
 /// The checks of [`audit`] that follow the chain checks, in order, on the calling thread:

@@ -26,7 +26,7 @@ impl Accountant {
     }
 
     /// [`Accountant::status`], computed.
-    fn status_of(&self, analyst: Option<&str>) -> Status {
+    pub(super) fn status_of(&self, analyst: Option<&str>) -> Status {
         let budget_of = |w: f64| (-(self.ln_inv_delta + w)).exp();
         let targets = self.policy.targets.len();
         match analyst {

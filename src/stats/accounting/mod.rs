@@ -943,3 +943,57 @@ fn effective_method(binary: bool, method: Method) -> Method {
         method
     }
 }
+
+#[cfg(test)]
+mod status_memo_tests {
+    use super::*;
+
+    /// The remembered status is the status: after every answer of a few analysts (and before
+    /// any), `status` equals a fresh computation, for the analyst who answered and the others.
+    #[test]
+    fn remembered_status_is_the_computed_status() {
+        let policy: Policy = serde_json::from_str(
+            r#"{"delta": 0.05, "schedule": "series", "rule": "rounded:0.01", "tolerance": 0.2,
+            "rows": 2000, "sharing": "isolated", "shares": {"kind": "on-arrival"},
+            "targets": [{"name": "y", "binary": true, "method": "exact"}], "core_version": 2}"#,
+        )
+        .unwrap();
+        let mut acc = Accountant::new(policy).unwrap();
+        let teams = ["a", "b", "c"];
+        for i in 0..12u64 {
+            let team = teams[(i % 3) as usize];
+            for t in teams {
+                assert_eq!(
+                    acc.status(Some(t)),
+                    acc.status_of(Some(t)),
+                    "before {i}, {t}"
+                );
+            }
+            let req = QueryRequest {
+                analyst: team.into(),
+                target: 0,
+                models: 1,
+            };
+            let Ok(charge) = acc.quote(&req) else { break };
+            let ans = acc
+                .answer(&req, &charge, &[Outcome::Errors(300 + 17 * i)])
+                .unwrap();
+            let s = acc.status(Some(team));
+            assert_eq!(s, acc.status_of(Some(team)), "after answer {i}");
+            assert_eq!(
+                s.targets[0]
+                    .next_half_width
+                    .unwrap_or(f64::INFINITY)
+                    .to_bits(),
+                ans.next_half_width.to_bits()
+            );
+            for t in teams {
+                assert_eq!(
+                    acc.status(Some(t)),
+                    acc.status_of(Some(t)),
+                    "after {i}, {t}"
+                );
+            }
+        }
+    }
+}
