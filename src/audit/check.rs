@@ -739,11 +739,11 @@ fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, seq: u
     else {
         return;
     };
-    if !t.binary || !(r.level_nats.is_finite() && r.level_nats > 0.0) {
+    if !(t.binary && r.level_nats.is_finite() && r.level_nats > 0.0) {
         return;
     }
     let rounding = Rounding::for_core(core.core_version);
-    if seq % 2 == 0
+    if seq.is_multiple_of(2)
         && core.core_version >= 2
         && core.tolerance_reference == ToleranceReference::WorstCase
     {
