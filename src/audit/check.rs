@@ -642,13 +642,14 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         let (tx, rx) = std::sync::mpsc::sync_channel(PARSED_CHUNKS);
         let ahead = std::sync::Arc::new(shared::Table::default());
         let fill = ahead.clone();
+        let (back, spent) = std::sync::mpsc::channel();
         let parser = scope.spawn(move || {
             shared::with(fill, shared::Role::Fill, || {
-                parse_and_check_identities(export, tx)
+                parse_and_check_identities(export, tx, spent)
             })
         });
         let mid = shared::with(ahead, shared::Role::Take, || {
-            audit_in_order(export, &mut opts, &mut report, rx)
+            audit_in_order(export, &mut opts, &mut report, rx, back)
         });
         let identities = parser
             .join()
@@ -680,9 +681,14 @@ type Parsed = Vec<Result<Record, String>>;
 /// ([`compute_ahead`]), and sends the records after the genesis to the replay through `tx`.
 /// When the replay does not run (or stops taking them), only the entries the identity check
 /// needs are parsed from then on.
+///
+/// Records the replay is done with come back through `spent` and are dropped here, on the
+/// thread whose allocator made them (freeing them on the replay's thread cost more than the
+/// replay itself on refusal-heavy ledgers).
 fn parse_and_check_identities(
     export: &Export,
     tx: std::sync::mpsc::SyncSender<Parsed>,
+    spent: std::sync::mpsc::Receiver<Vec<Record>>,
 ) -> super::identity::IdentityCheck {
     use super::identity::Checker;
     let mut checker = Checker::new(export);
@@ -691,6 +697,9 @@ fn parse_and_check_identities(
     let mut tx = Some(tx);
     let mut chunk = Vec::with_capacity(PARSED_CHUNK);
     for (i, e) in export.entries.iter().enumerate() {
+        while let Ok(done) = spent.try_recv() {
+            drop(done);
+        }
         let Some(to) = tx.as_ref().filter(|_| i > 0) else {
             if Checker::wants(e) {
                 checker.entry(e, Record::parse(e).ok().as_ref());
@@ -718,6 +727,10 @@ fn parse_and_check_identities(
         && !chunk.is_empty()
     {
         let _ = to.send(chunk);
+    }
+    // Until the replay is done (or does not run).
+    for done in spent {
+        drop(done);
     }
     checker.finish()
 }
@@ -780,6 +793,7 @@ fn audit_in_order(
     opts: &mut AuditOptions<'_>,
     report: &mut Report,
     parsed: std::sync::mpsc::Receiver<Parsed>,
+    spent: std::sync::mpsc::Sender<Vec<Record>>,
 ) -> Vec<Finding> {
     let chain = export.header.holdout.clone();
     for e in &export.users {
@@ -846,12 +860,25 @@ fn audit_in_order(
         Some(p) => p,
         None => &mut noop,
     };
+    let mut done = Vec::with_capacity(PARSED_CHUNK);
+    let mut give_back = |rec: Record| {
+        done.push(rec);
+        if done.len() == PARSED_CHUNK {
+            // If the parsing thread is gone, the records are dropped here.
+            let _ = spent.send(std::mem::replace(
+                &mut done,
+                Vec::with_capacity(PARSED_CHUNK),
+            ));
+        }
+    };
     let r = replay(
         &policy,
         &export.entries,
         &mut parsed.into_iter().flatten(),
+        &mut give_back,
         progress,
     );
+    let _ = spent.send(done);
     report.findings.extend(r.findings);
     report.queries = r.queries;
     for (kind, n) in r.checked {

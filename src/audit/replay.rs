@@ -67,8 +67,9 @@ fn finding(chain: &str, p: Problem) -> Finding {
 /// Replays `entries` (the genesis first) under `policy` with the engine's one replay step
 /// ([`Replayer::step`]), reporting every discrepancy. `records` yields the entries after the
 /// genesis parsed ([`Record::parse`]), in order (the audit parses them on another thread; an
-/// entry it does not yield is parsed here). `progress` is called with the number of entries
-/// done.
+/// entry it does not yield is parsed here); each record is handed to `spent` once replayed
+/// (the audit drops them on the thread that allocated them). `progress` is called with the
+/// number of entries done.
 ///
 /// The budget each answer shows (next half-width, queries left) is compared as the replay goes:
 /// the accountant remembers the status the answer itself computed, so recomputing the budget
@@ -77,9 +78,10 @@ pub(crate) fn replay(
     policy: &HoldoutPolicy,
     entries: &[Entry],
     records: &mut dyn Iterator<Item = Result<Record, String>>,
+    spent: &mut dyn FnMut(Record),
     progress: &mut dyn FnMut(u64),
 ) -> Replay {
-    let mut out = replay_serial(policy, entries, records, progress);
+    let mut out = replay_serial(policy, entries, records, spent, progress);
     out.findings.sort_by_key(|f| f.entry);
     let flagged: std::collections::HashSet<u64> =
         out.findings.iter().filter_map(|f| f.entry).collect();
@@ -109,6 +111,7 @@ fn replay_serial(
     policy: &HoldoutPolicy,
     entries: &[Entry],
     records: &mut dyn Iterator<Item = Result<Record, String>>,
+    spent: &mut dyn FnMut(Record),
     progress: &mut dyn FnMut(u64),
 ) -> Replay {
     let mut out = Replay::default();
@@ -190,6 +193,7 @@ fn replay_serial(
                 .push((e.seq, format!("{} by {} at {}", r.what, r.by, r.at))),
             _ => {}
         }
+        spent(rec);
     }
     out.findings.extend(
         problems
