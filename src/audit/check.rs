@@ -9,8 +9,9 @@ use super::anchor::Checkpoint;
 use super::export::Export;
 use super::replay::{QuerySummary, replay};
 use super::{CANNOT_CHECK, Finding};
-use crate::engine::HoldoutPolicy;
+use crate::engine::{HoldoutPolicy, Record};
 use crate::ledger::{self, Entry};
+use crate::stats::interval::shared;
 
 /// A receipt as `holdout submit --json` prints it (inside `receipt`) or on its own. It names
 /// its entry by hash; receipts written by 0.1.0 also carry the entry's number and salt, which
@@ -626,12 +627,179 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
             ));
         }
     }
-    chain_faults(&chain, &export.entries, &mut report.findings);
-    chain_faults(ledger::USERS_CHAIN, &export.users, &mut report.findings);
+    // The chains' links and hashes, and the parsing of the entries with the identity
+    // cross-check, need nothing the replay computes: they run on two other threads while this
+    // one replays (the replay takes the parsed records in order through a bounded channel), and
+    // their findings take their places in the report as if everything had run in order.
+    let head = std::mem::take(&mut report.findings);
+    let (chains, identities, mid) = std::thread::scope(|scope| {
+        let hashes = scope.spawn(|| {
+            let mut found = Vec::new();
+            chain_faults(&chain, &export.entries, &mut found);
+            chain_faults(ledger::USERS_CHAIN, &export.users, &mut found);
+            found
+        });
+        let (tx, rx) = std::sync::mpsc::sync_channel(PARSED_CHUNKS);
+        let ahead = std::sync::Arc::new(shared::Table::default());
+        let fill = ahead.clone();
+        let (back, spent) = std::sync::mpsc::channel();
+        let parser = scope.spawn(move || {
+            shared::with(fill, shared::Role::Fill, || {
+                parse_and_check_identities(export, tx, spent)
+            })
+        });
+        let mid = shared::with(ahead, shared::Role::Take, || {
+            audit_in_order(export, &mut opts, &mut report, rx, back)
+        });
+        let identities = parser
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        let chains = hashes
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        (chains, identities, mid)
+    });
+    let tail = std::mem::take(&mut report.findings);
+    report.identity_checked = identities.checked;
+    report.findings = head;
+    report.findings.extend(chains);
+    report.findings.extend(mid);
+    report.findings.extend(identities.findings);
+    report.findings.extend(tail);
+    report
+}
+
+/// Entries parsed per message to the replay, and messages in flight.
+const PARSED_CHUNK: usize = 256;
+const PARSED_CHUNKS: usize = 32;
+
+/// Parsed records of the holdout's entries after the genesis, in order, in chunks.
+type Parsed = Vec<Result<Record, String>>;
+
+/// Parses every entry of the holdout's chain once ([`Record::parse`]), checks the identities
+/// of those that name a user on the way, computes ahead the intervals the replay will ask for
+/// ([`compute_ahead`]), and sends the records after the genesis to the replay through `tx`.
+/// When the replay does not run (or stops taking them), only the entries the identity check
+/// needs are parsed from then on.
+///
+/// Records the replay is done with come back through `spent` and are dropped here, on the
+/// thread whose allocator made them (freeing them on the replay's thread cost more than the
+/// replay itself on refusal-heavy ledgers).
+fn parse_and_check_identities(
+    export: &Export,
+    tx: std::sync::mpsc::SyncSender<Parsed>,
+    spent: std::sync::mpsc::Receiver<Vec<Record>>,
+) -> super::identity::IdentityCheck {
+    use super::identity::Checker;
+    let mut checker = Checker::new(export);
+    // The policy as the replay will read it (its findings are the replay thread's to report).
+    let policy = genesis_policy(export, &mut Vec::new()).map(|(p, _)| p);
+    let mut tx = Some(tx);
+    let mut chunk = Vec::with_capacity(PARSED_CHUNK);
+    for (i, e) in export.entries.iter().enumerate() {
+        while let Ok(done) = spent.try_recv() {
+            drop(done);
+        }
+        let Some(to) = tx.as_ref().filter(|_| i > 0) else {
+            if Checker::wants(e) {
+                checker.entry(e, Record::parse(e).ok().as_ref());
+            }
+            continue;
+        };
+        let rec = Record::parse(e);
+        checker.entry(e, rec.as_ref().ok());
+        if let (Some(policy), Ok(Record::Answer(r))) = (&policy, &rec) {
+            compute_ahead(policy, r, e.seq);
+        }
+        chunk.push(rec);
+        if chunk.len() == PARSED_CHUNK
+            && to
+                .send(std::mem::replace(
+                    &mut chunk,
+                    Vec::with_capacity(PARSED_CHUNK),
+                ))
+                .is_err()
+        {
+            tx = None;
+        }
+    }
+    if let Some(to) = tx
+        && !chunk.is_empty()
+    {
+        let _ = to.send(chunk);
+    }
+    // Until the replay is done (or does not run).
+    for done in spent {
+        drop(done);
+    }
+    checker.finish()
+}
+
+/// Computes, on the parsing thread with a [`shared`] table filling, the intervals the replay
+/// of answer `r` (entry `seq`) will ask for if `r` records its level truly: under a rounded
+/// rule the interval of the cell `r`'s exact errors fall in, and, for every other entry (the
+/// replay's thread computes the rest itself, so that the two threads share the work), under
+/// core 2 with the tolerance judged at the worst case, the widest cell at `r`'s level (what
+/// the forecast of the answer before it computes for its next level, and what the quote of `r`
+/// is judged on). Whatever `r` records, the replay recomputes what it does not find, so a
+/// false record changes no finding.
+fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, seq: u64) {
+    use crate::stats::interval::{Method, Rounding, Sides};
+    use crate::stats::policy::ToleranceReference;
+    use crate::stats::rules::Rule;
+    let core = &policy.core;
+    let (Some(t), Some(grid)) = (core.targets.get(r.target_index), core.rule.grid(core.rows))
+    else {
+        return;
+    };
+    if !(t.binary && r.level_nats.is_finite() && r.level_nats > 0.0) {
+        return;
+    }
+    let rounding = Rounding::for_core(core.core_version);
+    if seq.is_multiple_of(2)
+        && core.core_version >= 2
+        && core.tolerance_reference == ToleranceReference::WorstCase
+    {
+        let _ = grid.widest_half_width(core.rows, true, t.method, r.level_nats, rounding);
+    }
+    let errors = r
+        .exact
+        .as_ref()
+        .and_then(|l| l.first())
+        .and_then(|l| l.errors);
+    if let (Rule::Rounded(_), Some(k)) = (core.rule, errors)
+        && k <= core.rows
+        && t.method == Method::Exact
+    {
+        let j = grid.cell_of_errors(core.rows, k);
+        let _ = grid.interval(
+            j,
+            core.rows,
+            true,
+            t.method,
+            r.level_nats,
+            Sides::Two,
+            rounding,
+        );
+    }
+}
+
+/// The checks of [`audit`] that follow the chain checks, in order, on the calling thread:
+/// identity events' kinds, checkpoints, receipts, then (after the identity cross-check, which
+/// runs on another thread) the genesis, the labels and the replay. Returns the findings made
+/// before the identity cross-check's place; those after it are left in `report.findings`.
+fn audit_in_order(
+    export: &Export,
+    opts: &mut AuditOptions<'_>,
+    report: &mut Report,
+    parsed: std::sync::mpsc::Receiver<Parsed>,
+    spent: std::sync::mpsc::Sender<Vec<Record>>,
+) -> Vec<Finding> {
+    let chain = export.header.holdout.clone();
     for e in &export.users {
         // Identity events are checked by their links and hashes (above) and by the answers
         // that name their users; here, that each is an identity event with a readable body.
-        match crate::engine::Record::parse(e) {
+        match Record::parse(e) {
             Ok(r) if r.kind().is_identity() => {
                 *report.checked.entry(r.kind().as_str().into()).or_default() += 1
             }
@@ -647,13 +815,11 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
             }
         }
     }
-    check_checkpoints(export, &opts, &mut report);
-    check_receipts(export, &opts, &mut report);
-    let identities = super::identity::check(export);
-    report.identity_checked = identities.checked;
-    report.findings.extend(identities.findings);
+    check_checkpoints(export, opts, report);
+    check_receipts(export, opts, report);
+    let mid = std::mem::take(&mut report.findings);
     let Some((policy, genesis)) = genesis_policy(export, &mut report.findings) else {
-        return report;
+        return mid;
     };
     report.versions = genesis["versions"].clone();
     if let Some(labels) = &opts.labels {
@@ -694,7 +860,25 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         Some(p) => p,
         None => &mut noop,
     };
-    let r = replay(&policy, &export.entries, progress);
+    let mut done = Vec::with_capacity(PARSED_CHUNK);
+    let mut give_back = |rec: Record| {
+        done.push(rec);
+        if done.len() == PARSED_CHUNK {
+            // If the parsing thread is gone, the records are dropped here.
+            let _ = spent.send(std::mem::replace(
+                &mut done,
+                Vec::with_capacity(PARSED_CHUNK),
+            ));
+        }
+    };
+    let r = replay(
+        &policy,
+        &export.entries,
+        &mut parsed.into_iter().flatten(),
+        &mut give_back,
+        progress,
+    );
+    let _ = spent.send(done);
     report.findings.extend(r.findings);
     report.queries = r.queries;
     for (kind, n) in r.checked {
@@ -706,5 +890,5 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     report.refusals = r.refusals;
     report.refusal_list = r.refusal_list;
     report.reads = r.reads;
-    report
+    mid
 }

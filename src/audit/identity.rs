@@ -165,41 +165,62 @@ fn instant(text: &str) -> Option<DateTime<Utc>> {
 }
 
 /// Checks the `user` and `team` of every answer, adoption, sealed entry and round answer of
-/// the holdout's chain against the export's identity chain.
+/// the holdout's chain against the export's identity chain, one entry at a time in chain order
+/// ([`Checker::entry`]), from the records the audit parses once for the replay too.
 ///
 /// A round answer is checked at the time of the sealed entry it answers (the k-th sealed entry
 /// since the previous round, as the replay pairs them): the user acted then, and the daemon
 /// answers at the close the entries of users revoked in between.
-pub(super) fn check(export: &Export) -> IdentityCheck {
-    let chain = export.header.holdout.as_str();
-    let mut out = IdentityCheck::default();
-    let identities = Identities::read(&export.users, &mut out.findings);
-    // Times of the sealed entries waiting for the next round, in ticket order.
-    let mut pending: Vec<String> = Vec::new();
-    for e in &export.entries {
-        // Only the kinds that carry a user are parsed; unreadable bodies are the replay's
-        // findings, not repeated here.
-        if !matches!(
+pub(super) struct Checker<'a> {
+    chain: &'a str,
+    identities: Identities,
+    out: IdentityCheck,
+    /// Times of the sealed entries waiting for the next round, in ticket order.
+    pending: Vec<String>,
+}
+
+impl<'a> Checker<'a> {
+    /// A checker with the export's identity chain read.
+    pub(super) fn new(export: &'a Export) -> Checker<'a> {
+        let mut out = IdentityCheck::default();
+        let identities = Identities::read(&export.users, &mut out.findings);
+        Checker {
+            chain: export.header.holdout.as_str(),
+            identities,
+            out,
+            pending: Vec::new(),
+        }
+    }
+
+    /// Whether `e` is of a kind that carries a user (only those are parsed for this check).
+    pub(super) fn wants(e: &Entry) -> bool {
+        matches!(
             e.kind(),
             Some(Kind::Answer | Kind::Adopt | Kind::Sealed | Kind::Round)
-        ) {
-            continue;
+        )
+    }
+
+    /// Checks entry `e`, parsed as `record` (`None`: its body does not parse, which is the
+    /// replay's finding, not repeated here). Entries must come in chain order.
+    pub(super) fn entry(&mut self, e: &Entry, record: Option<&Record>) {
+        if !Checker::wants(e) {
+            return;
         }
-        let Ok(record) = Record::parse(e) else {
-            continue;
+        let Some(record) = record else {
+            return;
         };
         // (field prefix, user, team, the time the user acted)
         let mut named: Vec<(String, &str, &str, String)> = Vec::new();
-        match &record {
+        match record {
             Record::Answer(r) | Record::Adopt(r) => {
                 named.push((String::new(), &r.user, &r.team, r.at.clone()));
             }
             Record::Sealed(r) => {
-                pending.push(r.at.clone());
+                self.pending.push(r.at.clone());
                 named.push((String::new(), &r.user, &r.team, r.at.clone()));
             }
             Record::Round(r) => {
-                let mut sealed = std::mem::take(&mut pending).into_iter();
+                let mut sealed = std::mem::take(&mut self.pending).into_iter();
                 for (k, a) in r.answers.iter().enumerate() {
                     let when = sealed.next().unwrap_or_else(|| a.at.clone());
                     named.push((format!("answers[{k}]."), &a.user, &a.team, when));
@@ -208,17 +229,17 @@ pub(super) fn check(export: &Export) -> IdentityCheck {
             _ => {}
         }
         for (prefix, user, team, when) in named {
-            out.checked += 1;
+            self.out.checked += 1;
             let problem = match instant(&when) {
                 None => Some((
                     "at",
                     format!("{when:?} is not an RFC 3339 time: the identity in force is unknown"),
                 )),
-                Some(at) => identities.problem(user, team, at, &when),
+                Some(at) => self.identities.problem(user, team, at, &when),
             };
             if let Some((field, problem)) = problem {
-                out.findings.push(Finding {
-                    chain: chain.into(),
+                self.out.findings.push(Finding {
+                    chain: self.chain.into(),
                     entry: Some(e.seq),
                     field: format!("{prefix}{field}"),
                     problem,
@@ -226,7 +247,11 @@ pub(super) fn check(export: &Export) -> IdentityCheck {
             }
         }
     }
-    out
+
+    /// What the check found.
+    pub(super) fn finish(self) -> IdentityCheck {
+        self.out
+    }
 }
 
 #[cfg(test)]

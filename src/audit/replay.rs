@@ -65,58 +65,30 @@ fn finding(chain: &str, p: Problem) -> Finding {
 }
 
 /// Replays `entries` (the genesis first) under `policy` with the engine's one replay step
-/// ([`Replayer::step`]), reporting every discrepancy. `progress` is called with the number of
-/// entries done.
+/// ([`Replayer::step`]), reporting every discrepancy. `records` yields the entries after the
+/// genesis parsed ([`Record::parse`]), in order (the audit parses them on another thread; an
+/// entry it does not yield is parsed here); each record is handed to `spent` once replayed
+/// (the audit drops them on the thread that allocated them). `progress` is called with the
+/// number of entries done.
 ///
-/// The replay itself is sequential (each answer's level depends on the transcript before it),
-/// but the budget each answer shows (next half-width, queries left: many interval inversions)
-/// is a pure function of the book at that point, so it is recomputed on worker threads from
-/// snapshots while the replay goes on.
+/// The budget each answer shows (next half-width, queries left) is compared as the replay goes:
+/// the accountant remembers the status the answer itself computed, so recomputing the budget
+/// costs no interval inversion of its own.
 pub(crate) fn replay(
     policy: &HoldoutPolicy,
     entries: &[Entry],
+    records: &mut dyn Iterator<Item = Result<Record, String>>,
+    spent: &mut dyn FnMut(Record),
     progress: &mut dyn FnMut(u64),
 ) -> Replay {
-    let chain = entries.first().map(|e| e.chain.as_str()).unwrap_or("");
-    let workers = std::thread::available_parallelism()
-        .map(|n| n.get().saturating_sub(1))
-        .unwrap_or(1)
-        .clamp(1, 8);
-    let (tx, rx) = std::sync::mpsc::sync_channel::<BudgetCheck>(4096);
-    let rx = std::sync::Mutex::new(rx);
-    std::thread::scope(|scope| {
-        let handles: Vec<_> = (0..workers)
-            .map(|_| {
-                let rx = &rx;
-                scope.spawn(move || {
-                    let mut found = Vec::new();
-                    loop {
-                        let job = match rx.lock() {
-                            Ok(r) => r.recv(),
-                            Err(_) => break,
-                        };
-                        let Ok(job) = job else { break };
-                        found.extend(job.run(policy).into_iter().map(|p| finding(chain, p)));
-                    }
-                    found
-                })
-            })
-            .collect();
-        let mut out = replay_serial(policy, entries, progress, &tx);
-        drop(tx);
-        for h in handles {
-            if let Ok(mut found) = h.join() {
-                out.findings.append(&mut found);
-            }
-        }
-        out.findings.sort_by_key(|f| f.entry);
-        let flagged: std::collections::HashSet<u64> =
-            out.findings.iter().filter_map(|f| f.entry).collect();
-        for q in &mut out.queries {
-            q.replayed &= !flagged.contains(&q.entry);
-        }
-        out
-    })
+    let mut out = replay_serial(policy, entries, records, spent, progress);
+    out.findings.sort_by_key(|f| f.entry);
+    let flagged: std::collections::HashSet<u64> =
+        out.findings.iter().filter_map(|f| f.entry).collect();
+    for q in &mut out.queries {
+        q.replayed &= !flagged.contains(&q.entry);
+    }
+    out
 }
 
 fn summary(entry: u64, r: &AnswerRecord) -> QuerySummary {
@@ -138,8 +110,9 @@ fn summary(entry: u64, r: &AnswerRecord) -> QuerySummary {
 fn replay_serial(
     policy: &HoldoutPolicy,
     entries: &[Entry],
+    records: &mut dyn Iterator<Item = Result<Record, String>>,
+    spent: &mut dyn FnMut(Record),
     progress: &mut dyn FnMut(u64),
-    jobs: &std::sync::mpsc::SyncSender<BudgetCheck>,
 ) -> Replay {
     let mut out = Replay::default();
     let chain = entries.first().map(|e| e.chain.as_str()).unwrap_or("");
@@ -166,16 +139,16 @@ fn replay_serial(
             return out;
         }
     };
-    // The receivers live until every job is sent (scoped threads), so sending cannot fail.
-    let mut send = |job: BudgetCheck| {
-        let _ = jobs.send(job);
-    };
     let mut problems = Vec::new();
+    // Problems of the budgets shown with answers, kept apart so that an entry whose budget
+    // differs is still reported as replayed by the step (as when workers compared them).
+    let mut budget_problems = Vec::new();
+    let mut check = |job: BudgetCheck| budget_problems.extend(job.run());
     for (i, e) in entries.iter().enumerate().skip(1) {
         if i % 4096 == 0 {
             progress(i as u64);
         }
-        let rec = match Record::parse(e) {
+        let rec = match records.next().unwrap_or_else(|| Record::parse(e)) {
             Ok(r) => r,
             Err(why) => {
                 out.unchecked += 1;
@@ -191,7 +164,7 @@ fn replay_serial(
             }
         };
         let before = problems.len();
-        rp.step(entries, i, &rec, &mut problems, &mut send);
+        rp.step(entries, i, &rec, &mut problems, &mut check);
         let clean = problems.len() == before;
         *out.checked.entry(rec.kind().as_str().into()).or_default() += 1;
         match &rec {
@@ -220,9 +193,14 @@ fn replay_serial(
                 .push((e.seq, format!("{} by {} at {}", r.what, r.by, r.at))),
             _ => {}
         }
+        spent(rec);
     }
-    out.findings
-        .extend(problems.into_iter().map(|p| finding(chain, p)));
+    out.findings.extend(
+        problems
+            .into_iter()
+            .chain(budget_problems)
+            .map(|p| finding(chain, p)),
+    );
     progress(entries.len() as u64);
     out
 }

@@ -140,27 +140,25 @@ pub(crate) struct Problem {
     pub problem: String,
 }
 
-/// A budget shown with an entry, to compare with what the book at that point computes. The
-/// audit computes these on worker threads (many interval inversions each); the daemon skips
-/// them (they are display, not state).
+/// A budget shown with an entry, and the budget the book just after the entry computes again.
+/// Only a replayer that checks budgets (the audit's) computes these; the daemon's skips them
+/// (they are display, not state). The recomputation is cheap: the accountant remembers the
+/// status the answer itself computed ([`Book::budget`] asks for the same one).
 #[derive(Debug, Clone)]
 pub(crate) struct BudgetCheck {
     /// Entry number.
     pub(crate) entry: u64,
-    /// The book just after the entry.
-    pub(crate) book: Book,
-    /// Team the budget was shown to.
-    pub(crate) team: String,
     /// What was recorded.
     pub(crate) recorded: BudgetView,
+    /// What the book just after the entry computes.
+    pub(crate) again: BudgetView,
 }
 
 impl BudgetCheck {
     /// Problems of the recorded budget against the recomputed one.
-    pub(crate) fn run(&self, policy: &HoldoutPolicy) -> Vec<Problem> {
-        let again = self.book.budget(policy, &self.team);
+    pub(crate) fn run(&self) -> Vec<Problem> {
         let mut cmp = Cmp::new(self.entry);
-        cmp.budget(&self.recorded, &again);
+        cmp.budget(&self.recorded, &self.again);
         cmp.out
     }
 }
@@ -288,8 +286,8 @@ pub(crate) struct Replayer<'p> {
 
 impl<'p> Replayer<'p> {
     /// A replayer at the start of a chain (just after its genesis). `check_budgets`: compare
-    /// the budgets shown with refusals too (answers' budgets go to the `budgets` callback of
-    /// [`Replayer::step`]).
+    /// the budgets shown with refusals too, and recompute those shown with answers for the
+    /// `budgets` callback of [`Replayer::step`] (without it the callback is never called).
     pub(crate) fn new(policy: &'p HoldoutPolicy, check_budgets: bool) -> Result<Replayer<'p>> {
         Ok(Replayer {
             policy,
@@ -308,7 +306,8 @@ impl<'p> Replayer<'p> {
 
     /// Replays entry `entries[i]` (parsed as `rec`), appending every problem to `out`. Earlier
     /// entries are there for adoptions, which name the answer they adopt. `budgets` receives the
-    /// budget each answer showed, for the caller to compare (or not).
+    /// budget each answer showed with the one recomputed, for the caller to compare (only when
+    /// the replayer checks budgets).
     pub(crate) fn step(
         &mut self,
         entries: &[Entry],
@@ -335,12 +334,11 @@ impl<'p> Replayer<'p> {
             }
             Record::Answer(r) => {
                 after_close(&mut cmp, self.closed_at, "answered");
-                if self.answer(r, &mut cmp) {
+                if self.answer(r, &mut cmp) && self.check_budgets {
                     budgets(BudgetCheck {
                         entry: e.seq,
-                        book: self.book.clone(),
-                        team: r.team.clone(),
                         recorded: r.budget.clone(),
+                        again: self.book.budget(self.policy, &r.team),
                     });
                 }
                 self.memo.generation += 1;
@@ -349,12 +347,12 @@ impl<'p> Replayer<'p> {
                 after_close(&mut cmp, self.closed_at, "adopted");
                 cmp.time(&r.at);
                 match self.book.replay_adoption(self.policy, entries, e) {
-                    Ok(()) => budgets(BudgetCheck {
+                    Ok(()) if self.check_budgets => budgets(BudgetCheck {
                         entry: e.seq,
-                        book: self.book.clone(),
-                        team: r.team.clone(),
                         recorded: r.budget.clone(),
+                        again: self.book.budget(self.policy, &r.team),
                     }),
+                    Ok(()) => {}
                     Err(err) => cmp.push("replay", err.to_string()),
                 }
                 self.memo.generation += 1;

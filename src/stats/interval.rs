@@ -360,7 +360,34 @@ pub fn errors_range_interval(
 }
 
 /// [`errors_range_interval`] with the rounding of a core version.
+///
+/// When a [`shared`] table is installed on the calling thread, a result another thread
+/// computed for exactly these arguments is taken from it (see [`shared`]).
 pub fn errors_range_interval_with(
+    rounding: Rounding,
+    method: Method,
+    n: u64,
+    k_lo: u64,
+    k_hi: u64,
+    level_nats: f64,
+    sides: Sides,
+) -> Result<Interval, IntervalError> {
+    shared::through(
+        shared::Key {
+            rounding,
+            method,
+            n,
+            k_lo,
+            k_hi,
+            level_bits: level_nats.to_bits(),
+            sides,
+        },
+        || errors_range_interval_eval(rounding, method, n, k_lo, k_hi, level_nats, sides),
+    )
+}
+
+/// [`errors_range_interval_with`], computed here.
+fn errors_range_interval_eval(
     rounding: Rounding,
     method: Method,
     n: u64,
@@ -400,6 +427,103 @@ pub fn errors_range_interval_with(
             assemble(sides, || lo, || hi)
         }
     })
+}
+
+/// Intervals computed ahead on one thread and taken on another: the offline audit computes,
+/// on the thread that parses the ledger's entries, the intervals the replay will ask for
+/// (each answer's reported cell and the widest cell at its level, from the levels the entries
+/// record), while the replay runs on its own thread.
+///
+/// An entry is keyed by every argument of [`errors_range_interval_with`] (the level by its
+/// bits), and the value is what that function computes for them, so taking it changes no
+/// number: a level an entry records falsely only names intervals nobody asks for. A thread
+/// that [`fills`](Role::Fill) the table stores what it computes; a thread that
+/// [`takes`](Role::Take) removes what it finds (each is asked for about once) and computes
+/// the rest itself, storing nothing. Threads without a table are unaffected.
+pub mod shared {
+    use super::{Interval, IntervalError, Method, Rounding, Sides};
+    use std::cell::RefCell;
+    use std::collections::HashMap;
+    use std::sync::{Arc, Mutex};
+
+    /// The arguments of one interval.
+    #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+    pub(super) struct Key {
+        pub(super) rounding: Rounding,
+        pub(super) method: Method,
+        pub(super) n: u64,
+        pub(super) k_lo: u64,
+        pub(super) k_hi: u64,
+        pub(super) level_bits: u64,
+        pub(super) sides: Sides,
+    }
+
+    /// Intervals computed ahead, shared between threads.
+    #[derive(Debug, Default)]
+    pub struct Table {
+        map: Mutex<HashMap<Key, Result<Interval, IntervalError>>>,
+    }
+
+    impl Table {
+        /// Intervals stored and not taken yet.
+        pub fn len(&self) -> usize {
+            self.map.lock().map_or(0, |m| m.len())
+        }
+
+        /// Whether nothing is stored.
+        pub fn is_empty(&self) -> bool {
+            self.len() == 0
+        }
+    }
+
+    /// What a thread does with the table installed on it.
+    #[derive(Debug, Clone, Copy, PartialEq, Eq)]
+    pub enum Role {
+        /// Store every interval computed.
+        Fill,
+        /// Take (and remove) intervals found; compute the others without storing them.
+        Take,
+    }
+
+    thread_local! {
+        static INSTALLED: RefCell<Option<(Arc<Table>, Role)>> = const { RefCell::new(None) };
+    }
+
+    /// Runs `f` with `table` installed on this thread in `role`, then restores what was
+    /// installed before.
+    pub fn with<R>(table: Arc<Table>, role: Role, f: impl FnOnce() -> R) -> R {
+        struct Restore(Option<(Arc<Table>, Role)>);
+        impl Drop for Restore {
+            fn drop(&mut self) {
+                let before = self.0.take();
+                INSTALLED.with_borrow_mut(|t| *t = before);
+            }
+        }
+        let _restore = Restore(INSTALLED.with_borrow_mut(|t| t.replace((table, role))));
+        f()
+    }
+
+    pub(super) fn through(
+        key: Key,
+        eval: impl FnOnce() -> Result<Interval, IntervalError>,
+    ) -> Result<Interval, IntervalError> {
+        let Some((table, role)) = INSTALLED.with_borrow(|t| t.clone()) else {
+            return eval();
+        };
+        match role {
+            Role::Take => {
+                let found = table.map.lock().ok().and_then(|mut m| m.remove(&key));
+                found.unwrap_or_else(eval)
+            }
+            Role::Fill => {
+                let v = eval();
+                if let Ok(mut m) = table.map.lock() {
+                    m.insert(key, v.clone());
+                }
+                v
+            }
+        }
+    }
 }
 
 /// Interval for a mean loss in [0, 1] over `n` rows (KL or Hoeffding; Exact is an error).
@@ -616,5 +740,75 @@ mod display_tests {
                 assert!(lv <= l && uv >= u, "{l} {u} {d}: {ls} {us}");
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod shared_tests {
+    use super::*;
+    use std::sync::Arc;
+
+    fn bits(r: Result<Interval, IntervalError>) -> Option<(u64, u64)> {
+        r.ok().map(|ci| (ci.lower.to_bits(), ci.upper.to_bits()))
+    }
+
+    #[test]
+    fn intervals_filled_on_one_thread_are_taken_bit_for_bit_on_another() {
+        let levels = [3.0, 47.25, 1234.5, 20_000.125];
+        let direct: Vec<_> = levels
+            .iter()
+            .map(|&l| {
+                bits(errors_range_interval_with(
+                    Rounding::Outward,
+                    Method::Exact,
+                    2000,
+                    990,
+                    1009,
+                    l,
+                    Sides::Two,
+                ))
+            })
+            .collect();
+        let table = Arc::new(shared::Table::default());
+        let fill = table.clone();
+        std::thread::spawn(move || {
+            shared::with(fill, shared::Role::Fill, || {
+                for &l in &levels[..2] {
+                    let _ = errors_range_interval_with(
+                        Rounding::Outward,
+                        Method::Exact,
+                        2000,
+                        990,
+                        1009,
+                        l,
+                        Sides::Two,
+                    );
+                }
+            })
+        })
+        .join()
+        .unwrap();
+        assert_eq!(table.len(), 2, "the filling thread stores what it computes");
+        let taken: Vec<_> = shared::with(table.clone(), shared::Role::Take, || {
+            levels
+                .iter()
+                .map(|&l| {
+                    bits(errors_range_interval_with(
+                        Rounding::Outward,
+                        Method::Exact,
+                        2000,
+                        990,
+                        1009,
+                        l,
+                        Sides::Two,
+                    ))
+                })
+                .collect()
+        });
+        assert_eq!(taken, direct, "taken and computed intervals differ");
+        assert!(
+            table.is_empty(),
+            "the taking thread removes what it takes and stores nothing"
+        );
     }
 }

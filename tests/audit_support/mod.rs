@@ -198,13 +198,18 @@ impl Generated {
         } = &out
         {
             // Receipts name entries by hash; the harness keeps their positions for tampering.
+            // The answer just written is the chain's head: walk the chain's primary key
+            // (chain, seq) from the newest entry down and stop at the hash, so finding it does
+            // not scan the whole ledger (the product schema has no index on `hash`, and a
+            // 100,000-entry benchmark ledger made that scan quadratic).
             let seq: i64 = self
                 .engine
                 .store()
                 .conn()
                 .query_row(
-                    "SELECT seq FROM ledger WHERE hash = ?1",
-                    [&receipt.entry_hash],
+                    "SELECT seq FROM ledger WHERE chain = ?1 AND hash = ?2
+                     ORDER BY seq DESC LIMIT 1",
+                    [&self.name, &receipt.entry_hash],
                     |r| r.get(0),
                 )
                 .unwrap();

@@ -11,6 +11,22 @@ impl Accountant {
     /// analyst; under `isolated` it reveals nothing about other analysts). With `None`: the
     /// whole holdout, for the organizer (under `isolated` never show it to analysts).
     pub fn status(&self, analyst: Option<&str>) -> Status {
+        if let Some(a) = analyst
+            && let Some(((sequence, who), status)) = &*self.last_status.borrow()
+            && *sequence == self.sequence
+            && who == a
+        {
+            return status.clone();
+        }
+        let status = self.status_of(analyst);
+        if let Some(a) = analyst {
+            *self.last_status.borrow_mut() = Some(((self.sequence, a.to_string()), status.clone()));
+        }
+        status
+    }
+
+    /// [`Accountant::status`], computed.
+    pub(super) fn status_of(&self, analyst: Option<&str>) -> Status {
         let budget_of = |w: f64| (-(self.ln_inv_delta + w)).exp();
         let targets = self.policy.targets.len();
         match analyst {

@@ -110,6 +110,10 @@ pub struct Accountant {
     /// Interval evaluations made to decide threshold answers (see
     /// [`Accountant::threshold_evaluations`]).
     threshold_evaluations: std::cell::Cell<u64>,
+    /// The last analyst status computed ([`Accountant::status`]), by (sequence, analyst).
+    /// An answer computes it for the numbers it releases, and the budget shown with the same
+    /// answer asks for it again; every change of state forgets it ([`Accountant::changed`]).
+    last_status: std::cell::RefCell<Option<StatusMemo>>,
 }
 
 /// One pool's public facts, gathered for a quote or a forecast.
@@ -144,6 +148,7 @@ impl Accountant {
             last_judged: std::cell::Cell::new(None),
             last_cutoff: std::cell::Cell::new(None),
             threshold_evaluations: std::cell::Cell::new(0),
+            last_status: std::cell::RefCell::new(None),
             policy,
         };
         if acc.policy.tolerance_reference == ToleranceReference::WorstCase {
@@ -486,8 +491,16 @@ impl Accountant {
         Ok(())
     }
 
+    /// Forgets what was remembered of the state (the last status): called by every method
+    /// that changes the state, before it changes anything. The other memos are keyed by
+    /// everything their values depend on and need no forgetting.
+    fn changed(&mut self) {
+        *self.last_status.get_mut() = None;
+    }
+
     /// Registers `analyst` if new (an arrival, under on-arrival shares).
     fn register(&mut self, analyst: &str) {
+        self.changed();
         if !self.analysts.contains_key(analyst) {
             let w = if self.per_analyst_pool() {
                 if !self.policy.shares.on_roster(analyst) {
@@ -507,6 +520,7 @@ impl Accountant {
 
     /// Takes the charge's shares and registers a new analyst; returns the analyst's state.
     fn take_shares(&mut self, charge: &Charge) -> &mut AnalystState {
+        self.changed();
         let analyst = &charge.request.analyst;
         self.register(analyst);
         self.sequence += 1;
@@ -527,6 +541,7 @@ impl Accountant {
         charge: &Charge,
         outcomes: &[Outcome],
     ) -> Result<Answer, AccountingError> {
+        self.changed();
         self.check_charge(req, charge)?;
         if matches!(self.policy.rule, Rule::Sealed(_)) {
             return Err(AccountingError::WrongRule(
@@ -607,6 +622,7 @@ impl Accountant {
         cell: u64,
         level_nats: f64,
     ) -> Result<Answer, AccountingError> {
+        self.changed();
         if !self.can_adopt(analyst, target, cell) {
             return Err(AccountingError::WrongRule(
                 "only a ladder under shared sharing (core 2) adopts, and only a cell below the \
@@ -814,6 +830,7 @@ impl Accountant {
         req: &QueryRequest,
         charge: &Charge,
     ) -> Result<SealedReceipt, AccountingError> {
+        self.changed();
         self.check_charge(req, charge)?;
         if !matches!(self.policy.rule, Rule::Sealed(_)) {
             return Err(AccountingError::WrongRule(
@@ -839,6 +856,7 @@ impl Accountant {
     /// are added to the transcript after all answers are formed, so a later round pays for
     /// them; if the close is the holdout's last event, nobody does.
     pub fn close_round(&mut self, outcomes: &[Outcome]) -> Result<Vec<Answer>, AccountingError> {
+        self.changed();
         if outcomes.len() != self.pending.len() {
             return Err(AccountingError::BadOutcome(format!(
                 "{} outcomes for {} sealed submissions",
@@ -900,6 +918,9 @@ impl Accountant {
 /// (target, reference bits, level bits) and the half-width computed for them.
 type HalfWidthMemo = ((usize, u64, u64), f64);
 
+/// (sequence, analyst) and the status computed for them.
+type StatusMemo = ((u64, String), Status);
+
 static EMPTY_TRANSCRIPT: Transcript = Transcript {
     nats: 0.0,
     answers: 0,
@@ -920,5 +941,59 @@ fn effective_method(binary: bool, method: Method) -> Method {
         Method::Kl
     } else {
         method
+    }
+}
+
+#[cfg(test)]
+mod status_memo_tests {
+    use super::*;
+
+    /// The remembered status is the status: after every answer of a few analysts (and before
+    /// any), `status` equals a fresh computation, for the analyst who answered and the others.
+    #[test]
+    fn remembered_status_is_the_computed_status() {
+        let policy: Policy = serde_json::from_str(
+            r#"{"delta": 0.05, "schedule": "series", "rule": "rounded:0.01", "tolerance": 0.2,
+            "rows": 2000, "sharing": "isolated", "shares": {"kind": "on-arrival"},
+            "targets": [{"name": "y", "binary": true, "method": "exact"}], "core_version": 2}"#,
+        )
+        .unwrap();
+        let mut acc = Accountant::new(policy).unwrap();
+        let teams = ["a", "b", "c"];
+        for i in 0..12u64 {
+            let team = teams[(i % 3) as usize];
+            for t in teams {
+                assert_eq!(
+                    acc.status(Some(t)),
+                    acc.status_of(Some(t)),
+                    "before {i}, {t}"
+                );
+            }
+            let req = QueryRequest {
+                analyst: team.into(),
+                target: 0,
+                models: 1,
+            };
+            let Ok(charge) = acc.quote(&req) else { break };
+            let ans = acc
+                .answer(&req, &charge, &[Outcome::Errors(300 + 17 * i)])
+                .unwrap();
+            let s = acc.status(Some(team));
+            assert_eq!(s, acc.status_of(Some(team)), "after answer {i}");
+            assert_eq!(
+                s.targets[0]
+                    .next_half_width
+                    .unwrap_or(f64::INFINITY)
+                    .to_bits(),
+                ans.next_half_width.to_bits()
+            );
+            for t in teams {
+                assert_eq!(
+                    acc.status(Some(t)),
+                    acc.status_of(Some(t)),
+                    "after {i}, {t}"
+                );
+            }
+        }
     }
 }
