@@ -437,8 +437,8 @@ fn errors_range_interval_eval(
 /// An entry is keyed by every argument of [`errors_range_interval_with`] (the level by its
 /// bits), and the value is what that function computes for them, so taking it changes no
 /// number: a level an entry records falsely only names intervals nobody asks for. A thread
-/// that [`fills`](Role::Fill) the table stores what it computes; a thread that
-/// [`takes`](Role::Take) removes what it finds (each is asked for about once) and computes
+/// that [`fills`](shared::Role::Fill) the table stores what it computes; a thread that
+/// [`takes`](shared::Role::Take) removes what it finds (each is asked for about once) and computes
 /// the rest itself, storing nothing. Threads without a table are unaffected.
 pub mod shared {
     use super::{Interval, IntervalError, Method, Rounding, Sides};
