@@ -299,6 +299,66 @@ fn a_crafted_interval_charge_or_budget_is_caught_by_the_replay() {
     assert!(names(&plain(&t), k as u64));
 }
 
+/// The core's own record is compared as canonical text with what the core computes again: a
+/// value changed inside it, a field added or one removed (hashes recomputed) is named "core",
+/// and the same record re-encoded canonically is not a finding.
+#[test]
+fn a_crafted_core_record_is_named() {
+    let mut g = small(7);
+    let ex = g.export();
+    let k = g.answer_entries[3] as usize;
+    type Edit = Box<dyn Fn(&mut Value)>;
+    let edits: [(&str, Edit); 4] = [
+        (
+            "a value inside it",
+            Box::new(|v: &mut Value| {
+                let q = v["core"]["queries_left"].as_u64().unwrap();
+                v["core"]["queries_left"] = (q + 1).into()
+            }),
+        ),
+        (
+            "a nested value",
+            Box::new(|v: &mut Value| {
+                let l = v["core"]["transcript_nats"].as_f64().unwrap();
+                v["core"]["transcript_nats"] = (l * (1.0 + 1e-15)).into()
+            }),
+        ),
+        (
+            "an added field",
+            Box::new(|v: &mut Value| v["core"]["extra"] = true.into()),
+        ),
+        (
+            "a removed field",
+            Box::new(|v: &mut Value| {
+                v["core"].as_object_mut().unwrap().remove("statement");
+            }),
+        ),
+    ];
+    for (what, edit) in edits {
+        let mut t = ex.clone();
+        edit_body(&mut t.entries[k], |v| edit(v));
+        assert_ne!(
+            t.entries[k].body, ex.entries[k].body,
+            "{what}: the edit changed nothing"
+        );
+        rehash(&mut t.entries, k);
+        let report = plain(&t);
+        assert!(
+            report
+                .findings
+                .iter()
+                .any(|f| f.entry == Some(k as u64) && f.field == "core"),
+            "{what} in the core record at entry {k} was not named: {:#?}",
+            report.findings
+        );
+    }
+    // Parsed and written again canonically: the same text, so the same (clean) audit.
+    let mut t = ex.clone();
+    edit_body(&mut t.entries[k], |_| {});
+    assert_eq!(t.entries[k].body, ex.entries[k].body);
+    assert!(plain(&t).clean());
+}
+
 #[test]
 fn refusals_are_recomputed_from_public_facts() {
     // Past the tolerance everything is refused; the refusal must follow from the public state.

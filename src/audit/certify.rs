@@ -120,7 +120,7 @@ impl Certified {
 /// A record as a certificate may carry it: without exact losses or the core's own record.
 fn public(mut r: AnswerRecord) -> AnswerRecord {
     r.exact = None;
-    r.core = serde_json::Value::Null;
+    r.core = crate::engine::CoreJson::null();
     r
 }
 

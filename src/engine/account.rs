@@ -12,7 +12,7 @@ use std::fmt;
 use serde::{Deserialize, Serialize};
 
 use super::create::TargetDecl;
-use super::records::{AnswerRecord, BudgetView};
+use super::records::{AnswerRecord, BudgetView, CoreJson};
 use crate::error::{Error, Result};
 use crate::ledger::{Entry, Kind};
 use crate::metric::Loss;
@@ -363,8 +363,8 @@ pub(crate) struct AnswerCore {
     pub statement: String,
     /// Chosen model of a batch.
     pub best_model: Option<u32>,
-    /// The core's answer as JSON (replayed and compared by audits).
-    pub core: serde_json::Value,
+    /// The core's answer as canonical JSON (replayed and compared by audits).
+    pub core: CoreJson,
 }
 
 /// Formats a grid value `j/M` with as many decimals as the grid needs (`0.30` on a 0.01 grid,
@@ -403,7 +403,7 @@ pub(crate) struct Book {
 /// What the engine records of an accountant's answer: symbol text, released score, interval
 /// and level. Charge, code, statement and best model start at nothing (an adoption's); a
 /// charged answer sets its own.
-fn answer_core(policy: &HoldoutPolicy, ans: &Answer, core: serde_json::Value) -> AnswerCore {
+fn answer_core(policy: &HoldoutPolicy, ans: &Answer, core: CoreJson) -> AnswerCore {
     AnswerCore {
         query: ans.query_number,
         symbol: symbol_text(
@@ -566,7 +566,7 @@ impl Book {
             Symbol::Best { model, .. } => Some(model),
             _ => None,
         };
-        let core = serde_json::to_value(&ans).unwrap_or_default();
+        let core = CoreJson::of(&ans);
         Ok(AnswerCore {
             delta_i: ans.delta_i,
             code_nats: ans.code_nats,
@@ -584,7 +584,7 @@ impl Book {
         if src.team == team {
             return None;
         }
-        let released: Answer = serde_json::from_value(src.core.clone()).ok()?;
+        let released: Answer = src.core.parse()?;
         match released.symbol {
             Symbol::NewBest { cell } if self.acct.can_adopt(team, src.target_index, cell) => {
                 Some(cell)
@@ -615,7 +615,7 @@ impl Book {
                  interval is at the level that answer was given",
                 ans.statement
             ),
-            ..answer_core(policy, &ans, core)
+            ..answer_core(policy, &ans, CoreJson::from_value(&core))
         })
     }
 
@@ -633,6 +633,7 @@ impl Book {
             serde_json::from_str(&e.body).map_err(|err| bad(format!("not an answer: {err}")))?;
         let src_seq = r
             .core
+            .to_value()
             .get("adopted_from")
             .and_then(|v| v.as_u64())
             .ok_or_else(|| bad("no adopted_from".into()))?;
@@ -730,7 +731,7 @@ impl Book {
                 code_nats: ans.code_nats,
                 statement: ans.statement.clone(),
                 best_model: None,
-                core: serde_json::to_value(&ans).unwrap_or_default(),
+                core: CoreJson::of(&ans),
             })
             .collect())
     }

@@ -35,7 +35,8 @@ pub use compete::{
 pub use create::{CreateRequest, FamilyRequest, TargetDecl};
 pub use read::{HistoryItem, HoldoutView};
 pub use records::{
-    AnswerRecord, BudgetView, Comparison, RankedEntry, RefusalRecord, RoundRecord, SealedRecord,
+    AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
+    SealedRecord,
 };
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};

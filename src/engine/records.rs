@@ -35,6 +35,62 @@ pub struct BudgetView {
     pub quota_left_today: Option<u32>,
 }
 
+/// The accounting core's own record of an answer, kept as the canonical JSON text it is
+/// recorded with (keys sorted at every depth, serde_json's number format; see
+/// [`canonical_json`](crate::ledger::canonical_json)).
+///
+/// Replays compare it as text with what the core computes again, made canonical the same way:
+/// equal texts are equal records, and any change to a recorded field, a field added or one
+/// removed makes them differ. Keeping the text instead of a parsed tree is what lets an audit
+/// read an answer without building and freeing a map per entry (about a quarter of the
+/// parsing thread's time on an all-answer ledger).
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(transparent)]
+pub struct CoreJson(Box<serde_json::value::RawValue>);
+
+impl CoreJson {
+    /// The canonical text of `value`.
+    pub fn from_value(value: &serde_json::Value) -> CoreJson {
+        let text = crate::ledger::canonical_json(value);
+        CoreJson(
+            serde_json::value::RawValue::from_string(text)
+                .expect("canonical JSON of a value is valid JSON"),
+        )
+    }
+
+    /// The canonical text of `value`'s JSON form (through a [`serde_json::Value`], whose maps
+    /// sort their keys).
+    pub fn of<T: Serialize>(value: &T) -> CoreJson {
+        CoreJson::from_value(&serde_json::to_value(value).unwrap_or_default())
+    }
+
+    /// `null`: a record shown without the core's own part.
+    pub fn null() -> CoreJson {
+        CoreJson::from_value(&serde_json::Value::Null)
+    }
+
+    /// The text as recorded.
+    pub fn as_str(&self) -> &str {
+        self.0.get()
+    }
+
+    /// The record parsed (`Null` if the text is not JSON, which a parsed entry's cannot be).
+    pub fn to_value(&self) -> serde_json::Value {
+        serde_json::from_str(self.0.get()).unwrap_or_default()
+    }
+
+    /// The record parsed as `T`.
+    pub fn parse<T: for<'de> Deserialize<'de>>(&self) -> Option<T> {
+        serde_json::from_str(self.0.get()).ok()
+    }
+}
+
+impl PartialEq for CoreJson {
+    fn eq(&self, other: &CoreJson) -> bool {
+        self.as_str() == other.as_str()
+    }
+}
+
 /// A released answer, as recorded in the ledger.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct AnswerRecord {
@@ -83,7 +139,7 @@ pub struct AnswerRecord {
     /// Budget after the answer.
     pub budget: BudgetView,
     /// The accounting core's own record of the answer (for replay).
-    pub core: serde_json::Value,
+    pub core: CoreJson,
     /// Exact losses per model. Hidden from analysts, and from organizers while open.
     pub exact: Option<Vec<Loss>>,
 }
