@@ -141,6 +141,10 @@ pub struct UserAddArgs {
     /// Print one JSON object with the key `token`.
     #[arg(long)]
     pub json: bool,
+    /// Write the token to this file (created, readable by its owner only; it must not exist
+    /// yet) instead of printing it.
+    #[arg(long, value_name = "FILE")]
+    pub token_out: Option<std::path::PathBuf>,
     #[command(flatten)]
     #[allow(missing_docs)]
     pub server: ServerArgs,
@@ -338,6 +342,9 @@ pub async fn close(args: &CloseArgs) -> anyhow::Result<ExitCode> {
 pub async fn user(cmd: &UserCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         UserCommand::Add(args) => {
+            // The file is made before the user exists, so a path that cannot be written costs
+            // no user whose token nobody has.
+            let mut file = args.token_out.as_deref().map(token_file).transpose()?;
             let conn = Conn::open(&args.server).await?;
             let reply = conn
                 .users()
@@ -349,7 +356,33 @@ pub async fn user(cmd: &UserCommand) -> anyhow::Result<ExitCode> {
                 .await
                 .map_err(|e| conn.fail(e))?
                 .into_inner();
-            print_token(args.json, reply.user.as_ref(), &reply.token);
+            match (&mut file, &args.token_out) {
+                (Some(f), Some(path)) => {
+                    use std::io::Write;
+                    if let Err(e) = writeln!(f, "{}", reply.token).and_then(|()| f.sync_all()) {
+                        // The user exists now: the token must not be lost.
+                        eprintln!("error: cannot write {}: {e}", path.display());
+                        print_token(args.json, reply.user.as_ref(), &reply.token);
+                        return Ok(ExitCode::from(1));
+                    }
+                    let user = reply.user.clone().unwrap_or_default();
+                    if args.json {
+                        show::print_json(&json!({
+                            "user": show::user_json(&user),
+                            "token_file": path.display().to_string(),
+                        }));
+                    } else {
+                        eprintln!(
+                            "added {} (roles {}, team {}); token written to {}",
+                            user.name,
+                            user.roles.join(","),
+                            user.team,
+                            path.display()
+                        );
+                    }
+                }
+                _ => print_token(args.json, reply.user.as_ref(), &reply.token),
+            }
         }
         UserCommand::List(args) => {
             let conn = Conn::open(&args.server).await?;
@@ -398,6 +431,27 @@ pub async fn user(cmd: &UserCommand) -> anyhow::Result<ExitCode> {
         }
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Creates a new file for a token, readable by its owner only.
+fn token_file(path: &std::path::Path) -> anyhow::Result<std::fs::File> {
+    let mut options = std::fs::OpenOptions::new();
+    options.write(true).create_new(true);
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::OpenOptionsExt;
+        options.mode(0o600);
+    }
+    options.open(path).map_err(|e| {
+        crate::error::Error::invalid(
+            "--token-out",
+            format!(
+                "cannot create {}: {e} (it must not exist yet)",
+                path.display()
+            ),
+        )
+        .into()
+    })
 }
 
 fn print_token(json: bool, user: Option<&crate::proto::v1::UserInfo>, token: &str) {
