@@ -21,8 +21,25 @@ use crate::proto::v1::{HistoryEntry, HoldoutInfo};
 /// The font every picture's text is set in.
 const FONT: &[u8] = include_bytes!("report/DejaVuSans.ttf");
 
-/// Width and height of the picture, in pixels.
-const SIZE: (u32, u32) = (1000, 1180);
+/// Width of the picture, in pixels.
+const WIDTH: u32 = 1000;
+/// Heights of the title, the intervals chart and the burn-down charts; the text under them
+/// takes what its lines need (see [`size`]).
+const TITLE_HEIGHT: u32 = 50;
+const INTERVALS_HEIGHT: u32 = 420;
+const BURN_HEIGHT: u32 = 560;
+/// Characters per line of the text under the charts, and pixels per line.
+const TEXT_COLUMNS: usize = 150;
+const LINE_HEIGHT: u32 = 17;
+
+/// Width and height of `data`'s picture: the charts, then every line of the guarantee.
+fn size(data: &ReportData) -> (u32, u32) {
+    let lines = wrap(&data.guarantee, TEXT_COLUMNS).len() as u32;
+    (
+        WIDTH,
+        TITLE_HEIGHT + INTERVALS_HEIGHT + BURN_HEIGHT + 10 + LINE_HEIGHT * lines + 10,
+    )
+}
 
 /// One released answer.
 #[derive(Debug, Clone, PartialEq)]
@@ -207,11 +224,11 @@ fn wrap(text: &str, width: usize) -> Vec<String> {
 pub fn svg(data: &ReportData) -> Result<String> {
     let mut out = String::new();
     {
-        let root = SVGBackend::with_string(&mut out, SIZE).into_drawing_area();
+        let root = SVGBackend::with_string(&mut out, size(data)).into_drawing_area();
         root.fill(&WHITE).map_err(draw_error)?;
-        let (title, rest) = root.split_vertically(50);
-        let (intervals, rest) = rest.split_vertically(420);
-        let (burn, words) = rest.split_vertically(560);
+        let (title, rest) = root.split_vertically(TITLE_HEIGHT);
+        let (intervals, rest) = rest.split_vertically(INTERVALS_HEIGHT);
+        let (burn, words) = rest.split_vertically(BURN_HEIGHT);
         title
             .draw_text(
                 &format!(
@@ -230,9 +247,9 @@ pub fn svg(data: &ReportData) -> Result<String> {
         draw_intervals(&intervals, data)?;
         draw_burn_down(&burn, data)?;
         let style = ("sans-serif", 13).into_font().color(&BLACK);
-        for (i, line) in wrap(&data.guarantee, 150).iter().enumerate() {
+        for (i, line) in wrap(&data.guarantee, TEXT_COLUMNS).iter().enumerate() {
             words
-                .draw_text(line, &style, (20, 10 + 17 * i as i32))
+                .draw_text(line, &style, (20, 10 + (LINE_HEIGHT as usize * i) as i32))
                 .map_err(draw_error)?;
         }
         root.present().map_err(draw_error)?;
@@ -526,7 +543,7 @@ mod tests {
     fn the_png_decodes_at_the_picture_size() {
         let bytes = render(&sample(), Format::Png).unwrap();
         let pixmap = resvg::tiny_skia::Pixmap::decode_png(&bytes).expect("a PNG");
-        assert_eq!((pixmap.width(), pixmap.height()), SIZE);
+        assert_eq!((pixmap.width(), pixmap.height()), size(&sample()));
         // Not blank: some pixels are dark (text, lines).
         let dark = pixmap
             .pixels()
@@ -552,6 +569,21 @@ mod tests {
         assert_eq!(Format::from_path(Path::new("a.png")).unwrap(), Format::Png);
         assert_eq!(Format::from_path(Path::new("a.htm")).unwrap(), Format::Html);
         assert!(Format::from_path(Path::new("a.pdf")).is_err());
+    }
+
+    #[test]
+    fn every_line_of_the_guarantee_fits_under_the_charts() {
+        let mut data = sample();
+        let short = size(&data).1;
+        data.guarantee = (0..20)
+            .map(|i| format!("line {i}"))
+            .collect::<Vec<_>>()
+            .join("\n");
+        let (_, tall) = size(&data);
+        assert!(tall > short);
+        // The last line's baseline lies inside the picture.
+        let charts = TITLE_HEIGHT + INTERVALS_HEIGHT + BURN_HEIGHT;
+        assert!(charts + 10 + LINE_HEIGHT * 19 + 13 <= tall, "{tall}");
     }
 
     #[test]
