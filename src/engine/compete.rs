@@ -132,8 +132,8 @@ pub(crate) fn guarantee_addendum(p: &HoldoutPolicy) -> String {
             p.closes_at
                 .map(|t| format!(" (deadline {})", rfc3339(t)))
                 .unwrap_or_default(),
-            p.core.delta,
-            p.ranking_delta
+            seven_digits(p.core.delta),
+            seven_digits(p.ranking_delta)
         ),
         _ => String::new(),
     }
