@@ -50,6 +50,13 @@ pub struct DemoArgs {
     /// Print the whole transcript as one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
+    /// Instead of running the story, write the invented world's files into this directory (a
+    /// new or empty one) for the README's tour, then stop: two row-disjoint labelled files of
+    /// 10,000 shipments each (`feedback-labels.csv`, `final-labels.csv`, columns `id,label`)
+    /// and, for each, five prediction files of the squads' models (`feedback/*.csv`,
+    /// `final/*.csv`, columns `id,prediction`).
+    #[arg(long, value_name = "DIR", conflicts_with_all = ["keep_db", "json"])]
+    pub write_files: Option<std::path::PathBuf>,
 }
 
 /// The seed of the invented world.
@@ -116,6 +123,9 @@ fn interval(a: &pb::Answer) -> (f64, f64) {
 }
 
 async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
+    if let Some(dir) = &args.write_files {
+        return write_files(dir);
+    }
     if args.rows < 1_000 {
         return Err(Error::invalid(
             "--rows",
@@ -643,4 +653,113 @@ async fn final_entries(out: &Out, squads: &[Squad], s: &Shipments) -> anyhow::Re
         }
     }
     Ok(entries)
+}
+
+/// Shipments in each of the tour's two labelled files.
+const TOUR_ROWS: usize = 10_000;
+
+/// The tour's prediction files: name, what made it, and the model.
+const TOUR_MODELS: [(&str, &str, Model); 5] = [
+    (
+        "north-v1.csv",
+        "north-squad's first model",
+        Model {
+            noise: 2.6,
+            shift: 0.0,
+            seed: 11,
+        },
+    ),
+    (
+        "north-v2.csv",
+        "north-squad's better model",
+        Model {
+            noise: 1.4,
+            shift: 0.0,
+            seed: 12,
+        },
+    ),
+    (
+        "harbor-v1.csv",
+        "harbor-squad's first model",
+        Model {
+            noise: 2.0,
+            shift: 0.6,
+            seed: 21,
+        },
+    ),
+    (
+        "harbor-v2.csv",
+        "harbor-squad's tuned model",
+        Model {
+            noise: 1.9,
+            shift: 0.1,
+            seed: 21,
+        },
+    ),
+    (
+        "lantern-v1.csv",
+        "lantern's model",
+        Model {
+            noise: 3.2,
+            shift: -0.3,
+            seed: 31,
+        },
+    ),
+];
+
+/// `demo --write-files DIR`: the invented world's files for the README's tour.
+fn write_files(dir: &std::path::Path) -> anyhow::Result<ExitCode> {
+    if dir.exists() && std::fs::read_dir(dir)?.next().is_some() {
+        return Err(Error::invalid(
+            "--write-files",
+            format!(
+                "{} is not empty; name a new or empty directory (nothing was written)",
+                dir.display()
+            ),
+        )
+        .into());
+    }
+    let write = |path: &std::path::Path, ids: &[String], column: &str, classes: &[String]| {
+        let mut text = String::with_capacity(24 * classes.len());
+        text.push_str("id,");
+        text.push_str(column);
+        text.push('\n');
+        for (id, c) in ids.iter().zip(classes) {
+            text.push_str(id);
+            text.push(',');
+            text.push_str(c);
+            text.push('\n');
+        }
+        if let Some(parent) = path.parent() {
+            std::fs::create_dir_all(parent)
+                .with_context(|| format!("creating {}", parent.display()))?;
+        }
+        std::fs::write(path, text).with_context(|| format!("writing {}", path.display()))
+    };
+    println!(
+        "the Kestrel Parcel Cooperative's invented shipments (was the parcel late?); every name \
+         and number is made up:"
+    );
+    // Two row-disjoint sets of shipments: one for day-to-day feedback, one for a final round.
+    for (part, first) in [("feedback", 0), ("final", TOUR_ROWS as u64)] {
+        let world = Shipments::draw(first, TOUR_ROWS, SEED);
+        let labels = dir.join(format!("{part}-labels.csv"));
+        write(&labels, &world.ids, "label", &world.labels())?;
+        println!(
+            "  {}  {} labelled shipments (id,label: late or on-time), for the custodian",
+            labels.display(),
+            world.len()
+        );
+        for (name, what, model) in TOUR_MODELS {
+            let path = dir.join(part).join(name);
+            write(
+                &path,
+                &world.ids,
+                "prediction",
+                &world::classes(&model.predict(&world)),
+            )?;
+            println!("  {}  {what} (id,prediction)", path.display());
+        }
+    }
+    Ok(ExitCode::SUCCESS)
 }
