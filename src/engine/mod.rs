@@ -20,6 +20,7 @@ mod read;
 mod records;
 mod replay;
 mod submit;
+mod visibility;
 mod worker;
 
 use std::collections::HashMap;
@@ -38,6 +39,7 @@ pub use records::{
     AnswerRecord, BudgetView, Comparison, RankedEntry, RefusalRecord, RoundRecord, SealedRecord,
 };
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
+pub use visibility::{Scope, Visibility};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;
