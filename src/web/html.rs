@@ -194,7 +194,7 @@ fn subnav(v: &Viewer, f: &Facts) -> String {
     if f.sealed {
         let _ = write!(out, "<a href=\"{s}/ranking\">ranking</a>");
     }
-    let _ = write!(out, "<a href=\"{s}?format=json\">JSON</a></nav>\n");
+    let _ = writeln!(out, "<a href=\"{s}?format=json\">JSON</a></nav>");
     out
 }
 
@@ -352,7 +352,7 @@ pub(super) fn board(v: &Viewer, f: &Facts, board: &Board) -> String {
                  <th class=\"n\">new bests</th></tr></thead><tbody>\n",
             );
             for r in &l.rows {
-                let iv = r.interval.clone().unwrap_or_default();
+                let iv = r.interval.unwrap_or_default();
                 let _ = writeln!(
                     b,
                     "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td>\
@@ -419,13 +419,13 @@ pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, S
                  </tr></thead><tbody>\n",
             );
             for e in &r.entries {
-                let iv = e.interval.clone().unwrap_or_default();
+                let iv = e.interval.unwrap_or_default();
                 let vs =
                     r.comparisons
                         .iter()
                         .find(|c| c.ahead == e.ticket)
                         .map_or(String::new(), |c| {
-                            let d = c.difference.clone().unwrap_or_default();
+                            let d = c.difference.unwrap_or_default();
                             format!(
                                 "{} {}",
                                 interval_text(d.lower, d.upper),
