@@ -108,3 +108,79 @@ impl Engine {
         ))
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::{PolicyInput, TargetDecl};
+
+    fn policy(sharing: &str, leaderboard: &str) -> HoldoutPolicy {
+        let input = PolicyInput {
+            delta: 0.05,
+            tolerance: 0.3,
+            sharing: sharing.into(),
+            leaderboard: leaderboard.into(),
+            shares: if sharing == "isolated" {
+                "on-arrival".into()
+            } else {
+                String::new()
+            },
+            ..PolicyInput::default()
+        };
+        let target = TargetDecl {
+            name: "y".into(),
+            column: "y".into(),
+            metric: "error".parse().unwrap(),
+            method: "exact".into(),
+            classes: vec!["a".into(), "b".into()],
+        };
+        HoldoutPolicy::build(&input, vec![target], 100).unwrap()
+    }
+
+    fn user(roles: &[Role], team: &str) -> Caller {
+        Caller {
+            name: "u".into(),
+            roles: roles.to_vec(),
+            team: team.into(),
+        }
+    }
+
+    #[test]
+    fn the_public_sees_activity_only_behind_a_public_leaderboard() {
+        let public = Caller::public();
+        let open = Visibility::of(&policy("shared", "public"), &public);
+        assert_eq!(open.history, Scope::Every);
+        assert_eq!(open.leaderboard, Scope::Every);
+        assert!(open.ranking && open.budget);
+        // The default under `shared` is public.
+        assert_eq!(Visibility::of(&policy("shared", ""), &public), open);
+        for hidden in [policy("shared", "organizers"), policy("isolated", "")] {
+            let v = Visibility::of(&hidden, &public);
+            assert_eq!(v.history, Scope::Nothing);
+            assert_eq!(v.leaderboard, Scope::Nothing);
+            assert!(!v.ranking && !v.budget);
+        }
+        // A policy from before the setting reads as public; under `isolated` it is not.
+        let mut legacy = policy("isolated", "");
+        legacy.public_leaderboard = true;
+        assert_eq!(Visibility::of(&legacy, &public).history, Scope::Nothing);
+    }
+
+    #[test]
+    fn users_see_what_the_command_line_shows_them() {
+        let analyst = user(&[Role::Analyst], "red");
+        let v = Visibility::of(&policy("shared", "organizers"), &analyst);
+        assert_eq!(v.history, Scope::Every, "shared: every answer is public to analysts");
+        assert_eq!(v.leaderboard, Scope::Team("red".into()));
+        let v = Visibility::of(&policy("isolated", ""), &analyst);
+        assert_eq!(v.history, Scope::Team("red".into()));
+        assert_eq!(v.leaderboard, Scope::Team("red".into()));
+        for roles in [&[Role::Organizer][..], &[Role::Auditor][..]] {
+            let v = Visibility::of(&policy("isolated", ""), &user(roles, "staff"));
+            assert_eq!((v.history, v.leaderboard), (Scope::Every, Scope::Every));
+        }
+        assert!(Scope::Team("red".into()).covers("red"));
+        assert!(!Scope::Team("red".into()).covers("blue"));
+        assert!(!Scope::Nothing.covers(""));
+    }
+}
