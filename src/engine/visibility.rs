@@ -170,7 +170,11 @@ mod tests {
     fn users_see_what_the_command_line_shows_them() {
         let analyst = user(&[Role::Analyst], "red");
         let v = Visibility::of(&policy("shared", "organizers"), &analyst);
-        assert_eq!(v.history, Scope::Every, "shared: every answer is public to analysts");
+        assert_eq!(
+            v.history,
+            Scope::Every,
+            "shared: every answer is public to analysts"
+        );
         assert_eq!(v.leaderboard, Scope::Team("red".into()));
         let v = Visibility::of(&policy("isolated", ""), &analyst);
         assert_eq!(v.history, Scope::Team("red".into()));
