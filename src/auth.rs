@@ -80,6 +80,21 @@ pub struct Caller {
 }
 
 impl Caller {
+    /// The public: a web visitor without a token (`serve --web`). No roles, no team; what it
+    /// may see is decided by [`crate::engine::Visibility::of`].
+    pub fn public() -> Caller {
+        Caller {
+            name: "(public)".into(),
+            roles: Vec::new(),
+            team: String::new(),
+        }
+    }
+
+    /// Whether this is [`Caller::public`] (every user holds at least one role).
+    pub fn is_public(&self) -> bool {
+        self.roles.is_empty()
+    }
+
     /// Whether the caller holds `role`.
     pub fn has(&self, role: Role) -> bool {
         self.roles.contains(&role)

@@ -15,6 +15,7 @@
 //!   transaction.
 //! - [`service`]: the gRPC services, converting `proto` types at the edge.
 //! - [`server`]: serving on a bound listener until a shutdown future completes.
+//! - [`web`]: the opt-in read-only web view (`serve --web`), on its own listener.
 //! - [`audit`]: ledger exports, signed checkpoints, and the offline audit that re-verifies and
 //!   replays them with the same accounting core.
 //! - [`cli`]: the `holdout` command line.
@@ -35,3 +36,4 @@ pub mod server;
 pub mod service;
 pub mod stats;
 pub mod store;
+pub mod web;

@@ -113,7 +113,7 @@ impl Shared {
 /// A TCP connection that holds one of the limited slots while open and fails its reads when
 /// the peer stays silent past its deadline (the handshake timeout until it has sent
 /// [`STARTED_BYTES`], the idle timeout after), or when the accept loop sheds it to make room.
-struct Limited {
+pub(crate) struct Limited {
     inner: tokio::net::TcpStream,
     _slot: tokio::sync::OwnedSemaphorePermit,
     limits: Limits,
@@ -267,7 +267,7 @@ fn shed_oldest(waiting: &mut std::collections::VecDeque<std::sync::Weak<Shared>>
 /// idle peer: a real client speaks at once), so idle connections cannot keep a real client
 /// out; when every slot is held by a connection that has spoken, the new one waits for a slot.
 /// Either is logged, at most every 10 s.
-fn limited_incoming(
+pub(crate) fn limited_incoming(
     listener: TcpListener,
     limits: Limits,
 ) -> tokio_stream::wrappers::ReceiverStream<std::io::Result<Limited>> {

@@ -46,7 +46,15 @@ pub struct ServeArgs {
     /// Mutual TLS: clients must present a certificate issued by this CA (PEM).
     #[arg(long, value_name = "FILE", requires = "tls_cert")]
     pub tls_client_ca: Option<PathBuf>,
-    /// Accept a non-loopback --listen address without TLS (--tls-cert): bearer tokens and
+    /// Also serve the read-only web view on this address (off unless given): the holdouts, each
+    /// one's status and burn-down chart, its leaderboard or ranking, each page also as JSON
+    /// (`?format=json`). Visitors without a token see only what each holdout's leaderboard
+    /// setting makes public; a token (HTTP Basic password, or `Authorization: Bearer`) shows
+    /// what that user may see. TLS, the plaintext rule and the connection limits are the same
+    /// as for --listen. Port 0 picks a free port (printed on stdout after the gRPC address).
+    #[arg(long, value_name = "ADDR")]
+    pub web: Option<String>,
+    /// Accept a non-loopback --listen (or --web) address without TLS (--tls-cert): bearer tokens and
     /// predictions then cross the network in clear, so use this only on a trusted network or
     /// behind a TLS-terminating proxy on the same host.
     #[arg(long)]
@@ -143,7 +151,12 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         }
         _ => None,
     };
-    check_listen(&args.listen, args.allow_plaintext_network || tls.is_some())?;
+    let plaintext_ok = args.allow_plaintext_network || tls.is_some();
+    check_listen("--listen", &args.listen, plaintext_ok)?;
+    if let Some(web) = &args.web {
+        check_listen("--web", web, plaintext_ok)?;
+    }
+    let web_tls = tls.as_ref().map(crate::web::tls_acceptor).transpose()?;
     runtime.block_on(async move {
         let mut store = match Store::open(&args.db) {
             Ok(store) => store,
@@ -190,8 +203,20 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             .await
             .with_context(|| format!("listening on {}", args.listen))?;
         let addr = listener.local_addr()?;
+        let web = match &args.web {
+            Some(web) => Some(
+                tokio::net::TcpListener::bind(web)
+                    .await
+                    .with_context(|| format!("listening on --web {web}"))?,
+            ),
+            None => None,
+        };
         // Tests and scripts read this line to learn the port when they passed port 0.
         println!("listening on {addr}");
+        if let Some(web) = &web {
+            let scheme = if web_tls.is_some() { "https" } else { "http" };
+            println!("web view on {scheme}://{}", web.local_addr()?);
+        }
         std::io::stdout().flush()?;
         let limits = Limits {
             max_connections: args.max_connections as usize,
@@ -205,7 +230,27 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
                 max_create_bytes: args.max_create_bytes,
             },
         };
-        serve_on(listener, Daemon::new(db.clone()), shutdown_signal(), limits, tls).await?;
+        // One signal stops both listeners.
+        let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
+        tokio::spawn(async move {
+            shutdown_signal().await;
+            let _ = stop_tx.send(true);
+        });
+        let stopped = |mut rx: tokio::sync::watch::Receiver<bool>| async move {
+            let _ = rx.wait_for(|s| *s).await;
+        };
+        let web_task = web.map(|web| {
+            let stop = stopped(stop_rx.clone());
+            tokio::spawn(crate::web::serve_web(web, db.clone(), stop, limits, web_tls))
+        });
+        serve_on(listener, Daemon::new(db.clone()), stopped(stop_rx), limits, tls).await?;
+        if let Some(task) = web_task {
+            match task.await {
+                Ok(Ok(())) => {}
+                Ok(Err(e)) => tracing::warn!(error = %e, "the web view failed"),
+                Err(e) => tracing::warn!(error = %e, "the web view's task failed"),
+            }
+        }
         // A last checkpoint of every head, so nothing appended since the last tick (a close,
         // the last answers) is left uncovered when the daemon stops.
         if let Some(dir) = args.checkpoint_dir.clone() {
@@ -217,7 +262,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
 
 /// Refuses a non-loopback listen address without `--allow-plaintext-network` (tokens and
 /// predictions would cross the network in clear), and warns when it is given.
-fn check_listen(listen: &str, allowed: bool) -> anyhow::Result<()> {
+fn check_listen(flag: &str, listen: &str, allowed: bool) -> anyhow::Result<()> {
     let host = listen
         .rsplit_once(':')
         .map(|(h, _)| h)
@@ -234,7 +279,7 @@ fn check_listen(listen: &str, allowed: bool) -> anyhow::Result<()> {
     }
     if !allowed {
         return Err(Error::invalid(
-            "--listen",
+            flag,
             format!(
                 "{listen} is not a loopback address and no --tls-cert/--tls-key was given: bearer \
                  tokens and predictions would cross the network in clear. Give the daemon a \

@@ -740,8 +740,12 @@ impl Engine {
 
     /// The final ranking of a sealed round; refused (revealing nothing) until it closes.
     pub fn ranking(&mut self, caller: &Caller, name: &str) -> Result<Ranking> {
-        let _ = caller;
         let loaded = self.loaded(name)?;
+        if !super::Visibility::of(&loaded.policy, caller).ranking {
+            return Err(Error::PermissionDenied(format!(
+                "the ranking of {name} is shown to organizers only (its leaderboard setting)"
+            )));
+        }
         if !loaded.policy.sealed() {
             return Err(Error::FailedPrecondition(format!(
                 "holdout {name} is not a sealed round (its answers are {}); rankings are for \
@@ -807,8 +811,8 @@ impl Engine {
                 loaded.policy.answers_spec()
             )));
         }
-        let privileged = caller.has(Role::Organizer) || caller.has(Role::Auditor);
-        let own_only = !loaded.policy.public_leaderboard && !privileged;
+        let scope = super::Visibility::of(&loaded.policy, caller).leaderboard;
+        let own_only = scope != super::Scope::Every;
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
         // `adopt` entries (core 2): another team's answered file taken over as this team's new
@@ -817,7 +821,7 @@ impl Engine {
             let rec = Record::read(e)?;
             let Some(r) = rec.answer() else { continue };
             // One ladder per team and target; the leaderboard shows the first target's.
-            if r.target_index != 0 || (own_only && r.team != caller.team) {
+            if r.target_index != 0 || !scope.covers(&r.team) {
                 continue;
             }
             let row = rows

@@ -20,6 +20,7 @@ mod read;
 mod records;
 mod replay;
 mod submit;
+mod visibility;
 mod worker;
 
 use std::collections::HashMap;
@@ -39,6 +40,7 @@ pub use records::{
     SealedRecord,
 };
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
+pub use visibility::{Scope, Visibility};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;

@@ -137,8 +137,13 @@ impl Engine {
                 }));
             }
         }
-        let see_all =
-            !loaded.policy.isolated() || caller.has(Role::Organizer) || caller.has(Role::Auditor);
+        let scope = super::Visibility::of(&loaded.policy, caller).history;
+        if scope == super::Scope::Nothing {
+            return Err(Error::PermissionDenied(format!(
+                "the history of {name} is shown to organizers only (its leaderboard setting)"
+            )));
+        }
+        let see_all = scope == super::Scope::Every;
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut out = Vec::new();
         for e in &entries {
@@ -150,7 +155,7 @@ impl Engine {
             match Record::read(e)? {
                 // An adoption (core 2 ladder) is shown like the answer it is.
                 Record::Answer(mut r) | Record::Adopt(mut r) => {
-                    if !see_all && r.team != caller.team {
+                    if !scope.covers(&r.team) {
                         continue;
                     }
                     if !exact {
@@ -160,13 +165,13 @@ impl Engine {
                     out.push(HistoryItem::Answer(r, rc));
                 }
                 Record::Refusal(r, _) => {
-                    if !see_all && r.team != caller.team {
+                    if !scope.covers(&r.team) {
                         continue;
                     }
                     out.push(HistoryItem::Refusal(r, receipt(0)));
                 }
                 Record::Sealed(r) => {
-                    if !see_all && r.team != caller.team {
+                    if !scope.covers(&r.team) {
                         continue;
                     }
                     let rc = receipt(r.query);
@@ -175,7 +180,7 @@ impl Engine {
                 }
                 Record::Round(round) => {
                     for mut r in round.answers {
-                        if !see_all && r.team != caller.team {
+                        if !scope.covers(&r.team) {
                             continue;
                         }
                         if !exact {

@@ -3,10 +3,10 @@
 use crate::engine::{
     AnswerRecord, BudgetView, HoldoutPolicy, HoldoutView, RefusalRecord, TargetDecl,
 };
-use crate::engine::{Duplicate, Leaderboard, Ranking, Receipt, SealedRecord};
+use crate::engine::{Duplicate, HistoryItem, Leaderboard, Ranking, Receipt, SealedRecord};
 use crate::proto::v1 as pb;
 
-pub(super) fn budget(b: &BudgetView) -> pb::Budget {
+pub(crate) fn budget(b: &BudgetView) -> pb::Budget {
     pb::Budget {
         delta: b.delta,
         spent: b.spent,
@@ -22,7 +22,7 @@ pub(super) fn budget(b: &BudgetView) -> pb::Budget {
     }
 }
 
-pub(super) fn target(t: &TargetDecl) -> pb::Target {
+pub(crate) fn target(t: &TargetDecl) -> pb::Target {
     pb::Target {
         name: t.name.clone(),
         column: t.column.clone(),
@@ -32,7 +32,7 @@ pub(super) fn target(t: &TargetDecl) -> pb::Target {
     }
 }
 
-pub(super) fn policy(p: &HoldoutPolicy) -> pb::Policy {
+pub(crate) fn policy(p: &HoldoutPolicy) -> pb::Policy {
     let input = p.input();
     pb::Policy {
         delta: input.delta,
@@ -50,7 +50,7 @@ pub(super) fn policy(p: &HoldoutPolicy) -> pb::Policy {
     }
 }
 
-pub(super) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
+pub(crate) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
     pb::HoldoutInfo {
         name: v.name.clone(),
         description: v.description.clone(),
@@ -65,7 +65,7 @@ pub(super) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
     }
 }
 
-pub(super) fn receipt(r: &Receipt) -> pb::Receipt {
+pub(crate) fn receipt(r: &Receipt) -> pb::Receipt {
     pb::Receipt {
         holdout: r.holdout.clone(),
         query: r.query,
@@ -73,7 +73,7 @@ pub(super) fn receipt(r: &Receipt) -> pb::Receipt {
     }
 }
 
-pub(super) fn answer(
+pub(crate) fn answer(
     r: &AnswerRecord,
     rc: &Receipt,
     replayed: bool,
@@ -101,7 +101,7 @@ pub(super) fn answer(
     }
 }
 
-pub(super) fn refusal(r: &RefusalRecord, rc: Option<&Receipt>) -> pb::Refusal {
+pub(crate) fn refusal(r: &RefusalRecord, rc: Option<&Receipt>) -> pb::Refusal {
     pb::Refusal {
         reason: r.reason.clone(),
         message: r.message.clone(),
@@ -110,7 +110,7 @@ pub(super) fn refusal(r: &RefusalRecord, rc: Option<&Receipt>) -> pb::Refusal {
     }
 }
 
-pub(super) fn sealed(
+pub(crate) fn sealed(
     r: &SealedRecord,
     rc: &Receipt,
     replayed: bool,
@@ -146,7 +146,7 @@ fn interval(lower: f64, upper: f64) -> Option<pb::Interval> {
     Some(pb::Interval { lower, upper })
 }
 
-pub(super) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
+pub(crate) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
     pb::LeaderboardResponse {
         holdout: l.holdout.clone(),
         target: l.target.clone(),
@@ -169,7 +169,7 @@ pub(super) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
     }
 }
 
-pub(super) fn ranking(r: &Ranking) -> pb::RankingResponse {
+pub(crate) fn ranking(r: &Ranking) -> pb::RankingResponse {
     pb::RankingResponse {
         holdout: r.holdout.clone(),
         closed_at: r.closed_at.clone(),
@@ -204,7 +204,7 @@ pub(super) fn ranking(r: &Ranking) -> pb::RankingResponse {
     }
 }
 
-pub(super) fn duplicates(holdout: &str, d: &[Duplicate]) -> pb::DuplicatesResponse {
+pub(crate) fn duplicates(holdout: &str, d: &[Duplicate]) -> pb::DuplicatesResponse {
     pb::DuplicatesResponse {
         holdout: holdout.to_string(),
         duplicates: d
@@ -224,4 +224,56 @@ pub(super) fn duplicates(holdout: &str, d: &[Duplicate]) -> pb::DuplicatesRespon
             })
             .collect(),
     }
+}
+
+/// A caller's history as the `History` RPC streams it. Rows are numbered by their place in the
+/// caller's own view, never by their position in the chain: under `isolated` that position would
+/// count other teams' queries.
+pub(crate) fn history(items: Vec<HistoryItem>, guarantee: &str) -> Vec<pb::HistoryEntry> {
+    items
+        .into_iter()
+        .enumerate()
+        .map(|(row, item)| {
+            let row = row as u64 + 1;
+            match item {
+                HistoryItem::Answer(r, rc) => pb::HistoryEntry {
+                    entry: row,
+                    entry_hash: rc.entry_hash.clone(),
+                    kind: crate::ledger::Kind::Answer.as_str().into(),
+                    team: r.team.clone(),
+                    at: r.at.clone(),
+                    note: r.note.clone(),
+                    exact_scores: r
+                        .exact
+                        .as_ref()
+                        .map(|v| v.iter().map(|l| l.mean()).collect())
+                        .unwrap_or_default(),
+                    answer: Some(answer(&r, &rc, false, guarantee)),
+                    refusal: None,
+                },
+                HistoryItem::Sealed(r, rc) => pb::HistoryEntry {
+                    entry: row,
+                    entry_hash: rc.entry_hash.clone(),
+                    kind: crate::ledger::Kind::Sealed.as_str().into(),
+                    team: r.team.clone(),
+                    at: r.at.clone(),
+                    note: r.note.clone(),
+                    exact_scores: Vec::new(),
+                    answer: None,
+                    refusal: None,
+                },
+                HistoryItem::Refusal(r, rc) => pb::HistoryEntry {
+                    entry: row,
+                    entry_hash: rc.entry_hash.clone(),
+                    kind: crate::ledger::Kind::Refusal.as_str().into(),
+                    team: r.team.clone(),
+                    at: r.at.clone(),
+                    note: r.note.clone(),
+                    exact_scores: Vec::new(),
+                    answer: None,
+                    refusal: Some(refusal(&r, Some(&rc))),
+                },
+            }
+        })
+        .collect()
 }

@@ -1,7 +1,7 @@
 //! The gRPC services. Each is the same [`Daemon`] value implementing a generated trait; proto
 //! messages are converted to engine types here and nowhere else.
 
-mod convert;
+pub(crate) mod convert;
 mod holdouts;
 mod ledger;
 mod submissions;

@@ -6,9 +6,7 @@ use tokio_stream::{Stream, StreamExt};
 use tonic::{Request, Response, Status, Streaming};
 
 use super::{Daemon, convert};
-use crate::engine::{
-    HistoryItem, ModelPredictions, RawValues, SubmitMode, SubmitOutcome, SubmitRequest,
-};
+use crate::engine::{ModelPredictions, RawValues, SubmitMode, SubmitOutcome, SubmitRequest};
 use crate::error::Error;
 use crate::proto::v1::{
     self as pb, HistoryEntry, HistoryRequest, StatusRequest, StatusResponse, SubmitChunk,
@@ -294,53 +292,9 @@ impl Submissions for Daemon {
                 Ok((items, engine.loaded(&req.holdout)?.policy.guarantee()))
             })
             .await?;
-        // Rows are numbered by their place in the caller's own view, never by their position in
-        // the chain: under `isolated` that position would count other teams' queries.
-        let entries: Vec<Result<HistoryEntry, Status>> = items
+        let entries: Vec<Result<HistoryEntry, Status>> = convert::history(items, &guarantee)
             .into_iter()
-            .enumerate()
-            .map(|(row, item)| {
-                let row = row as u64 + 1;
-                Ok(match item {
-                    HistoryItem::Answer(r, rc) => HistoryEntry {
-                        entry: row,
-                        entry_hash: rc.entry_hash.clone(),
-                        kind: crate::ledger::Kind::Answer.as_str().into(),
-                        team: r.team.clone(),
-                        at: r.at.clone(),
-                        note: r.note.clone(),
-                        exact_scores: r
-                            .exact
-                            .as_ref()
-                            .map(|v| v.iter().map(|l| l.mean()).collect())
-                            .unwrap_or_default(),
-                        answer: Some(convert::answer(&r, &rc, false, &guarantee)),
-                        refusal: None,
-                    },
-                    HistoryItem::Sealed(r, rc) => HistoryEntry {
-                        entry: row,
-                        entry_hash: rc.entry_hash.clone(),
-                        kind: crate::ledger::Kind::Sealed.as_str().into(),
-                        team: r.team.clone(),
-                        at: r.at.clone(),
-                        note: r.note.clone(),
-                        exact_scores: Vec::new(),
-                        answer: None,
-                        refusal: None,
-                    },
-                    HistoryItem::Refusal(r, rc) => HistoryEntry {
-                        entry: row,
-                        entry_hash: rc.entry_hash.clone(),
-                        kind: crate::ledger::Kind::Refusal.as_str().into(),
-                        team: r.team.clone(),
-                        at: r.at.clone(),
-                        note: r.note.clone(),
-                        exact_scores: Vec::new(),
-                        answer: None,
-                        refusal: Some(convert::refusal(&r, Some(&rc))),
-                    },
-                })
-            })
+            .map(Ok)
             .collect();
         Ok(Response::new(Box::pin(tokio_stream::iter(entries))))
     }

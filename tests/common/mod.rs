@@ -107,6 +107,8 @@ pub struct Daemon {
     pub addr: String,
     /// `http://HOST:PORT`.
     pub url: String,
+    /// The web view's base URL (`http://HOST:PORT` or `https://...`) when started with --web.
+    pub web: Option<String>,
     /// Token of the first user (custodian and organizer).
     pub admin: String,
     /// Scratch directory (holds the database and test files).
@@ -178,11 +180,18 @@ impl Daemon {
             .expect("start holdout serve");
         let stdout = child.stdout.take().expect("daemon stdout");
         let (tx, rx) = mpsc::channel();
+        // With --web the daemon prints a second line, `web view on URL`, before serving.
+        let web_wanted = extra.contains(&"--web");
+        let (web_tx, web_rx) = mpsc::channel();
         std::thread::spawn(move || {
             let mut reader = BufReader::new(stdout);
             let mut line = String::new();
             let first = reader.read_line(&mut line).map(|_| line);
             let _ = tx.send(first);
+            if web_wanted {
+                let mut line = String::new();
+                let _ = web_tx.send(reader.read_line(&mut line).map(|_| line));
+            }
             // Keep draining, so a later line can never fail on a closed pipe.
             let _ = std::io::copy(&mut reader, &mut std::io::sink());
         });
@@ -200,10 +209,27 @@ impl Daemon {
             panic!("unexpected first line from the daemon: {line:?}\n--- daemon log\n{log}");
         };
         let addr = addr.to_string();
+        let web = if web_wanted {
+            let line = match web_rx.recv_timeout(START_TIMEOUT) {
+                Ok(Ok(line)) => line,
+                other => {
+                    let _ = child.kill();
+                    panic!("the daemon did not print `web view on URL`: {other:?}");
+                }
+            };
+            let Some(url) = line.trim().strip_prefix("web view on ") else {
+                let _ = child.kill();
+                panic!("unexpected second line from the daemon: {line:?}");
+            };
+            Some(url.to_string())
+        } else {
+            None
+        };
         Daemon {
             child,
             url: format!("http://{addr}"),
             addr,
+            web,
             admin,
             dir,
         }
