@@ -267,6 +267,12 @@ fn x_range(data: &ReportData) -> std::ops::Range<f64> {
     0.0..(last.max(refused) as f64 + 1.0)
 }
 
+/// How many query-number labels the x axes ask for: never more than the range has whole
+/// numbers, so the steps plotters picks (1, 2, 5, 10, ...) are whole and no label repeats.
+fn x_labels(data: &ReportData) -> usize {
+    (x_range(data).end as usize).clamp(1, 10)
+}
+
 fn draw_intervals<DB: DrawingBackend>(
     area: &DrawingArea<DB, plotters::coord::Shift>,
     data: &ReportData,
@@ -300,6 +306,7 @@ fn draw_intervals<DB: DrawingBackend>(
     chart
         .configure_mesh()
         .x_desc("query")
+        .x_labels(x_labels(data))
         .x_label_formatter(&|x| format!("{x:.0}"))
         .y_desc("loss")
         .light_line_style(WHITE.mix(0.0))
@@ -402,6 +409,7 @@ fn draw_burn_down<DB: DrawingBackend>(
         chart
             .configure_mesh()
             .x_desc("query")
+            .x_labels(x_labels(data))
             .x_label_formatter(&|x| format!("{x:.0}"))
             .y_desc(unit)
             .light_line_style(WHITE.mix(0.0))
@@ -584,6 +592,42 @@ mod tests {
         // The last line's baseline lies inside the picture.
         let charts = TITLE_HEIGHT + INTERVALS_HEIGHT + BURN_HEIGHT;
         assert!(charts + 10 + LINE_HEIGHT * 19 + 13 <= tall, "{tall}");
+    }
+
+    /// Query numbers on the x axes are whole and none repeats within an axis (fractional ticks
+    /// formatted without decimals once read "0 0 1 2 2 2").
+    #[test]
+    fn query_ticks_are_whole_and_distinct() {
+        for answers in [3u64, 6, 40, 500] {
+            let mut data = sample();
+            data.refusals.clear();
+            data.answers = (1..=answers)
+                .map(|q| AnswerPoint {
+                    query: q,
+                    ..data.answers[0].clone()
+                })
+                .collect();
+            let svg = svg(&data).unwrap();
+            let mut counts = std::collections::BTreeMap::<String, usize>::new();
+            for piece in svg.split("<text").skip(1) {
+                let Some(start) = piece.find('>') else {
+                    continue;
+                };
+                let Some(end) = piece.find("</text>") else {
+                    continue;
+                };
+                let t = piece[start + 1..end].trim();
+                if !t.is_empty() && t.chars().all(|c| c.is_ascii_digit()) {
+                    *counts.entry(t.to_string()).or_default() += 1;
+                }
+            }
+            // Four charts share the x axis; a label appears at most once on each.
+            assert!(counts.len() >= 2, "{answers} answers: ticks {counts:?}");
+            assert!(
+                counts.values().all(|&c| c <= 4),
+                "{answers} answers: a tick repeats: {counts:?}"
+            );
+        }
     }
 
     #[test]
