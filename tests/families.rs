@@ -100,7 +100,8 @@ fn split_and_create_state_the_joint_delta() {
         alone
             .stdout
             .contains("This holdout's delta 0.05 covers this holdout alone")
-            && alone.stdout.contains("1 - k * delta"),
+            && alone.stdout.contains("1 - k * delta")
+            && alone.stdout.matches("covers this holdout alone").count() == 1,
         "{}",
         alone.stdout
     );

@@ -516,8 +516,8 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         v["joint"] = json!(joint);
         show::print_json(&v);
     } else {
+        // The joint-delta note was printed with the plan, before the upload.
         println!("\ncreated\n{}", show::holdout_text(&info));
-        println!("\n{joint}");
     }
     Ok(ExitCode::SUCCESS)
 }
