@@ -51,10 +51,10 @@ pub struct CoreJson(Box<serde_json::value::RawValue>);
 impl CoreJson {
     /// The canonical text of `value`.
     pub fn from_value(value: &serde_json::Value) -> CoreJson {
-        let text = crate::ledger::canonical_json(value);
+        // The same text as `canonical_json(value)` (a `Value`'s maps sort their keys), written
+        // straight into the raw value without parsing it again.
         CoreJson(
-            serde_json::value::RawValue::from_string(text)
-                .expect("canonical JSON of a value is valid JSON"),
+            serde_json::value::to_raw_value(value).expect("a serde_json::Value always serialises"),
         )
     }
 
@@ -277,4 +277,25 @@ pub struct RoundRecord {
     /// Pairs the reserve is split over: `K (K - 1) / 2`, summed over the targets from core
     /// version 2 (entries are compared only within their target).
     pub pairs: u64,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::CoreJson;
+
+    /// The text is the ledger's canonical JSON of the value, whatever order it was built in.
+    #[test]
+    fn core_text_is_the_canonical_json() {
+        let v = serde_json::json!({"z": 1.5, "a": {"y": [1, 2], "b": null}, "m": "x"});
+        assert_eq!(
+            CoreJson::from_value(&v).as_str(),
+            crate::ledger::canonical_json(&v)
+        );
+        assert_eq!(
+            CoreJson::from_value(&v).as_str(),
+            r#"{"a":{"b":null,"y":[1,2]},"m":"x","z":1.5}"#
+        );
+        assert_eq!(CoreJson::from_value(&v).to_value(), v);
+        assert_eq!(CoreJson::null().as_str(), "null");
+    }
 }
