@@ -400,14 +400,6 @@ impl<'a, 's> Builder<'a, 's> {
     /// Adds a row given its id (untrimmed, `None` when the field is absent) and its values
     /// (trimmed).
     fn push(&mut self, line: u64, id: Option<&str>, values: &[&str]) -> Result<()> {
-        if let Some((max, what)) = &self.spec.max_rows
-            && self.ids.ids.len() as u64 >= *max
-        {
-            return Err(self.err(
-                line,
-                format!("more rows than the {max} of {what}; the rest of the file was not read"),
-            ));
-        }
         let id_column = &self.spec.id_column;
         let id = match id.map(str::trim) {
             None => return Err(self.err(line, format!("no id: the row lacks `{id_column}`"))),
@@ -418,6 +410,15 @@ impl<'a, 's> Builder<'a, 's> {
             return Err(self.err(
                 line,
                 format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
+            ));
+        }
+        // Checked after the id, so a repeated id is named as such.
+        if let Some((max, what)) = &self.spec.max_rows
+            && self.ids.ids.len() as u64 >= *max
+        {
+            return Err(self.err(
+                line,
+                format!("more rows than the {max} of {what}; the rest of the file was not read"),
             ));
         }
         if !self.spec.allow_empty_values
