@@ -11,7 +11,7 @@
 # Environment: BENCH_ROWS (default 1000000), BENCH_RUNS (7), BENCH_DIR (scratch directory on a
 # real disk: fsync on tmpfs costs nothing; default target/), BENCH_PYTHON (a python with pandas;
 # default: python3 if it has pandas, else a venv in target/bench-venv with pandas from PyPI).
-# The data are invented: ids `case-0000001`..., labels `ok`/`defect`.
+# The data are invented: ids `big-0000001`..., labels `ok`/`defect`.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 rows="${BENCH_ROWS:-1000000}"
@@ -40,6 +40,11 @@ work="$(mktemp -d "${BENCH_DIR:-target}/bench-submit.XXXXXX")"
 work="$(cd "$work" && pwd)"
 daemon=""
 cleanup() {
+  local status=$?
+  if [[ $status -ne 0 && -f "$work/serve.log" ]]; then
+    echo "--- daemon log (last lines)" >&2
+    tail -n 20 "$work/serve.log" >&2
+  fi
   if [[ -n "$daemon" ]]; then kill "$daemon" 2>/dev/null || true; wait "$daemon" 2>/dev/null || true; fi
   rm -rf "$work"
 }
@@ -56,7 +61,7 @@ def write(path, header, lines):
         f.write("\n".join(lines))
         f.write("\n")
 for name, n in (("big", rows), ("small", 1000)):
-    ids = [f"case-{i:07d}" for i in range(n)]
+    ids = [f"{name}-{i:07d}" for i in range(n)]
     truth = ["defect" if rng.random() < 0.2 else "ok" for _ in range(n)]
     write(f"{work}/{name}-labels.csv", "id,label", (f"{i},{t}" for i, t in zip(ids, truth)))
     for r in range(runs):
