@@ -22,6 +22,17 @@ pub(crate) const MAX_NOTE_CHARS: usize = 2_000;
 /// Longest class name a prediction may carry (declared classes are short names).
 pub(crate) const MAX_CLASS_BYTES: usize = 256;
 
+/// The form of a model's values on the wire.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Form {
+    /// `classes`: class names.
+    Names,
+    /// `class_indices`: indices into the declared classes.
+    Indices,
+    /// `values`: numbers.
+    Numbers,
+}
+
 #[tonic::async_trait]
 impl Submissions for Daemon {
     async fn submit(
@@ -105,7 +116,7 @@ impl Submissions for Daemon {
             })
             .collect();
         // Each model's values come in one form: class names, class indices or numbers.
-        let mut kinds: Vec<Option<u8>> = vec![None; models];
+        let mut kinds: Vec<Option<Form>> = vec![None; models];
         while let Some(chunk) = stream.next().await {
             let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
             // Counted before it is kept: the stream is refused as soon as it passes the limit.
@@ -141,11 +152,15 @@ impl Submissions for Daemon {
                 )
                 .into());
             }
-            let kind = forms.iter().position(|f| *f).unwrap_or(2) as u8;
+            let kind = match forms {
+                [true, ..] => Form::Names,
+                [_, true, _] => Form::Indices,
+                _ => Form::Numbers,
+            };
             let n_values = match kind {
-                0 => chunk.classes.len(),
-                1 => chunk.class_indices.len(),
-                _ => chunk.values.len(),
+                Form::Names => chunk.classes.len(),
+                Form::Indices => chunk.class_indices.len(),
+                Form::Numbers => chunk.values.len(),
             };
             if n_values != chunk.ids.len() {
                 return Err(Error::invalid(
@@ -161,9 +176,9 @@ impl Submissions for Daemon {
                 None => {
                     kinds[m] = Some(kind);
                     target.values = match kind {
-                        0 => RawValues::Classes(Vec::new()),
-                        1 => RawValues::ClassIndices(Vec::new()),
-                        _ => RawValues::Numbers(Vec::new()),
+                        Form::Names => RawValues::Classes(Vec::new()),
+                        Form::Indices => RawValues::ClassIndices(Vec::new()),
+                        Form::Numbers => RawValues::Numbers(Vec::new()),
                     };
                 }
                 Some(k) if k != kind => {
