@@ -156,6 +156,8 @@ fn column(bytes: &[u8], dir: &std::path::Path) {
                 assert_eq!(ids, c.ids, "ids differ");
                 assert_eq!(lines, c.lines, "lines differ");
                 assert_eq!(values, c.values, "values differ");
+                let distinct: std::collections::HashSet<&String> = c.ids.iter().collect();
+                assert_eq!(distinct.len(), c.ids.len(), "a repeated id was not found");
                 if t.format == Format::Csv
                     && let Some(reference) = reference_ids(bytes)
                 {

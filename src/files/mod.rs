@@ -305,6 +305,15 @@ fn scan(path: &Path, spec: &TableSpec, sink: &mut Sink<'_>) -> Result<Scanned> {
     head.truncate(got);
     let format = detect_format(path, &head);
     let mut builder = Builder::new(source, format, spec, sink);
+    // Room for the rows up front: growing a duplicate index rehashes every id read so far.
+    // A row takes at least 4 bytes (`a,b` and a newline); without a row limit, a guess.
+    let rows = match &spec.max_rows {
+        Some((max, _)) => (*max).min(meta.len() / 4 + 1),
+        None => meta.len() / 32,
+    };
+    builder
+        .ids
+        .reserve(usize::try_from(rows).unwrap_or(0).min(1 << 26));
     match format {
         Format::Csv => read_csv(scan::Scanner::new(file, &head), &mut builder)?,
         Format::JsonLines => read_jsonl(
@@ -324,32 +333,68 @@ fn open_error(source: &str, e: &std::io::Error) -> Error {
     Error::invalid(source.to_string(), message)
 }
 
-/// Row ids in file order with their lines, and an index that finds a duplicate without a second
-/// copy of any id: a hash table of row numbers, hashed by the id each points to.
+/// Row ids in file order with their lines, and what finds a duplicate without a second copy of
+/// any id: while the ids come in strictly increasing order (files are often sorted by id) none
+/// can repeat, so each is only compared with the one before; from the first id that breaks
+/// the order on, a hash table of row numbers, hashed by the id each points to.
 #[derive(Default)]
 struct Ids {
     ids: Vec<String>,
     lines: Vec<u64>,
+    /// Built at the first id out of order; empty (and unused) before.
     index: hashbrown::HashTable<u32>,
+    indexed: bool,
+    /// Rows expected in all, for the index's size.
+    expected: usize,
     hasher: hashbrown::DefaultHashBuilder,
 }
 
 impl Ids {
+    /// Makes room for `rows` rows.
+    fn reserve(&mut self, rows: usize) {
+        self.expected = rows;
+        self.ids.reserve(rows);
+        self.lines.reserve(rows);
+    }
+
     /// The line of an earlier row with this id.
-    fn find(&self, id: &str) -> Option<u64> {
+    fn find(&mut self, id: &str) -> Option<u64> {
+        if !self.indexed {
+            match self.ids.last() {
+                Some(last) if id <= last.as_str() => self.build_index(),
+                _ => return None,
+            }
+        }
         let hash = self.hasher.hash_one(id);
         self.index
             .find(hash, |&row| self.ids[row as usize] == id)
             .map(|&row| self.lines[row as usize])
     }
 
+    /// Indexes every row so far (they are distinct: they were in increasing order).
+    fn build_index(&mut self) {
+        let (ids, hasher) = (&self.ids, &self.hasher);
+        let room = self.expected.max(ids.len() + 1);
+        self.index
+            .reserve(room, |&r| hasher.hash_one(ids[r as usize].as_str()));
+        for (row, id) in ids.iter().enumerate() {
+            let hash = hasher.hash_one(id.as_str());
+            self.index.insert_unique(hash, row as u32, |&r| {
+                hasher.hash_one(ids[r as usize].as_str())
+            });
+        }
+        self.indexed = true;
+    }
+
     /// Adds a row (its id not yet present).
     fn push(&mut self, id: String, line: u64) {
-        let row = self.ids.len() as u32;
-        let hash = self.hasher.hash_one(id.as_str());
-        let (ids, hasher) = (&self.ids, &self.hasher);
-        self.index
-            .insert_unique(hash, row, |&r| hasher.hash_one(ids[r as usize].as_str()));
+        if self.indexed {
+            let row = self.ids.len() as u32;
+            let hash = self.hasher.hash_one(id.as_str());
+            let (ids, hasher) = (&self.ids, &self.hasher);
+            self.index
+                .insert_unique(hash, row, |&r| hasher.hash_one(ids[r as usize].as_str()));
+        }
         self.ids.push(id);
         self.lines.push(line);
     }
@@ -887,6 +932,35 @@ mod tests {
             m.contains("duplicate id `a`") && m.contains("line 2") && m.contains("line 4"),
             "{m}"
         );
+    }
+
+    #[test]
+    fn duplicates_are_found_in_sorted_runs_and_after_them() {
+        // Sorted, then an id equal to the one before.
+        let (f, m) = fail("s.csv", b"id,label\na,1\nb,0\nb,1\n", &label_spec());
+        assert!(
+            f.ends_with("s.csv:4") && m.contains("first on line 3"),
+            "{f} {m}"
+        );
+        // Sorted, then an earlier id out of order.
+        let (f, m) = fail("s.csv", b"id,label\na,1\nc,0\nd,0\na,1\n", &label_spec());
+        assert!(
+            f.ends_with("s.csv:5") && m.contains("first on line 2"),
+            "{f} {m}"
+        );
+        // Out of order early, then a repeat of a row read before the order broke.
+        let (f, m) = fail(
+            "s.csv",
+            b"id,label\nb,1\nc,0\na,0\nd,0\nc,1\n",
+            &label_spec(),
+        );
+        assert!(
+            f.ends_with("s.csv:6") && m.contains("first on line 3"),
+            "{f} {m}"
+        );
+        // Out of order but distinct: read whole.
+        let t = read("s.csv", b"id,label\nb,1\na,0\nc,0\n", &label_spec()).expect("read");
+        assert_eq!(t.len(), 3);
     }
 
     #[test]
