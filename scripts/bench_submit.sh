@@ -1,7 +1,8 @@
 #!/usr/bin/env bash
 # End-to-end submit speed, in one run on one machine:
 #   1. `holdout submit` of a 1,000,000-row predictions file (metric `error`, two classes), from
-#      process start to the printed answer, against a pandas script that reads the same labels
+#      process start to the printed answer (rows in the declared order, which is sorted by id,
+#      as a file made from `holdout ids`; and rows shuffled), against a pandas script that reads the same labels
 #      and predictions files, merges them on id and scores the error rate;
 #   2. `holdout submit` of a 1,000-row file against `holdout --version` (process start).
 # Every submit is a fresh, charged, durable answer (a distinct file each time). Commands are run
@@ -64,10 +65,15 @@ for name, n in (("big", rows), ("small", 1000)):
     ids = [f"{name}-{i:07d}" for i in range(n)]
     truth = ["defect" if rng.random() < 0.2 else "ok" for _ in range(n)]
     write(f"{work}/{name}-labels.csv", "id,label", (f"{i},{t}" for i, t in zip(ids, truth)))
-    for r in range(runs):
+    for r in range(2 * runs if name == "big" else runs):
         # About 10 % wrong, a different set each run, so every file is a new, charged query.
         pred = [t if rng.random() >= 0.1 else ("ok" if t == "defect" else "defect") for t in truth]
-        write(f"{work}/{name}-pred-{r}.csv", "id,prediction", (f"{i},{p}" for i, p in zip(ids, pred)))
+        lines = [f"{i},{p}" for i, p in zip(ids, pred)]
+        if r >= runs:
+            # The second set in shuffled row order: no longer sorted by id, nor in the
+            # declared order, so both sides take their hash paths.
+            rng.shuffle(lines)
+        write(f"{work}/{name}-pred-{r}.csv", "id,prediction", lines)
 EOF
 
 "$bin" init --db "$work/h.db" --token-out "$work/admin.token" >/dev/null
@@ -83,7 +89,7 @@ export HOLDOUT_SERVER="http://$addr"
 export HOLDOUT_TOKEN="$(cat "$work/admin.token")"
 for name in big small; do
   "$bin" create "$name" --labels "$work/$name-labels.csv" --metric error --classes ok,defect \
-    --answers threshold:0.5 --tolerance 0.5 --expect-answers "$runs" >/dev/null
+    --answers threshold:0.5 --tolerance 0.5 --expect-answers "$((2 * runs))" >/dev/null
 done
 analyst="$("$bin" user add ana --role analyst --json | "$py" -c 'import json,sys; print(json.load(sys.stdin)["token"])')"
 
@@ -110,7 +116,7 @@ def timed(cmd, check_stdout=None, **kw):
     if p.returncode != 0:
         sys.exit(f"{' '.join(cmd)} failed ({p.returncode}):\n{p.stderr.decode()}")
     return dt, p.stdout.decode()
-times = {k: [] for k in ("version", "submit_small", "submit_big", "pandas_process", "pandas_inside")}
+times = {k: [] for k in ("version", "submit_small", "submit_big", "submit_shuffled", "pandas_process", "pandas_inside")}
 for r in range(runs):
     for _ in range(5):
         times["version"].append(timed([binary, "--version"])[0])
@@ -120,6 +126,9 @@ for r in range(runs):
     dt, out = timed([binary, "submit", "big", "--predictions", f"{work}/big-pred-{r}.csv", "--json"])
     assert json.loads(out)["symbol"], out
     times["submit_big"].append(dt)
+    dt, out = timed([binary, "submit", "big", "--predictions", f"{work}/big-pred-{runs + r}.csv", "--json"])
+    assert json.loads(out)["symbol"], out
+    times["submit_shuffled"].append(dt)
     dt, out = timed([sys.executable, "-c", pandas_script, f"{work}/big-labels.csv", f"{work}/big-pred-{r}.csv"])
     times["pandas_process"].append(dt)
     times["pandas_inside"].append(json.loads(out)["seconds"])
@@ -130,6 +139,8 @@ for k, v in times.items():
     print(f"  {k:15} median {med[k] * 1000:9.1f} ms   min {min(v) * 1000:9.1f}   max {max(v) * 1000:9.1f}")
 print(f"submit {rows} rows / pandas read+merge+score (inside python, import excluded): "
       f"{med['submit_big'] / med['pandas_inside']:.2f}x  (target <= 1)")
+print(f"submit {rows} rows in shuffled order / pandas read+merge+score: "
+      f"{med['submit_shuffled'] / med['pandas_inside']:.2f}x")
 print(f"submit {rows} rows / pandas script as a process (python start and import included): "
       f"{med['submit_big'] / med['pandas_process']:.2f}x")
 print(f"submit 1000 rows / holdout --version: {med['submit_small'] / med['version']:.2f}x  (target <= 4)")
