@@ -187,6 +187,7 @@ impl Client {
                             ids,
                             classes,
                             values: vec![],
+                            ..Default::default()
                         })),
                     },
                 ];

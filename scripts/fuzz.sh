@@ -4,7 +4,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 secs="${1:-600}"
-for target in table parsers export; do
+for target in table column parsers export; do
   FUZZ_SECONDS="$secs" FUZZ_TARGET="$target" \
     cargo test --release --test fuzz_readers -- --ignored --nocapture fuzz_for_a_while
 done

@@ -591,6 +591,11 @@ fn roles_are_enforced() {
     d.run(&fresh, &["whoami"]).ok();
     // Revocation.
     d.admin(&["user", "revoke", "dave"]).ok();
+    // Refused on the very next call (tokens are checked on a connection of their own, which
+    // reads every committed revocation), whatever the call.
+    let after = d.write("after-revoke.csv", &parts.defect_predictions(5, 0));
+    d.run(&fresh, &["submit", "h", "--predictions", &after])
+        .code(4);
     d.run(&fresh, &["status", "h"]).code(4);
     let users = d.admin(&["user", "list", "--json"]).ok().json();
     let dave_row = users

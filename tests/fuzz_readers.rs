@@ -4,6 +4,10 @@
 //! applies random byte flips, insertions, deletions, duplications and splices; every input must
 //! give `Ok` or an error, never a panic.
 //!
+//! The `column` target also checks the streaming reader against two others on every input: the
+//! row-table reader (same rows, lines and values, or the same error) and the `csv` crate's own
+//! record reader, the reference for how CSV fields split (same ids, in the same order).
+//!
 //! CI runs a short pass of each target (`every_reader_survives_a_short_fuzz`). Long runs:
 //! `scripts/fuzz.sh [SECONDS]` (default 600 per target), which runs the ignored
 //! `fuzz_for_a_while` with `FUZZ_SECONDS` and `FUZZ_TARGET`.
@@ -14,7 +18,7 @@ use std::time::{Duration, Instant};
 
 use holdout_ledger::audit::export::Export;
 use holdout_ledger::engine::{HoldoutPolicy, PolicyInput, TargetDecl};
-use holdout_ledger::files::{TableSpec, read_table};
+use holdout_ledger::files::{Format, TableSpec, read_column, read_table};
 use holdout_ledger::metric::Metric;
 use holdout_ledger::stats::interval::Method;
 use holdout_ledger::stats::rules::Rule;
@@ -115,6 +119,74 @@ fn table(bytes: &[u8], dir: &std::path::Path) {
     }
 }
 
+/// The ids of a CSV file as the `csv` crate reads its records (the reference): blank records
+/// skipped, the first other one the header, fields trimmed; `None` when it has no `id` column
+/// or a row of the wrong length.
+fn reference_ids(bytes: &[u8]) -> Option<Vec<String>> {
+    let mut records = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(bytes)
+        .into_records()
+        .filter_map(Result::ok)
+        .filter(|r| !r.iter().all(|f| f.trim().is_empty()));
+    let header = records.next()?;
+    let id = header
+        .iter()
+        .position(|h| h.trim_start_matches('\u{feff}').trim() == "id")?;
+    records
+        .map(|r| (r.len() == header.len()).then(|| r[id].trim().to_string()))
+        .collect()
+}
+
+fn column(bytes: &[u8], dir: &std::path::Path) {
+    for name in ["in.csv", "in.jsonl"] {
+        let path = dir.join(name);
+        std::fs::File::create(&path)
+            .and_then(|mut f| f.write_all(bytes))
+            .expect("write the input");
+        let spec = TableSpec::new("id", ["prediction"]);
+        let table = read_table(&path, &spec);
+        let col = read_column(&path, &spec, |v, _| Ok::<_, String>(v.to_string()));
+        match (&table, &col) {
+            (Ok(t), Ok(c)) => {
+                let ids: Vec<&str> = t.rows.iter().map(|r| r.id.as_str()).collect();
+                let lines: Vec<u64> = t.rows.iter().map(|r| r.line).collect();
+                let values: Vec<&str> = t.rows.iter().map(|r| r.values[0].as_str()).collect();
+                assert_eq!(ids, c.ids, "ids differ");
+                assert_eq!(lines, c.lines, "lines differ");
+                assert_eq!(values, c.values, "values differ");
+                let distinct: std::collections::HashSet<&String> = c.ids.iter().collect();
+                assert_eq!(distinct.len(), c.ids.len(), "a repeated id was not found");
+                if t.format == Format::Csv
+                    && let Some(reference) = reference_ids(bytes)
+                {
+                    assert_eq!(reference, c.ids, "ids differ from the csv crate's records");
+                }
+                // A limit one row short stops at the last row, naming its line.
+                let k = t.len() - 1;
+                let short = spec.clone().max_rows(k as u64, "the test");
+                match read_column(&path, &short, |v, _| Ok::<_, String>(v.to_string())) {
+                    Err(holdout_ledger::error::Error::InvalidArgument { field, message }) => {
+                        assert!(
+                            field.ends_with(&format!(":{}", t.rows[k].line))
+                                && message.contains("more rows than"),
+                            "{field}: {message}"
+                        );
+                    }
+                    other => panic!("a limit of {k} rows read {other:?}"),
+                }
+            }
+            (Err(a), Err(b)) => assert_eq!(a.to_string(), b.to_string(), "errors differ"),
+            (a, b) => panic!(
+                "read_table and read_column disagree: {:?} / {:?}",
+                a.as_ref().map(|t| t.len()),
+                b.as_ref().map(|c| c.len())
+            ),
+        }
+    }
+}
+
 fn parsers(bytes: &[u8], _: &std::path::Path) {
     let s = String::from_utf8_lossy(bytes);
     let _ = s.parse::<Rule>();
@@ -168,7 +240,7 @@ fn export(bytes: &[u8], _: &std::path::Path) {
 fn samples(name: &str) -> Vec<Vec<u8>> {
     let fixtures = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/ledgers");
     match name {
-        "table" => vec![
+        "table" | "column" => vec![
             b"id,prediction\nr1,0.5\nr2,0.25\n".to_vec(),
             b"id,prediction,extra\n\"r,1\",ok,\"a \"\"quoted\"\" cell\"\n".to_vec(),
             b"{\"id\":\"r1\",\"prediction\":0.5}\n{\"id\":\"r2\",\"prediction\":\"ok\"}\n".to_vec(),
@@ -230,7 +302,12 @@ fn fuzz(name: &str, target: Target, budget: Duration, seed: u64) -> u64 {
     tried
 }
 
-const TARGETS: &[(&str, Target)] = &[("table", table), ("parsers", parsers), ("export", export)];
+const TARGETS: &[(&str, Target)] = &[
+    ("table", table),
+    ("column", column),
+    ("parsers", parsers),
+    ("export", export),
+];
 
 #[test]
 fn every_reader_survives_a_short_fuzz() {

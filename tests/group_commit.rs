@@ -505,6 +505,7 @@ fn concurrent_submitters_through_the_daemon_audit_clean() {
                                 ids: (0..rows).map(|i| format!("r{i:04}")).collect(),
                                 classes,
                                 values: vec![],
+                                ..Default::default()
                             })),
                         },
                     ];

@@ -236,3 +236,104 @@ fn explicit_zero_ranking_share_and_long_descriptions_are_refused() {
     let list = d.admin(&["list", "--json"]).ok().stdout;
     assert!(!list.contains("\"round\""), "{list}");
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn class_indices_are_the_same_query_as_class_names_and_bad_ones_charge_nothing() {
+    let (d, alice, _) = setup();
+    let conn = Conn::open(&ServerArgs {
+        server: d.url.clone(),
+        token: Some(alice.clone()),
+        ca: None,
+        client_cert: None,
+        client_key: None,
+    })
+    .await
+    .expect("connect");
+    let parts = Parts::new(N);
+    // The declared classes of `yard`, in declaration order.
+    let declared = ["crack", "dent", "ok"];
+    let ids: Vec<String> = parts.rows.iter().map(|r| r.0.clone()).collect();
+    let names: Vec<String> = parts.rows.iter().map(|r| r.1.clone()).collect();
+    let indices: Vec<u32> = names
+        .iter()
+        .map(|c| declared.iter().position(|d| d == c).expect("declared") as u32)
+        .collect();
+    let send = |mode: pb::SubmitMode, chunk: pb::PredictionChunk| {
+        let submissions = conn.submissions();
+        async move {
+            let mut submissions = submissions;
+            submissions
+                .submit(tokio_stream::iter(vec![
+                    SubmitChunk {
+                        part: Some(Part::Header(SubmitHeader {
+                            holdout: "yard".into(),
+                            mode: mode as i32,
+                            ..Default::default()
+                        })),
+                    },
+                    SubmitChunk {
+                        part: Some(Part::Predictions(chunk)),
+                    },
+                ]))
+                .await
+        }
+    };
+    let digest = |reply: pb::SubmitResponse| match reply.outcome {
+        Some(pb::submit_response::Outcome::Validation(v)) => v.digest,
+        other => panic!("expected a validation, got {other:?}"),
+    };
+    // The same predictions, as names and as indices: one digest, so one query.
+    let by_name = send(
+        pb::SubmitMode::Validate,
+        pb::PredictionChunk {
+            ids: ids.clone(),
+            classes: names.clone(),
+            ..Default::default()
+        },
+    )
+    .await
+    .expect("names validate");
+    let by_index = send(
+        pb::SubmitMode::Validate,
+        pb::PredictionChunk {
+            ids: ids.clone(),
+            class_indices: indices.clone(),
+            ..Default::default()
+        },
+    )
+    .await
+    .expect("indices validate");
+    assert_eq!(digest(by_name.into_inner()), digest(by_index.into_inner()));
+    // An index past the declared classes, and a chunk mixing two forms, are refused.
+    let mut outside = indices.clone();
+    outside[7] = 3;
+    let err = send(
+        pb::SubmitMode::Answer,
+        pb::PredictionChunk {
+            ids: ids.clone(),
+            class_indices: outside,
+            ..Default::default()
+        },
+    )
+    .await
+    .expect_err("an index outside the classes");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument, "{err}");
+    assert!(
+        err.message().contains("class index 3") && err.message().contains(&ids[7]),
+        "{err}"
+    );
+    let err = send(
+        pb::SubmitMode::Answer,
+        pb::PredictionChunk {
+            ids: ids.clone(),
+            classes: names,
+            class_indices: indices,
+            ..Default::default()
+        },
+    )
+    .await
+    .expect_err("two forms in one chunk");
+    assert_eq!(err.code(), tonic::Code::InvalidArgument, "{err}");
+    assert!(err.message().contains("mixes"), "{err}");
+    assert_eq!(answered(&d, &alice), 0, "nothing was charged");
+}

@@ -135,6 +135,7 @@ async fn no_read_path_returns_labels() {
                     ids: ids.clone(),
                     values: (0..N).map(|i| 7000.0 + 13.0 * i as f64).collect(),
                     classes: vec![],
+                    ..Default::default()
                 })),
             },
         ]))

@@ -169,6 +169,7 @@ fn predictions(seed: usize) -> Vec<SubmitChunk> {
                 ids,
                 classes,
                 values: vec![],
+                ..Default::default()
             })),
         },
     ]

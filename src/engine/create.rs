@@ -1,7 +1,7 @@
 //! Creating a holdout: checking the declaration and the labels, refusing overlaps, writing the
 //! sealed labels and the genesis ledger entry in one transaction; and loading one back.
 
-use std::collections::{HashMap, HashSet};
+use std::collections::HashSet;
 
 use rusqlite::{OptionalExtension, params};
 use serde::{Deserialize, Serialize};
@@ -549,7 +549,7 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
             ids.push(id?);
         }
     }
-    let positions: HashMap<String, u32> = ids
+    let positions: hashbrown::HashMap<String, u32> = ids
         .iter()
         .enumerate()
         .map(|(i, s)| (s.clone(), i as u32))

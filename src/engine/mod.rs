@@ -17,6 +17,7 @@ mod clock;
 mod compete;
 mod create;
 mod read;
+mod reader;
 mod records;
 mod replay;
 mod submit;
@@ -92,7 +93,9 @@ pub(crate) struct Loaded {
     pub(crate) created_at: String,
     pub(crate) policy: HoldoutPolicy,
     pub(crate) ids: Vec<String>,
-    pub(crate) positions: HashMap<String, u32>,
+    /// Row of each id, under a fast hash (foldhash, seeded per process): submissions whose
+    /// ids do not arrive in the declared order are joined through it.
+    pub(crate) positions: hashbrown::HashMap<String, u32>,
     pub(crate) labels: Vec<Labels>,
     pub(crate) genesis_hash: String,
 }

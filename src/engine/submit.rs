@@ -27,6 +27,8 @@ pub enum SubmitMode {
 pub enum RawValues {
     /// Class names (metric `error`).
     Classes(Vec<String>),
+    /// Classes as indices into the target's declared classes (metric `error`).
+    ClassIndices(Vec<u32>),
     /// Numbers (every other metric).
     Numbers(Vec<f64>),
 }
@@ -667,6 +669,7 @@ fn join(
     let n = loaded.ids.len();
     let given = match &model.values {
         RawValues::Classes(v) => v.len(),
+        RawValues::ClassIndices(v) => v.len(),
         RawValues::Numbers(v) => v.len(),
     };
     if given != model.ids.len() {
@@ -677,6 +680,91 @@ fn join(
     }
     if model.ids.is_empty() {
         return Err(Error::invalid(label, "no prediction rows"));
+    }
+    let slot = slots(loaded, model, label)?;
+    // The file row that predicts holdout row `r`.
+    let row = |r: usize| slot.as_ref().map_or(r, |s| s[r] as usize);
+    let wrong_kind = |expects: &str, got: &str| {
+        Err(Error::invalid(
+            label,
+            format!("metric {metric} expects {expects}, not {got}"),
+        ))
+    };
+    match (&model.values, metric.uses_classes()) {
+        (RawValues::Classes(v), true) => {
+            let index: std::collections::HashMap<&str, u32> = classes
+                .iter()
+                .enumerate()
+                .map(|(i, c)| (c.as_str(), i as u32))
+                .collect();
+            let mut out = Vec::with_capacity(n);
+            for r in 0..n {
+                let s = row(r);
+                let raw = v[s].trim();
+                let c = *index.get(raw).ok_or_else(|| {
+                    Error::invalid(
+                        format!("{label}, row id {}", model.ids[s]),
+                        format!("{raw:?} is not a declared class ({})", classes.join(",")),
+                    )
+                })?;
+                out.push(c);
+            }
+            Ok(Predictions::Classes(out))
+        }
+        (RawValues::ClassIndices(v), true) => {
+            let mut out = Vec::with_capacity(n);
+            for r in 0..n {
+                let s = row(r);
+                let c = v[s];
+                if c as usize >= classes.len() {
+                    return Err(Error::invalid(
+                        format!("{label}, row id {}", model.ids[s]),
+                        format!(
+                            "class index {c} is outside the {} declared classes ({})",
+                            classes.len(),
+                            classes.join(",")
+                        ),
+                    ));
+                }
+                out.push(c);
+            }
+            Ok(Predictions::Classes(out))
+        }
+        (RawValues::Numbers(v), false) => {
+            let mut out = Vec::with_capacity(n);
+            for r in 0..n {
+                let s = row(r);
+                let x = v[s];
+                metric::check_number(metric, x)
+                    .map_err(|m| Error::invalid(format!("{label}, row id {}", model.ids[s]), m))?;
+                out.push(x);
+            }
+            Ok(Predictions::Numbers(out))
+        }
+        (RawValues::Numbers(_), true) => wrong_kind("class names", "numbers"),
+        (RawValues::Classes(_) | RawValues::ClassIndices(_), false) => {
+            wrong_kind("numbers", "class names")
+        }
+    }
+}
+
+/// Which file row predicts each holdout row: `None` when the file lists exactly the declared
+/// ids in the declared order (the usual case: files are made from `holdout ids`), found by one
+/// comparison per row; else through the hash index of the declared ids.
+///
+/// # Errors
+/// An id the holdout does not have, an id predicted twice, and a missing row (the first in
+/// the declared order, with how many are missing).
+fn slots(loaded: &Loaded, model: &ModelPredictions, label: &str) -> Result<Option<Vec<u32>>> {
+    let n = loaded.ids.len();
+    if model.ids.len() == n
+        && model
+            .ids
+            .iter()
+            .zip(&loaded.ids)
+            .all(|(given, declared)| given.trim() == declared)
+    {
+        return Ok(None);
     }
     let mut slot: Vec<u32> = vec![u32::MAX; n];
     for (i, id) in model.ids.iter().enumerate() {
@@ -701,44 +789,5 @@ fn join(
             format!("missing: every row needs a prediction ({count} missing)"),
         ));
     }
-    match (&model.values, metric.uses_classes()) {
-        (RawValues::Classes(v), true) => {
-            let index: std::collections::HashMap<&str, u32> = classes
-                .iter()
-                .enumerate()
-                .map(|(i, c)| (c.as_str(), i as u32))
-                .collect();
-            let mut out = Vec::with_capacity(n);
-            for s in &slot {
-                let raw = v[*s as usize].trim();
-                let c = *index.get(raw).ok_or_else(|| {
-                    Error::invalid(
-                        format!("{label}, row id {}", model.ids[*s as usize]),
-                        format!("{raw:?} is not a declared class ({})", classes.join(",")),
-                    )
-                })?;
-                out.push(c);
-            }
-            Ok(Predictions::Classes(out))
-        }
-        (RawValues::Numbers(v), false) => {
-            let mut out = Vec::with_capacity(n);
-            for s in &slot {
-                let x = v[*s as usize];
-                metric::check_number(metric, x).map_err(|m| {
-                    Error::invalid(format!("{label}, row id {}", model.ids[*s as usize]), m)
-                })?;
-                out.push(x);
-            }
-            Ok(Predictions::Numbers(out))
-        }
-        (RawValues::Numbers(_), true) => Err(Error::invalid(
-            label,
-            format!("metric {metric} expects class names, not numbers"),
-        )),
-        (RawValues::Classes(_), false) => Err(Error::invalid(
-            label,
-            format!("metric {metric} expects numbers, not class names"),
-        )),
-    }
+    Ok(Some(slot))
 }

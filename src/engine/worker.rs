@@ -24,6 +24,7 @@ use std::thread;
 use tokio::sync::oneshot;
 
 use super::Engine;
+use super::reader::AuthReader;
 use crate::error::{Error, Result};
 
 /// A job run on its own.
@@ -77,6 +78,8 @@ pub struct BatchStats {
 pub struct Db {
     jobs: mpsc::Sender<Job>,
     counters: Arc<Counters>,
+    /// Authentication on a read-only connection of its own (`None` for an in-memory database).
+    auth: Option<AuthReader>,
 }
 
 /// The message of a panic payload.
@@ -108,6 +111,7 @@ impl Db {
     /// group commit off (one transaction, and one fsync, per submission).
     pub fn spawn_with(mut engine: Engine, max_batch: usize) -> Db {
         let max_batch = max_batch.max(1);
+        let auth = engine.store().reader().and_then(AuthReader::spawn);
         let (jobs, rx) = mpsc::channel::<Job>();
         let counters = Arc::new(Counters::default());
         let seen = counters.clone();
@@ -140,7 +144,32 @@ impl Db {
                 }
             })
             .expect("spawn the database thread");
-        Db { jobs, counters }
+        Db {
+            jobs,
+            counters,
+            auth,
+        }
+    }
+
+    /// The live user a bearer token belongs to. Read on the authentication connection when
+    /// there is one (it never waits behind a commit, and sees every committed revocation),
+    /// else on the database thread.
+    ///
+    /// # Failure
+    /// [`Error::Unauthenticated`] for an unknown or revoked token; storage failures.
+    pub async fn authenticate(&self, token: String) -> Result<crate::auth::Caller> {
+        if let Some(reader) = &self.auth
+            && let Some(out) = reader.authenticate(token.clone()).await
+        {
+            return out;
+        }
+        self.call(move |engine| crate::auth::authenticate(engine.store().conn(), &token))
+            .await
+    }
+
+    /// Whether authentication is served off the database thread (a file database).
+    pub fn authenticates_apart(&self) -> bool {
+        self.auth.is_some()
     }
 
     /// The group-commit counters so far.
@@ -348,6 +377,87 @@ mod tests {
         .unwrap();
         assert!(db.ping(std::time::Duration::from_secs(5)).await);
     }
+    #[tokio::test]
+    async fn authentication_does_not_wait_for_the_database_thread_and_sees_each_revocation() {
+        use crate::auth::{Role, add_user, revoke_user, rotate_token};
+        let dir = tempfile::tempdir().unwrap();
+        let db = Db::spawn(Engine::new(
+            Store::open(&dir.path().join("h.db")).unwrap(),
+            Arc::new(SystemClock),
+        ));
+        assert!(db.authenticates_apart());
+        let now = chrono::Utc::now();
+        let (_, token) = db
+            .call(move |e| e.write(|w| add_user(w, "ana", &[Role::Analyst], None, "root", now)))
+            .await
+            .unwrap();
+        // A user added by a committed write authenticates on the very next call.
+        assert_eq!(db.authenticate(token.clone()).await.unwrap().name, "ana");
+
+        // Hold the database thread: authentication must still answer.
+        let (release, wait) = std::sync::mpsc::channel::<()>();
+        let (started, running) = oneshot::channel::<()>();
+        let holder = db.clone();
+        let held = tokio::spawn(async move {
+            holder
+                .call(move |_| {
+                    let _ = started.send(());
+                    let _ = wait.recv();
+                    Ok(())
+                })
+                .await
+        });
+        running.await.unwrap();
+        let apart = tokio::time::timeout(
+            std::time::Duration::from_secs(10),
+            db.authenticate(token.clone()),
+        )
+        .await
+        .expect("authentication waited for the busy database thread");
+        assert_eq!(apart.unwrap().name, "ana");
+        release.send(()).unwrap();
+        held.await.unwrap().unwrap();
+
+        // A rotated token is refused on the very next call, the new one accepted.
+        let rotated = db
+            .call(move |e| e.write(|w| rotate_token(w, "ana", now)))
+            .await
+            .unwrap();
+        assert!(matches!(
+            db.authenticate(token).await,
+            Err(Error::Unauthenticated(_))
+        ));
+        assert_eq!(db.authenticate(rotated.clone()).await.unwrap().name, "ana");
+        // A revoked user's token is refused on the very next call.
+        db.call(move |e| e.write(|w| revoke_user(w, "ana", "root", now)))
+            .await
+            .unwrap();
+        assert!(matches!(
+            db.authenticate(rotated).await,
+            Err(Error::Unauthenticated(_))
+        ));
+    }
+
+    #[tokio::test]
+    async fn an_in_memory_database_authenticates_on_the_database_thread() {
+        use crate::auth::{Role, add_user};
+        let db = Db::spawn(Engine::new(
+            Store::open_in_memory().unwrap(),
+            Arc::new(SystemClock),
+        ));
+        assert!(!db.authenticates_apart());
+        let now = chrono::Utc::now();
+        let (_, token) = db
+            .call(move |e| e.write(|w| add_user(w, "bo", &[Role::Analyst], None, "root", now)))
+            .await
+            .unwrap();
+        assert_eq!(db.authenticate(token).await.unwrap().name, "bo");
+        assert!(matches!(
+            db.authenticate("nope".into()).await,
+            Err(Error::Unauthenticated(_))
+        ));
+    }
+
     /// A job that appends one `read` entry to `scratch` noting `what`, in its own write.
     fn note(what: &'static str) -> impl FnOnce(&mut Engine) -> Result<()> + Send + 'static {
         move |engine: &mut Engine| {

@@ -7,6 +7,9 @@ mod ledger;
 mod submissions;
 mod users;
 
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+
 use tonic::{Request, Status};
 
 use crate::auth::Caller;
@@ -103,11 +106,28 @@ impl StreamBytes {
     }
 }
 
-/// Shared state of the services: a handle to the database thread and the stream limits.
+/// What the Submit RPC checks a header and its stream against, before anything reaches the
+/// database thread: facts fixed when the holdout was created (its row ids and its policy, recorded
+/// in the genesis entry), so they are kept once read. Holdouts are never renamed or deleted.
+#[derive(Debug, Clone)]
+struct SubmitFacts {
+    /// Rows of the holdout.
+    rows: usize,
+    /// The longest declared row id, in bytes.
+    longest_id: usize,
+    /// Whether the policy answers best-of batches.
+    batches: bool,
+    /// The answer rule, for messages.
+    answers: String,
+}
+
+/// Shared state of the services: a handle to the database thread, the stream limits, and the
+/// submission facts of the holdouts seen so far.
 #[derive(Debug, Clone)]
 pub struct Daemon {
     db: Db,
     limits: StreamLimits,
+    facts: Arc<Mutex<HashMap<String, SubmitFacts>>>,
 }
 
 impl Daemon {
@@ -116,6 +136,7 @@ impl Daemon {
         Daemon {
             db,
             limits: StreamLimits::default(),
+            facts: Arc::default(),
         }
     }
 
@@ -152,13 +173,36 @@ impl Daemon {
         Ok(token.trim().to_string())
     }
 
+    /// The submission facts of a holdout: kept from an earlier call, else read on the database
+    /// thread once.
+    async fn submit_facts(&self, holdout: &str) -> Result<SubmitFacts, Status> {
+        if let Some(f) = self.facts.lock().ok().and_then(|m| m.get(holdout).cloned()) {
+            return Ok(f);
+        }
+        let name = holdout.to_string();
+        let facts = self
+            .db
+            .call(move |engine| {
+                let loaded = engine.loaded(&name)?;
+                let policy = &loaded.policy;
+                Ok(SubmitFacts {
+                    rows: loaded.ids.len(),
+                    longest_id: loaded.ids.iter().map(String::len).max().unwrap_or(0),
+                    batches: policy.allows_batches(),
+                    answers: policy.answers_spec(),
+                })
+            })
+            .await?;
+        if let Ok(mut m) = self.facts.lock() {
+            m.insert(holdout.to_string(), facts.clone());
+        }
+        Ok(facts)
+    }
+
     /// Authenticates the caller of a request.
     async fn caller<T>(&self, request: &Request<T>) -> Result<Caller, Status> {
         let token = Self::token(request)?;
-        Ok(self
-            .db
-            .call(move |engine| crate::auth::authenticate(engine.store().conn(), &token))
-            .await?)
+        Ok(self.db.authenticate(token).await?)
     }
 }
 
@@ -200,6 +244,7 @@ mod tests {
                 ids: (0..ROWS).map(id).collect(),
                 classes: Vec::new(),
                 values: (0..ROWS).map(|i| i as f64 / 3.0).collect(),
+                ..Default::default()
             })),
         };
         let limits = StreamLimits::default();
@@ -225,6 +270,7 @@ mod tests {
                 ids: (0..100).map(id).collect(),
                 classes: Vec::new(),
                 values: vec![0.5; 100],
+                ..Default::default()
             })),
         };
         let one = chunk.encoded_len() as u64 + FRAME_BYTES;

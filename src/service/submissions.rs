@@ -20,6 +20,17 @@ pub(crate) const MAX_NOTE_CHARS: usize = 2_000;
 /// Longest class name a prediction may carry (declared classes are short names).
 pub(crate) const MAX_CLASS_BYTES: usize = 256;
 
+/// The form of a model's values on the wire.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Form {
+    /// `classes`: class names.
+    Names,
+    /// `class_indices`: indices into the declared classes.
+    Indices,
+    /// `values`: numbers.
+    Numbers,
+}
+
 #[tonic::async_trait]
 impl Submissions for Daemon {
     async fn submit(
@@ -72,23 +83,14 @@ impl Submissions for Daemon {
         if mode != SubmitMode::Validate {
             caller.require("submitting predictions", &[crate::auth::Role::Analyst])?;
         }
-        let holdout = header.holdout.clone();
         // Rows per model are capped at the holdout's size (more is an error anyway), and every
         // id at the longest declared id, so a runaway client cannot exhaust memory.
-        let (rows, longest_id, batches, answers) = self
-            .db
-            .call(move |engine| {
-                let loaded = engine.loaded(&holdout)?;
-                let longest = loaded.ids.iter().map(String::len).max().unwrap_or(0);
-                let policy = &loaded.policy;
-                Ok((
-                    loaded.ids.len(),
-                    longest,
-                    policy.allows_batches(),
-                    policy.answers_spec(),
-                ))
-            })
-            .await?;
+        let super::SubmitFacts {
+            rows,
+            longest_id,
+            batches,
+            answers,
+        } = self.submit_facts(&header.holdout).await?;
         let models = header.models.max(1) as usize;
         if models > 64 {
             return Err(Error::invalid("models", "a batch holds at most 64 models").into());
@@ -111,7 +113,8 @@ impl Submissions for Daemon {
                 values: RawValues::Numbers(Vec::new()),
             })
             .collect();
-        let mut kinds: Vec<Option<bool>> = vec![None; models];
+        // Each model's values come in one form: class names, class indices or numbers.
+        let mut kinds: Vec<Option<Form>> = vec![None; models];
         while let Some(chunk) = stream.next().await {
             let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
             // Counted before it is kept: the stream is refused as soon as it passes the limit.
@@ -135,11 +138,27 @@ impl Submissions for Daemon {
                     format!("model index {m} is outside the batch"),
                 )
             })?;
-            let classes = !chunk.classes.is_empty();
-            let n_values = if classes {
-                chunk.classes.len()
-            } else {
-                chunk.values.len()
+            let forms = [
+                !chunk.classes.is_empty(),
+                !chunk.class_indices.is_empty(),
+                !chunk.values.is_empty(),
+            ];
+            if forms.iter().filter(|f| **f).count() > 1 {
+                return Err(Error::invalid(
+                    name,
+                    "a chunk mixes class names, class indices and numbers",
+                )
+                .into());
+            }
+            let kind = match forms {
+                [true, ..] => Form::Names,
+                [_, true, _] => Form::Indices,
+                _ => Form::Numbers,
+            };
+            let n_values = match kind {
+                Form::Names => chunk.classes.len(),
+                Form::Indices => chunk.class_indices.len(),
+                Form::Numbers => chunk.values.len(),
             };
             if n_values != chunk.ids.len() {
                 return Err(Error::invalid(
@@ -153,15 +172,19 @@ impl Submissions for Daemon {
             }
             match kinds[m] {
                 None => {
-                    kinds[m] = Some(classes);
-                    target.values = if classes {
-                        RawValues::Classes(Vec::new())
-                    } else {
-                        RawValues::Numbers(Vec::new())
+                    kinds[m] = Some(kind);
+                    target.values = match kind {
+                        Form::Names => RawValues::Classes(Vec::new()),
+                        Form::Indices => RawValues::ClassIndices(Vec::new()),
+                        Form::Numbers => RawValues::Numbers(Vec::new()),
                     };
                 }
-                Some(k) if k != classes => {
-                    return Err(Error::invalid(name, "mixes class names and numbers").into());
+                Some(k) if k != kind => {
+                    return Err(Error::invalid(
+                        name,
+                        "mixes class names, class indices and numbers",
+                    )
+                    .into());
                 }
                 _ => {}
             }
@@ -192,9 +215,14 @@ impl Submissions for Daemon {
                 )
                 .into());
             }
+            if target.ids.is_empty() {
+                // Most files fit in one reservation: the holdout's size.
+                target.ids.reserve_exact(rows);
+            }
             target.ids.extend(chunk.ids);
             match &mut target.values {
                 RawValues::Classes(v) => v.extend(chunk.classes),
+                RawValues::ClassIndices(v) => v.extend(chunk.class_indices),
                 RawValues::Numbers(v) => v.extend(chunk.values),
             }
         }

@@ -50,6 +50,18 @@ impl Store {
         Ok(Store { conn })
     }
 
+    /// A second, read-only connection to the same file, for reads that must not wait behind
+    /// the writer (WAL readers see every committed transaction and never block on a commit in
+    /// progress); `None` for an in-memory database or when the file cannot be opened again.
+    pub fn reader(&self) -> Option<Connection> {
+        let path = self.conn.path().filter(|p| !p.is_empty())?;
+        let flags =
+            rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY | rusqlite::OpenFlags::SQLITE_OPEN_NO_MUTEX;
+        let conn = Connection::open_with_flags(path, flags).ok()?;
+        conn.busy_timeout(Duration::from_secs(10)).ok()?;
+        Some(conn)
+    }
+
     /// The connection, for the modules that read and write tables.
     pub fn conn(&mut self) -> &mut Connection {
         &mut self.conn

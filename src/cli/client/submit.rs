@@ -13,7 +13,7 @@ use tokio_stream::StreamExt;
 use super::conn::{Conn, ServerArgs};
 use super::{CHUNK_ROWS, exit, show};
 use crate::error::Error;
-use crate::files::{self, DEFAULT_MAX_FILE_BYTES, Table, TableSpec};
+use crate::files::{self, DEFAULT_MAX_FILE_BYTES, TableSpec};
 use crate::metric::{self, Metric};
 use crate::proto::v1::{
     GetDeclarationRequest, GetHoldoutRequest, PredictionChunk, SubmitChunk, SubmitHeader,
@@ -170,17 +170,21 @@ pub async fn ids(args: &IdsArgs) -> anyhow::Result<ExitCode> {
 /// # Errors
 /// Bad input (local or from the daemon), connection, permission and not-found failures.
 pub async fn validate(args: &ValidateArgs) -> anyhow::Result<ExitCode> {
-    let tables = vec![read_predictions(&args.predictions, &args.input)?];
     let conn = Conn::open(&args.server).await?;
-    let target = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
-    let models = encode_all(&tables, &target)?;
+    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let models = vec![read_predictions(
+        &args.predictions,
+        &args.input,
+        &target,
+        (&args.name, rows),
+    )?];
     let header = SubmitHeader {
         holdout: args.name.clone(),
         target: target.name.clone(),
         mode: SubmitMode::Validate as i32,
         models: 1,
         model_names: vec![file_name(&args.predictions)],
-        expected_rows: tables[0].len() as u64,
+        expected_rows: models[0].len() as u64,
         ..Default::default()
     };
     let outcome = send(&conn, header, models).await?;
@@ -220,14 +224,15 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
         )
         .into());
     }
-    let tables = args
+    // The holdout's size comes first: a file with more rows than the holdout is refused at
+    // the row past it, without reading the rest.
+    let conn = Conn::open(&args.server).await?;
+    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let models = args
         .predictions
         .iter()
-        .map(|p| read_predictions(p, &args.input))
+        .map(|p| read_predictions(p, &args.input, &target, (&args.name, rows)))
         .collect::<Result<Vec<_>, _>>()?;
-    let conn = Conn::open(&args.server).await?;
-    let target = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
-    let models = encode_all(&tables, &target)?;
     let names: Vec<String> = args.predictions.iter().map(|p| file_name(p)).collect();
     let header = SubmitHeader {
         holdout: args.name.clone(),
@@ -240,9 +245,9 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
         request_id: args.request_id.clone(),
         note: args.note.clone(),
         max_cost_nats: args.max_cost.unwrap_or(0.0),
-        models: u32::try_from(tables.len()).unwrap_or(u32::MAX),
+        models: u32::try_from(models.len()).unwrap_or(u32::MAX),
         model_names: names.clone(),
-        expected_rows: tables[0].len() as u64,
+        expected_rows: models[0].len() as u64,
         mark_final: args.mark_final,
     };
     match send(&conn, header, models).await? {
@@ -304,14 +309,39 @@ fn file_name(p: &Path) -> String {
     )
 }
 
-fn read_predictions(path: &Path, input: &PredictionArgs) -> crate::error::Result<Table> {
+/// Reads one predictions file, each value checked against the target's declaration and
+/// encoded for the wire as it is read; at most the holdout's `rows` rows.
+fn read_predictions(
+    path: &Path,
+    input: &PredictionArgs,
+    target: &Target,
+    (holdout, rows): (&str, u64),
+) -> crate::error::Result<Encoded> {
     let spec = TableSpec::new(&input.id_column, [input.prediction_column.as_str()])
-        .max_bytes(input.max_file_bytes);
-    files::read_table(path, &spec)
+        .max_bytes(input.max_file_bytes)
+        .max_rows(rows, format!("holdout {holdout}"));
+    Ok(match form(target) {
+        Form::Indices => {
+            let c = files::read_column(path, &spec, class_index(target))?;
+            Encoded::ClassIndices(c.ids, c.values)
+        }
+        Form::Names => {
+            let c = files::read_column(path, &spec, |v, _| Ok(v.to_string()))?;
+            Encoded::ClassNames(c.ids, c.values)
+        }
+        Form::Numbers => {
+            let c = files::read_column(path, &spec, number(target))?;
+            Encoded::Values(c.ids, c.values)
+        }
+    })
 }
 
 /// Looks the target up on the daemon: the named one, or the only one.
-async fn find_target(conn: &Conn, holdout: &str, wanted: Option<&str>) -> anyhow::Result<Target> {
+async fn find_target(
+    conn: &Conn,
+    holdout: &str,
+    wanted: Option<&str>,
+) -> anyhow::Result<(Target, u64)> {
     let info = conn
         .holdouts()
         .get_holdout(GetHoldoutRequest {
@@ -320,7 +350,8 @@ async fn find_target(conn: &Conn, holdout: &str, wanted: Option<&str>) -> anyhow
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
-    pick_target(&info.targets, holdout, wanted).map_err(Into::into)
+    let target = pick_target(&info.targets, holdout, wanted)?;
+    Ok((target, info.rows))
 }
 
 fn pick_target(
@@ -357,61 +388,81 @@ fn pick_target(
     }
 }
 
-/// One model's predictions, encoded for the wire.
+/// One model's predictions, encoded for the wire: ids, and values aligned with them.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Encoded {
-    /// Classes (metric `error`).
-    Classes(Vec<String>, Vec<String>),
+    /// Classes as indices into the target's declared classes (metric `error`).
+    ClassIndices(Vec<String>, Vec<u32>),
+    /// Class names, for a class target whose classes this client does not know.
+    ClassNames(Vec<String>, Vec<String>),
     /// Numbers (every other metric).
     Values(Vec<String>, Vec<f64>),
 }
 
-fn encode_all(tables: &[Table], target: &Target) -> crate::error::Result<Vec<Encoded>> {
-    tables.iter().map(|t| encode(t, target)).collect()
+impl Encoded {
+    /// Rows.
+    pub fn len(&self) -> usize {
+        match self {
+            Encoded::ClassIndices(ids, _)
+            | Encoded::ClassNames(ids, _)
+            | Encoded::Values(ids, _) => ids.len(),
+        }
+    }
+
+    /// Whether there are no rows.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
 }
 
-/// Turns a predictions table into wire values, checking each against the public declaration
-/// (classes, probability range) so mistakes are named by file line before anything is sent.
-///
-/// # Errors
-/// [`Error::InvalidArgument`] naming `file:line` and the id of the first bad prediction.
-pub fn encode(table: &Table, target: &Target) -> crate::error::Result<Encoded> {
-    let metric = Metric::from_str(&target.metric).ok();
-    let uses_classes = metric.map_or(
+/// How a target's predictions are sent.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Form {
+    Indices,
+    Names,
+    Numbers,
+}
+
+fn form(target: &Target) -> Form {
+    let uses_classes = Metric::from_str(&target.metric).map_or(
         !target.classes.is_empty() && target.metric.starts_with("error"),
         |m| m.uses_classes(),
     );
-    let ids: Vec<String> = table.rows.iter().map(|r| r.id.clone()).collect();
-    let at = |line: u64| format!("{}:{line}", table.source);
-    if uses_classes {
-        let mut classes = Vec::with_capacity(table.len());
-        for r in &table.rows {
-            let v = &r.values[0];
-            if !target.classes.is_empty() && !target.classes.contains(v) {
-                return Err(Error::invalid(
-                    at(r.line),
-                    format!(
-                        "prediction {v:?} for id `{}` is not a declared class of target {} ({})",
-                        r.id,
-                        target.name,
-                        target.classes.join(",")
-                    ),
-                ));
-            }
-            classes.push(v.clone());
-        }
-        return Ok(Encoded::Classes(ids, classes));
+    match (uses_classes, target.classes.is_empty()) {
+        (true, false) => Form::Indices,
+        (true, true) => Form::Names,
+        (false, _) => Form::Numbers,
     }
-    let mut values = Vec::with_capacity(table.len());
-    for r in &table.rows {
-        let v = &r.values[0];
-        let x: f64 = v.parse().map_err(|_| {
-            Error::invalid(
-                at(r.line),
+}
+
+/// A class prediction as its index among the declared classes; the error names the id, the
+/// value and the declared classes (the reader adds `file:line`).
+fn class_index(target: &Target) -> impl FnMut(&str, &str) -> Result<u32, String> + '_ {
+    move |v, id| {
+        target
+            .classes
+            .iter()
+            .position(|c| c == v)
+            .map(|i| i as u32)
+            .ok_or_else(|| {
                 format!(
-                    "prediction {v:?} for id `{}` is not a number (target {} uses metric {})",
-                    r.id, target.name, target.metric
-                ),
+                    "prediction {v:?} for id `{id}` is not a declared class of target {} ({})",
+                    target.name,
+                    target.classes.join(",")
+                )
+            })
+    }
+}
+
+/// A numeric prediction, checked against the metric's range (probabilities in [0, 1], finite
+/// numbers otherwise).
+fn number(target: &Target) -> impl FnMut(&str, &str) -> Result<f64, String> + '_ {
+    let metric = Metric::from_str(&target.metric).ok();
+    move |v, id| {
+        let x: f64 = v.parse().map_err(|_| {
+            format!(
+                "prediction {v:?} for id `{id}` is not a number (target {} uses metric {})",
+                target.name, target.metric
             )
         })?;
         let check = match &metric {
@@ -419,12 +470,9 @@ pub fn encode(table: &Table, target: &Target) -> crate::error::Result<Encoded> {
             None if x.is_finite() => Ok(()),
             None => Err(format!("{x} is not a finite number")),
         };
-        check.map_err(|why| {
-            Error::invalid(at(r.line), format!("prediction for id `{}`: {why}", r.id))
-        })?;
-        values.push(x);
+        check.map_err(|why| format!("prediction for id `{id}`: {why}"))?;
+        Ok(x)
     }
-    Ok(Encoded::Values(ids, values))
 }
 
 /// Splits a vector into owned pieces of at most `size`, lazily.
@@ -436,16 +484,27 @@ fn pieces<T>(v: Vec<T>, size: usize) -> impl Iterator<Item = Vec<T>> {
     })
 }
 
+/// The wire chunks of one model; the ids are moved into them, never copied.
 fn chunks(model: u32, encoded: Encoded) -> Box<dyn Iterator<Item = PredictionChunk> + Send> {
     match encoded {
-        Encoded::Classes(ids, classes) => Box::new(
+        Encoded::ClassIndices(ids, classes) => Box::new(
+            pieces(ids, CHUNK_ROWS)
+                .zip(pieces(classes, CHUNK_ROWS))
+                .map(move |(ids, class_indices)| PredictionChunk {
+                    model,
+                    ids,
+                    class_indices,
+                    ..Default::default()
+                }),
+        ),
+        Encoded::ClassNames(ids, classes) => Box::new(
             pieces(ids, CHUNK_ROWS)
                 .zip(pieces(classes, CHUNK_ROWS))
                 .map(move |(ids, classes)| PredictionChunk {
                     model,
                     ids,
                     classes,
-                    values: Vec::new(),
+                    ..Default::default()
                 }),
         ),
         Encoded::Values(ids, values) => {
@@ -453,8 +512,8 @@ fn chunks(model: u32, encoded: Encoded) -> Box<dyn Iterator<Item = PredictionChu
                 move |(ids, values)| PredictionChunk {
                     model,
                     ids,
-                    classes: Vec::new(),
                     values,
+                    ..Default::default()
                 },
             ))
         }
@@ -474,12 +533,7 @@ fn progress(total: u64) -> Option<ProgressBar> {
 
 /// Streams the header and every model's chunks; returns the daemon's outcome.
 async fn send(conn: &Conn, header: SubmitHeader, models: Vec<Encoded>) -> anyhow::Result<Outcome> {
-    let total: u64 = models
-        .iter()
-        .map(|m| match m {
-            Encoded::Classes(ids, _) | Encoded::Values(ids, _) => ids.len() as u64,
-        })
-        .sum();
+    let total: u64 = models.iter().map(|m| m.len() as u64).sum();
     let bar = progress(total);
     let tick = bar.clone();
     let first = std::iter::once(SubmitChunk {
@@ -512,24 +566,6 @@ async fn send(conn: &Conn, header: SubmitHeader, models: Vec<Encoded>) -> anyhow
 mod tests {
     use super::*;
 
-    fn table(values: &[&str]) -> Table {
-        Table {
-            source: "p.csv".into(),
-            format: files::Format::Csv,
-            id_column: "id".into(),
-            columns: vec!["prediction".into()],
-            rows: values
-                .iter()
-                .enumerate()
-                .map(|(i, v)| files::Row {
-                    line: i as u64 + 2,
-                    id: format!("r{i}"),
-                    values: vec![v.to_string()],
-                })
-                .collect(),
-        }
-    }
-
     fn target(metric: &str, classes: &[&str]) -> Target {
         Target {
             name: "t".into(),
@@ -540,6 +576,23 @@ mod tests {
         }
     }
 
+    fn args() -> PredictionArgs {
+        PredictionArgs {
+            target: None,
+            id_column: "id".into(),
+            prediction_column: "prediction".into(),
+            max_file_bytes: DEFAULT_MAX_FILE_BYTES,
+        }
+    }
+
+    /// Reads `body` as p.csv for `target` of a holdout of `rows` rows.
+    fn read(body: &str, target: &Target, rows: u64) -> crate::error::Result<Encoded> {
+        let dir = tempfile::tempdir().expect("tempdir");
+        let path = dir.path().join("p.csv");
+        std::fs::write(&path, body).expect("write");
+        read_predictions(&path, &args(), target, ("h", rows))
+    }
+
     fn bad(r: crate::error::Result<Encoded>) -> (String, String) {
         match r {
             Err(Error::InvalidArgument { field, message }) => (field, message),
@@ -548,13 +601,23 @@ mod tests {
     }
 
     #[test]
-    fn classes_for_error_numbers_otherwise() {
-        let e = encode(&table(&["a", "b"]), &target("error", &["a", "b"])).expect("encode");
+    fn class_indices_for_error_numbers_otherwise() {
+        let e = read(
+            "id,prediction\nr0,b\nr1,a\n",
+            &target("error", &["a", "b"]),
+            2,
+        )
+        .expect("encode");
         assert_eq!(
             e,
-            Encoded::Classes(vec!["r0".into(), "r1".into()], vec!["a".into(), "b".into()])
+            Encoded::ClassIndices(vec!["r0".into(), "r1".into()], vec![1, 0])
         );
-        let v = encode(&table(&["0.5", "1e-1"]), &target("brier", &["0", "1"])).expect("encode");
+        let v = read(
+            "id,prediction\nr0,0.5\nr1,1e-1\n",
+            &target("brier", &["0", "1"]),
+            2,
+        )
+        .expect("encode");
         assert_eq!(
             v,
             Encoded::Values(vec!["r0".into(), "r1".into()], vec![0.5, 0.1])
@@ -563,24 +626,51 @@ mod tests {
 
     #[test]
     fn non_numeric_prediction_names_line_and_id() {
-        let (f, m) = bad(encode(
-            &table(&["0.5", "high"]),
+        let (f, m) = bad(read(
+            "id,prediction\nr0,0.5\nr1,high\n",
             &target("abs_error:10", &[]),
+            2,
         ));
-        assert_eq!(f, "p.csv:3");
+        assert!(f.ends_with("p.csv:3"), "{f}");
         assert!(m.contains("`r1`") && m.contains("not a number"), "{m}");
     }
 
     #[test]
     fn out_of_domain_predictions_are_local_errors() {
-        let (f, m) = bad(encode(&table(&["a", "c"]), &target("error", &["a", "b"])));
-        assert_eq!(f, "p.csv:3");
+        let (f, m) = bad(read(
+            "id,prediction\nr0,a\nr1,c\n",
+            &target("error", &["a", "b"]),
+            2,
+        ));
+        assert!(f.ends_with("p.csv:3"), "{f}");
         assert!(m.contains("not a declared class"), "{m}");
-        let (f, m) = bad(encode(&table(&["1.5"]), &target("brier", &["0", "1"])));
-        assert_eq!(f, "p.csv:2");
+        let (f, m) = bad(read(
+            "id,prediction\nr0,1.5\n",
+            &target("brier", &["0", "1"]),
+            1,
+        ));
+        assert!(f.ends_with("p.csv:2"), "{f}");
         assert!(m.contains("probability"), "{m}");
-        let (_, m) = bad(encode(&table(&["NaN"]), &target("sq_error:4", &[])));
+        let (_, m) = bad(read(
+            "id,prediction\nr0,NaN\n",
+            &target("sq_error:4", &[]),
+            1,
+        ));
         assert!(m.contains("finite"), "{m}");
+    }
+
+    #[test]
+    fn a_file_longer_than_the_holdout_stops_at_the_row_past_it() {
+        let mut body = String::from("id,prediction\n");
+        for i in 0..10 {
+            body.push_str(&format!("r{i},0.5\n"));
+        }
+        // Line 12 would not even parse: reading must stop before it.
+        body.push_str("r10,0.5,extra\n");
+        let (f, m) = bad(read(&body, &target("brier", &["0", "1"]), 3));
+        assert!(f.ends_with("p.csv:5"), "{f}");
+        assert!(m.contains("more rows than the 3 of holdout h"), "{m}");
+        assert!(read(&body[..body.len() - 14], &target("brier", &[]), 10).is_ok());
     }
 
     #[test]

@@ -104,6 +104,7 @@ pub async fn submit(
                 ids: ids.to_vec(),
                 classes: p.to_vec(),
                 values: Vec::new(),
+                ..Default::default()
             })),
         });
     }

@@ -20,10 +20,13 @@
 
 use std::collections::HashMap;
 use std::fs::File;
+use std::hash::BuildHasher;
 use std::io::{BufRead, BufReader, Read, Write};
 use std::path::Path;
 
 use crate::error::{Error, Result};
+
+mod scan;
 
 /// Default largest file size accepted: 2 GiB (see `--max-file-bytes`).
 pub const DEFAULT_MAX_FILE_BYTES: u64 = 2 << 30;
@@ -49,6 +52,9 @@ pub struct TableSpec {
     pub max_bytes: u64,
     /// Accept empty values (after trimming) in value columns.
     pub allow_empty_values: bool,
+    /// At most this many data rows, and what they are counted against (for the message): the
+    /// row past it is an error, and reading stops there.
+    pub max_rows: Option<(u64, String)>,
 }
 
 impl TableSpec {
@@ -63,6 +69,7 @@ impl TableSpec {
             columns: Some(columns.into_iter().map(Into::into).collect()),
             max_bytes: DEFAULT_MAX_FILE_BYTES,
             allow_empty_values: false,
+            max_rows: None,
         }
     }
 
@@ -73,12 +80,20 @@ impl TableSpec {
             columns: None,
             max_bytes: DEFAULT_MAX_FILE_BYTES,
             allow_empty_values: true,
+            max_rows: None,
         }
     }
 
     /// Sets the size limit.
     pub fn max_bytes(mut self, max_bytes: u64) -> Self {
         self.max_bytes = max_bytes;
+        self
+    }
+
+    /// Allows at most `rows` data rows, counted against `what` (named in the error, e.g.
+    /// "holdout yard"): reading stops at the row past it.
+    pub fn max_rows(mut self, rows: u64, what: impl Into<String>) -> Self {
+        self.max_rows = Some((rows, what.into()));
         self
     }
 }
@@ -156,9 +171,108 @@ pub fn detect_format(path: &Path, first_bytes: &[u8]) -> Format {
 /// [`Error::InvalidArgument`] naming `path:line`, the id and the column for: a missing or
 /// unreadable file, a file over the size limit, invalid UTF-8, a file with no rows, a missing
 /// column, a missing or empty id, a duplicate id (both lines named), a row with the wrong number
-/// of fields, invalid JSON or a JSON line that is not an object, and (unless allowed) an empty
-/// value.
+/// of fields, invalid JSON or a JSON line that is not an object, (unless allowed) an empty
+/// value, and more rows than [`TableSpec::max_rows`].
 pub fn read_table(path: &Path, spec: &TableSpec) -> Result<Table> {
+    let mut values: Vec<Vec<String>> = Vec::new();
+    let read = scan(path, spec, &mut |_, _, v| {
+        values.push(v.iter().map(|s| s.to_string()).collect());
+        Ok(())
+    })?;
+    let rows = read
+        .ids
+        .ids
+        .into_iter()
+        .zip(read.ids.lines)
+        .zip(values)
+        .map(|((id, line), values)| Row { line, id, values })
+        .collect();
+    Ok(Table {
+        source: read.source,
+        format: read.format,
+        id_column: spec.id_column.clone(),
+        columns: read.columns,
+        rows,
+    })
+}
+
+/// The ids of a file and one value column, each value converted as it is read (no table of
+/// rows is built): what a predictions file is sent as.
+#[derive(Debug, Clone)]
+pub struct Column<V> {
+    /// The file, as given (used in messages).
+    pub source: String,
+    /// Its layout.
+    pub format: Format,
+    /// The row ids, trimmed, unique, in file order.
+    pub ids: Vec<String>,
+    /// The 1-based line of each row.
+    pub lines: Vec<u64>,
+    /// The converted values, aligned with `ids`.
+    pub values: Vec<V>,
+}
+
+impl<V> Column<V> {
+    /// Number of rows.
+    pub fn len(&self) -> usize {
+        self.ids.len()
+    }
+
+    /// Whether there are no rows (never true for a column returned by [`read_column`]).
+    pub fn is_empty(&self) -> bool {
+        self.ids.is_empty()
+    }
+}
+
+/// Reads the id column and the one value column of `spec`, converting each (trimmed) value with
+/// `convert(value, id)`, which returns the message of the error to report at the value's line.
+/// Reads with the same rules and errors as [`read_table`], streaming: a CSV row costs one
+/// allocation (its id), and reading stops at the first error, the row past
+/// [`TableSpec::max_rows`] included.
+///
+/// # Errors
+/// As [`read_table`]; a spec that does not name exactly one value column; a value `convert`
+/// refuses, as [`Error::InvalidArgument`] naming `path:line`.
+pub fn read_column<V>(
+    path: &Path,
+    spec: &TableSpec,
+    mut convert: impl FnMut(&str, &str) -> std::result::Result<V, String>,
+) -> Result<Column<V>> {
+    if spec.columns.as_ref().is_none_or(|c| c.len() != 1) {
+        return Err(Error::invalid(
+            "columns",
+            "read_column reads exactly one value column",
+        ));
+    }
+    let source = path.display().to_string();
+    let mut values = Vec::new();
+    let read = scan(path, spec, &mut |line, id, v| {
+        let x = convert(v[0], id).map_err(|m| Error::invalid(format!("{source}:{line}"), m))?;
+        values.push(x);
+        Ok(())
+    })?;
+    Ok(Column {
+        source: read.source,
+        format: read.format,
+        ids: read.ids.ids,
+        lines: read.ids.lines,
+        values,
+    })
+}
+
+/// What every row of a file is handed to, after its id and values passed the checks: its line,
+/// its id and its values (trimmed, in the spec's column order).
+type Sink<'s> = dyn FnMut(u64, &str, &[&str]) -> Result<()> + 's;
+
+/// A file read through: its columns and its ids; the values went to the sink.
+struct Scanned {
+    source: String,
+    format: Format,
+    columns: Vec<String>,
+    ids: Ids,
+}
+
+fn scan(path: &Path, spec: &TableSpec, sink: &mut Sink<'_>) -> Result<Scanned> {
     let source = path.display().to_string();
     let meta = std::fs::metadata(path).map_err(|e| open_error(&source, &e))?;
     if meta.is_dir() {
@@ -174,18 +288,38 @@ pub fn read_table(path: &Path, spec: &TableSpec) -> Result<Table> {
             ),
         ));
     }
-    let file = File::open(path).map_err(|e| open_error(&source, &e))?;
-    // The limit is checked again while reading, in case the file grows meanwhile.
-    let mut reader = BufReader::new(file.take(spec.max_bytes.saturating_add(1)));
-    let head = reader
-        .fill_buf()
-        .map_err(|e| Error::invalid(source.clone(), format!("cannot read: {e}")))?
-        .to_vec();
+    let mut file = File::open(path)
+        .map_err(|e| open_error(&source, &e))?
+        // The limit is checked again while reading, in case the file grows meanwhile.
+        .take(spec.max_bytes.saturating_add(1));
+    let mut head = vec![0u8; 8192];
+    let mut got = 0;
+    while got < head.len() {
+        match file.read(&mut head[got..]) {
+            Ok(0) => break,
+            Ok(n) => got += n,
+            Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(Error::invalid(source, format!("cannot read: {e}"))),
+        }
+    }
+    head.truncate(got);
     let format = detect_format(path, &head);
-    let mut builder = Builder::new(source, format, spec);
+    let mut builder = Builder::new(source, format, spec, sink);
+    // Room for the rows up front: growing a duplicate index rehashes every id read so far.
+    // A row takes at least 4 bytes (`a,b` and a newline); without a row limit, a guess.
+    let rows = match &spec.max_rows {
+        Some((max, _)) => (*max).min(meta.len() / 4 + 1),
+        None => meta.len() / 32,
+    };
+    builder
+        .ids
+        .reserve(usize::try_from(rows).unwrap_or(0).min(1 << 26));
     match format {
-        Format::Csv => read_csv(reader, &mut builder)?,
-        Format::JsonLines => read_jsonl(reader, &mut builder)?,
+        Format::Csv => read_csv(scan::Scanner::new(file, &head), &mut builder)?,
+        Format::JsonLines => read_jsonl(
+            BufReader::new(std::io::Cursor::new(head).chain(file)),
+            &mut builder,
+        )?,
     }
     builder.finish()
 }
@@ -199,26 +333,93 @@ fn open_error(source: &str, e: &std::io::Error) -> Error {
     Error::invalid(source.to_string(), message)
 }
 
-/// Collects rows, checking ids and values as they come.
-struct Builder<'a> {
+/// Row ids in file order with their lines, and what finds a duplicate without a second copy of
+/// any id: while the ids come in strictly increasing order (files are often sorted by id) none
+/// can repeat, so each is only compared with the one before; from the first id that breaks
+/// the order on, a hash table of row numbers, hashed by the id each points to.
+#[derive(Default)]
+struct Ids {
+    ids: Vec<String>,
+    lines: Vec<u64>,
+    /// Built at the first id out of order; empty (and unused) before.
+    index: hashbrown::HashTable<u32>,
+    indexed: bool,
+    /// Rows expected in all, for the index's size.
+    expected: usize,
+    hasher: hashbrown::DefaultHashBuilder,
+}
+
+impl Ids {
+    /// Makes room for `rows` rows.
+    fn reserve(&mut self, rows: usize) {
+        self.expected = rows;
+        self.ids.reserve(rows);
+        self.lines.reserve(rows);
+    }
+
+    /// The line of an earlier row with this id.
+    fn find(&mut self, id: &str) -> Option<u64> {
+        if !self.indexed {
+            match self.ids.last() {
+                Some(last) if id <= last.as_str() => self.build_index(),
+                _ => return None,
+            }
+        }
+        let hash = self.hasher.hash_one(id);
+        self.index
+            .find(hash, |&row| self.ids[row as usize] == id)
+            .map(|&row| self.lines[row as usize])
+    }
+
+    /// Indexes every row so far (they are distinct: they were in increasing order).
+    fn build_index(&mut self) {
+        let (ids, hasher) = (&self.ids, &self.hasher);
+        let room = self.expected.max(ids.len() + 1);
+        self.index
+            .reserve(room, |&r| hasher.hash_one(ids[r as usize].as_str()));
+        for (row, id) in ids.iter().enumerate() {
+            let hash = hasher.hash_one(id.as_str());
+            self.index.insert_unique(hash, row as u32, |&r| {
+                hasher.hash_one(ids[r as usize].as_str())
+            });
+        }
+        self.indexed = true;
+    }
+
+    /// Adds a row (its id not yet present).
+    fn push(&mut self, id: String, line: u64) {
+        if self.indexed {
+            let row = self.ids.len() as u32;
+            let hash = self.hasher.hash_one(id.as_str());
+            let (ids, hasher) = (&self.ids, &self.hasher);
+            self.index
+                .insert_unique(hash, row, |&r| hasher.hash_one(ids[r as usize].as_str()));
+        }
+        self.ids.push(id);
+        self.lines.push(line);
+    }
+}
+
+/// Checks rows as they come and hands them on.
+struct Builder<'a, 's> {
     source: String,
     format: Format,
     spec: &'a TableSpec,
     columns: Vec<String>,
-    rows: Vec<Row>,
-    first_line: HashMap<String, u64>,
+    ids: Ids,
+    sink: &'a mut Sink<'s>,
     bytes_seen: u64,
 }
 
-impl<'a> Builder<'a> {
-    fn new(source: String, format: Format, spec: &'a TableSpec) -> Self {
+impl<'a, 's> Builder<'a, 's> {
+    fn new(source: String, format: Format, spec: &'a TableSpec, sink: &'a mut Sink<'s>) -> Self {
         Builder {
             source,
             format,
             spec,
             columns: spec.columns.clone().unwrap_or_default(),
-            rows: Vec::new(),
-            first_line: HashMap::new(),
+            ids: Ids::default(),
+            sink,
             bytes_seen: 0,
         }
     }
@@ -241,22 +442,32 @@ impl<'a> Builder<'a> {
         Ok(())
     }
 
-    /// Adds a row given its id (untrimmed, `None` when the field is absent) and values.
-    fn push(&mut self, line: u64, id: Option<&str>, values: Vec<String>) -> Result<()> {
+    /// Adds a row given its id (untrimmed, `None` when the field is absent) and its values
+    /// (trimmed).
+    fn push(&mut self, line: u64, id: Option<&str>, values: &[&str]) -> Result<()> {
         let id_column = &self.spec.id_column;
         let id = match id.map(str::trim) {
             None => return Err(self.err(line, format!("no id: the row lacks `{id_column}`"))),
             Some("") => return Err(self.err(line, format!("empty id in column `{id_column}`"))),
-            Some(id) => id.to_string(),
+            Some(id) => id,
         };
-        if let Some(first) = self.first_line.get(&id) {
+        if let Some(first) = self.ids.find(id) {
             return Err(self.err(
                 line,
                 format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
             ));
         }
+        // Checked after the id, so a repeated id is named as such.
+        if let Some((max, what)) = &self.spec.max_rows
+            && self.ids.ids.len() as u64 >= *max
+        {
+            return Err(self.err(
+                line,
+                format!("more rows than the {max} of {what}; the rest of the file was not read"),
+            ));
+        }
         if !self.spec.allow_empty_values
-            && let Some(pos) = values.iter().position(String::is_empty)
+            && let Some(pos) = values.iter().position(|v| v.is_empty())
         {
             return Err(self.err(
                 line,
@@ -266,104 +477,69 @@ impl<'a> Builder<'a> {
                 ),
             ));
         }
-        self.first_line.insert(id.clone(), line);
-        self.rows.push(Row { line, id, values });
+        (self.sink)(line, id, values)?;
+        self.ids.push(id.to_string(), line);
         Ok(())
     }
 
-    fn finish(self) -> Result<Table> {
-        if self.rows.is_empty() {
+    fn finish(self) -> Result<Scanned> {
+        if self.ids.ids.is_empty() {
             return Err(Error::invalid(
                 self.source,
                 "empty file: no data rows".to_string(),
             ));
         }
-        Ok(Table {
+        Ok(Scanned {
             source: self.source,
             format: self.format,
-            id_column: self.spec.id_column.clone(),
             columns: self.columns,
-            rows: self.rows,
+            ids: self.ids,
         })
     }
 }
 
-/// Counts the newlines a reader has passed, so that a byte offset maps to its 1-based line.
-///
-/// The csv crate's own line numbers skip blank lines, and error messages must name the line an
-/// editor shows. The csv reader reads ahead by at most its buffer, so few offsets are pending.
-#[derive(Default)]
-struct LineTracker {
-    pending: std::collections::VecDeque<u64>,
-    read: u64,
-    lines_before: u64,
+/// Empties a vector of borrowed text and gives back its allocation for borrows of another
+/// lifetime (the standard library collects in place when the element layout is the same), so
+/// the values of every row go through one buffer.
+fn recycle<'b>(mut v: Vec<&str>) -> Vec<&'b str> {
+    v.clear();
+    v.into_iter().map(|_| "").collect()
 }
 
-impl LineTracker {
-    /// The line of the byte at `offset` (offsets must not decrease between calls).
-    fn line_at(&mut self, offset: u64) -> u64 {
-        while self.pending.front().is_some_and(|&nl| nl < offset) {
-            self.pending.pop_front();
-            self.lines_before += 1;
-        }
-        self.lines_before + 1
+/// The fields of the scanner's record as text; the error names the first field that is not
+/// UTF-8.
+fn record_text<'r, R: Read>(
+    s: &'r scan::Scanner<R>,
+    into: &mut Vec<&'r str>,
+) -> std::result::Result<(), usize> {
+    into.clear();
+    for i in 0..s.len() {
+        into.push(std::str::from_utf8(s.field(i)).map_err(|_| i)?);
     }
+    Ok(())
 }
 
-struct Counting<R> {
-    inner: R,
-    tracker: std::rc::Rc<std::cell::RefCell<LineTracker>>,
-}
-
-impl<R: Read> Read for Counting<R> {
-    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
-        let n = self.inner.read(buf)?;
-        let mut t = self.tracker.borrow_mut();
-        let start = t.read;
-        for (i, _) in buf[..n].iter().enumerate().filter(|(_, b)| **b == b'\n') {
-            t.pending.push_back(start + i as u64);
-        }
-        t.read += n as u64;
-        Ok(n)
-    }
-}
-
-fn read_csv<R: Read>(reader: R, b: &mut Builder<'_>) -> Result<()> {
-    let tracker = std::rc::Rc::new(std::cell::RefCell::new(LineTracker::default()));
-    let reader = Counting {
-        inner: reader,
-        tracker: tracker.clone(),
-    };
-    // The record's own position points before any blank lines the reader skipped, so the line
-    // is found from the record's last byte, less the newlines inside its quoted fields.
-    let line_of = |csv: &csv::Reader<Counting<R>>, record: &csv::StringRecord| {
-        let last = csv.position().byte().saturating_sub(1);
-        let inner: usize = record.iter().map(|f| f.matches('\n').count()).sum();
-        let end_line = tracker.borrow_mut().line_at(last);
-        end_line.saturating_sub(inner as u64).max(1)
-    };
-    let mut csv = csv::ReaderBuilder::new()
-        .has_headers(false)
-        .flexible(true)
-        .trim(csv::Trim::None)
-        .from_reader(reader);
-    let mut record = csv::StringRecord::new();
+fn read_csv<R: Read>(mut s: scan::Scanner<R>, b: &mut Builder<'_, '_>) -> Result<()> {
+    let mut spare: Vec<&str> = Vec::new();
     // Header: the first record that is not blank.
     let header: Vec<String> = loop {
-        if !next_csv_record(&mut csv, &mut record, b, &tracker)? {
+        if !next_csv_record(&mut s, b)? {
             return Err(Error::invalid(
                 b.source.clone(),
                 "empty file: no header row (CSV files start with a header naming the columns)",
             ));
         }
-        if !is_blank(&record) {
-            break record
+        let mut fields = recycle(spare);
+        text_or_error(&s, &mut fields, b)?;
+        if !is_blank(&fields) {
+            break fields
                 .iter()
                 .map(|h| h.trim_start_matches('\u{feff}').trim().to_string())
                 .collect();
         }
+        spare = recycle(fields);
     };
-    let header_line = line_of(&csv, &record);
+    let header_line = s.line();
     let mut seen = HashMap::new();
     for (i, h) in header.iter().enumerate() {
         if let Some(j) = seen.insert(h.as_str(), i) {
@@ -393,13 +569,18 @@ fn read_csv<R: Read>(reader: R, b: &mut Builder<'_>) -> Result<()> {
     if b.spec.columns.is_none() {
         b.columns = header.clone();
     }
-    while next_csv_record(&mut csv, &mut record, b, &tracker)? {
-        if is_blank(&record) {
+    let mut spare: Vec<&str> = Vec::new();
+    let mut spare_values: Vec<&str> = Vec::new();
+    while next_csv_record(&mut s, b)? {
+        let mut fields = recycle(spare);
+        text_or_error(&s, &mut fields, b)?;
+        if is_blank(&fields) {
+            spare = recycle(fields);
             continue;
         }
-        let line = line_of(&csv, &record);
-        if record.len() != header.len() {
-            let id = record.get(id_pos).map(str::trim).unwrap_or("");
+        let line = s.line();
+        if fields.len() != header.len() {
+            let id = fields.get(id_pos).map(|f| f.trim()).unwrap_or("");
             let about = if id.is_empty() {
                 String::new()
             } else {
@@ -409,61 +590,50 @@ fn read_csv<R: Read>(reader: R, b: &mut Builder<'_>) -> Result<()> {
                 line,
                 format!(
                     "row has {} fields but the header has {}{about}",
-                    record.len(),
+                    fields.len(),
                     header.len()
                 ),
             ));
         }
-        let values = positions
-            .iter()
-            .map(|&p| record.get(p).unwrap_or("").trim().to_string())
-            .collect();
-        b.push(line, record.get(id_pos), values)?;
+        let mut values = recycle(spare_values);
+        values.extend(positions.iter().map(|&p| fields[p].trim()));
+        b.push(line, Some(fields[id_pos]), &values)?;
+        spare_values = recycle(values);
+        spare = recycle(fields);
     }
     Ok(())
 }
 
-/// Reads the next CSV record; false at the end of the file.
-fn next_csv_record<R: Read>(
-    csv: &mut csv::Reader<Counting<R>>,
-    record: &mut csv::StringRecord,
-    b: &mut Builder<'_>,
-    tracker: &std::cell::RefCell<LineTracker>,
-) -> Result<bool> {
-    match csv.read_record(record) {
-        Ok(more) => {
-            let end = csv.position().byte();
-            let seen = b.bytes_seen;
-            b.check_size(end.saturating_sub(seen))?;
-            Ok(more)
-        }
-        Err(e) => {
-            let last = csv.position().byte().saturating_sub(1);
-            let line = tracker.borrow_mut().line_at(last);
-            Err(csv_error(b, line, &e))
-        }
-    }
+/// The record's fields as text, or the error naming its line and the first field that is not
+/// UTF-8.
+fn text_or_error<'r, R: Read>(
+    s: &'r scan::Scanner<R>,
+    fields: &mut Vec<&'r str>,
+    b: &Builder<'_, '_>,
+) -> Result<()> {
+    record_text(s, fields).map_err(|field| {
+        b.err(
+            s.end_line(),
+            format!("invalid UTF-8 in field {} (files must be UTF-8)", field + 1),
+        )
+    })
 }
 
-fn csv_error(b: &Builder<'_>, line: u64, e: &csv::Error) -> Error {
-    match e.kind() {
-        csv::ErrorKind::Utf8 { err, .. } => b.err(
-            line,
-            format!(
-                "invalid UTF-8 in field {} (files must be UTF-8)",
-                err.field() + 1
-            ),
-        ),
-        csv::ErrorKind::Io(io) => Error::invalid(b.source.clone(), format!("cannot read: {io}")),
-        _ => b.err(line, format!("malformed CSV: {e}")),
-    }
+/// Reads the next CSV record, counting its bytes against the limit; false at the end.
+fn next_csv_record<R: Read>(s: &mut scan::Scanner<R>, b: &mut Builder<'_, '_>) -> Result<bool> {
+    let more = s
+        .next_record()
+        .map_err(|e| Error::invalid(b.source.clone(), format!("cannot read: {e}")))?;
+    let seen = b.bytes_seen;
+    b.check_size(s.consumed().saturating_sub(seen))?;
+    Ok(more)
 }
 
-fn is_blank(record: &csv::StringRecord) -> bool {
-    record.iter().all(|f| f.trim().is_empty())
+fn is_blank(fields: &[&str]) -> bool {
+    fields.iter().all(|f| f.trim().is_empty())
 }
 
-fn read_jsonl<R: BufRead>(mut reader: R, b: &mut Builder<'_>) -> Result<()> {
+fn read_jsonl<R: BufRead>(mut reader: R, b: &mut Builder<'_, '_>) -> Result<()> {
     let mut buf = Vec::new();
     let mut line_no = 0u64;
     // Columns in order of first appearance, when reading every column.
@@ -499,7 +669,8 @@ fn read_jsonl<R: BufRead>(mut reader: R, b: &mut Builder<'_>) -> Result<()> {
         };
         if b.spec.columns.is_some() {
             let (id, values) = json_row(b, line_no, &object)?;
-            b.push(line_no, id.as_deref(), values)?;
+            let values: Vec<&str> = values.iter().map(String::as_str).collect();
+            b.push(line_no, id.as_deref(), &values)?;
         } else {
             for key in object.keys() {
                 if !all.iter().any(|k| k == key) {
@@ -517,7 +688,8 @@ fn read_jsonl<R: BufRead>(mut reader: R, b: &mut Builder<'_>) -> Result<()> {
         b.columns = all;
         for (line, object) in pending {
             let (id, values) = json_row(b, line, &object)?;
-            b.push(line, id.as_deref(), values)?;
+            let values: Vec<&str> = values.iter().map(String::as_str).collect();
+            b.push(line, id.as_deref(), &values)?;
         }
     }
     Ok(())
@@ -525,7 +697,7 @@ fn read_jsonl<R: BufRead>(mut reader: R, b: &mut Builder<'_>) -> Result<()> {
 
 /// The id and the values of the builder's columns in one JSON object.
 fn json_row(
-    b: &Builder<'_>,
+    b: &Builder<'_, '_>,
     line: u64,
     object: &serde_json::Map<String, serde_json::Value>,
 ) -> Result<(Option<String>, Vec<String>)> {
@@ -550,7 +722,7 @@ fn json_row(
     Ok((id, values))
 }
 
-fn json_text(b: &Builder<'_>, line: u64, col: &str, v: &serde_json::Value) -> Result<String> {
+fn json_text(b: &Builder<'_, '_>, line: u64, col: &str, v: &serde_json::Value) -> Result<String> {
     use serde_json::Value;
     match v {
         Value::String(s) => Ok(s.clone()),
@@ -760,6 +932,35 @@ mod tests {
             m.contains("duplicate id `a`") && m.contains("line 2") && m.contains("line 4"),
             "{m}"
         );
+    }
+
+    #[test]
+    fn duplicates_are_found_in_sorted_runs_and_after_them() {
+        // Sorted, then an id equal to the one before.
+        let (f, m) = fail("s.csv", b"id,label\na,1\nb,0\nb,1\n", &label_spec());
+        assert!(
+            f.ends_with("s.csv:4") && m.contains("first on line 3"),
+            "{f} {m}"
+        );
+        // Sorted, then an earlier id out of order.
+        let (f, m) = fail("s.csv", b"id,label\na,1\nc,0\nd,0\na,1\n", &label_spec());
+        assert!(
+            f.ends_with("s.csv:5") && m.contains("first on line 2"),
+            "{f} {m}"
+        );
+        // Out of order early, then a repeat of a row read before the order broke.
+        let (f, m) = fail(
+            "s.csv",
+            b"id,label\nb,1\nc,0\na,0\nd,0\nc,1\n",
+            &label_spec(),
+        );
+        assert!(
+            f.ends_with("s.csv:6") && m.contains("first on line 3"),
+            "{f} {m}"
+        );
+        // Out of order but distinct: read whole.
+        let t = read("s.csv", b"id,label\nb,1\na,0\nc,0\n", &label_spec()).expect("read");
+        assert_eq!(t.len(), 3);
     }
 
     #[test]
