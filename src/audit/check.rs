@@ -632,9 +632,6 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     // one replays (the replay takes the parsed records in order through a bounded channel), and
     // their findings take their places in the report as if everything had run in order.
     let head = std::mem::take(&mut report.findings);
-    // Chunks sent to the replay and not yet taken by it.
-    let backlog = std::sync::atomic::AtomicUsize::new(0);
-    let backlog = &backlog;
     let (chains, identities, mid) = std::thread::scope(|scope| {
         let hashes = scope.spawn(|| {
             let mut found = Vec::new();
@@ -648,11 +645,11 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         let (back, spent) = std::sync::mpsc::channel();
         let parser = scope.spawn(move || {
             shared::with(fill, shared::Role::Fill, || {
-                parse_and_check_identities(export, tx, spent, backlog)
+                parse_and_check_identities(export, tx, spent)
             })
         });
         let mid = shared::with(ahead, shared::Role::Take, || {
-            audit_in_order(export, &mut opts, &mut report, rx, back, backlog)
+            audit_in_order(export, &mut opts, &mut report, rx, back)
         });
         let identities = parser
             .join()
@@ -692,7 +689,6 @@ fn parse_and_check_identities(
     export: &Export,
     tx: std::sync::mpsc::SyncSender<Parsed>,
     spent: std::sync::mpsc::Receiver<Vec<Record>>,
-    backlog: &std::sync::atomic::AtomicUsize,
 ) -> super::identity::IdentityCheck {
     use super::identity::Checker;
     let mut checker = Checker::new(export);
@@ -713,29 +709,23 @@ fn parse_and_check_identities(
         let rec = Record::parse(e);
         checker.entry(e, rec.as_ref().ok());
         if let (Some(policy), Ok(Record::Answer(r))) = (&policy, &rec) {
-            // The widest cell is computed here only while the replay has a backlog (it is the
-            // slower thread); when it waits for records, this thread leaves that work to it.
-            let widest = backlog.load(std::sync::atomic::Ordering::Relaxed) >= PARSED_CHUNKS / 2;
-            compute_ahead(policy, r, widest);
+            compute_ahead(policy, r, e.seq);
         }
         chunk.push(rec);
-        if chunk.len() == PARSED_CHUNK {
-            backlog.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-            if to
+        if chunk.len() == PARSED_CHUNK
+            && to
                 .send(std::mem::replace(
                     &mut chunk,
                     Vec::with_capacity(PARSED_CHUNK),
                 ))
                 .is_err()
-            {
-                tx = None;
-            }
+        {
+            tx = None;
         }
     }
     if let Some(to) = tx
         && !chunk.is_empty()
     {
-        backlog.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
         let _ = to.send(chunk);
     }
     // Until the replay is done (or does not run).
@@ -746,15 +736,14 @@ fn parse_and_check_identities(
 }
 
 /// Computes, on the parsing thread with a [`shared`] table filling, the intervals the replay
-/// of answer `r` will ask for if `r` records its level truly: under a rounded rule the
-/// interval of the cell `r`'s exact errors fall in, and, when `widest` (the caller asks for it
-/// while the replay has a backlog, and otherwise leaves it to the replay's thread, so that the
-/// two threads share the work whichever is slower), under core 2 with the tolerance judged at
-/// the worst case, the widest cell at `r`'s level (what
+/// of answer `r` (entry `seq`) will ask for if `r` records its level truly: under a rounded
+/// rule the interval of the cell `r`'s exact errors fall in, and, for every other entry (the
+/// replay's thread computes the rest itself, so that the two threads share the work), under
+/// core 2 with the tolerance judged at the worst case, the widest cell at `r`'s level (what
 /// the forecast of the answer before it computes for its next level, and what the quote of `r`
 /// is judged on). Whatever `r` records, the replay recomputes what it does not find, so a
 /// false record changes no finding.
-fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, widest: bool) {
+fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, seq: u64) {
     use crate::stats::interval::{Method, Rounding, Sides};
     use crate::stats::policy::ToleranceReference;
     use crate::stats::rules::Rule;
@@ -767,7 +756,9 @@ fn compute_ahead(policy: &HoldoutPolicy, r: &crate::engine::AnswerRecord, widest
         return;
     }
     let rounding = Rounding::for_core(core.core_version);
-    if widest && core.core_version >= 2 && core.tolerance_reference == ToleranceReference::WorstCase
+    if seq.is_multiple_of(2)
+        && core.core_version >= 2
+        && core.tolerance_reference == ToleranceReference::WorstCase
     {
         let _ = grid.widest_half_width(core.rows, true, t.method, r.level_nats, rounding);
     }
@@ -803,7 +794,6 @@ fn audit_in_order(
     report: &mut Report,
     parsed: std::sync::mpsc::Receiver<Parsed>,
     spent: std::sync::mpsc::Sender<Vec<Record>>,
-    backlog: &std::sync::atomic::AtomicUsize,
 ) -> Vec<Finding> {
     let chain = export.header.holdout.clone();
     for e in &export.users {
@@ -884,12 +874,7 @@ fn audit_in_order(
     let r = replay(
         &policy,
         &export.entries,
-        &mut parsed
-            .into_iter()
-            .inspect(|_| {
-                backlog.fetch_sub(1, std::sync::atomic::Ordering::Relaxed);
-            })
-            .flatten(),
+        &mut parsed.into_iter().flatten(),
         &mut give_back,
         progress,
     );
