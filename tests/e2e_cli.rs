@@ -620,6 +620,13 @@ fn roles_are_enforced() {
         r.stderr
     );
     assert_eq!(budget(&d, &frank, "h")["answered"], 0);
+    // Its status says it answers nothing more, not how many queries the budget would allow.
+    let status = d.run(&frank, &["status", "h"]).ok().stdout;
+    assert!(
+        status.contains("next       none: the holdout is closed and answers no more queries")
+            && !status.contains("more queries fit"),
+        "{status}"
+    );
 }
 
 #[test]

@@ -146,21 +146,29 @@ pub fn budget_json(b: &Budget) -> Value {
 
 /// Budget lines for people.
 pub fn budget_text(b: &Budget) -> String {
+    // A closed holdout answers nothing more, whatever its budget would still allow.
+    let next = if !b.open {
+        "none: the holdout is closed and answers no more queries".to_string()
+    } else {
+        format!(
+            "half-width {} at the reference score; {} within the tolerance",
+            num(b.next_half_width),
+            if b.queries_left == u64::MAX {
+                "an unbounded number of queries fit".to_string()
+            } else {
+                plural(b.queries_left, "more query fits", "more queries fit")
+            }
+        )
+    };
     let mut s = format!(
         "budget     spent {} of delta {}, remaining {}\n\
          transcript {} nats released so far\n\
-         next       half-width {} at the reference score; {} within the tolerance\n\
+         next       {next}\n\
          queries    {} answered, {} refused; {}",
         num(b.spent),
         num(b.delta),
         num(b.remaining),
         num(b.transcript_nats),
-        num(b.next_half_width),
-        if b.queries_left == u64::MAX {
-            "an unbounded number of queries fit".to_string()
-        } else {
-            plural(b.queries_left, "more query fits", "more queries fit")
-        },
         b.answered,
         b.refused,
         if b.open { "open" } else { "closed" }
