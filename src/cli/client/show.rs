@@ -540,11 +540,16 @@ mod tests {
         assert_eq!(queries_left_text(u64::MAX), "unbounded");
         let b = Budget {
             queries_left: u64::MAX,
+            open: true,
             ..Default::default()
         };
         assert_eq!(budget_json(&b)["queries_left"], Value::Null);
         assert!(budget_text(&b).contains("an unbounded number of queries fit"));
         assert!(!budget_text(&b).contains("18446744073709551615"));
+        // Closed: no count at all, only that it answers nothing more.
+        let closed = Budget { open: false, ..b };
+        assert!(budget_text(&closed).contains("closed and answers no more queries"));
+        assert!(!budget_text(&closed).contains("queries fit"));
     }
 
     #[test]
