@@ -8,7 +8,7 @@ use axum::http::StatusCode;
 
 use super::pages::{BEST_STATEMENT, Board, Facts};
 use crate::auth::Caller;
-use crate::cli::client::show::{interval_text, num, queries_left_text};
+use crate::cli::client::show::{history_cells, interval_text, num, queries_left_text};
 use crate::proto::v1::{HistoryEntry, RankingResponse};
 use crate::report::{self, ReportData};
 
@@ -296,21 +296,7 @@ fn history_table(history: &[HistoryEntry]) -> String {
         }
     );
     for e in history.iter().rev().take(MAX_ROWS) {
-        let (query, what, interval) = match (&e.answer, &e.refusal) {
-            (Some(a), _) => (
-                a.query.to_string(),
-                format!("{} {}", a.target, a.symbol),
-                a.interval
-                    .as_ref()
-                    .map_or(String::new(), |i| interval_text(i.lower, i.upper)),
-            ),
-            (None, Some(r)) => (
-                String::new(),
-                format!("refused: {}", r.reason),
-                String::new(),
-            ),
-            (None, None) => (String::new(), e.kind.clone(), String::new()),
-        };
+        let (query, what, interval) = history_cells(e, &e.kind);
         let _ = writeln!(
             s,
             "<tr><td class=\"n\">{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td>\

@@ -469,9 +469,10 @@ pub fn history_json(e: &HistoryEntry) -> Value {
     })
 }
 
-/// A history entry as a table row: entry, time, team, kind, what was released.
-pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
-    let (query, what, interval) = match (&e.answer, &e.refusal) {
+/// What a history entry released, as text: (query number, what, interval); `other` is the
+/// "what" of an entry that is neither an answer nor a refusal.
+pub fn history_cells(e: &HistoryEntry, other: &str) -> (String, String, String) {
+    match (&e.answer, &e.refusal) {
         (Some(a), _) => (
             a.query.to_string(),
             format!("{} {}", a.target, a.symbol),
@@ -484,8 +485,13 @@ pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
             format!("refused: {}", r.reason),
             String::new(),
         ),
-        (None, None) => (String::new(), String::new(), String::new()),
-    };
+        (None, None) => (String::new(), other.to_string(), String::new()),
+    }
+}
+
+/// A history entry as a table row: entry, time, team, kind, what was released.
+pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
+    let (query, what, interval) = history_cells(e, "");
     let mut row = vec![
         e.entry.to_string(),
         e.at.clone(),
