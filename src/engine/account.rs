@@ -566,7 +566,7 @@ impl Book {
             Symbol::Best { model, .. } => Some(model),
             _ => None,
         };
-        let core = CoreJson::of(&ans);
+        let core = CoreJson::of_answer(&ans);
         Ok(AnswerCore {
             delta_i: ans.delta_i,
             code_nats: ans.code_nats,
@@ -731,7 +731,7 @@ impl Book {
                 code_nats: ans.code_nats,
                 statement: ans.statement.clone(),
                 best_model: None,
-                core: CoreJson::of(&ans),
+                core: CoreJson::of_answer(&ans),
             })
             .collect())
     }

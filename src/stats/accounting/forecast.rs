@@ -217,10 +217,18 @@ pub(crate) fn ln_inv_mean_share(schedule: &Schedule, first: u64, count: u64) -> 
 /// How many `j = 0, 1, ...` have `fits(level(j))`, where `level` is non-decreasing in `j` and
 /// `None` once the schedule is exhausted, and `fits` is monotone (true below a threshold).
 /// Exponential then binary search; saturates at `u64::MAX`.
+///
+/// The search returns `u64::MAX` exactly when `j = 0, 1, 2, 4, ..., 2^63` all fit; by the
+/// monotonicity above that is when `2^63` fits, so that one is tried first (after `0`): a
+/// holdout whose every answer fits (a tolerance of 1) costs two evaluations per forecast, not
+/// 64 (an audit of an all-answer ledger spent a sixth of its replay here).
 pub(crate) fn count_fitting(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f64) -> bool) -> u64 {
     let ok = |j: u64| level(j).is_some_and(&fits);
     if !ok(0) {
         return 0;
+    }
+    if ok(1 << 63) {
+        return u64::MAX;
     }
     let mut lo = 0u64; // ok(lo)
     let mut hi = 1u64;
@@ -236,4 +244,56 @@ pub(crate) fn count_fitting(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f6
         if ok(mid) { lo = mid } else { hi = mid }
     }
     lo + 1
+}
+
+#[cfg(test)]
+mod count_tests {
+    use super::count_fitting;
+
+    /// The search as it was before the saturation test (exponential then binary search only).
+    fn plain(level: impl Fn(u64) -> Option<f64>, fits: impl Fn(f64) -> bool) -> u64 {
+        let ok = |j: u64| level(j).is_some_and(&fits);
+        if !ok(0) {
+            return 0;
+        }
+        let (mut lo, mut hi) = (0u64, 1u64);
+        while ok(hi) {
+            lo = hi;
+            if hi >= u64::MAX / 2 {
+                return u64::MAX;
+            }
+            hi *= 2;
+        }
+        while hi - lo > 1 {
+            let mid = lo + (hi - lo) / 2;
+            if ok(mid) { lo = mid } else { hi = mid }
+        }
+        lo + 1
+    }
+
+    #[test]
+    fn the_saturation_test_changes_no_count() {
+        // Levels growing like a schedule's ln(1/fraction) (slowly, then not at all, then
+        // exhausted), cut by thresholds from "nothing fits" to "everything fits".
+        let levels: [(&str, fn(u64) -> Option<f64>); 3] = [
+            ("log", |j| Some(3.0 + 2.0 * ((j as f64) + 1.0).ln())),
+            ("flat", |j| Some(if j < 1000 { j as f64 } else { 1000.0 })),
+            ("exhausted", |j| (j < 5_000).then_some(j as f64 * 0.01)),
+        ];
+        for (name, level) in levels {
+            for tau in [
+                -1.0, 0.0, 2.9, 3.0, 3.5, 10.0, 50.0, 91.0, 999.0, 1000.0, 1e9,
+            ] {
+                let fits = |l: f64| l <= tau;
+                assert_eq!(
+                    count_fitting(level, fits),
+                    plain(level, fits),
+                    "{name} at threshold {tau}"
+                );
+            }
+        }
+        // A case each way that the test is there for.
+        assert_eq!(count_fitting(|_| Some(0.0), |_| true), u64::MAX);
+        assert_eq!(count_fitting(|j| Some(j as f64), |l| l <= 41.0), 42);
+    }
 }
