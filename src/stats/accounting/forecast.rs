@@ -275,7 +275,8 @@ mod count_tests {
     fn the_saturation_test_changes_no_count() {
         // Levels growing like a schedule's ln(1/fraction) (slowly, then not at all, then
         // exhausted), cut by thresholds from "nothing fits" to "everything fits".
-        let levels: [(&str, fn(u64) -> Option<f64>); 3] = [
+        type Level = fn(u64) -> Option<f64>;
+        let levels: [(&str, Level); 3] = [
             ("log", |j| Some(3.0 + 2.0 * ((j as f64) + 1.0).ln())),
             ("flat", |j| Some(if j < 1000 { j as f64 } else { 1000.0 })),
             ("exhausted", |j| (j < 5_000).then_some(j as f64 * 0.01)),
