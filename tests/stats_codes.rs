@@ -179,7 +179,8 @@ fn rounded_worst_case_bounds_every_sequence() {
     }
 }
 
-/// The ladder worst case bounds every sequence of improve/no-improve answers, by enumeration.
+/// The ladder worst case bounds every sequence of improve/no-improve answers, by enumeration,
+/// and the bound on many new bests is far below version 1's `ln b` each (each must be small).
 #[test]
 fn ladder_worst_case_bounds_every_sequence() {
     fn walk(rule: &Rule, past: Past, j: u64) -> f64 {
@@ -210,7 +211,7 @@ fn ladder_worst_case_bounds_every_sequence() {
                 let mut past = Past::start(&rule, 1000);
                 past.best_cell = best;
                 past.ladder = KtCounts { hits, trials };
-                for j in 0..=4 {
+                for j in 0..=(if m <= 6 { 6 } else { 4 }) {
                     let worst = walk(&rule, past, j);
                     let bound = Code::Relative.worst_case_nats(&rule, 1000, &past, j);
                     assert!(
@@ -221,6 +222,18 @@ fn ladder_worst_case_bounds_every_sequence() {
             }
         }
     }
+    // 100 new bests on a 0.01 grid: version 1 bounds the drops by 100 ln 100 = 460.5 nats;
+    // version 2 by ln 100 + (99 + 99) ln 2 = 141.8 (our arithmetic).
+    let rule: Rule = "ladder:0.01".parse().unwrap();
+    let past = Past::start(&rule, 1000);
+    let kt = past.ladder.worst_case_nats(100);
+    let v1 = rule.worst_case_nats(1000, &past, 100) - kt;
+    let v2 = Code::Relative.worst_case_nats(&rule, 1000, &past, 100) - kt;
+    assert!((v1 - 100.0 * 100f64.ln()).abs() < 1e-9, "{v1}");
+    assert!(
+        (v2 - (100f64.ln() + 198.0 * 2f64.ln())).abs() < 1e-6,
+        "{v2}"
+    );
 }
 
 fn policy(rule: &str, rows: u64, tolerance: f64, sharing: Sharing) -> Policy {

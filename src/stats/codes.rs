@@ -11,17 +11,20 @@
 //! released cell is `c0`,
 //! `p(c) = 1/2 * 1/(M+1) + 1/2 * 2^-|c - c0| / Z(c0)`, `Z(c0) = sum over c of 2^-|c - c0|`
 //! `= 3 - 2^-c0 - 2^-(M - c0)`. Both halves are probability distributions over the grid, so
-//! the sum over every possible next cell is 1 at every past (Kraft). A repeat of `c0` costs
-//! about `ln 6` = 1.79 nats, a move of one cell `ln 12` = 2.48, and no cell more than
-//! `ln(2(M+1))`, one `ln 2` above the uniform code.
+//! the sum over every possible next cell is 1 at every past (Kraft). On a 0.01 grid (M = 100)
+//! a repeat of `c0` costs 1.76 nats (a little under `ln 6`), a move of one cell 2.43, of two
+//! 3.07, against `ln 101` = 4.62 for the uniform code; no cell costs more than `ln(2(M+1))`,
+//! one `ln 2` above the uniform code.
 //!
 //! Version 2, ladder (DESIGN 4.8, ladder drop code): the improve/no-improve bit keeps its
 //! Krichevsky-Trofimov code; a new best `cell < b` (`b` the team's best cell) is coded by its
 //! drop `j = b - cell` in `1..=b` with `p(j) = 1/2 * 1/b + 1/2 * 2^-j / (1 - 2^-b)` (a uniform
 //! and a truncated geometric, both normalised over `1..=b`): small drops are cheap, no drop
-//! costs more than `ln(2b)`. While the team's best is still the starting best (`b = M`, no new
-//! best released to it yet) the drop says where the team starts, not how much it improved, so
-//! the first new best keeps version 1's uniform `ln b`.
+//! costs more than `ln(2b)`, and the worst case of many new bests is far below version 1's
+//! `ln b` each, because their drops add up to at most `b` ([`drops_worst_nats`]). While the
+//! team's best is still the starting best (`b = M`, no new best released to it yet) the drop
+//! says where the team starts, not how much it improved, so the first new best keeps version
+//! 1's uniform `ln b`.
 //!
 //! What the codes may depend on: only the public past ([`Past`]: earlier released symbols,
 //! their counts, the team's last released cell and best cell), never labels or exact scores.
@@ -39,12 +42,16 @@
 //! // First answer: uniform over the 101 cells.
 //! assert!((Code::Relative.nats(&rule, 10_000, &past, &cell(30)) - 101f64.ln()).abs() < 1e-12);
 //! past.last_cell = Some(30);
-//! // A repeat of the team's last cell: p = 1/202 + 1/6.
+//! // A repeat of the team's last cell: p = 1/202 + 1/(2Z), Z = 3 - 2^-30 - 2^-70 (about 1/6).
 //! let repeat = Code::Relative.nats(&rule, 10_000, &past, &cell(30));
-//! assert!((repeat + (1.0 / 202.0 + 1.0 / 6.0f64).ln()).abs() < 1e-12);
+//! let z = 3.0 - 0.5f64.powi(30) - 0.5f64.powi(70);
+//! assert!((repeat + (1.0 / 202.0 + 0.5 / z).ln()).abs() < 1e-12);
 //! // A far move costs at most ln(202), one ln 2 above the uniform code.
 //! assert!(Code::Relative.nats(&rule, 10_000, &past, &cell(90)) <= 202f64.ln());
 //! ```
+
+use statrs::function::gamma::ln_gamma;
+use std::f64::consts::LN_2;
 
 use super::rules::{Past, Rule, Symbol};
 
@@ -124,19 +131,40 @@ impl Code {
                     // possible.
                     return 0.0;
                 }
-                // At most min(j, b) new bests, each below the current best, so each drop is
-                // coded over at most b cells and costs at most ln(2b); from the starting best
-                // the first of them costs the uniform ln b.
-                let first = if b >= g.cells {
-                    (b as f64).ln()
+                let drops = if b >= g.cells {
+                    // From the starting best the first new best is uniform over b cells; the
+                    // rest start from a best of at most b - 1.
+                    (b as f64).ln() + drops_worst_nats(b - 1, bests - 1)
                 } else {
-                    (2.0 * b as f64).ln()
+                    drops_worst_nats(b, bests)
                 };
-                past.ladder.worst_case_nats(j) + first + (bests - 1) as f64 * (2.0 * b as f64).ln()
+                past.ladder.worst_case_nats(j) + drops
             }
             _ => rule.worst_case_nats(rows, past, j),
         }
     }
+}
+
+/// An upper bound on the total drop code of `k` new bests from a best of `b` cells (after the
+/// team's first new best), whatever the drops: each new best lowers the best by at least one
+/// cell, so the `t`-th (from 0) is coded over at most `b - t` cells and costs at most
+/// `ln(2(b - t))` (the uniform half alone); and a drop of `j` costs at most `(1 + j) ln 2`
+/// (the geometric half alone) with the drops summing to at most `b`. Both totals bound the
+/// sum, so their minimum does: `min(k ln 2 + ln(b! / (b-k)!), (k + b) ln 2)`. Many new bests
+/// are therefore cheap in the worst case too (each is a small drop). The log-factorials carry
+/// a margin of `1e-9` nats for `ln_gamma`'s rounding.
+pub fn drops_worst_nats(b: u64, k: u64) -> f64 {
+    let k = k.min(b);
+    if k == 0 {
+        return 0.0;
+    }
+    let (bf, kf) = (b as f64, k as f64);
+    let falling = if k <= 64 {
+        (0..k).map(|t| (bf - t as f64).ln()).sum::<f64>()
+    } else {
+        ln_gamma(bf + 1.0) - ln_gamma(bf - kf + 1.0) + 1e-9 * (1.0 + bf)
+    };
+    (kf * LN_2 + falling).min((kf + bf) * LN_2)
 }
 
 /// `2^-d` for a whole number `d >= 0` (0 once it underflows).
@@ -193,6 +221,24 @@ mod tests {
                 assert!((total - 1.0).abs() < 1e-12, "M={cells} c0={c0}: {total}");
             }
         }
+    }
+
+    #[test]
+    fn drops_bound_is_the_same_on_both_sides_of_the_loop_limit() {
+        for b in [70u64, 150, 1000, 100_000] {
+            for k in 55..=b.min(75) {
+                let falling: f64 = (0..k).map(|t| ((b - t) as f64).ln()).sum();
+                let direct = (k as f64 * LN_2 + falling).min((k + b) as f64 * LN_2);
+                let got = drops_worst_nats(b, k);
+                assert!(got >= direct - 1e-12, "b={b} k={k}: {got} < {direct}");
+                assert!(
+                    got - direct < 1e-6 * (1.0 + direct),
+                    "b={b} k={k}: {got} {direct}"
+                );
+            }
+        }
+        assert_eq!(drops_worst_nats(5, 0), 0.0);
+        assert_eq!(drops_worst_nats(0, 3), 0.0);
     }
 
     #[test]

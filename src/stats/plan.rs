@@ -15,7 +15,8 @@
 //! cell, which is about half a grid step wider than the one-count interval), and a best-of
 //! batch is reported at the mean of its shares; worst-case codes are the current codes' (for
 //! `rounded`, `ln(2(M+1))` per answer after a team's first, one `ln 2` above the uniform
-//! code, so worst-case counts are a little lower than with the uniform code).
+//! code, so worst-case counts are a little lower than with the uniform code; for `ladder`,
+//! many new bests must be small drops, so long ladders fit more).
 //! [`queries_that_fit_core`] plans with a given core and the uniform codes (version 1); with
 //! core 1 that is the accounting DESIGN 4.5's table follows (the one-count interval, the
 //! smallest share). [`queries_that_fit_with`] takes both versions.
