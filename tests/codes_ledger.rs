@@ -15,6 +15,9 @@ fn plain(export: &Export) -> Report {
     audit(export, AuditOptions::default())
 }
 
+/// A change to a genesis body.
+type Edit = Box<dyn Fn(&mut Value)>;
+
 fn genesis(export: &Export) -> Value {
     serde_json::from_str(&export.entries[0].body).unwrap()
 }
@@ -40,7 +43,7 @@ fn a_version_2_holdout_records_its_code_and_audits_clean() {
 fn a_genesis_relabelled_to_version_1_is_caught_by_the_audit() {
     let mut g = small(22);
     let ex = g.export();
-    let relabel: [(&str, Box<dyn Fn(&mut Value)>); 2] = [
+    let relabel: [(&str, Edit); 2] = [
         (
             "set to 1",
             Box::new(|v: &mut Value| v["policy"]["core"]["code_version"] = 1.into()),
