@@ -29,6 +29,8 @@ fn policy(rule: &str, rows: u64, tolerance: f64, method: Method, core: u32) -> P
             // Exact is only for binary targets; the callers below keep to that.
         }],
         core_version: core,
+        // The uniform codes (version 1), whose figures these tests check.
+        code_version: 1,
     }
 }
 

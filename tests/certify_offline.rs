@@ -820,6 +820,8 @@ fn the_released_fixture_certifies_offline() {
     .json();
     assert_eq!(cert["kind"], "answer");
     assert_eq!(cert["policy"]["core_version"], 1);
+    // The fixture predates code versions: its genesis has none, which reads as version 1.
+    assert_eq!(cert["policy"]["code_version"], 1);
     assert_eq!(cert["receipt"]["entry_hash"], hash.as_str());
     assert_eq!(
         cert["answer"]["in_words"],

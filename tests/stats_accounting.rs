@@ -24,6 +24,8 @@ fn policy(rule: &str, schedule: &str, rows: u64, tolerance: f64) -> Policy {
             method: Method::Exact,
         }],
         core_version: holdout_ledger::stats::CORE,
+        // The uniform codes (version 1), whose figures these tests check.
+        code_version: 1,
     }
 }
 

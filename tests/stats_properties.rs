@@ -73,6 +73,7 @@ proptest! {
                 ladder: KtCounts { hits: lhits, trials: lhits + lmisses },
                 best_cell: best.min(m),
                 models,
+                last_cell: None,
             };
             let dist = rule.distribution(rows, &past);
             prop_assert!(!dist.is_empty());

@@ -101,6 +101,7 @@ fn attack_run(seed: u64, queries: usize) -> (bool, bool, f64, f64) {
             method: Method::Exact,
         }],
         core_version: holdout_ledger::stats::CORE,
+        code_version: holdout_ledger::stats::codes::CODE,
     };
     let mut acc = Accountant::new(policy).unwrap();
     let req = QueryRequest {

@@ -262,6 +262,7 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
     let rebuilt = HoldoutPolicy::build(&policy.input, policy.targets.clone(), policy.core.rows)
         .map(|mut p| {
             p.core.core_version = policy.core.core_version;
+            p.core.code_version = policy.core.code_version;
             p
         });
     match rebuilt {

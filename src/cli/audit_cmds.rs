@@ -473,6 +473,7 @@ fn certificate_json(c: &Certified) -> Value {
             "delta": p.input.delta, "schedule": p.input.schedule,
             "answers": p.input.answers, "tolerance": p.input.tolerance,
             "sharing": p.input.sharing, "rows": p.core.rows, "core_version": p.core.core_version,
+            "code_version": p.core.code_version,
         },
         "answer": answer,
         "charge": charge,

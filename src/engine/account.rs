@@ -226,6 +226,7 @@ impl HoldoutPolicy {
             rows,
             targets: core_targets,
             core_version: crate::stats::CORE,
+            code_version: crate::stats::codes::CODE,
         };
         core.validate()
             .map_err(|e| Error::invalid(e.field, e.message))?;

@@ -6,6 +6,7 @@
 //! | one-query intervals (Clopper-Pearson, KL, Hoeffding) | [`interval`] (KL inversion in `kl`) |
 //! | how the budget is split over queries and analysts | [`schedule`] |
 //! | answer rules, their symbols and codes | [`rules`] |
+//! | cheaper codes by version (relative rounded cells, ladder drops) | [`codes`] |
 //! | a holdout's policy and the guarantee sentence | [`policy`] |
 //! | the accountant the daemon and the audit share | [`accounting`] |
 //! | paired comparison of two models | [`paired`] |
@@ -13,6 +14,7 @@
 
 pub mod accounting;
 pub mod beta;
+pub mod codes;
 pub mod interval;
 mod kl;
 pub mod paired;

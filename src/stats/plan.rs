@@ -9,11 +9,17 @@
 //! models that takes `B` shares. For `sealed` (one round released as the last event) the code
 //! is 0, so the count is the non-adaptive one and can exceed `u64`: counts are f64.
 //!
-//! Plans use the accounting of the current core ([`crate::stats::CORE`]), as new holdouts do:
+//! Plans use the accounting of the current core ([`crate::stats::CORE`]) and the current
+//! codes ([`crate::stats::codes::CODE`]), as new holdouts do:
 //! the tolerance is judged on the interval that will be reported (for grid rules the widest
 //! cell, which is about half a grid step wider than the one-count interval), and a best-of
-//! batch is reported at the mean of its shares. [`queries_that_fit_core`] plans with core 1's
-//! rules (the one-count interval, the smallest share), which DESIGN 4.5's table follows.
+//! batch is reported at the mean of its shares; worst-case codes are the current codes' (for
+//! `rounded`, `ln(2(M+1))` per answer after a team's first, one `ln 2` above the uniform
+//! code, so worst-case counts are a little lower than with the uniform code; for `ladder`,
+//! many new bests must be small drops, so long ladders fit more).
+//! [`queries_that_fit_core`] plans with a given core and the uniform codes (version 1); with
+//! core 1 that is the accounting DESIGN 4.5's table follows (the one-count interval, the
+//! smallest share). [`queries_that_fit_with`] takes both versions.
 //! Planning reads binary losses from the method: `exact` is a 0-1 loss; with `kl` or
 //! `hoeffding` cells are taken as mean ranges, which are never narrower than a 0-1 loss's
 //! count ranges, so such a plan never promises more than the daemon answers.
@@ -34,6 +40,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::accounting::{count_fitting, ln_inv_mean_share};
+use super::codes::Code;
 use super::interval::{Method, Rounding, reference_half_width};
 use super::rules::{Past, Rule};
 use super::schedule::Schedule;
@@ -99,14 +106,27 @@ fn models(rule: &Rule, spec: &PlanSpec) -> u64 {
 }
 
 /// Queries (batches, for best-of) that fit, at reference score `reference` (1/2: worst case),
-/// with the current core's accounting.
+/// with the current core's accounting and the current codes.
 pub fn queries_that_fit(spec: &PlanSpec, rule: &Rule, reference: f64) -> f64 {
-    queries_that_fit_core(spec, rule, reference, super::CORE)
+    queries_that_fit_with(spec, rule, reference, super::CORE, super::codes::CODE)
 }
 
 /// [`queries_that_fit`] with the accounting of core version `core` (1: the tolerance judged on
-/// the one-count interval and a batch reported at its smallest share).
+/// the one-count interval and a batch reported at its smallest share) and the uniform codes
+/// (code version 1).
 pub fn queries_that_fit_core(spec: &PlanSpec, rule: &Rule, reference: f64, core: u32) -> f64 {
+    queries_that_fit_with(spec, rule, reference, core, 1)
+}
+
+/// [`queries_that_fit`] with core version `core` and code version `code`.
+pub fn queries_that_fit_with(
+    spec: &PlanSpec,
+    rule: &Rule,
+    reference: f64,
+    core: u32,
+    code: u32,
+) -> f64 {
+    let code = Code::for_version(code);
     let ln_inv_delta = -spec.delta.ln();
     let b = models(rule, spec);
     let mut past = Past::start(rule, spec.rows);
@@ -119,7 +139,7 @@ pub fn queries_that_fit_core(spec: &PlanSpec, rule: &Rule, reference: f64, core:
                 spec.schedule
                     .ln_inv_fraction(j.checked_add(1)?.checked_mul(b)?)?
             };
-            Some(ln_inv_delta + frac + rule.worst_case_nats(spec.rows, &past, j))
+            Some(ln_inv_delta + frac + code.worst_case_nats(rule, spec.rows, &past, j))
         },
         |level| half_width_fits(spec, rule, reference, level, core),
     );

@@ -81,9 +81,18 @@ pub struct Policy {
     /// replays with version 1's numbers, so every older ledger still replays bit for bit.
     #[serde(default = "legacy_core")]
     pub core_version: u32,
+    /// Version of the answer codes this holdout charges ([`super::codes`]; new holdouts record
+    /// [`super::codes::CODE`]). A policy recorded before the field existed is version 1 (the
+    /// uniform codes), so every older ledger replays and audits with its own codes.
+    #[serde(default = "legacy_code")]
+    pub code_version: u32,
 }
 
 fn legacy_core() -> u32 {
+    1
+}
+
+fn legacy_code() -> u32 {
     1
 }
 
@@ -114,6 +123,16 @@ impl Policy {
                     "{} is not a core this binary can replay (it knows {:?})",
                     self.core_version,
                     super::KNOWN_CORES
+                ),
+            ));
+        }
+        if !super::codes::KNOWN_CODES.contains(&self.code_version) {
+            return Err(bad(
+                "code_version",
+                format!(
+                    "{} is not a code version this binary can replay (it knows {:?})",
+                    self.code_version,
+                    super::codes::KNOWN_CODES
                 ),
             ));
         }

@@ -10,6 +10,10 @@
 //! | `best-of:ETA` | `Best { model, cell }` for a batch of `B` | `ln B + ln(M+1)` |
 //! | `sealed[:ETA]` | `Cell { index }` for every sealed model, at the round's close | `ln(M+1)` each (`M = n` without ETA: exact scores) |
 //!
+//! The codes in this table are code version 1; version 2 (new holdouts) codes rounded answers
+//! relative to the team's last released cell and ladder drops so that small ones are cheap
+//! ([`super::codes`]).
+//!
 //! Rounding. The cell of `k` errors in `n` rows is `floor((2kM + n) / (2n))`, i.e. `kM/n`
 //! rounded half up, computed in `u128` ([`Grid::cell_of_errors`]); the daemon, the interval code
 //! and the audit all call that one function. For bounded (non-binary) losses the cell is
@@ -487,6 +491,10 @@ pub struct Past {
     pub best_cell: u64,
     /// Best-of: models in the batch (1 otherwise).
     pub models: u32,
+    /// This analyst's last released cell on this target (`None` before any): version 2's
+    /// rounded code is relative to it ([`super::codes`]).
+    #[serde(default)]
+    pub last_cell: Option<u64>,
 }
 
 impl Past {
@@ -497,6 +505,7 @@ impl Past {
             ladder: KtCounts::default(),
             best_cell: rule.grid(rows).map_or(0, |g| g.cells),
             models: 1,
+            last_cell: None,
         }
     }
 }
@@ -511,7 +520,8 @@ impl Rule {
         }
     }
 
-    /// `-ln p(symbol | past)`; `+inf` for a symbol the rule cannot release at this past.
+    /// `-ln p(symbol | past)` under code version 1 (see [`super::codes::Code`] for the codes
+    /// by version); `+inf` for a symbol the rule cannot release at this past.
     pub fn code_nats(&self, rows: u64, past: &Past, symbol: &Symbol) -> f64 {
         let grid = self.grid(rows);
         match (self, symbol) {
@@ -535,8 +545,9 @@ impl Rule {
         }
     }
 
-    /// Every symbol the rule could release at this past, with its probability; the code of a
-    /// symbol is `-ln` of it. Used to check Kraft's inequality (the sum is at most 1).
+    /// Every symbol the rule could release at this past, with its probability under code
+    /// version 1; the code of a symbol is `-ln` of it. Used to check Kraft's inequality (the
+    /// sum is at most 1).
     pub fn distribution(&self, rows: u64, past: &Past) -> Vec<(Symbol, f64)> {
         let symbols: Vec<Symbol> = match (self, self.grid(rows)) {
             (Rule::Threshold { .. }, _) => vec![Symbol::Pass, Symbol::Fail],
@@ -555,8 +566,8 @@ impl Rule {
             .collect()
     }
 
-    /// An upper bound on the total code of the next `j` answers of one analyst on one target,
-    /// whatever they are (used for `queries_left` and planning). Sealed answers count 0: a
+    /// An upper bound on the total code (version 1) of the next `j` answers of one analyst on
+    /// one target, whatever they are (used for `queries_left` and planning). Sealed answers count 0: a
     /// round released as the holdout's last event is never paid for by a later query.
     pub fn worst_case_nats(&self, rows: u64, past: &Past, j: u64) -> f64 {
         let jf = j as f64;

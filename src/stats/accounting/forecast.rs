@@ -155,6 +155,7 @@ impl Accountant {
             ladder: view.past_ladder,
             best_cell: view.best_cell,
             models: batch,
+            last_cell: view.last_cell,
         };
         let base = self.ln_inv_delta + view.ln_inv_weight;
         let b = u64::from(batch.max(1));
@@ -162,7 +163,9 @@ impl Accountant {
             |j| {
                 let first = j.checked_mul(b)?.checked_add(view.used.checked_add(1)?)?;
                 let frac = self.batch_ln_inv(first, batch)?;
-                let cost = self.policy.rule.worst_case_nats(self.policy.rows, &past, j);
+                let cost =
+                    self.code()
+                        .worst_case_nats(&self.policy.rule, self.policy.rows, &past, j);
                 Some(base + frac + view.transcript.nats + cost)
             },
             |level| match self.fit_level.get(target) {
@@ -193,8 +196,11 @@ impl Accountant {
             ladder: view.past_ladder,
             best_cell: view.best_cell,
             models: req.models,
+            last_cell: view.last_cell,
         };
-        Ok(self.policy.rule.worst_case_nats(self.policy.rows, &past, 1))
+        Ok(self
+            .code()
+            .worst_case_nats(&self.policy.rule, self.policy.rows, &past, 1))
     }
 }
 

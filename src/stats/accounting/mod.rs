@@ -38,6 +38,7 @@
 
 use std::collections::BTreeMap;
 
+use super::codes::Code;
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
 use super::interval::{
     Rounding, errors_interval_with, mean_interval_with, reference_half_width_with,
@@ -78,6 +79,9 @@ struct AnalystState {
     ladder: Vec<KtCounts>,
     best_cell: Vec<u64>,
     last_value: Vec<Option<f64>>,
+    /// Per target, the last cell released to this analyst (rounded answers): the public past
+    /// version 2's rounded code is relative to ([`crate::stats::codes`]).
+    last_cell: Vec<Option<u64>>,
     /// Models in this analyst's last batch (1 before any): core 2 forecasts with it.
     last_models: u32,
     /// Ladder, per target: the largest level (nats) of a file adopted from another team's
@@ -124,6 +128,7 @@ struct PoolView<'a> {
     past_ladder: KtCounts,
     best_cell: u64,
     last_value: Option<f64>,
+    last_cell: Option<u64>,
 }
 
 impl Accountant {
@@ -222,9 +227,15 @@ impl Accountant {
             ladder: vec![KtCounts::default(); t],
             best_cell: vec![start.best_cell; t],
             last_value: vec![None; t],
+            last_cell: vec![None; t],
             last_models: 1,
             adopted_nats: vec![0.0; t],
         }
+    }
+
+    /// The holdout's answer codes (its policy's code version).
+    fn code(&self) -> Code {
+        Code::for_version(self.policy.code_version)
     }
 
     /// Whether this holdout uses core 2's rules (issue 10: threshold by cutoff, tolerance on
@@ -272,6 +283,7 @@ impl Accountant {
             past_ladder: state.ladder[target],
             best_cell: state.best_cell[target],
             last_value: state.last_value[target],
+            last_cell: state.last_cell[target],
         };
         Ok(view)
     }
@@ -557,11 +569,12 @@ impl Accountant {
             ladder: view.past_ladder,
             best_cell: view.best_cell,
             models: req.models,
+            last_cell: view.last_cell,
         };
         let symbol = self.symbol(req.target, charge.level_nats, &past, outcomes);
         let rule = self.policy.rule;
         let rows = self.policy.rows;
-        let code = rule.code_nats(rows, &past, &symbol);
+        let code = self.code().nats(&rule, rows, &past, &symbol);
         debug_assert!(code.is_finite(), "released symbol {symbol:?} has p = 0");
         // A ladder that adopted another team's answered file reports at a level no larger than
         // the one that file was answered at (DESIGN 4.8); 0 (no effect) without an adoption,
@@ -579,6 +592,7 @@ impl Accountant {
                 state.ladder[target].record(true);
                 state.best_cell[target] = cell;
             }
+            Symbol::Cell { index } => state.last_cell[target] = Some(index),
             _ => {}
         }
         if released.is_some() {
@@ -876,7 +890,7 @@ impl Accountant {
             let symbol = Symbol::Cell {
                 index: self.cell_of(o),
             };
-            let code = rule.code_nats(rows, &past, &symbol);
+            let code = self.code().nats(&rule, rows, &past, &symbol);
             let (interval, released) =
                 self.interval_of(r.charge.request.target, &symbol, &past, r.charge.level_nats);
             formed.push((r, symbol, released, interval, code));
