@@ -168,7 +168,10 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
                 let e: u64 = parts.next()?.parse().ok()?;
                 let rest: Vec<&str> = parts.collect();
                 println!("{name:<29}{t:8.3} ms  errors {e} {}", rest.join(" "));
-                assert_eq!(e, errors, "{name} counts {e} errors, metric::score {errors}");
+                assert_eq!(
+                    e, errors,
+                    "{name} counts {e} errors, metric::score {errors}"
+                );
                 Some(t)
             }
             Ok(out) => {
@@ -231,10 +234,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         );
     }
     if let Some(c) = c_ms {
-        println!(
-            "rust / C     = {:.2}  (target at most 1.2)",
-            rust_ms / c
-        );
+        println!("rust / C     = {:.2}  (target at most 1.2)", rust_ms / c);
     }
     Ok(())
 }

@@ -96,7 +96,7 @@ results="$work/results"
 : >"$results"
 for r in $(seq "$runs"); do
   rm -f "$work"/h.db*
-  "$bin" init --db "$work/h.db" --token-out "$work/admin.token" >/dev/null
+  "$bin" init --db "$work/h.db" --token-out "$work/admin.token" >/dev/null 2>&1
   export HOLDOUT_TOKEN="$(cat "$work/admin.token")"
   start_daemon
   "$py" - "$bin" "$work/labels.csv" "$results" <<'EOF'

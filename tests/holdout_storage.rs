@@ -73,7 +73,13 @@ fn create(
 }
 
 /// The released (rounded) score of one submission.
-fn score(engine: &mut Engine, analyst: &Caller, holdout: &str, ids: &[String], values: RawValues) -> f64 {
+fn score(
+    engine: &mut Engine,
+    analyst: &Caller,
+    holdout: &str,
+    ids: &[String],
+    values: RawValues,
+) -> f64 {
     let out = engine
         .submit(
             analyst,
@@ -119,7 +125,10 @@ fn a_holdout_sent_in_any_order_loads_back_from_its_blobs_after_a_restart() {
     let rows = scrambled(400);
     let ids: Vec<String> = rows.iter().map(|(id, _)| id.clone()).collect();
     let classes = ["a", "b", "c"];
-    let labels: Vec<String> = rows.iter().map(|(_, i)| classes[i % 3].to_string()).collect();
+    let labels: Vec<String> = rows
+        .iter()
+        .map(|(_, i)| classes[i % 3].to_string())
+        .collect();
     // Numbers with their text as written: "2.50" stays "2.50" in the stored labels.
     let numbers: Vec<String> = rows.iter().map(|(_, i)| format!("{}.50", i % 5)).collect();
     let num_ids: Vec<String> = ids.iter().map(|id| format!("n-{id}")).collect();
@@ -127,9 +136,24 @@ fn a_holdout_sent_in_any_order_loads_back_from_its_blobs_after_a_restart() {
         let mut e = engine(&path);
         let custodian = user(&mut e, "cus", Role::Custodian, None);
         user(&mut e, "ana", Role::Analyst, Some("t1"));
-        create(&mut e, &custodian, "cls", target("error", &classes), &ids, &labels).unwrap();
-        create(&mut e, &custodian, "num", target("abs_error:4", &[]), &num_ids, &numbers)
-            .unwrap();
+        create(
+            &mut e,
+            &custodian,
+            "cls",
+            target("error", &classes),
+            &ids,
+            &labels,
+        )
+        .unwrap();
+        create(
+            &mut e,
+            &custodian,
+            "num",
+            target("abs_error:4", &[]),
+            &num_ids,
+            &numbers,
+        )
+        .unwrap();
     }
     let mut e = engine(&path);
     let analyst = Caller {
@@ -181,7 +205,10 @@ fn a_holdout_sent_in_any_order_loads_back_from_its_blobs_after_a_restart() {
         .unwrap()
         .collect::<Result<_, _>>()
         .unwrap();
-    assert_eq!(encodings, [("u8".to_string(), 400), ("lines".to_string(), 5 * 400)]);
+    assert_eq!(
+        encodings,
+        [("u8".to_string(), 400), ("lines".to_string(), 5 * 400)]
+    );
 }
 
 #[test]
@@ -195,7 +222,15 @@ fn a_holdout_stored_one_row_per_id_still_loads_and_keeps_its_rows() {
         let mut e = engine(&path);
         let custodian = user(&mut e, "cus", Role::Custodian, None);
         user(&mut e, "ana", Role::Analyst, Some("t1"));
-        create(&mut e, &custodian, "old", target("error", &["0", "1"]), &ids, &labels).unwrap();
+        create(
+            &mut e,
+            &custodian,
+            "old",
+            target("error", &["0", "1"]),
+            &ids,
+            &labels,
+        )
+        .unwrap();
     }
     // Rewrite it as a holdout created before migration 0005 was: ids in `holdout_rows`,
     // labels a JSON array of strings, no blob.
@@ -204,7 +239,9 @@ fn a_holdout_stored_one_row_per_id_still_loads_and_keeps_its_rows() {
         sorted.sort();
         let conn = rusqlite::Connection::open(&path).unwrap();
         let id: i64 = conn
-            .query_row("SELECT id FROM holdouts WHERE name = 'old'", [], |r| r.get(0))
+            .query_row("SELECT id FROM holdouts WHERE name = 'old'", [], |r| {
+                r.get(0)
+            })
             .unwrap();
         for (pos, (row, _)) in sorted.iter().enumerate() {
             conn.execute(
@@ -253,7 +290,10 @@ fn a_holdout_stored_one_row_per_id_still_loads_and_keeps_its_rows() {
     let y3: Vec<String> = vec!["0".into(), "1".into(), "1".into()];
     match create(&mut e, &custodian, "third", t(), &overlap, &y3) {
         Err(Error::AlreadyExists(m)) => {
-            assert!(m.contains("row id k0042") && m.contains("holdout old"), "{m}")
+            assert!(
+                m.contains("row id k0042") && m.contains("holdout old"),
+                "{m}"
+            )
         }
         other => panic!("an overlap with the old holdout must be refused, got {other:?}"),
     }
@@ -261,7 +301,10 @@ fn a_holdout_stored_one_row_per_id_still_loads_and_keeps_its_rows() {
     overlap[2] = "k9999".into();
     match create(&mut e, &custodian, "third", t(), &overlap, &y3) {
         Err(Error::AlreadyExists(m)) => {
-            assert!(m.contains("row id m099") && m.contains("holdout new"), "{m}")
+            assert!(
+                m.contains("row id m099") && m.contains("holdout new"),
+                "{m}"
+            )
         }
         other => panic!("an overlap with the new holdout must be refused, got {other:?}"),
     }

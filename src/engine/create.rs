@@ -502,8 +502,8 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
         None => {
             // A holdout created before the blobs: one row per id.
             let mut ids = TextArena::default();
-            let mut stmt = conn
-                .prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
+            let mut stmt =
+                conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
             let mut q = stmt.query([id])?;
             while let Some(r) = q.next()? {
                 let id = r

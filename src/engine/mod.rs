@@ -37,13 +37,13 @@ pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
 };
 pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
-pub use rows::{NewRows, Sorted};
-pub(crate) use stored::texts as stored_texts;
 pub use read::{Declared, HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
     SealedRecord,
 };
+pub use rows::{NewRows, Sorted};
+pub(crate) use stored::texts as stored_texts;
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use visibility::{Scope, Visibility};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};

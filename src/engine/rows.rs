@@ -148,7 +148,9 @@ impl Rows {
     pub(crate) fn position(&self, id: &str) -> Option<u32> {
         let index = self.index.get_or_init(|| self.build_index());
         index
-            .find(self.hasher.hash_one(id), |&r| self.ids.get(r as usize) == id)
+            .find(self.hasher.hash_one(id), |&r| {
+                self.ids.get(r as usize) == id
+            })
             .copied()
     }
 
@@ -488,7 +490,7 @@ pub(crate) fn parse_stored(
             }
         }
         "u32le" => {
-            if blob.len() % 4 != 0 {
+            if !blob.len().is_multiple_of(4) {
                 return Err("a partial class index".into());
             }
             check_len(blob.len() / 4)?;
@@ -515,7 +517,10 @@ pub(crate) fn parse_stored(
                     .ok()
                     .filter(|x| x.is_finite())
                     .ok_or_else(|| {
-                        format!("label {v:?} of row id {} is not a finite number", row(rows, i))
+                        format!(
+                            "label {v:?} of row id {} is not a finite number",
+                            row(rows, i)
+                        )
                     })?;
                 out.push(x);
             }
@@ -566,7 +571,7 @@ pub(crate) fn stored_texts(
     };
     match encoding {
         "u8" => blob.iter().map(|&c| class(c as usize)).collect(),
-        "u32le" if blob.len() % 4 == 0 => blob
+        "u32le" if blob.len().is_multiple_of(4) => blob
             .chunks_exact(4)
             .map(|b| class(u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as usize))
             .collect(),
@@ -651,7 +656,10 @@ mod tests {
             new.push(id, &[y])?;
         }
         let err = new.finish().unwrap_err().to_string();
-        assert!(err.contains("row id x") && err.contains("more than once"), "{err}");
+        assert!(
+            err.contains("row id x") && err.contains("more than once"),
+            "{err}"
+        );
         let mut new = NewRows::new(vec![target("abs_error:2", &[])], 0, 0)?;
         new.push("x", &["nan"])?;
         let err = new.finish().unwrap_err().to_string();

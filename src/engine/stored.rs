@@ -214,7 +214,7 @@ pub(super) fn first_overlap(tx: &Connection, rows: &Sorted) -> Result<Option<(St
             match ours.peek() {
                 None => break,
                 Some(id) if id.as_bytes() == other => {
-                    consider(*id, name.clone());
+                    consider(id, name.clone());
                     break;
                 }
                 Some(_) => {}
@@ -240,7 +240,7 @@ pub(super) fn first_overlap(tx: &Connection, rows: &Sorted) -> Result<Option<(St
                     [holdout_id],
                     |r| r.get(0),
                 )?;
-                consider(*id, name);
+                consider(id, name);
                 break;
             }
             Some(_) => {}
@@ -249,20 +249,20 @@ pub(super) fn first_overlap(tx: &Connection, rows: &Sorted) -> Result<Option<(St
     Ok(best)
 }
 
+/// A holdout's ids, and its label columns as text or what is wrong with them.
+pub(crate) type StoredTexts = (Vec<String>, std::result::Result<Vec<Vec<String>>, String>);
+
 /// A stored holdout's ids and each target's label texts, for an audit that reads the labels
 /// from a database file; the labels are `Err` (with what is wrong) when they do not decode.
 ///
 /// # Errors
 /// A database that cannot be read.
-pub(crate) fn texts(
-    conn: &Connection,
-    holdout_id: i64,
-) -> Result<(Vec<String>, std::result::Result<Vec<Vec<String>>, String>)> {
+pub(crate) fn texts(conn: &Connection, holdout_id: i64) -> Result<StoredTexts> {
     let ids: Vec<String> = match read_ids(conn, holdout_id)? {
         Some(arena) => arena.iter().map(str::to_string).collect(),
         None => {
-            let mut stmt = conn
-                .prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
+            let mut stmt =
+                conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
             stmt.query_map([holdout_id], |r| r.get::<_, String>(0))?
                 .collect::<std::result::Result<_, _>>()?
         }

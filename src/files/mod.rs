@@ -262,7 +262,8 @@ pub fn read_column<V>(
 
 /// What every row of a file is handed to, after its id and values passed the checks: its line,
 /// its id and its values (trimmed, in the spec's column order).
-type Sink<'s> = dyn FnMut(u64, &str, &[&str]) -> Result<()> + 's;
+pub type RowSink<'s> = dyn FnMut(u64, &str, &[&str]) -> Result<()> + 's;
+type Sink<'s> = RowSink<'s>;
 
 /// A file read through: its columns and its ids; the values went to the sink.
 struct Scanned {
@@ -295,11 +296,7 @@ pub struct Streamed {
 ///
 /// # Errors
 /// As [`read_table`], and whatever `sink` returns.
-pub fn check_rows(
-    path: &Path,
-    spec: &TableSpec,
-    sink: &mut dyn FnMut(u64, &str, &[&str]) -> Result<()>,
-) -> Result<Streamed> {
+pub fn check_rows(path: &Path, spec: &TableSpec, sink: &mut RowSink<'_>) -> Result<Streamed> {
     match scan(path, spec, Keep::Last, sink) {
         Err(Error::Internal(m)) if m == OUT_OF_ORDER => scan(path, spec, Keep::All, sink),
         other => other,
@@ -312,11 +309,7 @@ pub fn check_rows(
 ///
 /// # Errors
 /// As [`read_table`] except repeated ids, and whatever `sink` returns.
-pub fn stream_rows(
-    path: &Path,
-    spec: &TableSpec,
-    sink: &mut dyn FnMut(u64, &str, &[&str]) -> Result<()>,
-) -> Result<Streamed> {
+pub fn stream_rows(path: &Path, spec: &TableSpec, sink: &mut RowSink<'_>) -> Result<Streamed> {
     scan(path, spec, Keep::Nothing, sink).map(Scanned::streamed)
 }
 
@@ -928,7 +921,10 @@ mod tests {
     }
 
     /// `check_rows` over a file: the rows its sink saw, or the error's field and message.
-    fn check(bytes: &[u8]) -> std::result::Result<(Streamed, Vec<(u64, String)>), (String, String)> {
+    #[allow(clippy::type_complexity)]
+    fn check(
+        bytes: &[u8],
+    ) -> std::result::Result<(Streamed, Vec<(u64, String)>), (String, String)> {
         let dir = tempfile::tempdir().expect("tempdir");
         let path = write(&dir, "labels.csv", bytes);
         let mut seen = Vec::new();
@@ -947,18 +943,27 @@ mod tests {
         // Sorted: one pass, every row seen once.
         let (s, seen) = check(b"id,label\na,1\nb, 2\nc,3\n").expect("sorted file");
         assert_eq!((s.rows, s.id_bytes), (3, 3));
-        assert_eq!(seen, [(2, "a=1".into()), (3, "b=2".into()), (4, "c=3".into())]);
+        assert_eq!(
+            seen,
+            [(2, "a=1".into()), (3, "b=2".into()), (4, "c=3".into())]
+        );
         // Unsorted: read again with an index, so the first rows are seen twice.
         let (s, seen) = check(b"id,label\nb,1\na,2\nc,3\n").expect("unsorted file");
         assert_eq!(s.rows, 3);
         assert_eq!(seen.len(), 3 + 1);
         // A repeat is named with both lines whichever pass finds it, as read_table names it.
-        for bytes in [&b"id,label\na,1\nb,2\nb,3\n"[..], b"id,label\nb,1\na,2\nb,3\n"] {
+        for bytes in [
+            &b"id,label\na,1\nb,2\nb,3\n"[..],
+            b"id,label\nb,1\na,2\nb,3\n",
+        ] {
             let (field, message) = check(bytes).expect_err("a repeated id");
             let (tfield, tmessage) = fail("labels.csv", bytes, &label_spec());
             assert!(field.ends_with("labels.csv:4"), "{field}");
             assert!(message.contains("duplicate id `b`"), "{message}");
-            assert_eq!((field.rsplit('/').next(), message.as_str()), (tfield.rsplit('/').next(), tmessage.as_str()));
+            assert_eq!(
+                (field.rsplit('/').next(), message.as_str()),
+                (tfield.rsplit('/').next(), tmessage.as_str())
+            );
         }
         // The second pass looks for no repeats and keeps nothing.
         let dir = tempfile::tempdir().expect("tempdir");

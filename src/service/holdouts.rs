@@ -92,7 +92,7 @@ impl Holdouts for Daemon {
         // Room for the rows announced, within what the byte limit lets through (a row takes at
         // least a few bytes on the wire).
         let limit = self.limits.max_create_bytes;
-        let rows_hint = spec.rows_hint.min(limit / 4);
+        let rows_hint = spec.rows_hint.min(limit / 8);
         let id_bytes_hint = spec.id_bytes_hint.min(limit);
         let mut rows = NewRows::new(
             targets,
@@ -202,10 +202,7 @@ impl Holdouts for Daemon {
     ) -> Result<Response<Self::GetDeclarationStream>, Status> {
         self.caller(&request).await?;
         let name = request.into_inner().name;
-        let declared = self
-            .db
-            .call(move |engine| engine.declared(&name))
-            .await?;
+        let declared = self.db.call(move |engine| engine.declared(&name)).await?;
         // Chunks are made as the stream is read: the ids are never all copied at once.
         let mut first = Some(
             declared

@@ -257,10 +257,20 @@ pub fn declare(
     let declared = declared_targets(targets, classes)?;
     for (t, target) in declared.iter().enumerate() {
         let k = table.column_index(&target.column).ok_or_else(|| {
-            Error::invalid(table.source.clone(), format!("no column {:?}", target.column))
+            Error::invalid(
+                table.source.clone(),
+                format!("no column {:?}", target.column),
+            )
         })?;
         for r in &table.rows {
-            check_label(&targets[t], target, &table.source, r.line, &r.id, &r.values[k])?;
+            check_label(
+                &targets[t],
+                target,
+                &table.source,
+                r.line,
+                &r.id,
+                &r.values[k],
+            )?;
         }
     }
     Ok(declared)
@@ -466,7 +476,8 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
             columns.push(s.column.clone());
         }
     }
-    let spec_of_file = TableSpec::new(&args.id_column, columns.clone()).max_bytes(args.max_file_bytes);
+    let spec_of_file =
+        TableSpec::new(&args.id_column, columns.clone()).max_bytes(args.max_file_bytes);
     let targets = declared_targets(&specs, args.classes.as_deref())?;
     let positions: Vec<usize> = specs
         .iter()
@@ -522,8 +533,16 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         rows_hint: checked.rows,
         id_bytes_hint: checked.id_bytes,
     };
-    let info = upload(&conn, spec, &args.labels, &spec_of_file, &positions, &checked, fingerprint)
-        .await?;
+    let info = upload(
+        &conn,
+        spec,
+        &args.labels,
+        &spec_of_file,
+        &positions,
+        &checked,
+        fingerprint,
+    )
+    .await?;
     if args.json {
         let mut v = show::holdout_json(&info);
         v["plan"] = plan.json;
