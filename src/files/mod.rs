@@ -292,7 +292,8 @@ pub struct Streamed {
 /// each row to `sink` as `(line, id, values)` and keeping no row: the first pass over a file
 /// too large to hold. While the ids come in increasing order only the last one is kept; at
 /// the first id out of order the file is read again from the start with a table of the ids
-/// (so then `sink` sees the first rows twice, and the ids, not the values, are held).
+/// (so then `sink` sees the first rows twice, the second time with lines starting over; and
+/// the ids, not the values, are held).
 ///
 /// # Errors
 /// As [`read_table`], and whatever `sink` returns.

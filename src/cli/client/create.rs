@@ -487,10 +487,16 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     // which the second pass, the upload, must reproduce.
     let mut fingerprint = Fingerprint::new();
     let source = args.labels.display().to_string();
+    let mut last_line = 0;
     let checked = files::check_rows(&args.labels, &spec_of_file, &mut |line, id, values| {
         for (t, &k) in positions.iter().enumerate() {
             check_label(&specs[t], &targets[t], &source, line, id, values[k])?;
         }
+        // Lines start over when the check reads the file again (ids out of order).
+        if line <= last_line {
+            fingerprint = fingerprint.restart();
+        }
+        last_line = line;
         fingerprint.add(id, values);
         Ok(())
     })?;
