@@ -478,7 +478,14 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     }
     let spec_of_file =
         TableSpec::new(&args.id_column, columns.clone()).max_bytes(args.max_file_bytes);
-    let targets = declared_targets(&specs, args.classes.as_deref())?;
+    let targets = match declared_targets(&specs, args.classes.as_deref()) {
+        Ok(targets) => targets,
+        Err(e) => {
+            // The file's own problems (unreadable, a column missing) are named first.
+            files::check_rows(&args.labels, &spec_of_file, &mut |_, _, _| Ok(()))?;
+            return Err(e.into());
+        }
+    };
     let positions: Vec<usize> = specs
         .iter()
         .map(|s| columns.iter().position(|c| *c == s.column).unwrap_or(0))
