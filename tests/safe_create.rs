@@ -54,3 +54,88 @@ fn a_policy_that_affords_too_few_answers_seals_nothing() {
     let list = d.admin(&["list", "--json"]).ok().stdout;
     assert!(list.contains("\"yard\""), "{list}");
 }
+
+/// The CLI reads a labels file twice (a check, then the upload in chunks through a bounded
+/// queue): a file whose ids are out of order, longer than several chunks, makes the same
+/// holdout as the same rows sorted, and a repeated id far into it is named with both lines.
+#[test]
+fn a_labels_file_in_any_order_is_checked_then_streamed_in_chunks() {
+    let d = Daemon::start();
+    let n = 20_000;
+    let mut rows: Vec<String> = (0..n)
+        .map(|i| format!("u{:06},{}", (i * 7919) % n, ["cat", "dog"][i % 2]))
+        .collect();
+    let body = |rows: &[String]| format!("id,label\n{}\n", rows.join("\n"));
+    let shuffled = d.write("shuffled.csv", &body(&rows));
+    let info = d
+        .admin(&[
+            "create",
+            "pets",
+            "--labels",
+            shuffled.as_str(),
+            "--metric",
+            "error",
+            "--classes",
+            "cat,dog",
+            "--tolerance",
+            "0.5",
+            "--json",
+        ])
+        .ok()
+        .stdout;
+    assert!(
+        info.contains("\"rows\": 20000") || info.contains("\"rows\":20000"),
+        "{info}"
+    );
+    // The same ids again (with one more row, so the labels differ) are refused by the daemon:
+    // they belong to `pets`.
+    rows.push("zz,cat".into());
+    rows.sort();
+    let sorted = d.write("sorted.csv", &body(&rows));
+    let r = d
+        .admin(&[
+            "create",
+            "again",
+            "--labels",
+            sorted.as_str(),
+            "--metric",
+            "error",
+            "--classes",
+            "dog,cat",
+            "--tolerance",
+            "0.5",
+        ])
+        .code(7);
+    assert!(
+        r.stderr
+            .contains("row id u000000 already belongs to holdout pets"),
+        "{}",
+        r.stderr
+    );
+    // A repeat on the last line of an unsorted file: found by the check, nothing sent.
+    let mut repeated: Vec<String> = (0..n)
+        .map(|i| format!("w{:06},cat", (i * 7919) % n))
+        .collect();
+    repeated.push(repeated[3].clone());
+    let path = d.write("repeated.csv", &body(&repeated));
+    let r = d
+        .admin(&[
+            "create",
+            "twice",
+            "--labels",
+            path.as_str(),
+            "--metric",
+            "error",
+            "--classes",
+            "cat,dog",
+            "--tolerance",
+            "0.5",
+        ])
+        .code(2);
+    assert!(
+        r.stderr
+            .contains("duplicate id `w003757`: first on line 5, again on line 20002"),
+        "{}",
+        r.stderr
+    );
+}

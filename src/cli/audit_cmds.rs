@@ -630,25 +630,7 @@ fn from_db(
     let id: i64 = conn.query_row("SELECT id FROM holdouts WHERE name = ?1", [name], |r| {
         r.get(0)
     })?;
-    let mut stmt =
-        conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
-    let ids = stmt
-        .query_map([id], |r| r.get::<_, String>(0))?
-        .collect::<Result<Vec<_>, _>>()?;
-    let mut stmt =
-        conn.prepare("SELECT labels FROM sealed_labels WHERE holdout_id = ?1 ORDER BY target")?;
-    let blobs = stmt
-        .query_map([id], |r| r.get::<_, Vec<u8>>(0))?
-        .collect::<Result<Vec<_>, _>>()?;
-    let columns = blobs
-        .iter()
-        .enumerate()
-        .map(|(t, b)| {
-            serde_json::from_slice::<Vec<String>>(b).map_err(|e| {
-                format!("the sealed labels of target {t} in the database are unreadable: {e}")
-            })
-        })
-        .collect::<std::result::Result<Vec<_>, _>>();
+    let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
     let at = crate::auth::rfc3339(chrono::Utc::now());
     Ok((
         Export::new(name, &at, entries, users),

@@ -216,6 +216,11 @@ pub(crate) fn row_losses(metric: &Metric, labels: &Labels, preds: &Predictions) 
         (Labels::Classes(y), Predictions::Classes(p)) => y
             .iter()
             .zip(p)
+            .map(|(a, b)| if u32::from(*a) == *b { 0.0 } else { 1.0 })
+            .collect(),
+        (Labels::ManyClasses(y), Predictions::Classes(p)) => y
+            .iter()
+            .zip(p)
             .map(|(a, b)| if a == b { 0.0 } else { 1.0 })
             .collect(),
         (Labels::Numbers(y), Predictions::Numbers(p)) => y

@@ -6,15 +6,15 @@ use std::collections::HashSet;
 use rusqlite::{OptionalExtension, params};
 use serde::{Deserialize, Serialize};
 use serde_json::json;
-use sha2::{Digest, Sha256};
 
 use super::account::{HoldoutPolicy, PolicyInput};
-use super::{Engine, Loaded, unknown_holdout};
+use super::rows::{NewRows, Rows, TextArena, parse_stored};
+use super::{Engine, Loaded, stored, unknown_holdout};
 use crate::audit::family::Membership;
 use crate::auth::{Caller, Role, check_name, rfc3339};
 use crate::error::{Error, Result};
 use crate::ledger;
-use crate::metric::{Metric, parse_labels};
+use crate::metric::Metric;
 
 /// One target of a holdout: a label column scored with a metric.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -48,6 +48,17 @@ pub struct CreateRequest {
     pub columns: Vec<Vec<String>>,
 }
 
+/// The declaration of a holdout whose rows come separately ([`NewRows`]).
+#[derive(Debug, Clone)]
+pub struct CreateHead {
+    /// Name.
+    pub name: String,
+    /// Description.
+    pub description: String,
+    /// Policy as given.
+    pub policy: PolicyInput,
+}
+
 /// Membership asked for at creation: the holdout joins family `name`, its own delta being its
 /// share of the family's total. The first member fixes the total (`total` must be given); later
 /// members may omit it or must repeat it exactly.
@@ -64,7 +75,7 @@ const QUOTE_MAX: usize = 40;
 
 /// A value for an error message: quoted, cut after [`QUOTE_MAX`] characters with its length
 /// stated, so a huge cell never comes back whole.
-fn quote(v: &str) -> String {
+pub(super) fn quote(v: &str) -> String {
     if v.chars().count() <= QUOTE_MAX {
         format!("{v:?}")
     } else {
@@ -117,34 +128,56 @@ impl Engine {
         family: Option<FamilyRequest>,
         expect: u32,
     ) -> Result<super::HoldoutView> {
-        caller.require("creating a holdout", &[Role::Custodian])?;
-        check_name("holdout name", &req.name)?;
-        let description_chars = req.description.chars().count();
-        if description_chars > MAX_DESCRIPTION_CHARS {
-            return Err(Error::invalid(
-                "description",
-                format!(
-                    "at most {MAX_DESCRIPTION_CHARS} characters, got {description_chars} (it is \
-                     shown to every user and kept in the append-only ledger)"
-                ),
-            ));
-        }
-        if let Some(f) = &family {
-            check_name("family name", &f.name)?;
-            if let Some(t) = f.total
-                && !(t > 0.0 && t < 1.0)
-            {
-                return Err(Error::invalid(
-                    "family delta",
-                    format!("the family's total delta must lie in (0, 1), got {t}"),
-                ));
-            }
-        }
+        let head = CreateHead {
+            name: req.name,
+            description: req.description,
+            policy: req.policy,
+        };
+        check_head(caller, &head, family.as_ref())?;
         if req.ids.is_empty() {
             return Err(Error::invalid("labels", "no label rows were sent"));
         }
-        let targets = check_targets(req.targets, &req.columns)?;
-        let policy = HoldoutPolicy::build(&req.policy, targets, req.ids.len() as u64)?;
+        let mut rows = NewRows::new(req.targets, req.ids.len(), 0)?;
+        if rows.targets().len() != req.columns.len() {
+            return Err(Error::invalid(
+                "labels",
+                format!(
+                    "{} targets but {} label columns",
+                    rows.targets().len(),
+                    req.columns.len()
+                ),
+            ));
+        }
+        let mut values: Vec<&str> = Vec::with_capacity(req.columns.len());
+        for (i, id) in req.ids.iter().enumerate() {
+            values.clear();
+            for c in &req.columns {
+                values.push(c.get(i).map_or("", String::as_str));
+            }
+            rows.push(id, &values)?;
+        }
+        drop(values);
+        self.create_streamed(caller, head, rows, family, expect)
+    }
+
+    /// Creates a holdout from rows built as they arrived ([`NewRows`]: the gRPC stream adds
+    /// each chunk as it comes), with the checks of [`Engine::create_expecting`]. The rows are
+    /// sorted in place of a copy, digested, and written to the store as blobs; nothing of them
+    /// is kept once the holdout is stored (it is loaded back compact).
+    pub fn create_streamed(
+        &mut self,
+        caller: &Caller,
+        head: CreateHead,
+        rows: NewRows,
+        family: Option<FamilyRequest>,
+        expect: u32,
+    ) -> Result<super::HoldoutView> {
+        check_head(caller, &head, family.as_ref())?;
+        if rows.is_empty() {
+            return Err(Error::invalid("labels", "no label rows were sent"));
+        }
+        let n = rows.len();
+        let policy = HoldoutPolicy::build(&head.policy, rows.targets().to_vec(), n as u64)?;
         if let Some(deadline) = policy.closes_at
             && deadline <= self.now()
         {
@@ -152,38 +185,12 @@ impl Engine {
                 "closes_at",
                 format!(
                     "{} is already past: the round would refuse every entry; nothing was sealed",
-                    req.policy.closes_at
+                    head.policy.closes_at
                 ),
             ));
         }
-
         // Canonical order: rows sorted by id, so digests do not depend on file order.
-        let mut order: Vec<usize> = (0..req.ids.len()).collect();
-        order.sort_by(|&a, &b| req.ids[a].cmp(&req.ids[b]));
-        let ids: Vec<String> = order
-            .iter()
-            .map(|&i| req.ids[i].trim().to_string())
-            .collect();
-        for (i, id) in ids.iter().enumerate() {
-            if id.is_empty() {
-                return Err(Error::invalid("labels", "a row has an empty id"));
-            }
-            if i > 0 && ids[i - 1] == *id {
-                return Err(Error::invalid(
-                    format!("row id {id}"),
-                    "appears more than once in the labels",
-                ));
-            }
-        }
-        let columns: Vec<Vec<String>> = req
-            .columns
-            .iter()
-            .map(|c| order.iter().map(|&i| c[i].trim().to_string()).collect())
-            .collect();
-        for (t, col) in policy.targets.iter().zip(&columns) {
-            check_domain(t, col, &ids)?;
-            parse_labels(&t.metric, &t.classes, col, &ids)?;
-        }
+        let sorted = rows.finish()?;
         // With one pool (no per-team shares) the fresh budget is everyone's: it must afford the
         // answers asked for. Per-team pools are checked by `plan`, not here.
         if policy.core.shares == crate::stats::schedule::Shares::None {
@@ -193,21 +200,17 @@ impl Engine {
                 return Err(Error::invalid(
                     "policy",
                     format!(
-                        "it affords {} answers within the tolerance {} at worst case on {} rows, \
+                        "it affords {} answers within the tolerance {} at worst case on {n} rows, \
                          fewer than the {expect} expected; nothing was sealed and the labels \
                          stay free. Widen --tolerance, add rows, or pick a rule or schedule that \
-                         fits (`holdout plan --rows {} --tolerance {}`)",
-                        fresh.queries_left,
-                        req.policy.tolerance,
-                        req.ids.len(),
-                        req.ids.len(),
-                        req.policy.tolerance
+                         fits (`holdout plan --rows {n} --tolerance {}`)",
+                        fresh.queries_left, head.policy.tolerance, head.policy.tolerance
                     ),
                 ));
             }
         }
-        let labels_digest = labels_digest(&policy, &columns);
-        let ids_digest = ids_digest(&ids);
+        let labels_digest = sorted.labels_digest();
+        let ids_digest = sorted.ids_digest();
 
         let now = self.now();
         let at = rfc3339(now);
@@ -217,14 +220,14 @@ impl Engine {
             let exists: Option<i64> = tx
                 .query_row(
                     "SELECT id FROM holdouts WHERE name = ?1",
-                    [&req.name],
+                    [&head.name],
                     |r| r.get(0),
                 )
                 .optional()?;
             if exists.is_some() {
                 return Err(Error::AlreadyExists(format!(
                     "holdout {} already exists",
-                    req.name
+                    head.name
                 )));
             }
             let same_labels: Option<String> = tx
@@ -241,23 +244,12 @@ impl Engine {
                      row-disjoint holdouts with `holdout split`"
                 )));
             }
-            {
-                let mut check = tx.prepare_cached(
-                    "SELECT h.name FROM holdout_rows r JOIN holdouts h ON h.id = r.holdout_id
-                     WHERE r.row_id = ?1",
-                )?;
-                for id in &ids {
-                    if let Some(other) = check
-                        .query_row([id], |r| r.get::<_, String>(0))
-                        .optional()?
-                    {
-                        return Err(Error::AlreadyExists(format!(
-                            "row id {id} already belongs to holdout {other}: overlapping rows would \
-                             be charged twice against independent budgets. Use targets of one holdout \
-                             for several label columns, or `holdout split` for row-disjoint holdouts"
-                        )));
-                    }
-                }
+            if let Some((id, other)) = stored::first_overlap(tx, &sorted)? {
+                return Err(Error::AlreadyExists(format!(
+                    "row id {id} already belongs to holdout {other}: overlapping rows would \
+                     be charged twice against independent budgets. Use targets of one holdout \
+                     for several label columns, or `holdout split` for row-disjoint holdouts"
+                )));
             }
             let membership = match &family {
                 Some(f) => Some(join_family(tx, f, policy.input.delta, &at)?),
@@ -270,9 +262,9 @@ impl Engine {
                                        labels_digest, created_at)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
                 params![
-                    req.name,
-                    req.description,
-                    ids.len() as i64,
+                    head.name,
+                    head.description,
+                    n as i64,
                     policy_json,
                     serde_json::to_string(&policy.targets).unwrap_or_default(),
                     labels_digest,
@@ -286,26 +278,11 @@ impl Engine {
                     params![holdout_id, m.name, m.share],
                 )?;
             }
-            {
-                let mut ins = tx.prepare_cached(
-                    "INSERT INTO holdout_rows (row_id, holdout_id, pos) VALUES (?1, ?2, ?3)",
-                )?;
-                for (pos, id) in ids.iter().enumerate() {
-                    ins.execute(params![id, holdout_id, pos as i64])?;
-                }
-            }
-            for (t, col) in columns.iter().enumerate() {
-                let blob = serde_json::to_vec(col)
-                    .map_err(|e| Error::Internal(format!("label encoding: {e}")))?;
-                tx.execute(
-                    "INSERT INTO sealed_labels (holdout_id, target, labels) VALUES (?1, ?2, ?3)",
-                    params![holdout_id, t as i64, blob],
-                )?;
-            }
+            stored::write_rows(tx, holdout_id, &sorted)?;
             let mut genesis = json!({
-                "holdout": req.name,
-                "description": req.description,
-                "rows": ids.len(),
+                "holdout": head.name,
+                "description": head.description,
+                "rows": n,
                 "policy": serde_json::to_value(&policy).unwrap_or_default(),
                 "declaration": {
                     "row_ids_sha256": ids_digest,
@@ -321,13 +298,44 @@ impl Engine {
             if let Some(m) = &membership {
                 genesis["family"] = m.to_json();
             }
-            self.append(&req.name, ledger::Kind::Genesis, &genesis, None)?;
+            self.append(&head.name, ledger::Kind::Genesis, &genesis, None)?;
             Ok(())
         })();
+        // The rows are in the store: free them before the holdout is loaded back.
+        drop(sorted);
         self.end_write(result)?;
-        tracing::info!(holdout = %req.name, rows = ids.len(), by = %caller.name, "created holdout");
-        self.holdout_view(caller, &req.name)
+        tracing::info!(holdout = %head.name, rows = n, by = %caller.name, "created holdout");
+        self.holdout_view(caller, &head.name)
     }
+}
+
+/// The checks of a creation that need no rows: the caller's role, the name, the description's
+/// length and the family's name and total.
+fn check_head(caller: &Caller, head: &CreateHead, family: Option<&FamilyRequest>) -> Result<()> {
+    caller.require("creating a holdout", &[Role::Custodian])?;
+    check_name("holdout name", &head.name)?;
+    let description_chars = head.description.chars().count();
+    if description_chars > MAX_DESCRIPTION_CHARS {
+        return Err(Error::invalid(
+            "description",
+            format!(
+                "at most {MAX_DESCRIPTION_CHARS} characters, got {description_chars} (it is \
+                 shown to every user and kept in the append-only ledger)"
+            ),
+        ));
+    }
+    if let Some(f) = family {
+        check_name("family name", &f.name)?;
+        if let Some(t) = f.total
+            && !(t > 0.0 && t < 1.0)
+        {
+            return Err(Error::invalid(
+                "family delta",
+                format!("the family's total delta must lie in (0, 1), got {t}"),
+            ));
+        }
+    }
+    Ok(())
 }
 
 /// Joins (or founds) a family inside the creating transaction: checks the total against the
@@ -409,40 +417,11 @@ fn round_down(x: f64) -> f64 {
     (x * scale).floor() / scale
 }
 
-/// Checks every label of a target against its declared domain before anything is stored,
-/// naming the target and the row id (both cut short when long) of the first label outside it.
-fn check_domain(t: &TargetDecl, col: &[String], ids: &[String]) -> Result<()> {
-    if !(t.metric.uses_classes() || t.metric.fixed_classes().is_some()) {
-        return Ok(());
-    }
-    for (v, id) in col.iter().zip(ids) {
-        if !t.classes.iter().any(|c| c == v) {
-            return Err(Error::invalid(
-                format!("labels of target {}", t.name),
-                format!(
-                    "row id {} has label {}, which is not among the declared classes",
-                    quote(id),
-                    quote(v)
-                ),
-            ));
-        }
-    }
-    Ok(())
-}
-
-fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Vec<TargetDecl>> {
+/// Checks the declared targets (names, methods, classes) and fixes the classes of the
+/// metrics that imply theirs.
+pub(super) fn check_targets(targets: Vec<TargetDecl>) -> Result<Vec<TargetDecl>> {
     if targets.is_empty() {
         return Err(Error::invalid("targets", "declare at least one target"));
-    }
-    if targets.len() != columns.len() {
-        return Err(Error::invalid(
-            "labels",
-            format!(
-                "{} targets but {} label columns",
-                targets.len(),
-                columns.len()
-            ),
-        ));
     }
     let mut seen = HashSet::new();
     let mut out = Vec::with_capacity(targets.len());
@@ -506,29 +485,6 @@ fn check_targets(targets: Vec<TargetDecl>, columns: &[Vec<String>]) -> Result<Ve
     Ok(out)
 }
 
-/// SHA-256 over every target's labels in canonical row order (ids excluded, so the same labels
-/// under new ids are still recognised).
-fn labels_digest(policy: &HoldoutPolicy, columns: &[Vec<String>]) -> String {
-    let mut h = Sha256::new();
-    for (t, col) in policy.targets.iter().zip(columns) {
-        h.update(format!("target\n{}\n", t.metric).as_bytes());
-        for v in col {
-            h.update(v.as_bytes());
-            h.update(b"\n");
-        }
-    }
-    hex::encode(h.finalize())
-}
-
-fn ids_digest(ids: &[String]) -> String {
-    let mut h = Sha256::new();
-    for id in ids {
-        h.update(id.as_bytes());
-        h.update(b"\n");
-    }
-    hex::encode(h.finalize())
-}
-
 /// Loads a holdout's immutable facts.
 pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
     let row: Option<(i64, String, String, String)> = conn
@@ -541,29 +497,32 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
     let (id, description, created_at, policy_json) = row.ok_or_else(|| unknown_holdout(name))?;
     let policy: HoldoutPolicy = serde_json::from_str(&policy_json)
         .map_err(|e| Error::Internal(format!("stored policy of {name}: {e}")))?;
-    let mut ids = Vec::new();
-    {
-        let mut stmt =
-            conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
-        for id in stmt.query_map([id], |r| r.get::<_, String>(0))? {
-            ids.push(id?);
+    let ids = match stored::read_ids(conn, id)? {
+        Some(ids) => ids,
+        None => {
+            // A holdout created before the blobs: one row per id.
+            let mut ids = TextArena::default();
+            let mut stmt =
+                conn.prepare("SELECT row_id FROM holdout_rows WHERE holdout_id = ?1 ORDER BY pos")?;
+            let mut q = stmt.query([id])?;
+            while let Some(r) = q.next()? {
+                let id = r
+                    .get_ref(0)?
+                    .as_str()
+                    .map_err(|e| Error::Internal(format!("a stored row id: {e}")))?;
+                ids.push(id)?;
+            }
+            ids
         }
-    }
-    let positions: hashbrown::HashMap<String, u32> = ids
-        .iter()
-        .enumerate()
-        .map(|(i, s)| (s.clone(), i as u32))
-        .collect();
+    };
+    let rows = Rows::new(ids);
     let mut labels = Vec::new();
     for (t, target) in policy.targets.iter().enumerate() {
-        let blob: Vec<u8> = conn.query_row(
-            "SELECT labels FROM sealed_labels WHERE holdout_id = ?1 AND target = ?2",
-            params![id, t as i64],
-            |r| r.get(0),
-        )?;
-        let col: Vec<String> = serde_json::from_slice(&blob)
-            .map_err(|e| Error::Internal(format!("stored labels of {name}: {e}")))?;
-        labels.push(parse_labels(&target.metric, &target.classes, &col, &ids)?);
+        let (encoding, blob) = stored::read_labels(conn, id, t)?;
+        labels.push(
+            parse_stored(target, &encoding, &blob, &rows)
+                .map_err(|m| Error::Internal(format!("stored labels of {name}: {m}")))?,
+        );
     }
     let genesis_hash: String = conn.query_row(
         "SELECT hash FROM ledger WHERE chain = ?1 AND seq = 0",
@@ -576,8 +535,7 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
         description,
         created_at,
         policy,
-        ids,
-        positions,
+        rows,
         labels,
         genesis_hash,
     })

@@ -20,6 +20,8 @@ mod read;
 mod reader;
 mod records;
 mod replay;
+mod rows;
+mod stored;
 mod submit;
 mod visibility;
 mod worker;
@@ -34,12 +36,14 @@ pub use clock::{Clock, FixedClock, SystemClock};
 pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
 };
-pub use create::{CreateRequest, FamilyRequest, TargetDecl};
-pub use read::{HistoryItem, HoldoutView};
+pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
+pub use read::{Declared, HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
     SealedRecord,
 };
+pub use rows::{NewRows, Sorted};
+pub(crate) use stored::texts as stored_texts;
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};
 pub use visibility::{Scope, Visibility};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
@@ -92,10 +96,8 @@ pub(crate) struct Loaded {
     pub(crate) description: String,
     pub(crate) created_at: String,
     pub(crate) policy: HoldoutPolicy,
-    pub(crate) ids: Vec<String>,
-    /// Row of each id, under a fast hash (foldhash, seeded per process): submissions whose
-    /// ids do not arrive in the declared order are joined through it.
-    pub(crate) positions: hashbrown::HashMap<String, u32>,
+    /// Row ids in the canonical order, and the row of each id (`rows::Rows`).
+    pub(crate) rows: rows::Rows,
     pub(crate) labels: Vec<Labels>,
     pub(crate) genesis_hash: String,
 }

@@ -61,7 +61,7 @@ impl Engine {
         Ok(HoldoutView {
             name: loaded.name.clone(),
             description: loaded.description.clone(),
-            rows: loaded.ids.len() as u64,
+            rows: loaded.rows.len() as u64,
             policy: loaded.policy.clone(),
             created_at: loaded.created_at.clone(),
             open: closed.is_none(),
@@ -216,8 +216,14 @@ impl Engine {
 
     /// The public declaration: targets and row ids.
     pub fn declaration(&mut self, name: &str) -> Result<(Vec<super::TargetDecl>, Vec<String>)> {
-        let loaded = self.loaded(name)?;
-        Ok((loaded.policy.targets.clone(), loaded.ids.clone()))
+        let d = self.declared(name)?;
+        Ok((d.targets().to_vec(), d.ids(0..d.len())))
+    }
+
+    /// The public declaration, read from the loaded holdout when asked (ids are copied a
+    /// range at a time, not all at once).
+    pub fn declared(&mut self, name: &str) -> Result<Declared> {
+        Ok(Declared(self.loaded(name)?))
     }
 
     /// Closes a holdout (organizer).
@@ -261,5 +267,34 @@ impl Engine {
             engine.append(name, ledger::Kind::Close, &body, None)
         })?;
         self.holdout_view(caller, name)
+    }
+}
+
+/// A holdout's public declaration, shared with its loaded form: targets and row ids.
+#[derive(Debug, Clone)]
+pub struct Declared(std::sync::Arc<super::Loaded>);
+
+impl Declared {
+    /// The targets.
+    pub fn targets(&self) -> &[super::TargetDecl] {
+        &self.0.policy.targets
+    }
+
+    /// Number of rows.
+    pub fn len(&self) -> usize {
+        self.0.rows.len()
+    }
+
+    /// Whether there are no rows (never true for a stored holdout).
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The ids of a range of rows, in the canonical order (the range is cut to the rows).
+    pub fn ids(&self, range: std::ops::Range<usize>) -> Vec<String> {
+        let end = range.end.min(self.len());
+        (range.start.min(end)..end)
+            .map(|i| self.0.rows.id(i).to_string())
+            .collect()
     }
 }

@@ -180,7 +180,7 @@ impl Engine {
         let digest = crate::audit::predictions_digest(&target.name, &target.classes, &preds);
         if req.mode == SubmitMode::Validate {
             return Ok(SubmitOutcome::Validation {
-                rows: loaded.ids.len() as u64,
+                rows: loaded.rows.len() as u64,
                 digest,
             });
         }
@@ -666,7 +666,7 @@ fn join(
     model: &ModelPredictions,
     label: &str,
 ) -> Result<Predictions> {
-    let n = loaded.ids.len();
+    let n = loaded.rows.len();
     let given = match &model.values {
         RawValues::Classes(v) => v.len(),
         RawValues::ClassIndices(v) => v.len(),
@@ -756,19 +756,19 @@ fn join(
 /// An id the holdout does not have, an id predicted twice, and a missing row (the first in
 /// the declared order, with how many are missing).
 fn slots(loaded: &Loaded, model: &ModelPredictions, label: &str) -> Result<Option<Vec<u32>>> {
-    let n = loaded.ids.len();
+    let n = loaded.rows.len();
     if model.ids.len() == n
         && model
             .ids
             .iter()
-            .zip(&loaded.ids)
+            .zip(loaded.rows.iter())
             .all(|(given, declared)| given.trim() == declared)
     {
         return Ok(None);
     }
     let mut slot: Vec<u32> = vec![u32::MAX; n];
     for (i, id) in model.ids.iter().enumerate() {
-        let pos = *loaded.positions.get(id.trim()).ok_or_else(|| {
+        let pos = loaded.rows.position(id.trim()).ok_or_else(|| {
             Error::invalid(
                 format!("{label}, row id {id}"),
                 format!("not a row of holdout {} (see `holdout ids`)", loaded.name),
@@ -785,7 +785,7 @@ fn slots(loaded: &Loaded, model: &ModelPredictions, label: &str) -> Result<Optio
     if let Some(missing) = slot.iter().position(|s| *s == u32::MAX) {
         let count = slot.iter().filter(|s| **s == u32::MAX).count();
         return Err(Error::invalid(
-            format!("{label}, row id {}", loaded.ids[missing]),
+            format!("{label}, row id {}", loaded.rows.id(missing)),
             format!("missing: every row needs a prediction ({count} missing)"),
         ));
     }

@@ -175,7 +175,7 @@ pub fn detect_format(path: &Path, first_bytes: &[u8]) -> Format {
 /// value, and more rows than [`TableSpec::max_rows`].
 pub fn read_table(path: &Path, spec: &TableSpec) -> Result<Table> {
     let mut values: Vec<Vec<String>> = Vec::new();
-    let read = scan(path, spec, &mut |_, _, v| {
+    let read = scan(path, spec, Keep::All, &mut |_, _, v| {
         values.push(v.iter().map(|s| s.to_string()).collect());
         Ok(())
     })?;
@@ -246,7 +246,7 @@ pub fn read_column<V>(
     }
     let source = path.display().to_string();
     let mut values = Vec::new();
-    let read = scan(path, spec, &mut |line, id, v| {
+    let read = scan(path, spec, Keep::All, &mut |line, id, v| {
         let x = convert(v[0], id).map_err(|m| Error::invalid(format!("{source}:{line}"), m))?;
         values.push(x);
         Ok(())
@@ -262,7 +262,8 @@ pub fn read_column<V>(
 
 /// What every row of a file is handed to, after its id and values passed the checks: its line,
 /// its id and its values (trimmed, in the spec's column order).
-type Sink<'s> = dyn FnMut(u64, &str, &[&str]) -> Result<()> + 's;
+pub type RowSink<'s> = dyn FnMut(u64, &str, &[&str]) -> Result<()> + 's;
+type Sink<'s> = RowSink<'s>;
 
 /// A file read through: its columns and its ids; the values went to the sink.
 struct Scanned {
@@ -272,7 +273,63 @@ struct Scanned {
     ids: Ids,
 }
 
-fn scan(path: &Path, spec: &TableSpec, sink: &mut Sink<'_>) -> Result<Scanned> {
+/// What a file read by [`check_rows`] or [`stream_rows`] held (its rows went to the sink).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Streamed {
+    /// The file, as given (used in messages).
+    pub source: String,
+    /// Its layout.
+    pub format: Format,
+    /// The value columns, in the order of the values handed to the sink.
+    pub columns: Vec<String>,
+    /// Data rows.
+    pub rows: u64,
+    /// Bytes of all the (trimmed) ids.
+    pub id_bytes: u64,
+}
+
+/// Reads a file through with every check of [`read_table`] (repeated ids included), handing
+/// each row to `sink` as `(line, id, values)` and keeping no row: the first pass over a file
+/// too large to hold. While the ids come in increasing order only the last one is kept; at
+/// the first id out of order the file is read again from the start with a table of the ids
+/// (so then `sink` sees the first rows twice, the second time with lines starting over; and
+/// the ids, not the values, are held).
+///
+/// # Errors
+/// As [`read_table`], and whatever `sink` returns.
+pub fn check_rows(path: &Path, spec: &TableSpec, sink: &mut RowSink<'_>) -> Result<Streamed> {
+    match scan(path, spec, Keep::Last, sink) {
+        Err(Error::Internal(m)) if m == OUT_OF_ORDER => scan(path, spec, Keep::All, sink),
+        other => other,
+    }
+    .map(Scanned::streamed)
+}
+
+/// Reads a file through as [`check_rows`] does but without looking for repeated ids (for a
+/// second pass over a file [`check_rows`] has checked): nothing is kept.
+///
+/// # Errors
+/// As [`read_table`] except repeated ids, and whatever `sink` returns.
+pub fn stream_rows(path: &Path, spec: &TableSpec, sink: &mut RowSink<'_>) -> Result<Streamed> {
+    scan(path, spec, Keep::Nothing, sink).map(Scanned::streamed)
+}
+
+/// The internal signal of [`Keep::Last`] that an id came out of order.
+const OUT_OF_ORDER: &str = "files: an id out of order";
+
+impl Scanned {
+    fn streamed(self) -> Streamed {
+        Streamed {
+            source: self.source,
+            format: self.format,
+            columns: self.columns,
+            rows: self.ids.count,
+            id_bytes: self.ids.id_bytes,
+        }
+    }
+}
+
+fn scan(path: &Path, spec: &TableSpec, keep: Keep, sink: &mut Sink<'_>) -> Result<Scanned> {
     let source = path.display().to_string();
     let meta = std::fs::metadata(path).map_err(|e| open_error(&source, &e))?;
     if meta.is_dir() {
@@ -305,15 +362,18 @@ fn scan(path: &Path, spec: &TableSpec, sink: &mut Sink<'_>) -> Result<Scanned> {
     head.truncate(got);
     let format = detect_format(path, &head);
     let mut builder = Builder::new(source, format, spec, sink);
+    builder.ids.keep = keep;
     // Room for the rows up front: growing a duplicate index rehashes every id read so far.
     // A row takes at least 4 bytes (`a,b` and a newline); without a row limit, a guess.
     let rows = match &spec.max_rows {
         Some((max, _)) => (*max).min(meta.len() / 4 + 1),
         None => meta.len() / 32,
     };
-    builder
-        .ids
-        .reserve(usize::try_from(rows).unwrap_or(0).min(1 << 26));
+    if keep == Keep::All {
+        builder
+            .ids
+            .reserve(usize::try_from(rows).unwrap_or(0).min(1 << 26));
+    }
     match format {
         Format::Csv => read_csv(scan::Scanner::new(file, &head), &mut builder)?,
         Format::JsonLines => read_jsonl(
@@ -339,6 +399,13 @@ fn open_error(source: &str, e: &std::io::Error) -> Error {
 /// the order on, a hash table of row numbers, hashed by the id each points to.
 #[derive(Default)]
 struct Ids {
+    /// What is kept of the ids.
+    keep: Keep,
+    /// Rows pushed, and the bytes of their ids.
+    count: u64,
+    id_bytes: u64,
+    /// The last id ([`Keep::Last`]).
+    last: String,
     ids: Vec<String>,
     lines: Vec<u64>,
     /// Built at the first id out of order; empty (and unused) before.
@@ -347,6 +414,18 @@ struct Ids {
     /// Rows expected in all, for the index's size.
     expected: usize,
     hasher: hashbrown::DefaultHashBuilder,
+}
+
+/// What [`Ids`] keeps.
+#[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
+enum Keep {
+    /// Every id and its line (repeats found, ids returned).
+    #[default]
+    All,
+    /// The last id only: an id out of order is an error ([`OUT_OF_ORDER`]).
+    Last,
+    /// Nothing: repeats are not looked for.
+    Nothing,
 }
 
 impl Ids {
@@ -358,7 +437,17 @@ impl Ids {
     }
 
     /// The line of an earlier row with this id.
-    fn find(&mut self, id: &str) -> Option<u64> {
+    fn find(&mut self, id: &str) -> Result<Option<u64>> {
+        match self.keep {
+            Keep::All => Ok(self.find_kept(id)),
+            Keep::Last if self.count > 0 && id <= self.last.as_str() => {
+                Err(Error::Internal(OUT_OF_ORDER.into()))
+            }
+            Keep::Last | Keep::Nothing => Ok(None),
+        }
+    }
+
+    fn find_kept(&mut self, id: &str) -> Option<u64> {
         if !self.indexed {
             match self.ids.last() {
                 Some(last) if id <= last.as_str() => self.build_index(),
@@ -387,7 +476,20 @@ impl Ids {
     }
 
     /// Adds a row (its id not yet present).
-    fn push(&mut self, id: String, line: u64) {
+    fn push(&mut self, id: &str, line: u64) {
+        self.count += 1;
+        self.id_bytes += id.len() as u64;
+        match self.keep {
+            Keep::All => self.keep(id.to_string(), line),
+            Keep::Last => {
+                self.last.clear();
+                self.last.push_str(id);
+            }
+            Keep::Nothing => {}
+        }
+    }
+
+    fn keep(&mut self, id: String, line: u64) {
         if self.indexed {
             let row = self.ids.len() as u32;
             let hash = self.hasher.hash_one(id.as_str());
@@ -451,7 +553,7 @@ impl<'a, 's> Builder<'a, 's> {
             Some("") => return Err(self.err(line, format!("empty id in column `{id_column}`"))),
             Some(id) => id,
         };
-        if let Some(first) = self.ids.find(id) {
+        if let Some(first) = self.ids.find(id)? {
             return Err(self.err(
                 line,
                 format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
@@ -459,7 +561,7 @@ impl<'a, 's> Builder<'a, 's> {
         }
         // Checked after the id, so a repeated id is named as such.
         if let Some((max, what)) = &self.spec.max_rows
-            && self.ids.ids.len() as u64 >= *max
+            && self.ids.count >= *max
         {
             return Err(self.err(
                 line,
@@ -478,12 +580,12 @@ impl<'a, 's> Builder<'a, 's> {
             ));
         }
         (self.sink)(line, id, values)?;
-        self.ids.push(id.to_string(), line);
+        self.ids.push(id, line);
         Ok(())
     }
 
     fn finish(self) -> Result<Scanned> {
-        if self.ids.ids.is_empty() {
+        if self.ids.count == 0 {
             return Err(Error::invalid(
                 self.source,
                 "empty file: no data rows".to_string(),
@@ -817,6 +919,63 @@ mod tests {
 
     fn label_spec() -> TableSpec {
         TableSpec::new("id", ["label"])
+    }
+
+    /// `check_rows` over a file: the rows its sink saw, or the error's field and message.
+    #[allow(clippy::type_complexity)]
+    fn check(
+        bytes: &[u8],
+    ) -> std::result::Result<(Streamed, Vec<(u64, String)>), (String, String)> {
+        let dir = tempfile::tempdir().expect("tempdir");
+        let path = write(&dir, "labels.csv", bytes);
+        let mut seen = Vec::new();
+        match check_rows(&path, &label_spec(), &mut |line, id, v| {
+            seen.push((line, format!("{id}={}", v[0])));
+            Ok(())
+        }) {
+            Ok(s) => Ok((s, seen)),
+            Err(Error::InvalidArgument { field, message }) => Err((field, message)),
+            Err(other) => panic!("expected InvalidArgument, got {other}"),
+        }
+    }
+
+    #[test]
+    fn streaming_checks_repeats_in_sorted_and_unsorted_files_alike() {
+        // Sorted: one pass, every row seen once.
+        let (s, seen) = check(b"id,label\na,1\nb, 2\nc,3\n").expect("sorted file");
+        assert_eq!((s.rows, s.id_bytes), (3, 3));
+        assert_eq!(
+            seen,
+            [(2, "a=1".into()), (3, "b=2".into()), (4, "c=3".into())]
+        );
+        // Unsorted: read again with an index, so the first rows are seen twice.
+        let (s, seen) = check(b"id,label\nb,1\na,2\nc,3\n").expect("unsorted file");
+        assert_eq!(s.rows, 3);
+        assert_eq!(seen.len(), 3 + 1);
+        // A repeat is named with both lines whichever pass finds it, as read_table names it.
+        for bytes in [
+            &b"id,label\na,1\nb,2\nb,3\n"[..],
+            b"id,label\nb,1\na,2\nb,3\n",
+        ] {
+            let (field, message) = check(bytes).expect_err("a repeated id");
+            let (tfield, tmessage) = fail("labels.csv", bytes, &label_spec());
+            assert!(field.ends_with("labels.csv:4"), "{field}");
+            assert!(message.contains("duplicate id `b`"), "{message}");
+            assert_eq!(
+                (field.rsplit('/').next(), message.as_str()),
+                (tfield.rsplit('/').next(), tmessage.as_str())
+            );
+        }
+        // The second pass looks for no repeats and keeps nothing.
+        let dir = tempfile::tempdir().expect("tempdir");
+        let path = write(&dir, "labels.csv", b"id,label\na,1\na,2\n");
+        let mut n = 0;
+        let s = stream_rows(&path, &label_spec(), &mut |_, _, _| {
+            n += 1;
+            Ok(())
+        })
+        .expect("no repeat check");
+        assert_eq!((s.rows, n), (2, 2));
     }
 
     #[test]

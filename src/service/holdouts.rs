@@ -7,7 +7,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::{Daemon, convert};
 use crate::auth::Role;
-use crate::engine::{CreateRequest, FamilyRequest, PolicyInput, TargetDecl};
+use crate::engine::{CreateHead, FamilyRequest, NewRows, PolicyInput, TargetDecl};
 use crate::error::Error;
 use crate::metric::Metric;
 use crate::proto::v1::{
@@ -89,36 +89,51 @@ impl Holdouts for Daemon {
                 classes: t.classes.clone(),
             });
         }
-        let mut ids = Vec::new();
-        let mut columns: Vec<Vec<String>> = vec![Vec::new(); targets.len()];
+        // Room for the rows announced, within what the byte limit lets through (a row takes at
+        // least a few bytes on the wire).
+        let limit = self.limits.max_create_bytes;
+        let rows_hint = spec.rows_hint.min(limit / 8);
+        let id_bytes_hint = spec.id_bytes_hint.min(limit);
+        let mut rows = NewRows::new(
+            targets,
+            usize::try_from(rows_hint).unwrap_or(0),
+            usize::try_from(id_bytes_hint).unwrap_or(0),
+        )?;
+        let width = rows.targets().len();
+        // Each chunk is added to the rows as it arrives and dropped: the daemon holds the rows
+        // once, packed, never the request.
         while let Some(chunk) = stream.next().await {
             let chunk = chunk.map_err(|e| bytes.receive_error(e))?;
             // Counted before it is kept: the stream is refused as soon as it passes the limit.
             bytes.add(&chunk)?;
             match chunk.part {
-                Some(Part::Rows(rows)) => {
-                    if rows.columns.len() != targets.len() {
+                Some(Part::Rows(chunk_rows)) => {
+                    if chunk_rows.columns.len() != width {
                         return Err(Error::invalid(
                             "labels",
                             format!(
                                 "a chunk has {} label columns for {} targets",
-                                rows.columns.len(),
-                                targets.len()
+                                chunk_rows.columns.len(),
+                                width
                             ),
                         )
                         .into());
                     }
-                    for (c, col) in rows.columns.into_iter().enumerate() {
-                        if col.values.len() != rows.ids.len() {
+                    for (c, col) in chunk_rows.columns.iter().enumerate() {
+                        if col.values.len() != chunk_rows.ids.len() {
                             return Err(Error::invalid(
                                 "labels",
                                 format!("column {c} is not as long as the ids of its chunk"),
                             )
                             .into());
                         }
-                        columns[c].extend(col.values);
                     }
-                    ids.extend(rows.ids);
+                    let mut values: Vec<&str> = Vec::with_capacity(width);
+                    for (i, id) in chunk_rows.ids.iter().enumerate() {
+                        values.clear();
+                        values.extend(chunk_rows.columns.iter().map(|c| c.values[i].as_str()));
+                        rows.push(id, &values)?;
+                    }
                 }
                 Some(Part::Spec(_)) => {
                     return Err(Error::invalid("stream", "the spec was sent twice").into());
@@ -126,21 +141,17 @@ impl Holdouts for Daemon {
                 None => {}
             }
         }
-        let req = CreateRequest {
+        let head = CreateHead {
             name: spec.name,
             description: spec.description,
             policy: policy_input(spec.policy.unwrap_or_default()),
-            targets,
-            ids,
-            columns,
         };
         let view = self
             .db
-            .call(move |engine| engine.create_expecting(&caller, req, family, expect))
+            .call(move |engine| engine.create_streamed(&caller, head, rows, family, expect))
             .await?;
         Ok(Response::new(convert::holdout(&view)))
     }
-
     async fn get_holdout(
         &self,
         request: Request<GetHoldoutRequest>,
@@ -191,18 +202,23 @@ impl Holdouts for Daemon {
     ) -> Result<Response<Self::GetDeclarationStream>, Status> {
         self.caller(&request).await?;
         let name = request.into_inner().name;
-        let (targets, ids) = self
-            .db
-            .call(move |engine| engine.declaration(&name))
-            .await?;
-        let mut chunks = Vec::with_capacity(ids.len() / IDS_PER_CHUNK + 1);
-        let mut first = Some(targets.iter().map(convert::target).collect::<Vec<_>>());
-        for part in ids.chunks(IDS_PER_CHUNK) {
-            chunks.push(Ok(DeclarationChunk {
-                targets: first.take().unwrap_or_default(),
-                ids: part.to_vec(),
-            }));
-        }
+        let declared = self.db.call(move |engine| engine.declared(&name)).await?;
+        // Chunks are made as the stream is read: the ids are never all copied at once.
+        let mut first = Some(
+            declared
+                .targets()
+                .iter()
+                .map(convert::target)
+                .collect::<Vec<_>>(),
+        );
+        let chunks = (0..declared.len())
+            .step_by(IDS_PER_CHUNK)
+            .map(move |start| {
+                Ok::<_, Status>(DeclarationChunk {
+                    targets: first.take().unwrap_or_default(),
+                    ids: declared.ids(start..start + IDS_PER_CHUNK),
+                })
+            });
         Ok(Response::new(Box::pin(tokio_stream::iter(chunks))))
     }
 }

@@ -186,8 +186,8 @@ impl Daemon {
                 let loaded = engine.loaded(&name)?;
                 let policy = &loaded.policy;
                 Ok(SubmitFacts {
-                    rows: loaded.ids.len(),
-                    longest_id: loaded.ids.iter().map(String::len).max().unwrap_or(0),
+                    rows: loaded.rows.len(),
+                    longest_id: loaded.rows.iter().map(str::len).max().unwrap_or(0),
                     batches: policy.allows_batches(),
                     answers: policy.answers_spec(),
                 })

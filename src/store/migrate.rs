@@ -23,6 +23,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0004_families",
         include_str!("../../migrations/0004_families.sql"),
     ),
+    (
+        "0005_row_blobs",
+        include_str!("../../migrations/0005_row_blobs.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.
@@ -74,11 +78,11 @@ mod tests {
         let tables: i64 = conn.query_row(
             "SELECT count(*) FROM sqlite_master WHERE type = 'table' AND name IN
              ('holdouts', 'holdout_rows', 'sealed_labels', 'ledger', 'users', 'tokens',
-              'request_keys', 'answered_digests', 'signing_key')",
+              'request_keys', 'answered_digests', 'signing_key', 'holdout_ids')",
             [],
             |r| r.get(0),
         )?;
-        assert_eq!(tables, 9);
+        assert_eq!(tables, 10);
         // Migrating again is a no-op.
         assert_eq!(migrate(&mut conn)?, latest_version());
         Ok(())

@@ -245,7 +245,7 @@ pub fn targets_of(args: &CreateArgs) -> Result<Vec<TargetSpec>> {
 }
 
 /// Declares each target's public label domain and checks every label against it, naming the
-/// file line and id of the first label that does not fit.
+/// file line and id of the first label that does not fit (target by target).
 ///
 /// # Errors
 /// [`Error::InvalidArgument`] naming `file:line`.
@@ -254,12 +254,37 @@ pub fn declare(
     targets: &[TargetSpec],
     classes: Option<&[String]>,
 ) -> Result<Vec<Target>> {
+    let declared = declared_targets(targets, classes)?;
+    for (t, target) in declared.iter().enumerate() {
+        let k = table.column_index(&target.column).ok_or_else(|| {
+            Error::invalid(
+                table.source.clone(),
+                format!("no column {:?}", target.column),
+            )
+        })?;
+        for r in &table.rows {
+            check_label(
+                &targets[t],
+                target,
+                &table.source,
+                r.line,
+                &r.id,
+                &r.values[k],
+            )?;
+        }
+    }
+    Ok(declared)
+}
+
+/// Each target's public label domain: the declared classes of an `error` target, `0` and `1`
+/// for brier and log_loss, none (numbers) otherwise.
+///
+/// # Errors
+/// An `error` target without `--classes`.
+pub fn declared_targets(targets: &[TargetSpec], classes: Option<&[String]>) -> Result<Vec<Target>> {
     targets
         .iter()
         .map(|t| {
-            let k = table.column_index(&t.column).ok_or_else(|| {
-                Error::invalid(table.source.clone(), format!("no column {:?}", t.column))
-            })?;
             let declared: Vec<String> = if t.metric.uses_classes() {
                 match classes {
                     Some(c) => c.iter().map(|x| x.trim().to_string()).collect(),
@@ -278,32 +303,6 @@ pub fn declare(
             } else {
                 t.metric.fixed_classes().unwrap_or_default()
             };
-            for r in &table.rows {
-                let v = &r.values[k];
-                let ok = if declared.is_empty() {
-                    v.parse::<f64>().is_ok_and(f64::is_finite)
-                } else {
-                    declared.contains(v)
-                };
-                if !ok {
-                    let domain = if declared.is_empty() {
-                        "a finite number".to_string()
-                    } else {
-                        format!("one of {}", declared.join(","))
-                    };
-                    return Err(Error::invalid(
-                        format!("{}:{}", table.source, r.line),
-                        format!(
-                            "label {} of id `{}` (column {}, target {}, metric {}) is not {domain}",
-                            quote(v),
-                            cut(&r.id),
-                            t.column,
-                            t.name,
-                            t.metric
-                        ),
-                    ));
-                }
-            }
             Ok(Target {
                 name: t.name.clone(),
                 column: t.column.clone(),
@@ -313,6 +312,46 @@ pub fn declare(
             })
         })
         .collect()
+}
+
+/// Checks one label against its target's declared domain.
+///
+/// # Errors
+/// [`Error::InvalidArgument`] naming `source:line`, the id, the column, the target and the
+/// domain.
+fn check_label(
+    spec: &TargetSpec,
+    target: &Target,
+    source: &str,
+    line: u64,
+    id: &str,
+    v: &str,
+) -> Result<()> {
+    let declared = &target.classes;
+    let ok = if declared.is_empty() {
+        v.parse::<f64>().is_ok_and(f64::is_finite)
+    } else {
+        declared.iter().any(|c| c == v)
+    };
+    if ok {
+        return Ok(());
+    }
+    let domain = if declared.is_empty() {
+        "a finite number".to_string()
+    } else {
+        format!("one of {}", declared.join(","))
+    };
+    Err(Error::invalid(
+        format!("{source}:{line}"),
+        format!(
+            "label {} of id `{}` (column {}, target {}, metric {}) is not {domain}",
+            quote(v),
+            cut(id),
+            spec.column,
+            spec.name,
+            spec.metric
+        ),
+    ))
 }
 
 /// Longest value quoted whole in a message about a label file; longer ones are cut.
@@ -437,13 +476,40 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
             columns.push(s.column.clone());
         }
     }
-    let table = files::read_table(
-        &args.labels,
-        &TableSpec::new(&args.id_column, columns).max_bytes(args.max_file_bytes),
-    )?;
-    let targets = declare(&table, &specs, args.classes.as_deref())?;
+    let spec_of_file =
+        TableSpec::new(&args.id_column, columns.clone()).max_bytes(args.max_file_bytes);
+    let targets = match declared_targets(&specs, args.classes.as_deref()) {
+        Ok(targets) => targets,
+        Err(e) => {
+            // The file's own problems (unreadable, a column missing) are named first.
+            files::check_rows(&args.labels, &spec_of_file, &mut |_, _, _| Ok(()))?;
+            return Err(e.into());
+        }
+    };
+    let positions: Vec<usize> = specs
+        .iter()
+        .map(|s| columns.iter().position(|c| *c == s.column).unwrap_or(0))
+        .collect();
+    // First pass: every check (ids, labels) with nothing kept but a fingerprint of the rows,
+    // which the second pass, the upload, must reproduce.
+    let mut fingerprint = Fingerprint::new();
+    let source = args.labels.display().to_string();
+    let mut last_line = 0;
+    let checked = files::check_rows(&args.labels, &spec_of_file, &mut |line, id, values| {
+        for (t, &k) in positions.iter().enumerate() {
+            check_label(&specs[t], &targets[t], &source, line, id, values[k])?;
+        }
+        // Lines start over when the check reads the file again (ids out of order).
+        if line <= last_line {
+            fingerprint = fingerprint.restart();
+        }
+        last_line = line;
+        fingerprint.add(id, values);
+        Ok(())
+    })?;
+
     let policy = policy_of(args);
-    let plan = super::plan::describe(table.len() as u64, &policy, &targets, args.expected_error)?;
+    let plan = super::plan::describe(checked.rows, &policy, &targets, args.expected_error)?;
     let joint = joint_note(args.delta, args.family.as_deref(), args.family_delta);
     let family_json = args
         .family
@@ -452,7 +518,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     if args.json && args.preview {
         show::print_json(&json!({
             "preview": true,
-            "rows": table.len(),
+            "rows": checked.rows,
             "policy": show::policy_json(&policy),
             "targets": targets.iter().map(show::target_json).collect::<Vec<_>>(),
             "plan": plan.json,
@@ -477,38 +543,19 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         family: args.family.clone().unwrap_or_default(),
         family_delta: args.family_delta.unwrap_or(0.0),
         expect_answers: args.expect_answers,
+        rows_hint: checked.rows,
+        id_bytes_hint: checked.id_bytes,
     };
-    let positions: Vec<usize> = specs
-        .iter()
-        .map(|s| table.column_index(&s.column).unwrap_or(0))
-        .collect();
-    let first = std::iter::once(CreateHoldoutChunk {
-        part: Some(Part::Spec(spec)),
-    });
-    let rows = table.rows;
-    let mut it = rows.into_iter();
-    let chunks = std::iter::from_fn(move || {
-        let piece: Vec<files::Row> = it.by_ref().take(CHUNK_ROWS).collect();
-        if piece.is_empty() {
-            return None;
-        }
-        let columns = positions
-            .iter()
-            .map(|&k| LabelColumn {
-                values: piece.iter().map(|r| r.values[k].clone()).collect(),
-            })
-            .collect();
-        let ids = piece.into_iter().map(|r| r.id).collect();
-        Some(CreateHoldoutChunk {
-            part: Some(Part::Rows(LabelRows { ids, columns })),
-        })
-    });
-    let info = conn
-        .holdouts()
-        .create_holdout(tokio_stream::iter(first.chain(chunks)))
-        .await
-        .map_err(|e| conn.fail(e))?
-        .into_inner();
+    let info = upload(
+        &conn,
+        spec,
+        &args.labels,
+        &spec_of_file,
+        &positions,
+        &checked,
+        fingerprint,
+    )
+    .await?;
     if args.json {
         let mut v = show::holdout_json(&info);
         v["plan"] = plan.json;
@@ -520,6 +567,123 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         println!("\ncreated\n{}", show::holdout_text(&info));
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Chunks in flight between the thread reading the file and the upload.
+const QUEUE_CHUNKS: usize = 4;
+
+/// A fingerprint of a file's rows (ids and values, in order), to find a file that changed
+/// between the check and the upload.
+struct Fingerprint {
+    hasher: hashbrown::DefaultHashBuilder,
+    value: u64,
+}
+
+impl Fingerprint {
+    fn new() -> Fingerprint {
+        Fingerprint {
+            hasher: hashbrown::DefaultHashBuilder::default(),
+            value: 0,
+        }
+    }
+
+    /// The same rows in the same order give the same value (under one hasher).
+    fn add(&mut self, id: &str, values: &[&str]) {
+        use std::hash::BuildHasher;
+        self.value = self.value.rotate_left(7) ^ self.hasher.hash_one((id, values));
+    }
+
+    fn restart(&self) -> Fingerprint {
+        Fingerprint {
+            hasher: self.hasher.clone(),
+            value: 0,
+        }
+    }
+}
+
+/// Second pass: reads the labels file again on a thread of its own and sends it in chunks
+/// through a small bounded queue while the daemon receives them, so neither end holds the
+/// file. A file that changed since it was checked (other rows, fewer, more) is found when it
+/// has been read again, before the stream ends: the reader then sends a second spec, which the
+/// daemon refuses, so nothing is created.
+async fn upload(
+    conn: &Conn,
+    spec: HoldoutSpec,
+    path: &std::path::Path,
+    file_spec: &TableSpec,
+    positions: &[usize],
+    checked: &files::Streamed,
+    fingerprint: Fingerprint,
+) -> anyhow::Result<crate::proto::v1::HoldoutInfo> {
+    let (tx, rx) = tokio::sync::mpsc::channel::<CreateHoldoutChunk>(QUEUE_CHUNKS);
+    let first = CreateHoldoutChunk {
+        part: Some(Part::Spec(spec)),
+    };
+    let (path, file_spec, positions) = (path.to_path_buf(), file_spec.clone(), positions.to_vec());
+    let (expect_rows, expect_print) = (checked.rows, fingerprint.value);
+    let mut again = fingerprint.restart();
+    let reader = tokio::task::spawn_blocking(move || -> std::result::Result<(), Option<Error>> {
+        // `None`: the call ended early (the daemon refused); its answer says why.
+        tx.blocking_send(first).map_err(|_| None)?;
+        let mut ids: Vec<String> = Vec::with_capacity(CHUNK_ROWS);
+        let mut cols: Vec<Vec<String>> = vec![Vec::with_capacity(CHUNK_ROWS); positions.len()];
+        let send = |ids: &mut Vec<String>, cols: &mut Vec<Vec<String>>| {
+            let chunk = CreateHoldoutChunk {
+                part: Some(Part::Rows(LabelRows {
+                    ids: std::mem::replace(ids, Vec::with_capacity(CHUNK_ROWS)),
+                    columns: cols
+                        .iter_mut()
+                        .map(|c| LabelColumn {
+                            values: std::mem::replace(c, Vec::with_capacity(CHUNK_ROWS)),
+                        })
+                        .collect(),
+                })),
+            };
+            tx.blocking_send(chunk).is_ok()
+        };
+        let mut stopped = false;
+        let read = files::stream_rows(&path, &file_spec, &mut |_, id, values| {
+            again.add(id, values);
+            ids.push(id.to_string());
+            for (c, &k) in cols.iter_mut().zip(&positions) {
+                c.push(values[k].to_string());
+            }
+            if ids.len() == CHUNK_ROWS && !send(&mut ids, &mut cols) {
+                stopped = true;
+                return Err(Error::Internal("the upload stopped".into()));
+            }
+            Ok(())
+        });
+        if stopped {
+            return Err(None);
+        }
+        let failure = match read {
+            Ok(r) if r.rows == expect_rows && again.value == expect_print => {
+                if !ids.is_empty() && !send(&mut ids, &mut cols) {
+                    return Err(None);
+                }
+                return Ok(());
+            }
+            Ok(_) => Error::invalid(
+                path.display().to_string(),
+                "the file changed while it was being sent (it differs from the file checked); \
+                 nothing was created",
+            ),
+            Err(e) => e,
+        };
+        // A second spec: the daemon refuses the stream, and creates nothing.
+        let _ = tx.blocking_send(CreateHoldoutChunk {
+            part: Some(Part::Spec(HoldoutSpec::default())),
+        });
+        Err(Some(failure))
+    });
+    let mut client = conn.holdouts();
+    let call = client.create_holdout(tokio_stream::wrappers::ReceiverStream::new(rx));
+    let (answer, read) = tokio::join!(call, reader);
+    match read.map_err(|e| anyhow::anyhow!("reading the labels: {e}"))? {
+        Err(Some(e)) => Err(e.into()),
+        Ok(()) | Err(None) => Ok(answer.map_err(|e| conn.fail(e))?.into_inner()),
+    }
 }
 
 #[cfg(test)]
