@@ -388,6 +388,23 @@ mod tests {
         // reported cell, and code 2 a worst case of ln 202 after the first answer (see
         // `design_magnitudes_show_up` in cli/client/plan.rs for the arithmetic): 7.
         assert_eq!(v[0]["queries"], 7.0);
+        // Counts are whole numbers in JSON ("7", not "7.0"); a count past 2^53 stays a float.
+        assert!(v[0]["queries"].is_u64(), "{}", v[0]["queries"]);
+        let text = serde_json::to_string(&rows).unwrap();
+        assert!(
+            text.contains(r#""queries":7"#) && !text.contains(".0,"),
+            "{text}"
+        );
+        let huge = PlanRow {
+            rule: "sealed".into(),
+            queries: Some(1.7707170589536468e109),
+            queries_expected: None,
+            rows: None,
+        };
+        assert_eq!(
+            serde_json::to_string(&huge).unwrap(),
+            r#"{"rule":"sealed","queries":1.7707170589536468e+109}"#
+        );
         assert!(v[1]["queries_expected"].as_f64().unwrap() >= v[1]["queries"].as_f64().unwrap());
         let p = Plan::try_parse_from([
             "plan",

@@ -67,15 +67,27 @@ pub struct PlanSpec {
 pub struct PlanRow {
     /// The rule.
     pub rule: String,
-    /// Queries that fit, worst case (reference score 1/2).
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// Queries that fit, worst case (reference score 1/2). Written to JSON as a whole number
+    /// while it is one exactly (below 2^53), as a float beyond.
+    #[serde(skip_serializing_if = "Option::is_none", serialize_with = "count_json")]
     pub queries: Option<f64>,
-    /// Queries that fit at the stated expected error.
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// Queries that fit at the stated expected error (JSON as `queries`).
+    #[serde(skip_serializing_if = "Option::is_none", serialize_with = "count_json")]
     pub queries_expected: Option<f64>,
     /// Rows needed for the requested number of queries (`None` past 2^62).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub rows: Option<u64>,
+}
+
+/// A count of queries as JSON: a whole number below 2^53 (where every whole number is an exact
+/// float), the float itself beyond (counts like 1.8e109 are real figures, not sentinels).
+fn count_json<S: serde::Serializer>(q: &Option<f64>, s: S) -> Result<S::Ok, S::Error> {
+    const EXACT: f64 = 9_007_199_254_740_992.0; // 2^53
+    match *q {
+        Some(q) if q.fract() == 0.0 && (0.0..EXACT).contains(&q) => s.serialize_u64(q as u64),
+        Some(q) => s.serialize_f64(q),
+        None => s.serialize_none(),
+    }
 }
 
 fn half_width_fits(spec: &PlanSpec, rule: &Rule, reference: f64, level: f64, core: u32) -> bool {
