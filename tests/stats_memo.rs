@@ -17,18 +17,21 @@ fn bits(r: Result<holdout_ledger::stats::interval::Interval, impl std::fmt::Debu
 }
 
 /// `f` without the memo, then with an empty memo (every evaluation a miss), then again with the
-/// memo as that left it (the repeated evaluations now hits). Returns the three results and
-/// whether the cold run evaluated anything and the warm run hit something.
+/// memo as that left it (the repeated evaluations or solves now hits). Returns the three
+/// results, the evaluations the cold run made and the remembered values the warm run took.
 fn three_ways<T>(f: impl Fn() -> T) -> (T, T, T, u64, u64) {
     let off = memo::with_memo(false, &f);
     let (h0, m0) = memo::counts();
     memo::with_memo(false, memo::clear);
     let cold = memo::with_memo(true, &f);
     let (h1, m1) = memo::counts();
+    let s1 = memo::solve_hits();
     let warm = memo::with_memo(true, &f);
     let (h2, _) = memo::counts();
     let _ = h1 - h0;
-    (off, cold, warm, m1 - m0, h2 - h1)
+    // A warm run takes remembered evaluations, or whole remembered solves (then it evaluates
+    // nothing at all).
+    (off, cold, warm, m1 - m0, h2 - h1 + memo::solve_hits() - s1)
 }
 
 proptest! {
@@ -76,11 +79,19 @@ proptest! {
     ) {
         let g = Grid { cells };
         for rounding in [Rounding::Nearest, Rounding::Outward] {
+            let solves_before = memo::solve_hits();
             let (off, cold, warm, _, _) = three_ways(|| {
                 g.widest_half_width(n, true, Method::Exact, level, rounding).to_bits()
             });
             prop_assert_eq!(off, cold);
             prop_assert_eq!(off, warm);
+            // The widest cell asks for the lower limit at k and the upper at n - k, one root:
+            // remembered solves were taken (so the comparison above covers that path), when
+            // the span leaves room for four counts around the centre.
+            let s = g.max_span(n).min(n);
+            if n >= s + 6 {
+                prop_assert!(memo::solve_hits() > solves_before, "n={} cells={}", n, cells);
+            }
         }
     }
 

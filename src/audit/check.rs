@@ -737,12 +737,12 @@ fn parse_and_check_identities(
 }
 
 /// The parsing thread computes the widest cell ahead for one answer in this many; the replay's
-/// thread computes the others. Measured with callgrind on the bench's all-answer ledger (after
-/// the replay stopped building a map per answer and searching 64 steps per forecast), the
-/// parsing thread's own work (parsing, each answer's cell) is about 2.3 times the replay's own,
-/// and the widest cells are about as much again as both; one in four leaves the two threads
-/// within a few per cent of each other (one in two left the parsing thread a fifth behind).
-const WIDEST_AHEAD_EVERY: u64 = 4;
+/// thread computes the others. Measured with callgrind on the bench's all-answer ledger: once
+/// the replay wrote each answer's core text without a string per field, and a widest cell took
+/// each Beta root once (its lower limit at `k` and upper limit at `n - k` are one root), the
+/// replay's own work fell below the parsing thread's; one in eight leaves the two threads within
+/// one per cent of each other (one in four left the parsing thread 7 % behind).
+const WIDEST_AHEAD_EVERY: u64 = 8;
 
 /// Computes, on the parsing thread with a [`shared`] table filling, the intervals the replay
 /// of answer `r` (entry `seq`) will ask for if `r` records its level truly: under a rounded

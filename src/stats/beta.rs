@@ -55,6 +55,12 @@ fn stirlerr(z: f64) -> f64 {
 
 /// `x ln(x/m) + m - x`, accurate when `x` and `m` are close (series in `(x-m)/(x+m)`).
 fn bd0(x: f64, m: f64) -> f64 {
+    bd0_with_ln(x, || x.ln(), m)
+}
+
+/// [`bd0`] with `ln x` supplied (only computed, by `ln_x`, when the series does not apply):
+/// the same operations in the same order, so the same bits.
+fn bd0_with_ln(x: f64, ln_x: impl FnOnce() -> f64, m: f64) -> f64 {
     if (x - m).abs() < 0.1 * (x + m) {
         let v = (x - m) / (x + m);
         let v2 = v * v;
@@ -70,15 +76,64 @@ fn bd0(x: f64, m: f64) -> f64 {
         }
         s
     } else {
-        x * (x.ln() - m.ln()) + m - x
+        x * (ln_x() - m.ln()) + m - x
     }
 }
 
-/// `ln(x^a y^b / B(a, b))` for `a, b > 0` and a point strictly inside (0, 1).
-fn ln_prefactor(a: f64, b: f64, p: Point) -> f64 {
+/// What [`ln_prefactor_with`] and [`ln_beta_reg_eval`] compute from `a` and `b` alone: the same
+/// values, computed once per pair instead of at every point (a solve evaluates one pair at a
+/// dozen points or more, and these logarithms were a fifth of an audit's work). The sums that
+/// use them are still formed in the same order, so every result keeps its bits.
+#[derive(Debug, Clone, Copy)]
+struct PairConsts {
+    a: u64,
+    b: u64,
+    ln_a: f64,
+    ln_b: f64,
+    /// `stirlerr(a + b)`, `stirlerr(a)`, `stirlerr(b)`.
+    st_c: f64,
+    st_a: f64,
+    st_b: f64,
+    /// `0.5 * (ln a + ln b - ln(a + b))`.
+    half_logs: f64,
+}
+
+impl PairConsts {
+    fn of(a: f64, b: f64) -> PairConsts {
+        thread_local! {
+            static LAST: std::cell::Cell<Option<PairConsts>> = const { std::cell::Cell::new(None) };
+        }
+        if let Some(k) = LAST.get()
+            && k.a == a.to_bits()
+            && k.b == b.to_bits()
+        {
+            return k;
+        }
+        let c = a + b;
+        let (ln_a, ln_b) = (a.ln(), b.ln());
+        let k = PairConsts {
+            a: a.to_bits(),
+            b: b.to_bits(),
+            ln_a,
+            ln_b,
+            st_c: stirlerr(c),
+            st_a: stirlerr(a),
+            st_b: stirlerr(b),
+            half_logs: 0.5 * (ln_a + ln_b - c.ln()),
+        };
+        LAST.set(Some(k));
+        k
+    }
+}
+
+/// `ln(x^a y^b / B(a, b))` for `a, b > 0` and a point strictly inside (0, 1), with the pair's
+/// constants at hand.
+fn ln_prefactor_with(a: f64, b: f64, p: Point, k: &PairConsts) -> f64 {
     let c = a + b;
-    -bd0(a, c * p.x) - bd0(b, c * p.y) + stirlerr(c) - stirlerr(a) - stirlerr(b)
-        + 0.5 * (a.ln() + b.ln() - c.ln())
+    -bd0_with_ln(a, || k.ln_a, c * p.x) - bd0_with_ln(b, || k.ln_b, c * p.y) + k.st_c
+        - k.st_a
+        - k.st_b
+        + k.half_logs
         - LN_SQRT_2PI
 }
 
@@ -158,13 +213,14 @@ fn ln_beta_reg_eval(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64
     if p.y <= 0.0 {
         return Some((0.0, f64::NEG_INFINITY));
     }
-    let pre = ln_prefactor(a, b, p);
+    let k = PairConsts::of(a, b);
+    let pre = ln_prefactor_with(a, b, p, &k);
     if p.x < (a + 1.0) / (a + b + 2.0) {
         let cf = beta_cf(a, b, p.x, p.y, precise)?;
-        Some((pre + cf.ln() - a.ln(), pre))
+        Some((pre + cf.ln() - k.ln_a, pre))
     } else {
         let cf = beta_cf(b, a, p.y, p.x, precise)?;
-        let comp = pre + cf.ln() - b.ln();
+        let comp = pre + cf.ln() - k.ln_b;
         if comp >= 0.0 {
             return None;
         }
@@ -196,7 +252,22 @@ pub(crate) fn solve_ln_beta_reg(a: f64, b: f64, target: f64) -> Option<Point> {
 }
 
 /// [`solve_ln_beta_reg`] with the choice of continued fraction of [`ln_beta_reg_with`].
+///
+/// Remembered per thread like the evaluations ([`memo`], a short list of the latest solves):
+/// the widest cell of a grid asks for the lower limit at `k` and the upper limit at `n - k`,
+/// which are the same root (`I_x(k, n - k + 1)`, read as `x` or as `1 - x`).
 pub(crate) fn solve_ln_beta_reg_with(a: f64, b: f64, target: f64, precise: bool) -> Option<Point> {
+    let key = memo::SolveKey::new(a, b, target, precise);
+    if let Some(root) = memo::solved(&key) {
+        return root;
+    }
+    let root = solve_ln_beta_reg_eval(a, b, target, precise);
+    memo::remember_solve(key, root);
+    root
+}
+
+/// [`solve_ln_beta_reg_with`] computed, never remembered.
+fn solve_ln_beta_reg_eval(a: f64, b: f64, target: f64, precise: bool) -> Option<Point> {
     let ln_beta_reg = |a, b, p| ln_beta_reg_with(a, b, p, precise);
     let half = Point { x: 0.5, y: 0.5 };
     let (f_half, _) = ln_beta_reg(a, b, half)?;
@@ -282,6 +353,10 @@ pub mod memo {
     //! bisection midpoints), so an audit replaying many answers at the same row counts meets
     //! the same evaluations again and again.
     //!
+    //! Whole solves (the root of `ln I_x(a, b) = target`, a pure function of the bits of its
+    //! arguments too) are remembered as well, the latest few: the widest cell of a grid needs
+    //! each root twice (the lower limit at `k` and the upper limit at `n - k` are one root).
+    //!
     //! The memo is per thread (no locks, nothing shared between the daemon's and the audit's
     //! threads) and bounded: 2-way sets, a new entry goes to the probation way and moves to
     //! the protected way when it is hit again, so the evaluations that recur are not pushed
@@ -327,11 +402,73 @@ pub mod memo {
     type Value = Option<(f64, f64)>;
     type Way = Option<(Key, Value)>;
 
+    /// Solves remembered: the latest few, searched in order (a solve costs thousands of
+    /// evaluations' worth of work; a look through eight keys is nothing beside it).
+    const SOLVES: usize = 8;
+
+    /// The arguments of one solve, by their exact bits.
+    #[derive(Debug, Clone, Copy, PartialEq, Eq)]
+    pub(super) struct SolveKey {
+        a: u64,
+        b: u64,
+        target: u64,
+        precise: bool,
+    }
+
+    impl SolveKey {
+        pub(super) fn new(a: f64, b: f64, target: f64, precise: bool) -> SolveKey {
+            SolveKey {
+                a: a.to_bits(),
+                b: b.to_bits(),
+                target: target.to_bits(),
+                precise,
+            }
+        }
+    }
+
+    type Solve = Option<(SolveKey, Option<Point>)>;
+
     thread_local! {
         static TABLE: RefCell<Vec<[Way; 2]>> = const { RefCell::new(Vec::new()) };
         static ENABLED: Cell<bool> = const { Cell::new(true) };
         static HITS: Cell<u64> = const { Cell::new(0) };
         static MISSES: Cell<u64> = const { Cell::new(0) };
+        static SOLVED: RefCell<([Solve; SOLVES], usize)> =
+            const { RefCell::new(([None; SOLVES], 0)) };
+        static SOLVE_HITS: Cell<u64> = const { Cell::new(0) };
+    }
+
+    /// A remembered solve of `key` (`Some(root)`, the root itself possibly `None`), if any.
+    pub(super) fn solved(key: &SolveKey) -> Option<Option<Point>> {
+        if !ENABLED.get() {
+            return None;
+        }
+        let found = SOLVED.with_borrow(|(ring, _)| {
+            ring.iter()
+                .flatten()
+                .find(|(k, _)| k == key)
+                .map(|&(_, root)| root)
+        });
+        if found.is_some() {
+            SOLVE_HITS.set(SOLVE_HITS.get() + 1);
+        }
+        found
+    }
+
+    /// Remembers a solve, replacing the oldest.
+    pub(super) fn remember_solve(key: SolveKey, root: Option<Point>) {
+        if !ENABLED.get() {
+            return;
+        }
+        SOLVED.with_borrow_mut(|(ring, next)| {
+            ring[*next] = Some((key, root));
+            *next = (*next + 1) % SOLVES;
+        });
+    }
+
+    /// How many solves this thread took from memory so far.
+    pub fn solve_hits() -> u64 {
+        SOLVE_HITS.get()
     }
 
     pub(super) fn get(key: &Key) -> Option<Value> {
@@ -389,6 +526,10 @@ pub mod memo {
     /// Forgets every remembered evaluation of this thread (counts are kept).
     pub fn clear() {
         TABLE.with_borrow_mut(|t| t.clear());
+        SOLVED.with_borrow_mut(|(ring, next)| {
+            *ring = [None; SOLVES];
+            *next = 0;
+        });
     }
 }
 
@@ -671,6 +812,81 @@ where
 #[cfg(test)]
 mod outward_tests {
     use super::*;
+
+    /// The prefactor and the evaluation as written before the pair's constants were kept
+    /// (every logarithm and Stirling error computed at each point).
+    fn ln_beta_reg_inline(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64)> {
+        let c = a + b;
+        let bd0_inline = |x: f64, m: f64| {
+            if (x - m).abs() < 0.1 * (x + m) {
+                bd0(x, m)
+            } else {
+                x * (x.ln() - m.ln()) + m - x
+            }
+        };
+        let pre = -bd0_inline(a, c * p.x) - bd0_inline(b, c * p.y) + stirlerr(c)
+            - stirlerr(a)
+            - stirlerr(b)
+            + 0.5 * (a.ln() + b.ln() - c.ln())
+            - LN_SQRT_2PI;
+        if p.x < (a + 1.0) / (a + b + 2.0) {
+            let cf = beta_cf(a, b, p.x, p.y, precise)?;
+            Some((pre + cf.ln() - a.ln(), pre))
+        } else {
+            let cf = beta_cf(b, a, p.y, p.x, precise)?;
+            let comp = pre + cf.ln() - b.ln();
+            if comp >= 0.0 {
+                return None;
+            }
+            Some((ln_one_minus_exp(comp), pre))
+        }
+    }
+
+    #[test]
+    fn kept_pair_constants_change_no_bit() {
+        // Pairs from tiny to huge (both sides of the Stirling-series switch at 15, and of the
+        // series/log switch in bd0), several points per pair and pairs interleaved, so that the
+        // one-pair cache is both hit and replaced.
+        let mut state = 0x2545_f491_4f6c_dd1du64;
+        let mut next = || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let mut pairs = Vec::new();
+        for _ in 0..300 {
+            let a = (10f64.powf(next() * 7.0)).round().max(1.0);
+            let b = (10f64.powf(next() * 7.0)).round().max(1.0);
+            pairs.push((a, b));
+        }
+        let mut compared = 0;
+        for round in 0..3 {
+            for &(a, b) in &pairs {
+                for _ in 0..4 {
+                    let u = next();
+                    let p = if round % 2 == 0 {
+                        Point::from_x(u.powf(4.0).max(1e-300))
+                    } else {
+                        Point::from_y(u.powf(4.0).max(1e-300))
+                    };
+                    for precise in [false, true] {
+                        let kept = ln_beta_reg_eval(a, b, p, precise);
+                        let inline = ln_beta_reg_inline(a, b, p, precise);
+                        assert_eq!(
+                            kept.map(|(f, g)| (f.to_bits(), g.to_bits())),
+                            inline.map(|(f, g)| (f.to_bits(), g.to_bits())),
+                            "a={a} b={b} x={} y={} precise={precise}",
+                            p.x,
+                            p.y
+                        );
+                        compared += 1;
+                    }
+                }
+            }
+        }
+        assert_eq!(compared, 300 * 3 * 4 * 2);
+    }
 
     #[test]
     fn remembered_evaluations_are_the_evaluations() {
