@@ -262,6 +262,46 @@ fn create_ids_validate_dry_run_submit_status_history() {
     assert!(status.stdout.contains("remaining"), "{}", status.stdout);
     let listed = d.run(&alice, &["list", "--json"]).ok().json();
     assert_eq!(listed.as_array().map(Vec::len), Some(1), "{listed}");
+
+    // A text answer names the guarantee's assumptions in one line; `--guarantee` states the
+    // holdout's guarantee in full (common practice: the statement travels with the number).
+    let p3 = d.write("p3.csv", &parts.defect_predictions(11, 3));
+    let short = d
+        .run(
+            &alice,
+            &["submit", "qc", "--target", "defect", "--predictions", &p3],
+        )
+        .ok();
+    assert!(
+        short
+            .stdout
+            .contains("guarantee  with probability at least 1 - "),
+        "{}",
+        short.stdout
+    );
+    assert!(!short.stdout.contains("Assumptions:"), "{}", short.stdout);
+    let p4 = d.write("p4.csv", &parts.defect_predictions(12, 4));
+    let full = d
+        .run(
+            &alice,
+            &[
+                "submit",
+                "qc",
+                "--target",
+                "defect",
+                "--predictions",
+                &p4,
+                "--guarantee",
+            ],
+        )
+        .ok();
+    assert!(full.stdout.contains("Assumptions:"), "{}", full.stdout);
+    assert!(
+        full.stdout
+            .contains("over the draw of this holdout's labels"),
+        "{}",
+        full.stdout
+    );
 }
 
 #[test]

@@ -240,7 +240,37 @@ pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
     })
 }
 
-/// An answer for people.
+/// The guarantee in one sentence, with its assumptions named, for replies that show an
+/// interval but not the holdout's full statement (which `status` and `--guarantee` print).
+pub fn guarantee_line(delta: Option<f64>) -> String {
+    let chance = delta.map_or_else(
+        || "with the holdout's probability".to_string(),
+        |d| format!("with probability at least 1 - {}", num(d)),
+    );
+    format!(
+        "guarantee  {chance}, this interval holds together with every other this holdout \
+         reports, if its rows are i.i.d., labels are reached only through answers and the \
+         sharing declared at creation holds; a statistical statement, not a certification \
+         (high-stakes uses need their domain's review). In full: --guarantee or `holdout status`."
+    )
+}
+
+/// An answer for people. The guarantee is stated in one line unless `full_guarantee`.
+pub fn answer_text_with(a: &Answer, model_names: &[String], full_guarantee: bool) -> String {
+    let mut s = answer_text(a, model_names);
+    if !full_guarantee && !a.guarantee.is_empty() {
+        let full = format!("\n\n{}", a.guarantee);
+        if let Some(head) = s.strip_suffix(&full) {
+            s = format!(
+                "{head}\n{}",
+                guarantee_line(a.budget.as_ref().map(|b| b.delta))
+            );
+        }
+    }
+    s
+}
+
+/// An answer for people, with the holdout's guarantee in full.
 pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
     let mut s = format!("answer {} (target {})", a.query, a.target);
     if a.replayed {
@@ -556,6 +586,46 @@ mod tests {
         let closed = Budget { open: false, ..b };
         assert!(budget_text(&closed).contains("closed and answers no more queries"));
         assert!(!budget_text(&closed).contains("queries fit"));
+    }
+
+    #[test]
+    fn an_answer_states_the_guarantee_in_one_line_unless_asked_in_full() {
+        let full = "With probability at least 1 - 0.05 over the draw of this holdout's labels, \
+                    every interval ...\nAssumptions: rows drawn independently ...";
+        let a = Answer {
+            query: 3,
+            target: "label".into(),
+            symbol: "0.32".into(),
+            budget: Some(Budget {
+                delta: 0.05,
+                ..Default::default()
+            }),
+            guarantee: full.into(),
+            ..Default::default()
+        };
+        let short = answer_text_with(&a, &[], false);
+        assert!(!short.contains("Assumptions:"), "{short}");
+        let last = short.lines().last().unwrap();
+        assert!(
+            last.starts_with("guarantee  with probability at least 1 - 0.05, this interval"),
+            "{short}"
+        );
+        assert!(
+            !last["guarantee  ".len()..].contains("  "),
+            "one line, single spaces: {last}"
+        );
+        for named in [
+            "i.i.d.",
+            "only through answers",
+            "sharing",
+            "not a certification",
+        ] {
+            assert!(last.contains(named), "the line names {named:?}: {last}");
+        }
+        let long = answer_text_with(&a, &[], true);
+        assert!(long.ends_with(full), "{long}");
+        assert!(!long.contains("guarantee  with"), "{long}");
+        assert_eq!(long, answer_text(&a, &[]));
     }
 
     #[test]

@@ -112,6 +112,10 @@ pub struct SubmitArgs {
     /// (the answer is still recorded and printed). A pass exits 0.
     #[arg(long)]
     pub require_pass: bool,
+    /// State the holdout's guarantee and its assumptions in full after the answer (without it,
+    /// one line names them; `holdout status` shows them in full too). JSON always has them.
+    #[arg(long)]
+    pub guarantee: bool,
     /// Print one JSON object.
     #[arg(long)]
     pub json: bool,
@@ -255,7 +259,7 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&show::answer_json(&a, &names));
             } else {
-                println!("{}", show::answer_text(&a, &names));
+                println!("{}", show::answer_text_with(&a, &names, args.guarantee));
             }
             if args.require_pass && a.symbol == "fail" {
                 eprintln!(
