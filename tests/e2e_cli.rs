@@ -105,6 +105,24 @@ fn create_ids_validate_dry_run_submit_status_history() {
     let mut want: Vec<String> = parts.rows.iter().map(|r| r.0.clone()).collect();
     want.sort();
     assert_eq!(got, want);
+    // The template is written as the ids arrive: an existing file is refused before anything
+    // is written (and kept), replaced with --force; an unknown holdout leaves no file.
+    let r = d
+        .run(&alice, &["ids", "qc", "--out", "template.csv"])
+        .code(2);
+    assert!(r.stderr.contains("already exists"), "{}", r.stderr);
+    assert_eq!(
+        std::fs::read_to_string(d.path("template.csv")).expect("template"),
+        template
+    );
+    d.run(&alice, &["ids", "qc", "--out", "template.csv", "--force"])
+        .ok();
+    assert_eq!(
+        std::fs::read_to_string(d.path("template.csv")).expect("template"),
+        template
+    );
+    d.run(&alice, &["ids", "nope", "--out", "nope.csv"]).code(5);
+    assert!(!d.path("nope.csv").exists());
 
     let before = budget(&d, &alice, "qc");
     assert_eq!(before["answered"], 0);

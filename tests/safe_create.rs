@@ -112,7 +112,9 @@ fn a_labels_file_in_any_order_is_checked_then_streamed_in_chunks() {
         "{}",
         r.stderr
     );
-    // A repeat on the last line of an unsorted file: found by the check, nothing sent.
+    // A repeat on the last line of an unsorted file: the CLI's check does not hold the ids to
+    // look for it, the daemon finds it while sorting and refuses, and the CLI reads the file
+    // again to name both lines.
     let mut repeated: Vec<String> = (0..n)
         .map(|i| format!("w{:06},cat", (i * 7919) % n))
         .collect();
@@ -135,6 +137,51 @@ fn a_labels_file_in_any_order_is_checked_then_streamed_in_chunks() {
     assert!(
         r.stderr
             .contains("duplicate id `w003757`: first on line 5, again on line 20002"),
+        "{}",
+        r.stderr
+    );
+    // Nothing was sealed and no row is taken: without the repeat the same file creates.
+    let list = d.admin(&["list", "--json"]).ok().stdout;
+    assert!(!list.contains("\"twice\""), "{list}");
+    repeated.pop();
+    let path = d.write("once.csv", &body(&repeated));
+    d.admin(&[
+        "create",
+        "twice",
+        "--labels",
+        path.as_str(),
+        "--metric",
+        "error",
+        "--classes",
+        "cat,dog",
+        "--tolerance",
+        "0.5",
+    ])
+    .ok();
+    // The check of a preview, which sends nothing, finds the repeat itself.
+    let mut repeated: Vec<String> = (0..50)
+        .map(|i| format!("v{:03},cat", (i * 7) % 50))
+        .collect();
+    repeated.push(repeated[10].clone());
+    let path = d.write("preview.csv", &body(&repeated));
+    let r = d
+        .admin(&[
+            "create",
+            "preview",
+            "--labels",
+            path.as_str(),
+            "--metric",
+            "error",
+            "--classes",
+            "cat,dog",
+            "--tolerance",
+            "0.5",
+            "--preview",
+        ])
+        .code(2);
+    assert!(
+        r.stderr
+            .contains("duplicate id `v020`: first on line 12, again on line 52"),
         "{}",
         r.stderr
     );

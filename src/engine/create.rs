@@ -210,7 +210,6 @@ impl Engine {
             }
         }
         let labels_digest = sorted.labels_digest();
-        let ids_digest = sorted.ids_digest();
 
         let now = self.now();
         let at = rfc3339(now);
@@ -278,7 +277,8 @@ impl Engine {
                     params![holdout_id, m.name, m.share],
                 )?;
             }
-            stored::write_rows(tx, holdout_id, &sorted)?;
+            // The ids digest is computed while the ids are written (one pass over them).
+            let ids_digest = stored::write_rows(tx, holdout_id, &sorted)?;
             let mut genesis = json!({
                 "holdout": head.name,
                 "description": head.description,

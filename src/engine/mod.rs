@@ -42,6 +42,7 @@ pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
     SealedRecord,
 };
+pub(crate) use rows::REPEATED;
 pub use rows::{NewRows, Sorted};
 pub(crate) use stored::texts as stored_texts;
 pub use submit::{ModelPredictions, RawValues, Receipt, SubmitMode, SubmitOutcome, SubmitRequest};

@@ -87,6 +87,34 @@ impl TextArena {
         (0..self.len()).map(|i| self.get(i))
     }
 
+    /// Where text `i` lies in the buffer.
+    fn span(&self, i: usize) -> (usize, usize) {
+        let start = if i == 0 { 0 } else { self.ends[i - 1] as usize };
+        (start, self.ends[i] as usize)
+    }
+
+    /// Appends texts `rows` to `out`, each followed by a newline, and each one's length to
+    /// `lens`. Every place is looked up first, then every text copied: two loops of loads
+    /// independent of one another, which the processor overlaps when the rows are scattered
+    /// over the buffer (a shuffled file), where handing each text on as it was found waits
+    /// for each in turn.
+    fn gather(
+        &self,
+        rows: &[u32],
+        spans: &mut Vec<(usize, usize)>,
+        out: &mut Vec<u8>,
+        lens: &mut Vec<u32>,
+    ) {
+        spans.clear();
+        spans.extend(rows.iter().map(|&r| self.span(r as usize)));
+        let text = self.text.as_bytes();
+        for &(start, end) in spans.iter() {
+            out.extend_from_slice(&text[start..end]);
+            out.push(b'\n');
+            lens.push((end - start) as u32);
+        }
+    }
+
     /// Bytes of text.
     pub(crate) fn text_len(&self) -> usize {
         self.text.len()
@@ -316,26 +344,16 @@ impl NewRows {
         }
         self.ids.shrink();
         let ids = &self.ids;
-        // Files are often sorted by id already: then there is nothing to sort, and no
-        // permutation is kept.
-        let sorted = (1..ids.len()).all(|i| ids.get(i - 1) <= ids.get(i));
-        let order: Option<Vec<u32>> = (!sorted).then(|| {
-            let mut order: Vec<u32> = (0..ids.len() as u32).collect();
-            order.sort_unstable_by(|&a, &b| ids.get(a as usize).cmp(ids.get(b as usize)));
-            order
-        });
+        let (order, repeated) = canonical_order(ids);
         let at = |i: usize| order.as_ref().map_or(i, |o| o[i] as usize);
         if ids.get(at(0)).is_empty() {
             return Err(Error::invalid("labels", "a row has an empty id"));
         }
-        for i in 1..ids.len() {
-            let id = ids.get(at(i));
-            if ids.get(at(i - 1)) == id {
-                return Err(Error::invalid(
-                    format!("row id {id}"),
-                    "appears more than once in the labels",
-                ));
-            }
+        if let Some(row) = repeated {
+            return Err(Error::invalid(
+                format!("row id {}", ids.get(row as usize)),
+                REPEATED,
+            ));
         }
         for (t, target) in self.targets.iter().enumerate() {
             let bad = &self.bad[t];
@@ -372,6 +390,96 @@ impl NewRows {
     }
 }
 
+/// What the error for a repeated id says (its field is `row id X`): the CLI, which leaves
+/// repeats in an unsorted file to the daemon, recognises it and names the file's lines.
+pub(crate) const REPEATED: &str = "appears more than once in the labels";
+
+/// The canonical order of `ids` (bytewise, as `str` compares) as arrival rows, `None` when
+/// they arrived in it, and the arrival row of the first repeated id in that order, if any.
+///
+/// Sorting a permutation by comparing ids through it reads two random places of the arena
+/// per comparison, about 23 comparisons per row at 10M rows. Here each row becomes one `u64`
+/// instead, read from the arena once, in arrival order: the top bits are the first bytes of
+/// its id after the prefix every id shares (big-endian, zero-padded), the low bits its row
+/// number. Those integers sort without touching the arena; rows whose top bits tie (ids
+/// equal in those bytes) are then put in order by their whole ids, a few at a time, and only
+/// there can an id repeat.
+fn canonical_order(ids: &TextArena) -> (Option<Vec<u32>>, Option<u32>) {
+    let n = ids.len();
+    // Files are often sorted by id already: then there is nothing to sort, and no
+    // permutation is kept (strictly increasing: no repeat either).
+    if (1..n).all(|i| ids.get(i - 1) < ids.get(i)) {
+        return (None, None);
+    }
+    let mut repeated = None;
+    let first = ids.get(0).as_bytes();
+    let mut shared = first.len();
+    for id in ids.iter() {
+        shared = first[..shared]
+            .iter()
+            .zip(id.as_bytes())
+            .take_while(|(a, b)| a == b)
+            .count();
+        if shared == 0 {
+            break;
+        }
+    }
+    // Bits for a row number (n <= 2^32 - 1), the rest for the id's bytes.
+    let row_bits = (usize::BITS - (n - 1).leading_zeros()).max(1);
+    let row_mask = (1u64 << row_bits) - 1;
+    // The id's bytes from `at` on, zero-padded, as a big-endian number.
+    let bytes_at = |id: &str, at: usize| -> u64 {
+        let mut b = [0u8; 8];
+        let rest = id.as_bytes().get(at..).unwrap_or(&[]);
+        let k = rest.len().min(8);
+        b[..k].copy_from_slice(&rest[..k]);
+        u64::from_be_bytes(b)
+    };
+    // The next four bytes after those in the key (from the byte the key's last bits fall in),
+    // read in the same pass: rows whose keys tie are then put in order without going back to
+    // the arena (a random read per row, two dependent ones: an offset, then the text).
+    let next_at = shared + (64 - row_bits as usize) / 8;
+    let mut next: Vec<u32> = Vec::with_capacity(n);
+    let mut keys: Vec<u64> = Vec::with_capacity(n);
+    for (r, id) in ids.iter().enumerate() {
+        keys.push(bytes_at(id, shared) & !row_mask | r as u64);
+        next.push((bytes_at(id, next_at) >> 32) as u32);
+    }
+    keys.sort_unstable();
+    // Where those tie too, the whole ids decide.
+    let whole = |a: u32, b: u32| ids.get(a as usize).cmp(ids.get(b as usize));
+    let mut tied: Vec<(u32, u32)> = Vec::new();
+    let mut start = 0;
+    while start < n {
+        let top = keys[start] & !row_mask;
+        let mut end = start + 1;
+        while end < n && keys[end] & !row_mask == top {
+            end += 1;
+        }
+        if end - start > 1 {
+            tied.clear();
+            tied.extend(keys[start..end].iter().map(|k| {
+                let r = (k & row_mask) as u32;
+                (next[r as usize], r)
+            }));
+            tied.sort_unstable_by(|a, b| a.0.cmp(&b.0).then_with(|| whole(a.1, b.1)));
+            if repeated.is_none() {
+                repeated = tied
+                    .windows(2)
+                    .find(|w| w[0].0 == w[1].0 && whole(w[0].1, w[1].1).is_eq())
+                    .map(|w| w[1].1);
+            }
+            for (k, &(_, r)) in keys[start..end].iter_mut().zip(&tied) {
+                *k = top | u64::from(r);
+            }
+        }
+        start = end;
+    }
+    drop(next);
+    let order = keys.iter().map(|k| (k & row_mask) as u32).collect();
+    (Some(order), repeated)
+}
+
 /// Checked rows in the canonical order (a permutation of the arrival order, not a second copy
 /// of them), ready to be digested and stored.
 #[derive(Debug)]
@@ -381,16 +489,6 @@ pub struct Sorted {
     /// Arrival row of each canonical row; `None` when they arrived sorted.
     order: Option<Vec<u32>>,
     columns: Vec<NewColumn>,
-}
-
-/// How a target's labels are stored (`sealed_labels.encoding`).
-pub(crate) enum Stored<'a> {
-    /// One byte per row: the class index.
-    Bytes(&'a [u8]),
-    /// Four bytes per row, little-endian: the class index (more than 256 classes).
-    Wide(&'a [u32]),
-    /// Each label's text followed by a newline (numbers: they never hold one).
-    Lines(&'a TextArena),
 }
 
 impl Sorted {
@@ -414,22 +512,86 @@ impl Sorted {
         self.ids.text_len()
     }
 
-    /// Target `t`'s labels, in arrival order, as stored.
-    pub(crate) fn column(&self, t: usize) -> Stored<'_> {
+    /// How target `t`'s labels are stored (`sealed_labels.encoding`), and their bytes: `u8`,
+    /// one byte per row, the class index; `u32le`, four bytes per row, little-endian, the class
+    /// index (more than 256 classes); `lines`, each label's text followed by a newline
+    /// (numbers: they never hold one).
+    pub(crate) fn stored_as(&self, t: usize) -> (&'static str, usize) {
+        let n = self.len();
         match &self.columns[t] {
-            NewColumn::Bytes(b) => Stored::Bytes(b),
-            NewColumn::Wide(w) => Stored::Wide(w),
-            NewColumn::Numbers(_, text) => Stored::Lines(text),
+            NewColumn::Bytes(_) => ("u8", n),
+            NewColumn::Wide(_) => ("u32le", 4 * n),
+            NewColumn::Numbers(_, text) => ("lines", text.text_len() + n),
         }
     }
 
-    /// SHA-256 of the ids in the canonical order, each followed by a newline.
+    /// Arrival rows of canonical rows `start..end`: a slice of the permutation, or, when the
+    /// rows arrived sorted, the numbers themselves written into `buf`.
+    fn arrivals<'b>(&'b self, start: usize, end: usize, buf: &'b mut Vec<u32>) -> &'b [u32] {
+        match &self.order {
+            Some(o) => &o[start..end],
+            None => {
+                buf.clear();
+                buf.extend(start as u32..end as u32);
+                buf
+            }
+        }
+    }
+
+    /// The ids in the canonical order, [`BLOCK`] rows at a time: `f` gets the block's ids,
+    /// each followed by a newline, and each one's length.
+    pub(crate) fn id_blocks(&self, mut f: impl FnMut(&[u8], &[u32]) -> Result<()>) -> Result<()> {
+        let (mut buf, mut spans) = (Vec::new(), Vec::with_capacity(BLOCK));
+        let (mut text, mut lens) = (Vec::new(), Vec::with_capacity(BLOCK));
+        for start in (0..self.len()).step_by(BLOCK) {
+            let rows = self.arrivals(start, (start + BLOCK).min(self.len()), &mut buf);
+            text.clear();
+            lens.clear();
+            self.ids.gather(rows, &mut spans, &mut text, &mut lens);
+            f(&text, &lens)?;
+        }
+        Ok(())
+    }
+
+    /// Target `t`'s labels in the canonical order as they are stored ([`Sorted::stored_as`]: a
+    /// byte per row, four bytes little-endian, or each text and a newline), [`BLOCK`] rows at
+    /// a time.
+    pub(crate) fn label_blocks(
+        &self,
+        t: usize,
+        mut f: impl FnMut(&[u8]) -> Result<()>,
+    ) -> Result<()> {
+        let (mut buf, mut spans, mut lens) = (Vec::new(), Vec::new(), Vec::new());
+        let mut out: Vec<u8> = Vec::new();
+        for start in (0..self.len()).step_by(BLOCK) {
+            let rows = self.arrivals(start, (start + BLOCK).min(self.len()), &mut buf);
+            out.clear();
+            match &self.columns[t] {
+                NewColumn::Bytes(b) => out.extend(rows.iter().map(|&r| b[r as usize])),
+                NewColumn::Wide(w) => {
+                    for &r in rows {
+                        out.extend_from_slice(&w[r as usize].to_le_bytes());
+                    }
+                }
+                NewColumn::Numbers(_, text) => {
+                    lens.clear();
+                    text.gather(rows, &mut spans, &mut out, &mut lens);
+                }
+            }
+            f(&out)?;
+        }
+        Ok(())
+    }
+
+    /// SHA-256 of the ids in the canonical order, each followed by a newline (what
+    /// `stored::write_rows` computes while it writes them).
+    #[cfg(test)]
     pub(crate) fn ids_digest(&self) -> String {
         let mut h = Sha256::new();
-        for id in self.ids() {
-            h.update(id.as_bytes());
-            h.update(b"\n");
-        }
+        let _ = self.id_blocks(|text, _| {
+            h.update(text);
+            Ok(())
+        });
         hex::encode(h.finalize())
     }
 
@@ -438,24 +600,41 @@ impl Sorted {
     /// each label's text and a newline. The same bytes as the labels digest has always hashed.
     pub(crate) fn labels_digest(&self) -> String {
         let mut h = Sha256::new();
+        let mut text: Vec<u8> = Vec::new();
         for (t, target) in self.targets.iter().enumerate() {
             h.update(format!("target\n{}\n", target.metric).as_bytes());
-            for i in 0..self.len() {
-                let a = self.arrival(i);
-                let text = match &self.columns[t] {
-                    NewColumn::Bytes(b) => target.classes[b[a] as usize].as_str(),
-                    NewColumn::Wide(w) => target.classes[w[a] as usize].as_str(),
-                    NewColumn::Numbers(_, text) => text.get(a),
-                };
-                h.update(text.as_bytes());
-                h.update(b"\n");
-            }
+            let lines: Vec<String> = target.classes.iter().map(|c| format!("{c}\n")).collect();
+            let _ = self.label_blocks(t, |block| {
+                match &self.columns[t] {
+                    NewColumn::Numbers(..) => h.update(block),
+                    NewColumn::Bytes(_) => {
+                        text.clear();
+                        for &c in block {
+                            text.extend_from_slice(lines[c as usize].as_bytes());
+                        }
+                        h.update(&text);
+                    }
+                    NewColumn::Wide(_) => {
+                        text.clear();
+                        for c in block.chunks_exact(4) {
+                            let c = u32::from_le_bytes([c[0], c[1], c[2], c[3]]);
+                            text.extend_from_slice(lines[c as usize].as_bytes());
+                        }
+                        h.update(&text);
+                    }
+                }
+                Ok(())
+            });
         }
         hex::encode(h.finalize())
     }
 }
 
-/// Parses a target's stored labels (`encoding` as written by [`Stored`], or `json`: a JSON
+/// Rows of the canonical order gathered at once by [`Sorted::id_blocks`] and
+/// [`Sorted::label_blocks`].
+const BLOCK: usize = 8192;
+
+/// Parses a target's stored labels (`encoding` as written by [`Sorted::stored_as`], or `json`: a JSON
 /// array of strings, how holdouts were stored before) into packed labels; `rows` are the
 /// holdout's ids, named in errors.
 ///
@@ -636,10 +815,12 @@ mod tests {
         }
         let sorted = new.finish()?;
         assert_eq!(sorted.ids().collect::<Vec<_>>(), ["a", "b", "c"]);
-        let Stored::Bytes(b) = sorted.column(0) else {
-            panic!("classes are bytes")
-        };
-        let canonical: Vec<u8> = (0..3).map(|i| b[sorted.arrival(i)]).collect();
+        assert_eq!(sorted.stored_as(0), ("u8", 3));
+        let mut canonical: Vec<u8> = Vec::new();
+        sorted.label_blocks(0, |b| {
+            canonical.extend_from_slice(b);
+            Ok(())
+        })?;
         assert_eq!(canonical, [0, 1, 1]);
 
         // Two bad labels: the one first in id order is named, whatever the arrival order.
@@ -667,6 +848,148 @@ mod tests {
         let mut new = NewRows::new(vec![target("abs_error:2", &[])], 0, 0)?;
         new.push("  ", &["1"])?;
         assert!(new.finish().unwrap_err().to_string().contains("empty id"));
+        Ok(())
+    }
+
+    /// The canonical order and the first repeat, the slow way: a permutation sorted by
+    /// comparing whole ids.
+    fn naive_order(ids: &[&str]) -> (Vec<u32>, Option<String>) {
+        let mut order: Vec<u32> = (0..ids.len() as u32).collect();
+        order.sort_by(|&a, &b| ids[a as usize].cmp(ids[b as usize]));
+        let repeat = order
+            .windows(2)
+            .find(|w| ids[w[0] as usize] == ids[w[1] as usize])
+            .map(|w| ids[w[1] as usize].to_string());
+        (order, repeat)
+    }
+
+    #[test]
+    fn the_fast_order_is_the_order_of_whole_ids() {
+        // Ids that share long prefixes, are prefixes of one another, hold NUL bytes (which the
+        // zero padding of short ids must not confuse), differ only past the first eight bytes
+        // after the shared prefix, or are not ASCII; shuffled by a fixed LCG, some repeated.
+        let mut pool: Vec<String> = Vec::new();
+        for i in 0..3000 {
+            pool.push(format!("case-{:012}", (i * 7919) % 3000));
+            pool.push(format!("case-{}", i % 97));
+            pool.push(format!("case-{:012}\0x{}", i % 50, i % 7));
+            pool.push(format!("case-00000000000{}ü", i % 13));
+        }
+        pool.push("case-".into());
+        pool.push("case-\0".into());
+        pool.push("case-\0\0".into());
+        let mut state = 12345u64;
+        let mut next = move || {
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (state >> 33) as usize
+        };
+        for round in 0..6 {
+            let mut chosen: Vec<String> = pool.clone();
+            chosen.sort();
+            chosen.dedup();
+            // Rounds 0-2 without repeats, 3-5 with some.
+            let keep = if round < 3 { 1 } else { 2 };
+            let mut ids: Vec<String> = Vec::new();
+            for id in &chosen {
+                for _ in 0..(1 + (next() % keep)) {
+                    ids.push(id.clone());
+                }
+            }
+            for i in (1..ids.len()).rev() {
+                ids.swap(i, next() % (i + 1));
+            }
+            if round == 1 {
+                ids.truncate(2);
+            }
+            let mut arena = TextArena::default();
+            for id in &ids {
+                arena.push(id).unwrap();
+            }
+            let refs: Vec<&str> = ids.iter().map(String::as_str).collect();
+            let (want, want_repeat) = naive_order(&refs);
+            let (order, repeat) = canonical_order(&arena);
+            let order = order.unwrap_or_else(|| (0..ids.len() as u32).collect());
+            let got: Vec<&str> = order.iter().map(|&r| refs[r as usize]).collect();
+            let expected: Vec<&str> = want.iter().map(|&r| refs[r as usize]).collect();
+            assert_eq!(got, expected, "round {round}");
+            let mut seen = order.clone();
+            seen.sort_unstable();
+            assert!(seen.iter().enumerate().all(|(i, &r)| r as usize == i));
+            assert_eq!(
+                repeat.map(|r| refs[r as usize].to_string()),
+                want_repeat,
+                "round {round}"
+            );
+        }
+        // Already in order: no permutation; in order but for one repeat: found.
+        let mut arena = TextArena::default();
+        for id in ["a", "b", "c"] {
+            arena.push(id).unwrap();
+        }
+        assert_eq!(canonical_order(&arena), (None, None));
+        let mut arena = TextArena::default();
+        for id in ["a", "b", "b", "c"] {
+            arena.push(id).unwrap();
+        }
+        let (order, repeat) = canonical_order(&arena);
+        assert!(order.is_some());
+        assert_eq!(repeat.map(|r| arena.get(r as usize)), Some("b"));
+    }
+
+    #[test]
+    fn blocks_give_every_row_in_the_canonical_order_across_block_edges() -> Result<()> {
+        // More rows than two blocks, shuffled; a numeric target and one with 300 classes.
+        let n = 2 * BLOCK + 77;
+        let classes: Vec<String> = (0..300).map(|c| format!("k{c}")).collect();
+        let class_refs: Vec<&str> = classes.iter().map(String::as_str).collect();
+        let mut wide_target = target("error", &class_refs);
+        wide_target.name = "w".into();
+        let targets = vec![target("abs_error:9", &[]), wide_target];
+        let mut new = NewRows::new(targets.clone(), 0, 0)?;
+        let id = |i: usize| format!("row-{:06}", (i * 7919) % n);
+        for i in 0..n {
+            let r = (i * 7919) % n;
+            new.push(&id(i), &[&format!("{}.5", r % 9), &classes[r % 300]])?;
+        }
+        let sorted = new.finish()?;
+        // The ids in order, each with its newline, and their lengths.
+        let (mut text, mut lens) = (Vec::new(), Vec::new());
+        sorted.id_blocks(|t, l| {
+            text.extend_from_slice(t);
+            lens.extend_from_slice(l);
+            Ok(())
+        })?;
+        let want: String = (0..n).map(|r| format!("row-{r:06}\n")).collect();
+        assert_eq!(String::from_utf8(text).unwrap(), want);
+        assert!(lens.len() == n && lens.iter().all(|&l| l == 10));
+        // Labels as stored, and the digest over their texts.
+        let mut numbers = Vec::new();
+        sorted.label_blocks(0, |b| {
+            numbers.extend_from_slice(b);
+            Ok(())
+        })?;
+        let want_numbers: String = (0..n).map(|r| format!("{}.5\n", r % 9)).collect();
+        assert_eq!(String::from_utf8(numbers).unwrap(), want_numbers);
+        let mut wide = Vec::new();
+        sorted.label_blocks(1, |b| {
+            wide.extend_from_slice(b);
+            Ok(())
+        })?;
+        let want_wide: Vec<u8> = (0..n)
+            .flat_map(|r| ((r % 300) as u32).to_le_bytes())
+            .collect();
+        assert_eq!(wide, want_wide);
+        assert_eq!(sorted.stored_as(1), ("u32le", 4 * n));
+        let mut h = Sha256::new();
+        h.update(format!("target\n{}\n", targets[0].metric).as_bytes());
+        h.update(want_numbers.as_bytes());
+        h.update(format!("target\n{}\n", targets[1].metric).as_bytes());
+        for r in 0..n {
+            h.update(format!("k{}\n", r % 300).as_bytes());
+        }
+        assert_eq!(sorted.labels_digest(), hex::encode(h.finalize()));
         Ok(())
     }
 

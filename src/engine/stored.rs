@@ -8,8 +8,9 @@ use std::io::{BufReader, BufWriter, Read, Write};
 
 use rusqlite::blob::ZeroBlob;
 use rusqlite::{Connection, MAIN_DB, OptionalExtension, params};
+use sha2::{Digest, Sha256};
 
-use super::rows::{Sorted, Stored, TextArena};
+use super::rows::{Sorted, TextArena};
 use crate::error::{Error, Result};
 
 /// Buffer for blob reads and writes.
@@ -19,8 +20,9 @@ fn io_error(what: &str, e: std::io::Error) -> Error {
     Error::Internal(format!("{what}: {e}"))
 }
 
-/// Writes the holdout's ids and labels in the canonical order.
-pub(super) fn write_rows(tx: &Connection, holdout_id: i64, rows: &Sorted) -> Result<()> {
+/// Writes the holdout's ids and labels in the canonical order; gives back the ids digest
+/// ([`Sorted::ids_digest`], computed on the way).
+pub(super) fn write_rows(tx: &Connection, holdout_id: i64, rows: &Sorted) -> Result<String> {
     let n = rows.len();
     tx.execute(
         "INSERT INTO holdout_ids (holdout_id, row_count, ids, ends) VALUES (?1, ?2, ?3, ?4)",
@@ -31,32 +33,47 @@ pub(super) fn write_rows(tx: &Connection, holdout_id: i64, rows: &Sorted) -> Res
             ZeroBlob(4 * n as u64)
         ],
     )?;
+    // One pass over the ids in the canonical order writes their blob, hashes them and keeps
+    // their end offsets, written next: one blob at a time, for while two handles are open on
+    // one row each write through one makes SQLite drop the other's cache of overflow pages
+    // and walk the page chain again.
+    let mut digest = Sha256::new();
+    let mut ends: Vec<u32> = Vec::with_capacity(n);
     {
-        let blob = tx.blob_open(MAIN_DB, "holdout_ids", "ids", holdout_id, false)?;
-        let mut w = BufWriter::with_capacity(BUF, blob);
-        for id in rows.ids() {
-            w.write_all(id.as_bytes())
-                .map_err(|e| io_error("writing ids", e))?;
-        }
+        let mut w = BufWriter::with_capacity(
+            BUF,
+            tx.blob_open(MAIN_DB, "holdout_ids", "ids", holdout_id, false)?,
+        );
+        let mut end = 0u32;
+        rows.id_blocks(|text, lens| {
+            digest.update(text);
+            let mut at = 0;
+            for &len in lens {
+                end += len;
+                ends.push(end);
+                let len = len as usize;
+                w.write_all(&text[at..at + len])
+                    .map_err(|e| io_error("writing ids", e))?;
+                at += len + 1;
+            }
+            Ok(())
+        })?;
         w.flush().map_err(|e| io_error("writing ids", e))?;
     }
     {
-        let blob = tx.blob_open(MAIN_DB, "holdout_ids", "ends", holdout_id, false)?;
-        let mut w = BufWriter::with_capacity(BUF, blob);
-        let mut end = 0u32;
-        for id in rows.ids() {
-            end += id.len() as u32;
+        let mut w = BufWriter::with_capacity(
+            BUF,
+            tx.blob_open(MAIN_DB, "holdout_ids", "ends", holdout_id, false)?,
+        );
+        for end in &ends {
             w.write_all(&end.to_le_bytes())
                 .map_err(|e| io_error("writing ids", e))?;
         }
         w.flush().map_err(|e| io_error("writing ids", e))?;
     }
+    drop(ends);
     for t in 0..rows.targets.len() {
-        let (encoding, len) = match rows.column(t) {
-            Stored::Bytes(_) => ("u8", n),
-            Stored::Wide(_) => ("u32le", 4 * n),
-            Stored::Lines(text) => ("lines", text.text_len() + n),
-        };
+        let (encoding, len) = rows.stored_as(t);
         tx.execute(
             "INSERT INTO sealed_labels (holdout_id, target, labels, encoding)
              VALUES (?1, ?2, ?3, ?4)",
@@ -70,21 +87,13 @@ pub(super) fn write_rows(tx: &Connection, holdout_id: i64, rows: &Sorted) -> Res
             false,
         )?;
         let mut w = BufWriter::with_capacity(BUF, blob);
-        let column = rows.column(t);
-        for i in 0..n {
-            let a = rows.arrival(i);
-            let r = match &column {
-                Stored::Bytes(b) => w.write_all(&[b[a]]),
-                Stored::Wide(v) => w.write_all(&v[a].to_le_bytes()),
-                Stored::Lines(text) => w
-                    .write_all(text.get(a).as_bytes())
-                    .and_then(|()| w.write_all(b"\n")),
-            };
-            r.map_err(|e| io_error("writing labels", e))?;
-        }
+        rows.label_blocks(t, |block| {
+            w.write_all(block)
+                .map_err(|e| io_error("writing labels", e))
+        })?;
         w.flush().map_err(|e| io_error("writing labels", e))?;
     }
-    Ok(())
+    Ok(hex::encode(digest.finalize()))
 }
 
 /// The holdout's ids from their blobs, in the canonical order; `None` for a holdout stored

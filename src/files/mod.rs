@@ -286,6 +286,10 @@ pub struct Streamed {
     pub rows: u64,
     /// Bytes of all the (trimmed) ids.
     pub id_bytes: u64,
+    /// Whether the ids came in strictly increasing order (then none repeats). A file read by
+    /// [`check_rows_except_repeats`] whose ids did not was not checked for repeats. Always
+    /// true from [`stream_rows`], which does not look.
+    pub ids_increase: bool,
 }
 
 /// Reads a file through with every check of [`read_table`] (repeated ids included), handing
@@ -304,6 +308,62 @@ pub fn check_rows(path: &Path, spec: &TableSpec, sink: &mut RowSink<'_>) -> Resu
     }
     .map(Scanned::streamed)
 }
+
+/// Reads a file through with every check of [`check_rows`] but, once the ids stop coming in
+/// increasing order, without looking for repeated ids, and keeping nothing: no table of ids,
+/// no second read. While the ids increase none can repeat (each is compared with the one
+/// before); from the first id out of order on, repeats are left to whoever receives the rows
+/// (the daemon finds them while it sorts the rows), and [`Streamed::ids_increase`] is false.
+/// [`find_repeat`] names the lines of a repeated id afterwards.
+///
+/// # Errors
+/// As [`read_table`] except repeated ids after the first id out of order, and whatever `sink`
+/// returns.
+pub fn check_rows_except_repeats(
+    path: &Path,
+    spec: &TableSpec,
+    sink: &mut RowSink<'_>,
+) -> Result<Streamed> {
+    scan(path, spec, Keep::WhileIncreasing, sink).map(Scanned::streamed)
+}
+
+/// The lines of the first two rows whose id is `id` (trimmed, as the checks compare them), or
+/// `None` when fewer than two rows have it: reads the file through keeping nothing.
+///
+/// # Errors
+/// As [`stream_rows`].
+pub fn find_repeat(path: &Path, spec: &TableSpec, id: &str) -> Result<Option<(u64, u64)>> {
+    let mut first = None;
+    let mut found = None;
+    let read = stream_rows(path, spec, &mut |line, row_id, _| {
+        if row_id == id {
+            match first {
+                None => first = Some(line),
+                Some(f) => {
+                    found = Some((f, line));
+                    return Err(Error::Internal(FOUND.into()));
+                }
+            }
+        }
+        Ok(())
+    });
+    match read {
+        Err(Error::Internal(m)) if m == FOUND => Ok(found),
+        Err(e) => Err(e),
+        Ok(_) => Ok(None),
+    }
+}
+
+/// The error for an id seen again: `source:line`, naming both lines (as every check says it).
+pub fn repeat_error(source: &str, id: &str, first: u64, line: u64) -> Error {
+    Error::invalid(
+        format!("{source}:{line}"),
+        format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
+    )
+}
+
+/// The internal signal of [`find_repeat`] that the second row was found.
+const FOUND: &str = "files: the repeat was found";
 
 /// Reads a file through as [`check_rows`] does but without looking for repeated ids (for a
 /// second pass over a file [`check_rows`] has checked): nothing is kept.
@@ -325,6 +385,7 @@ impl Scanned {
             columns: self.columns,
             rows: self.ids.count,
             id_bytes: self.ids.id_bytes,
+            ids_increase: !self.ids.out_of_order,
         }
     }
 }
@@ -404,8 +465,12 @@ struct Ids {
     /// Rows pushed, and the bytes of their ids.
     count: u64,
     id_bytes: u64,
-    /// The last id ([`Keep::Last`]).
+    /// The last id ([`Keep::Last`], [`Keep::WhileIncreasing`]).
     last: String,
+    /// The line of the last id ([`Keep::WhileIncreasing`]).
+    last_line: u64,
+    /// Whether an id came that was not greater than the one before.
+    out_of_order: bool,
     ids: Vec<String>,
     lines: Vec<u64>,
     /// Built at the first id out of order; empty (and unused) before.
@@ -426,6 +491,8 @@ enum Keep {
     Last,
     /// Nothing: repeats are not looked for.
     Nothing,
+    /// The last id while the ids increase; nothing from the first id out of order on.
+    WhileIncreasing,
 }
 
 impl Ids {
@@ -438,12 +505,29 @@ impl Ids {
 
     /// The line of an earlier row with this id.
     fn find(&mut self, id: &str) -> Result<Option<u64>> {
+        let in_order = self.count == 0 || id > self.last.as_str();
         match self.keep {
-            Keep::All => Ok(self.find_kept(id)),
-            Keep::Last if self.count > 0 && id <= self.last.as_str() => {
-                Err(Error::Internal(OUT_OF_ORDER.into()))
+            Keep::All => {
+                if self.count > 0
+                    && !self.indexed
+                    && self.ids.last().is_some_and(|l| id <= l.as_str())
+                {
+                    self.out_of_order = true;
+                }
+                Ok(self.find_kept(id))
             }
-            Keep::Last | Keep::Nothing => Ok(None),
+            Keep::Last if !in_order => Err(Error::Internal(OUT_OF_ORDER.into())),
+            // The same id twice in a row is a repeat found without a table.
+            Keep::WhileIncreasing if id == self.last.as_str() && self.count > 0 => {
+                Ok(Some(self.last_line))
+            }
+            Keep::WhileIncreasing if !in_order => {
+                self.out_of_order = true;
+                self.keep = Keep::Nothing;
+                self.last = String::new();
+                Ok(None)
+            }
+            Keep::Last | Keep::WhileIncreasing | Keep::Nothing => Ok(None),
         }
     }
 
@@ -481,9 +565,10 @@ impl Ids {
         self.id_bytes += id.len() as u64;
         match self.keep {
             Keep::All => self.keep(id.to_string(), line),
-            Keep::Last => {
+            Keep::Last | Keep::WhileIncreasing => {
                 self.last.clear();
                 self.last.push_str(id);
+                self.last_line = line;
             }
             Keep::Nothing => {}
         }
@@ -554,10 +639,7 @@ impl<'a, 's> Builder<'a, 's> {
             Some(id) => id,
         };
         if let Some(first) = self.ids.find(id)? {
-            return Err(self.err(
-                line,
-                format!("duplicate id `{id}`: first on line {first}, again on line {line}"),
-            ));
+            return Err(repeat_error(&self.source, id, first, line));
         }
         // Checked after the id, so a repeated id is named as such.
         if let Some((max, what)) = &self.spec.max_rows
@@ -867,6 +949,19 @@ where
     I: IntoIterator<Item = R>,
     R: AsRef<[String]>,
 {
+    write_csv(
+        std::io::BufWriter::new(new_file(path, overwrite)?),
+        header,
+        rows,
+    )
+}
+
+/// Opens a new file for writing (refusing to replace an existing one unless `overwrite`).
+///
+/// # Errors
+/// [`Error::InvalidArgument`] naming the file when it exists and `overwrite` is false, or
+/// cannot be created.
+pub fn new_file(path: &Path, overwrite: bool) -> Result<File> {
     let mut options = std::fs::OpenOptions::new();
     options.write(true);
     if overwrite {
@@ -874,18 +969,17 @@ where
     } else {
         options.create_new(true);
     }
-    let file = options.open(path).map_err(|e| {
+    options.open(path).map_err(|e| {
         let message = if e.kind() == std::io::ErrorKind::AlreadyExists {
             "already exists; refusing to replace it".to_string()
         } else {
             format!("cannot write: {e}")
         };
         Error::invalid(path.display().to_string(), message)
-    })?;
-    write_csv(std::io::BufWriter::new(file), header, rows)
+    })
 }
 
-fn csv_write_error(e: csv::Error) -> Error {
+pub(crate) fn csv_write_error(e: csv::Error) -> Error {
     match e.into_kind() {
         csv::ErrorKind::Io(io) => Error::Io(io),
         other => Error::invalid("csv", format!("{other:?}")),
@@ -976,6 +1070,78 @@ mod tests {
         })
         .expect("no repeat check");
         assert_eq!((s.rows, n), (2, 2));
+    }
+
+    #[test]
+    fn the_check_except_repeats_reads_once_and_finds_repeats_only_while_ids_increase() {
+        let dir = tempfile::tempdir().expect("tempdir");
+        let run = |bytes: &[u8]| {
+            let path = write(&dir, "labels.csv", bytes);
+            let mut seen = Vec::new();
+            let r = check_rows_except_repeats(&path, &label_spec(), &mut |line, id, _| {
+                seen.push((line, id.to_string()));
+                Ok(())
+            });
+            (path, r, seen)
+        };
+        // Sorted: checked, repeats ruled out.
+        let (_, r, seen) = run(b"id,label
+a,1
+b,2
+c,3
+");
+        let s = r.expect("sorted");
+        assert!(s.ids_increase && s.rows == 3 && seen.len() == 3);
+        // Sorted up to a repeat: named with both lines, as by check_rows.
+        let (_, r, _) = run(b"id,label
+a,1
+b,2
+b,3
+c,4
+");
+        match r {
+            Err(Error::InvalidArgument { field, message }) => {
+                assert!(field.ends_with("labels.csv:4"), "{field}");
+                assert_eq!(
+                    message,
+                    "duplicate id `b`: first on line 3, again on line 4"
+                );
+            }
+            other => panic!("expected a repeat, got {other:?}"),
+        }
+        // Unsorted: one read (no row seen twice), repeats not looked for, the rows counted...
+        let (path, r, seen) = run(b"id,label
+b,1
+a,2
+ b ,3
+c,4
+a,5
+");
+        let s = r.expect("repeats after the order broke are left to the daemon");
+        assert!(!s.ids_increase);
+        assert_eq!((s.rows, s.id_bytes, seen.len()), (5, 5, 5));
+        assert_eq!(seen[2], (4, "b".to_string()));
+        // ... and find_repeat names the first two lines of an id (trimmed), or none.
+        assert_eq!(
+            find_repeat(&path, &label_spec(), "b").unwrap(),
+            Some((2, 4))
+        );
+        assert_eq!(
+            find_repeat(&path, &label_spec(), "a").unwrap(),
+            Some((3, 6))
+        );
+        assert_eq!(find_repeat(&path, &label_spec(), "c").unwrap(), None);
+        // Other problems after the order broke are still found.
+        let (_, r, _) = run(b"id,label
+b,1
+a,2
+,3
+");
+        let err = r.expect_err("an empty id").to_string();
+        assert!(
+            err.contains("labels.csv:4") && err.contains("empty id"),
+            "{err}"
+        );
     }
 
     #[test]

@@ -35,6 +35,30 @@ fn policy_input(p: crate::proto::v1::Policy) -> PolicyInput {
     }
 }
 
+/// Metadata of a create refused for a repeated row id: the id's bytes (the CLI, which leaves
+/// repeats in an unsorted labels file to the daemon, reads the file again for its lines).
+pub const REPEATED_ID_KEY: &str = "holdout-repeated-id-bin";
+
+/// Longest id put in [`REPEATED_ID_KEY`] (the whole reply's headers are limited).
+const REPEATED_ID_MAX: usize = 4096;
+
+/// The reply to a refused create: the status of the error, with [`REPEATED_ID_KEY`] when a
+/// row id is repeated.
+fn create_status(e: Error) -> Status {
+    let repeated = match &e {
+        Error::InvalidArgument { field, message } if message == crate::engine::REPEATED => field
+            .strip_prefix("row id ")
+            .filter(|id| id.len() <= REPEATED_ID_MAX)
+            .map(|id| tonic::metadata::MetadataValue::from_bytes(id.as_bytes())),
+        _ => None,
+    };
+    let mut status = Status::from(e);
+    if let Some(id) = repeated {
+        status.metadata_mut().insert_bin(REPEATED_ID_KEY, id);
+    }
+    status
+}
+
 #[tonic::async_trait]
 impl Holdouts for Daemon {
     async fn create_holdout(
@@ -149,7 +173,8 @@ impl Holdouts for Daemon {
         let view = self
             .db
             .call(move |engine| engine.create_streamed(&caller, head, rows, family, expect))
-            .await?;
+            .await
+            .map_err(create_status)?;
         Ok(Response::new(convert::holdout(&view)))
     }
     async fn get_holdout(

@@ -7,6 +7,8 @@ mod ledger;
 mod submissions;
 mod users;
 
+pub use holdouts::REPEATED_ID_KEY;
+
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
 

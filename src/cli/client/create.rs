@@ -491,11 +491,19 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         .map(|s| columns.iter().position(|c| *c == s.column).unwrap_or(0))
         .collect();
     // First pass: every check (ids, labels) with nothing kept but a fingerprint of the rows,
-    // which the second pass, the upload, must reproduce.
+    // which the second pass, the upload, must reproduce. Ids out of order are not checked for
+    // repeats (that would hold every id): the daemon finds a repeat while it sorts the rows,
+    // and `upload` then names its lines. A preview, which sends nothing, checks them here.
+    let check: fn(&std::path::Path, &TableSpec, &mut files::RowSink<'_>) -> Result<_> =
+        if args.preview {
+            files::check_rows
+        } else {
+            files::check_rows_except_repeats
+        };
     let mut fingerprint = Fingerprint::new();
     let source = args.labels.display().to_string();
     let mut last_line = 0;
-    let checked = files::check_rows(&args.labels, &spec_of_file, &mut |line, id, values| {
+    let checked = check(&args.labels, &spec_of_file, &mut |line, id, values| {
         for (t, &k) in positions.iter().enumerate() {
             check_label(&specs[t], &targets[t], &source, line, id, values[k])?;
         }
@@ -619,6 +627,7 @@ async fn upload(
     let first = CreateHoldoutChunk {
         part: Some(Part::Spec(spec)),
     };
+    let (file, table) = (path, file_spec);
     let (path, file_spec, positions) = (path.to_path_buf(), file_spec.clone(), positions.to_vec());
     let (expect_rows, expect_print) = (checked.rows, fingerprint.value);
     let mut again = fingerprint.restart();
@@ -682,8 +691,31 @@ async fn upload(
     let (answer, read) = tokio::join!(call, reader);
     match read.map_err(|e| anyhow::anyhow!("reading the labels: {e}"))? {
         Err(Some(e)) => Err(e.into()),
-        Ok(()) | Err(None) => Ok(answer.map_err(|e| conn.fail(e))?.into_inner()),
+        Ok(()) | Err(None) => match answer {
+            Ok(info) => Ok(info.into_inner()),
+            Err(status) => {
+                // A repeated id in a file whose ids were out of order (so the check left
+                // repeats to the daemon): named with both its lines, as the check names one.
+                if !checked.ids_increase
+                    && let Some(id) = repeated_id(&status)
+                    && let Ok(Some((first, line))) = files::find_repeat(file, table, &id)
+                {
+                    return Err(files::repeat_error(&checked.source, &id, first, line).into());
+                }
+                Err(conn.fail(status))
+            }
+        },
     }
+}
+
+/// The row id a create was refused for, repeated in its labels (see
+/// [`crate::service::REPEATED_ID_KEY`]).
+fn repeated_id(status: &tonic::Status) -> Option<String> {
+    if status.code() != tonic::Code::InvalidArgument {
+        return None;
+    }
+    let value = status.metadata().get_bin(crate::service::REPEATED_ID_KEY)?;
+    String::from_utf8(value.to_bytes().ok()?.to_vec()).ok()
 }
 
 #[cfg(test)]

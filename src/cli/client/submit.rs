@@ -138,27 +138,31 @@ pub async fn ids(args: &IdsArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
-    let mut targets = Vec::new();
-    let mut rows: Vec<Vec<String>> = Vec::new();
-    while let Some(chunk) = stream.next().await {
-        let chunk = chunk.map_err(|e| conn.fail(e))?;
-        targets.extend(chunk.targets);
-        rows.extend(chunk.ids.into_iter().map(|id| vec![id, String::new()]));
+    // The ids are written as their chunks arrive: the CLI never holds the whole list. A file
+    // left incomplete by a failure on the way is removed.
+    let out: Box<dyn std::io::Write + Send> = match &args.out {
+        Some(path) => Box::new(std::io::BufWriter::with_capacity(
+            1 << 16,
+            files::new_file(path, args.force)?,
+        )),
+        None => Box::new(std::io::BufWriter::new(std::io::stdout())),
+    };
+    let written = write_template(&mut stream, out, &conn).await;
+    if written.is_err()
+        && let Some(path) = &args.out
+    {
+        let _ = std::fs::remove_file(path);
     }
-    let header = vec!["id".to_string(), "prediction".to_string()];
-    match &args.out {
-        Some(path) => files::write_csv_file(path, &header, &rows, args.force)?,
-        None => files::write_csv(std::io::stdout().lock(), &header, &rows)?,
-    }
+    let (targets, rows) = written?;
     if args.json {
         show::print_json(&json!({
             "holdout": args.name,
-            "rows": rows.len(),
+            "rows": rows,
             "out": args.out.as_ref().map(|p| p.display().to_string()),
             "targets": targets.iter().map(show::target_json).collect::<Vec<_>>(),
         }));
     } else {
-        eprintln!("{}: {} row ids", args.name, rows.len());
+        eprintln!("{}: {rows} row ids", args.name);
         for t in &targets {
             eprintln!("target {}", show::target_text(t));
         }
@@ -167,6 +171,31 @@ pub async fn ids(args: &IdsArgs) -> anyhow::Result<ExitCode> {
         }
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Writes the declaration's ids as a CSV template (`id,prediction`, predictions empty) as the
+/// chunks arrive; gives back the targets and the number of rows.
+async fn write_template(
+    stream: &mut tonic::Streaming<crate::proto::v1::DeclarationChunk>,
+    out: Box<dyn std::io::Write + Send>,
+    conn: &Conn,
+) -> anyhow::Result<(Vec<Target>, usize)> {
+    let mut w = csv::WriterBuilder::new().flexible(false).from_writer(out);
+    w.write_record(["id", "prediction"])
+        .map_err(files::csv_write_error)?;
+    let mut targets = Vec::new();
+    let mut rows = 0;
+    while let Some(chunk) = stream.next().await {
+        let chunk = chunk.map_err(|e| conn.fail(e))?;
+        targets.extend(chunk.targets);
+        for id in &chunk.ids {
+            w.write_record([id.as_str(), ""])
+                .map_err(files::csv_write_error)?;
+        }
+        rows += chunk.ids.len();
+    }
+    w.flush().map_err(Error::Io)?;
+    Ok((targets, rows))
 }
 
 /// Checks predictions against the declaration; nothing is charged or recorded.
