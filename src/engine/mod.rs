@@ -24,6 +24,7 @@ mod rows;
 mod stored;
 mod submit;
 mod visibility;
+mod withdraw;
 mod worker;
 
 use std::collections::HashMap;
@@ -50,7 +51,8 @@ pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
-pub use replay::{CloseRecord, ReadRecord, Record};
+pub use replay::{CloseRecord, ReadRecord, Record, WithdrawRecord, WithdrawRequestRecord};
+pub use withdraw::Withdrawal;
 
 use crate::error::{Error, Result};
 use crate::metric::Labels;
@@ -345,7 +347,10 @@ impl Engine {
         }
         let entry = crate::ledger::append(self.store.conn(), chain, kind, body)?;
         self.touch(chain);
-        let keeps_state = matches!(kind, Kind::Read | Kind::Close) || kind.is_identity();
+        let keeps_state = matches!(
+            kind,
+            Kind::Read | Kind::Close | Kind::WithdrawRequest | Kind::Withdraw
+        ) || kind.is_identity();
         match book {
             Some(book) => {
                 self.accountants

@@ -186,8 +186,13 @@ impl Engine {
         }
         self.settle(&loaded)?;
         if let Some(at) = self.closed_at(loaded.id)? {
+            let what = if self.withdrawn_at(loaded.id)?.is_some() {
+                "withdrawn"
+            } else {
+                "closed"
+            };
             return Err(Error::FailedPrecondition(format!(
-                "holdout {} was closed at {at} and answers no more queries",
+                "holdout {} was {what} at {at} and answers no more queries",
                 loaded.name
             )));
         }
