@@ -8,10 +8,10 @@ use anyhow::{Context, bail};
 use clap::Args;
 use serde_json::json;
 
+use crate::stats::fair::{FairRow, FairSpec, fair_table};
 use crate::stats::interval::{
     Interval, Method, Rounding, Sides, display_outward, errors_interval_with, mean_interval_with,
 };
-use crate::stats::fair::{FairRow, FairSpec, fair_table};
 use crate::stats::plan::{PlanRow, PlanSpec, plan_table, rows_table};
 use crate::stats::rules::Rule;
 use crate::stats::schedule::Schedule;

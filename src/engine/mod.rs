@@ -32,7 +32,7 @@ use std::sync::Arc;
 
 use rusqlite::{OptionalExtension, params};
 
-pub use account::{HoldoutPolicy, PolicyInput, Quote};
+pub use account::{DEFAULT_RANKING_SHARE, HoldoutPolicy, PolicyInput, Quote};
 pub use clock::{Clock, FixedClock, SystemClock};
 pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,

@@ -167,6 +167,54 @@ fn served_at(spec: &FairSpec, p: &FairPolicy, max_level: f64) -> u64 {
     spec.answers_each
 }
 
+/// Most answers a first team is assumed to take before the others start ([`first_comer`]).
+pub const FIRST_COMER_CAP: u64 = 100_000;
+
+/// What happens when the first team takes all it can before the others start: the answers it
+/// gets alone (until its next would be refused, at most [`FIRST_COMER_CAP`]), and the answers
+/// every later team is then sure to get (taking turns, at most `M`). Compared with
+/// [`served`] (everyone taking turns from the start), a smaller second number means that the
+/// first answers starve the later teams: under one pool they spend the shares, under `shared`
+/// their codes lengthen everyone's transcript.
+pub fn first_comer(spec: &FairSpec, p: &FairPolicy, reference: f64) -> (u64, u64) {
+    let max_level = max_fitting_level(&plan_spec(spec, p, spec.rows), &p.rule, reference);
+    let code = Code::for_version(CODE);
+    let past = Past::start(&p.rule, spec.rows);
+    let worst = |j: u64| code.worst_case_nats(&p.rule, spec.rows, &past, j);
+    let ln_inv_delta = -spec.delta.ln();
+    let teams = spec.teams.max(1);
+    let fits = |a: u64, index: u64, transcript: f64| {
+        p.schedule.ln_inv_fraction(index).is_some_and(|frac| {
+            ln_inv_delta + ln_inv_weight(p.split, teams, a) + frac + transcript <= max_level
+        })
+    };
+    let mut alone = 0;
+    while alone < FIRST_COMER_CAP && fits(0, alone + 1, worst(alone)) {
+        alone += 1;
+    }
+    if teams == 1 {
+        return (alone, 0);
+    }
+    let others = teams - 1;
+    for r in 0..spec.answers_each {
+        for b in 1..teams {
+            let index = match p.split {
+                PoolSplit::None => alone + r * others + b,
+                _ => r + 1,
+            };
+            let transcript = if p.isolated {
+                worst(r)
+            } else {
+                worst(alone) + (b - 1) as f64 * worst(r + 1) + (teams - b) as f64 * worst(r)
+            };
+            if !fits(b, index, transcript) {
+                return (alone, r);
+            }
+        }
+    }
+    (alone, spec.answers_each)
+}
+
 fn plan_spec(spec: &FairSpec, p: &FairPolicy, rows: u64) -> PlanSpec {
     PlanSpec {
         rows,
@@ -297,11 +345,8 @@ mod tests {
         for rule in ["rounded:0.01", "ladder:0.01", "threshold:0.2", "sealed"] {
             let s = spec(20_000, 1, 1_000);
             let p = policy(rule, "series", PoolSplit::None, false);
-            let plan = crate::stats::plan::queries_that_fit(
-                &plan_spec(&s, &p, s.rows),
-                &p.rule,
-                0.5,
-            );
+            let plan =
+                crate::stats::plan::queries_that_fit(&plan_spec(&s, &p, s.rows), &p.rule, 0.5);
             assert_eq!(served(&s, &p, 0.5) as f64, plan.min(1_000.0), "{rule}");
         }
     }
@@ -328,17 +373,22 @@ mod tests {
         let s = spec(1_000, 5, 3);
         let p = policy("ladder:0.01", "series", PoolSplit::Roster, true);
         let n = rows_needed(&s, &p).unwrap();
-        let at = |rows| {
-            served(
-                &FairSpec {
-                    rows,
-                    ..s.clone()
-                },
-                &p,
-                0.5,
-            )
-        };
+        let at = |rows| served(&FairSpec { rows, ..s.clone() }, &p, 0.5);
         assert!(at(n) >= 3 && at(n - 1) < 3, "{n}");
+    }
+
+    /// Under one shared pool a first team that takes all it can leaves the others less than
+    /// taking turns would; with isolated per-team pools it takes nothing from them.
+    #[test]
+    fn a_first_comer_starves_a_shared_pool_and_not_isolated_ones() {
+        let s = spec(20_000, 4, 3);
+        let shared = policy("rounded:0.01", "series", PoolSplit::None, false);
+        let (alone, after) = first_comer(&s, &shared, 0.5);
+        let turns = served(&s, &shared, 0.5);
+        assert!(alone > turns && after < turns, "{alone} {after} {turns}");
+        let own = policy("rounded:0.01", "series", PoolSplit::Roster, true);
+        let (alone, after) = first_comer(&s, &own, 0.5);
+        assert_eq!(after, served(&s, &own, 0.5), "{alone}");
     }
 
     /// The table puts the policies that serve first, and at the expected error no fewer

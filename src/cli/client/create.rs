@@ -110,6 +110,10 @@ pub struct CreateArgs {
     #[arg(long, value_name = "N", default_value_t = 1,
           value_parser = clap::value_parser!(u32).range(1..))]
     pub expect_answers: u32,
+    /// Teams you expect to submit, for the fair-service lines of the plan only (nothing is
+    /// sent; a --shares roster declares its teams itself).
+    #[arg(long, value_name = "T", value_parser = clap::value_parser!(u64).range(1..))]
+    pub teams: Option<u64>,
     /// Sealed rounds: deadline, RFC 3339 (e.g. 2026-06-30T12:00:00Z). Entries after it are
     /// refused and the round closes by itself; without it an organizer closes the round.
     #[arg(long, value_name = "TIME")]
@@ -509,7 +513,13 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     })?;
 
     let policy = policy_of(args);
-    let plan = super::plan::describe(checked.rows, &policy, &targets, args.expected_error)?;
+    let plan = super::plan::describe(
+        checked.rows,
+        &policy,
+        &targets,
+        args.expected_error,
+        args.teams,
+    )?;
     let joint = joint_note(args.delta, args.family.as_deref(), args.family_delta);
     let family_json = args
         .family
