@@ -169,3 +169,66 @@ fn create_with_declared_teams_says_what_each_can_expect_and_warns_of_starvation(
         text.stdout
     );
 }
+
+/// Sealed rounds default to an even schedule over the expected entries: every entry gets the
+/// same level (nothing is released before the close), so none is refused for the tolerance
+/// before the close. The same round under `series` cannot afford the entries at all.
+#[test]
+fn sealed_rounds_default_to_an_even_schedule_and_refuse_no_entry_for_tolerance() {
+    let d = common::Daemon::start();
+    let labels = labels(d.dir.path(), 300);
+    let create = |name: &str, extra: &[&str]| {
+        let mut args = vec![
+            "create",
+            name,
+            "--labels",
+            &labels,
+            "--metric",
+            "error",
+            "--classes",
+            "a,b",
+            "--answers",
+            "sealed:0.01",
+            "--tolerance",
+            "0.1",
+            "--expect-answers",
+            "8",
+            "--json",
+        ];
+        args.extend_from_slice(extra);
+        d.admin(&args)
+    };
+    // Under series the eighth entry's share is too small for the tolerance on 300 rows:
+    // refused before anything is sealed.
+    let refused = create("round-series", &["--schedule", "series"]).code(2);
+    assert!(refused.stderr.contains("nothing was sealed"), "{}", refused.stderr);
+    let info = create("round", &[]).ok().json();
+    assert_eq!(info["policy"]["schedule"], "even:8", "{info}");
+    let mut sealed = 0;
+    for t in 0..4 {
+        let token = d.add_user(&format!("ana{t}"), &["analyst"], Some(&format!("team{t}")));
+        for k in 0..2 {
+            let mut p = String::from("id,prediction\n");
+            for i in 0..300 {
+                let v = if (i + t + k) % 4 == 0 { "a" } else { "b" };
+                p.push_str(&format!("r{i:05},{v}\n"));
+            }
+            let file = d.write(&format!("p{t}{k}.csv"), &p);
+            let out = d.run(&token, &["submit", "round", "--predictions", &file, "--json"]);
+            assert_eq!(out.code, 0, "entry {t}/{k}: {}\n{}", out.stdout, out.stderr);
+            sealed += 1;
+        }
+    }
+    assert_eq!(sealed, 8);
+    // The ninth is refused as spent (the schedule's K), not for the tolerance.
+    let token = d.add_user("late", &["analyst"], Some("late"));
+    let mut p = String::from("id,prediction\n");
+    for i in 0..300 {
+        p.push_str(&format!("r{i:05},a\n"));
+    }
+    let file = d.write("late.csv", &p);
+    let out = d
+        .run(&token, &["submit", "round", "--predictions", &file])
+        .code(3);
+    assert!(!out.stderr.contains("tolerance"), "{}", out.stderr);
+}
