@@ -221,6 +221,27 @@ pub fn read_chain(conn: &Connection, chain: &str) -> Result<Vec<Entry>> {
     Ok(rows.collect::<std::result::Result<_, _>>()?)
 }
 
+/// The entries of a chain after entry `after` (all but the genesis for `after = 0`), in
+/// order.
+pub fn read_chain_after(conn: &Connection, chain: &str, after: u64) -> Result<Vec<Entry>> {
+    let mut stmt = conn.prepare_cached(
+        "SELECT seq, kind, body, salt, prev_hash, hash FROM ledger
+         WHERE chain = ?1 AND seq > ?2 ORDER BY seq",
+    )?;
+    let rows = stmt.query_map(rusqlite::params![chain, after as i64], |r| {
+        Ok(Entry {
+            chain: chain.to_string(),
+            seq: r.get::<_, i64>(0)? as u64,
+            kind: r.get(1)?,
+            body: r.get(2)?,
+            salt: r.get(3)?,
+            prev_hash: r.get(4)?,
+            hash: r.get(5)?,
+        })
+    })?;
+    Ok(rows.collect::<std::result::Result<_, _>>()?)
+}
+
 /// One problem found in a chain.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct ChainFault {

@@ -201,7 +201,11 @@ fn sealed_rounds_default_to_an_even_schedule_and_refuse_no_entry_for_tolerance()
     // Under series the eighth entry's share is too small for the tolerance on 300 rows:
     // refused before anything is sealed.
     let refused = create("round-series", &["--schedule", "series"]).code(2);
-    assert!(refused.stderr.contains("nothing was sealed"), "{}", refused.stderr);
+    assert!(
+        refused.stderr.contains("nothing was sealed"),
+        "{}",
+        refused.stderr
+    );
     let info = create("round", &[]).ok().json();
     assert_eq!(info["policy"]["schedule"], "even:8", "{info}");
     let mut sealed = 0;
@@ -214,7 +218,10 @@ fn sealed_rounds_default_to_an_even_schedule_and_refuse_no_entry_for_tolerance()
                 p.push_str(&format!("r{i:05},{v}\n"));
             }
             let file = d.write(&format!("p{t}{k}.csv"), &p);
-            let out = d.run(&token, &["submit", "round", "--predictions", &file, "--json"]);
+            let out = d.run(
+                &token,
+                &["submit", "round", "--predictions", &file, "--json"],
+            );
             assert_eq!(out.code, 0, "entry {t}/{k}: {}\n{}", out.stdout, out.stderr);
             sealed += 1;
         }

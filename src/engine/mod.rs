@@ -16,6 +16,7 @@ mod account;
 mod clock;
 mod compete;
 mod create;
+mod probe;
 mod read;
 mod reader;
 mod records;
@@ -38,6 +39,7 @@ pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
 };
 pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
+pub use probe::{ProbeFlag, ProbeSettings};
 pub use read::{Declared, HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
@@ -75,6 +77,8 @@ pub struct Engine {
     on_close: Option<CloseHook>,
     /// Holdouts closed inside the open write, for `on_close` after it commits.
     closed: Vec<String>,
+    /// Heavy-probing flags' state (`status` for organizers).
+    probes: probe::Probes,
 }
 
 /// What runs after a close commits: the connection (no write open), the closed holdouts'
@@ -116,7 +120,44 @@ impl Engine {
             replays: 0,
             on_close: None,
             closed: Vec::new(),
+            probes: probe::Probes::default(),
         }
+    }
+
+    /// Sets the thresholds of the heavy-probing flags (`holdout serve --probe-*`).
+    pub fn set_probe_settings(&mut self, settings: ProbeSettings) {
+        self.probes.settings = settings;
+    }
+
+    /// The heavy-probing flags of a holdout that `caller` may see: every team's for
+    /// organizers, custodians and auditors; an analyst's own team's only, and under
+    /// `isolated` not its transcript share (see `engine::probe`).
+    pub fn probe_flags(
+        &mut self,
+        caller: &crate::auth::Caller,
+        name: &str,
+    ) -> Result<Vec<ProbeFlag>> {
+        use crate::auth::Role;
+        let loaded = self.loaded(name)?;
+        let head = self.probes.nats_head(name);
+        let entries = crate::ledger::read_chain_after(self.store.conn(), name, head)?;
+        self.probes.add_entries(name, &entries);
+        let roster = match &loaded.policy.core.shares {
+            crate::stats::schedule::Shares::Roster { analysts, .. } => analysts.len(),
+            _ => 0,
+        };
+        let all = self.probes.flags(name, roster);
+        let overseer = [Role::Organizer, Role::Custodian, Role::Auditor]
+            .iter()
+            .any(|r| caller.has(*r));
+        if overseer {
+            return Ok(all);
+        }
+        let isolated = loaded.policy.isolated();
+        Ok(all
+            .into_iter()
+            .filter(|f| f.team == caller.team && !(isolated && f.kind == "transcript-share"))
+            .collect())
     }
 
     /// The store, for operations outside the engine (bootstrap, tests).

@@ -211,6 +211,11 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
             "budget": show::budget_json(&budget),
             "policy": s.policy.as_ref().map_or(serde_json::Value::Null, show::policy_json),
             "guarantee": s.guarantee,
+            "flags": s.flags.iter().map(|f| json!({
+                "team": f.team,
+                "kind": f.kind,
+                "detail": f.detail,
+            })).collect::<Vec<_>>(),
         }));
     } else {
         println!("holdout    {}", s.holdout);
@@ -218,6 +223,14 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
             println!("policy     {}", show::policy_text(p));
         }
         println!("{}", show::budget_text(&budget));
+        for f in &s.flags {
+            println!(
+                "flag       {} ({}): {}",
+                show::safe_text(&f.team, 100),
+                f.kind,
+                f.detail
+            );
+        }
         if !s.guarantee.is_empty() {
             println!("\n{}", s.guarantee);
         }
