@@ -159,7 +159,8 @@ fn served_at(spec: &FairSpec, p: &FairPolicy, max_level: f64) -> u64 {
                 a as f64 * worst(r + 1) + (teams - a) as f64 * worst(r)
             };
             let level = ln_inv_delta + ln_inv_weight(p.split, teams, a) + frac + transcript;
-            if !(level <= max_level) {
+            // (A NaN level never fits.)
+            if level.is_nan() || level > max_level {
                 return r;
             }
         }
@@ -272,7 +273,7 @@ pub fn candidates(spec: &FairSpec, rules: &[Rule]) -> Vec<FairPolicy> {
         ] {
             for schedule in schedules(spec, split) {
                 out.push(FairPolicy {
-                    rule: rule.clone(),
+                    rule: *rule,
                     schedule,
                     split,
                     isolated,
