@@ -85,9 +85,9 @@ pub struct CreateArgs {
     /// omit it or must repeat it exactly.
     #[arg(long, value_name = "TOTAL", requires = "family")]
     pub family_delta: Option<f64>,
-    /// How the budget is spread over queries: "series" (open-ended) or "even:K" [default:
-    /// series; sealed rounds: even:K over the expected entries, K = --expect-answers when
-    /// given, else 100].
+    /// How the budget is spread over queries: "series" (open-ended) or "even:K"
+    /// [default: series] (sealed rounds: even:K over the expected entries, K =
+    /// --expect-answers when given, else 100).
     #[arg(long)]
     pub schedule: Option<String>,
     /// Answer rule: rounded:ETA, threshold:TAU, ladder:ETA, best-of:ETA or sealed.
