@@ -215,6 +215,30 @@ fn tampered_withdrawals_are_named_by_the_audit() {
         report.findings
     );
 
+    // A one-call withdrawal forged for the custodian alone, claiming both roles: the replay
+    // accepts its shape, the identity chain says the custodian was never an organizer.
+    let mut t = ex.clone();
+    let at = {
+        let v: serde_json::Value = serde_json::from_str(&t.entries[last].body).unwrap();
+        v["at"].clone()
+    };
+    edit_body(&mut t.entries[last], |v| {
+        v["by"] = serde_json::json!("keeper");
+        v["requested_by"] = serde_json::json!("keeper");
+        v["roles"] = serde_json::json!(["custodian", "organizer"]);
+        v["requested_roles"] = serde_json::json!(["custodian", "organizer"]);
+        v["requested_at"] = at;
+    });
+    rehash(&mut t.entries, last);
+    let report = audit(&t, AuditOptions::default());
+    assert!(
+        report.findings.iter().any(|f| f.entry == Some(last as u64)
+            && f.field == "roles"
+            && f.problem.contains("did not hold the organizer role")),
+        "{:#?}",
+        report.findings
+    );
+
     // A withdrawal naming a request nobody made.
     let mut t = ex.clone();
     edit_body(&mut t.entries[last], |v| {
