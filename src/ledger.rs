@@ -43,6 +43,11 @@ pub enum Kind {
     Read,
     /// A free adoption of another team's answer for the same file (core 2 ladder).
     Adopt,
+    /// A request to withdraw a holdout that has released nothing (one of the two roles).
+    WithdrawRequest,
+    /// The completed withdrawal of a holdout that released nothing: its rows and labels are
+    /// free for a new holdout; nothing but reads may follow it.
+    Withdraw,
     /// Identity chain: a user was added (with roles and team).
     UserAdded,
     /// Identity chain: a user and its tokens were revoked.
@@ -53,7 +58,7 @@ pub enum Kind {
 
 impl Kind {
     /// Every kind, in a fixed order (reports list counts in this order).
-    pub const ALL: [Kind; 11] = [
+    pub const ALL: [Kind; 13] = [
         Kind::Genesis,
         Kind::Answer,
         Kind::Refusal,
@@ -62,6 +67,8 @@ impl Kind {
         Kind::Close,
         Kind::Read,
         Kind::Adopt,
+        Kind::WithdrawRequest,
+        Kind::Withdraw,
         Kind::UserAdded,
         Kind::UserRevoked,
         Kind::TokenRotated,
@@ -78,6 +85,8 @@ impl Kind {
             Kind::Close => "close",
             Kind::Read => "read",
             Kind::Adopt => "adopt",
+            Kind::WithdrawRequest => "withdraw-request",
+            Kind::Withdraw => "withdraw",
             Kind::UserAdded => "user-added",
             Kind::UserRevoked => "user-revoked",
             Kind::TokenRotated => "token-rotated",
@@ -199,6 +208,27 @@ pub fn read_chain(conn: &Connection, chain: &str) -> Result<Vec<Entry>> {
         "SELECT seq, kind, body, salt, prev_hash, hash FROM ledger WHERE chain = ?1 ORDER BY seq",
     )?;
     let rows = stmt.query_map([chain], |r| {
+        Ok(Entry {
+            chain: chain.to_string(),
+            seq: r.get::<_, i64>(0)? as u64,
+            kind: r.get(1)?,
+            body: r.get(2)?,
+            salt: r.get(3)?,
+            prev_hash: r.get(4)?,
+            hash: r.get(5)?,
+        })
+    })?;
+    Ok(rows.collect::<std::result::Result<_, _>>()?)
+}
+
+/// The entries of a chain after entry `after` (all but the genesis for `after = 0`), in
+/// order.
+pub fn read_chain_after(conn: &Connection, chain: &str, after: u64) -> Result<Vec<Entry>> {
+    let mut stmt = conn.prepare_cached(
+        "SELECT seq, kind, body, salt, prev_hash, hash FROM ledger
+         WHERE chain = ?1 AND seq > ?2 ORDER BY seq",
+    )?;
+    let rows = stmt.query_map(rusqlite::params![chain, after as i64], |r| {
         Ok(Entry {
             chain: chain.to_string(),
             seq: r.get::<_, i64>(0)? as u64,

@@ -31,8 +31,9 @@ pub(super) struct IdentityCheck {
 struct Event {
     seq: u64,
     at: DateTime<Utc>,
-    /// `Some(team)` for a user-added event, `None` for a revocation.
-    added: Option<String>,
+    /// `Some((team, roles))` for a user-added event (roles comma-separated), `None` for a
+    /// revocation.
+    added: Option<(String, String)>,
 }
 
 /// The identity chain, by user.
@@ -63,7 +64,7 @@ impl Identities {
             };
             let (user, at, added) = match kind {
                 Kind::UserAdded => match serde_json::from_value::<UserAdded>(*body) {
-                    Ok(a) => (a.user, a.at, Some(a.team)),
+                    Ok(a) => (a.user, a.at, Some((a.team, a.roles))),
                     Err(why) => {
                         bad("body", format!("not a user-added event: {why}"));
                         continue;
@@ -115,7 +116,7 @@ impl Identities {
         let mut state: Option<(u64, &str, Option<&Event>)> = None;
         for ev in events {
             match &ev.added {
-                Some(t) if ev.at <= at => state = Some((ev.seq, t, None)),
+                Some((t, _)) if ev.at <= at => state = Some((ev.seq, t, None)),
                 None if ev.at < at => {
                     if let Some(s) = &mut state {
                         s.2.get_or_insert(ev);
@@ -155,6 +156,48 @@ impl Identities {
             )),
             Some(_) => None,
         }
+    }
+
+    /// Why `user` at `at` did not hold every one of `roles`, if it did not: the user-added
+    /// event in force (as for [`Identities::problem`], whatever the team) must grant them.
+    fn roles_problem(
+        &self,
+        user: &str,
+        roles: &[String],
+        at: DateTime<Utc>,
+        when: &str,
+    ) -> Option<(&'static str, String)> {
+        let users = ledger::USERS_CHAIN;
+        let added = self.events.get(user).and_then(|events| {
+            events
+                .iter()
+                .filter(|ev| ev.at <= at)
+                .filter_map(|ev| ev.added.as_ref().map(|(_, r)| (ev.seq, r)))
+                .next_back()
+        });
+        let Some((seq, granted)) = added else {
+            return Some((
+                "user",
+                format!("user {user} has no user-added event in {users} at or before {when}"),
+            ));
+        };
+        let granted: Vec<&str> = granted.split(',').map(str::trim).collect();
+        let missing: Vec<&str> = roles
+            .iter()
+            .map(String::as_str)
+            .filter(|r| !granted.contains(r))
+            .collect();
+        (!missing.is_empty()).then(|| {
+            (
+                "roles",
+                format!(
+                    "user {user} did not hold the {} role at {when} ({users} entry {seq} grants \
+                     {})",
+                    missing.join(","),
+                    granted.join(",")
+                ),
+            )
+        })
     }
 }
 
@@ -196,7 +239,14 @@ impl<'a> Checker<'a> {
     pub(super) fn wants(e: &Entry) -> bool {
         matches!(
             e.kind(),
-            Some(Kind::Answer | Kind::Adopt | Kind::Sealed | Kind::Round)
+            Some(
+                Kind::Answer
+                    | Kind::Adopt
+                    | Kind::Sealed
+                    | Kind::Round
+                    | Kind::WithdrawRequest
+                    | Kind::Withdraw
+            )
         )
     }
 
@@ -211,7 +261,19 @@ impl<'a> Checker<'a> {
         };
         // (field prefix, user, team, the time the user acted)
         let mut named: Vec<(String, &str, &str, String)> = Vec::new();
+        // Withdrawals: (field prefix, user, the withdrawal roles recorded, when).
+        let mut acted: Vec<(&str, &str, &[String], &str)> = Vec::new();
         match record {
+            Record::WithdrawRequest(r) => acted.push(("", &r.by, &r.roles, &r.at)),
+            Record::Withdraw(w) => {
+                acted.push(("", &w.by, &w.roles, &w.at));
+                acted.push((
+                    "requested_",
+                    &w.requested_by,
+                    &w.requested_roles,
+                    &w.requested_at,
+                ));
+            }
             Record::Answer(r) | Record::Adopt(r) => {
                 named.push((String::new(), &r.user, &r.team, r.at.clone()));
             }
@@ -227,6 +289,24 @@ impl<'a> Checker<'a> {
                 }
             }
             _ => {}
+        }
+        for (prefix, user, roles, when) in acted {
+            self.out.checked += 1;
+            let problem = match instant(when) {
+                None => Some((
+                    "at",
+                    format!("{when:?} is not an RFC 3339 time: the identity in force is unknown"),
+                )),
+                Some(at) => self.identities.roles_problem(user, roles, at, when),
+            };
+            if let Some((field, problem)) = problem {
+                self.out.findings.push(Finding {
+                    chain: self.chain.into(),
+                    entry: Some(e.seq),
+                    field: format!("{prefix}{field}"),
+                    problem,
+                });
+            }
         }
         for (prefix, user, team, when) in named {
             self.out.checked += 1;

@@ -102,6 +102,19 @@ pub struct ServeArgs {
     #[arg(long, value_name = "SECS", default_value_t = 3600, requires = "checkpoint_dir",
           value_parser = clap::value_parser!(u64).range(1..))]
     pub checkpoint_every: u64,
+    /// Heavy probing: flag a team in `status` (for organizers) when the nats its answers
+    /// released exceed this multiple of its fair share of the transcript.
+    #[arg(long, value_name = "FACTOR", default_value_t = 2.0)]
+    pub probe_share_factor: f64,
+    /// Heavy probing: flag a team after this many consecutive submissions, each differing
+    /// from the one before in under --probe-diff of rows.
+    #[arg(long, value_name = "N", default_value_t = 5,
+          value_parser = clap::value_parser!(u32).range(1..))]
+    pub probe_run: u32,
+    /// Heavy probing: the fraction of rows under which a submission counts as a
+    /// near-duplicate of the team's previous one.
+    #[arg(long, value_name = "FRACTION", default_value_t = 0.01)]
+    pub probe_diff: f64,
 }
 
 /// `holdout init`.
@@ -174,6 +187,20 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         };
         check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
+        if !(args.probe_share_factor > 0.0 && args.probe_diff > 0.0 && args.probe_diff < 1.0) {
+            anyhow::bail!(
+                "--probe-share-factor must be positive and --probe-diff lie in (0, 1); got {} \
+                 and {}",
+                args.probe_share_factor,
+                args.probe_diff
+            );
+        }
+        engine.set_probe_settings(crate::engine::ProbeSettings {
+            share_factor: args.probe_share_factor,
+            run: args.probe_run,
+            diff: args.probe_diff,
+            ..crate::engine::ProbeSettings::default()
+        });
         if let Some(dir) = args.checkpoint_dir.clone() {
             std::fs::create_dir_all(&dir)
                 .with_context(|| format!("creating --checkpoint-dir {}", dir.display()))?;

@@ -8,6 +8,7 @@ use anyhow::{Context, bail};
 use clap::Args;
 use serde_json::json;
 
+use crate::stats::fair::{FairRow, FairSpec, fair_table};
 use crate::stats::interval::{
     Interval, Method, Rounding, Sides, display_outward, errors_interval_with, mean_interval_with,
 };
@@ -82,7 +83,15 @@ pub struct PlanArgs {
     /// Models per best-of batch.
     #[arg(long, default_value_t = 10)]
     pub batch: u32,
-    /// Print JSON: a list of {"rule", "queries"[, "queries_expected"]} or {"rule", "rows"}.
+    /// Fair service: teams that will share the holdout. With --answers-each, compares which
+    /// policies (rules x schedules x shares) serve every team and how many rows each needs.
+    #[arg(long, requires_all = ["answers_each", "rows"], value_parser = clap::value_parser!(u64).range(1..))]
+    pub teams: Option<u64>,
+    /// Fair service: answers each team should get (with --teams).
+    #[arg(long, requires = "teams", value_parser = clap::value_parser!(u64).range(1..))]
+    pub answers_each: Option<u64>,
+    /// Print JSON: a list of {"rule", "queries"[, "queries_expected"]} or {"rule", "rows"};
+    /// with --teams, an object with the teams, the answers each and one row per policy.
     #[arg(long)]
     pub json: bool,
 }
@@ -249,8 +258,92 @@ fn count_text(q: Option<f64>) -> String {
     }
 }
 
+/// Computes the rows of `holdout plan --teams T --answers-each M`.
+pub fn fair_rows(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<Vec<FairRow>> {
+    plan_rows(args)?; // the same checks of the common inputs
+    let rules = args
+        .answers
+        .iter()
+        .map(|s| s.parse::<Rule>().with_context(|| format!("--answers {s}")))
+        .collect::<anyhow::Result<Vec<Rule>>>()?;
+    let spec = FairSpec {
+        rows: args.rows.unwrap_or(1),
+        delta: args.delta,
+        tolerance: args.tolerance,
+        method: args.method,
+        teams,
+        answers_each: each,
+    };
+    Ok(fair_table(&spec, &rules, args.expected_error))
+}
+
+fn run_fair(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<ExitCode> {
+    let rows = fair_rows(args, teams, each)?;
+    if args.json {
+        println!(
+            "{}",
+            serde_json::json!({
+                "rows": args.rows,
+                "teams": teams,
+                "answers_each": each,
+                "delta": args.delta,
+                "tolerance": args.tolerance,
+                "expected_error": args.expected_error,
+                "policies": rows,
+            })
+        );
+        return Ok(ExitCode::SUCCESS);
+    }
+    let n = args.rows.unwrap_or(1);
+    let serving = rows.iter().filter(|r| r.serves).count();
+    println!(
+        "{teams} teams, {each} answers each, on {n} rows at tolerance {} (delta {}): {serving} of \
+         {} policies serve every team at worst case",
+        args.tolerance,
+        args.delta,
+        rows.len()
+    );
+    let expected = args.expected_error.map(|e| format!("each at error {e}"));
+    let mut header = vec!["rule", "schedule", "shares", "sharing", "each, worst case"];
+    if let Some(e) = &expected {
+        header.push(e);
+    }
+    header.push("rows needed");
+    let table: Vec<Vec<String>> = rows
+        .iter()
+        .map(|r| {
+            let mut row = vec![
+                format!("{}{}", if r.serves { "* " } else { "  " }, r.rule),
+                r.schedule.clone(),
+                r.shares.clone(),
+                r.sharing.clone(),
+                r.served.to_string(),
+            ];
+            if let Some(e) = r.served_expected {
+                row.push(e.to_string());
+            }
+            row.push(r.rows_needed.map_or("> 2^40".into(), |n| n.to_string()));
+            row
+        })
+        .collect();
+    println!("{}", crate::cli::client::show::table(&header, &table));
+    println!(
+        "* serves every team {each} answers at worst case. \"each\": answers every team is sure \
+         to get, the teams taking turns, every answer coded at its worst case (the expected-error \
+         column judges the half-width at that error). shares: none = one pool; roster = equal \
+         shares for the {teams} teams (create with --shares roster:TEAM,...); on-arrival = the \
+         k-th team gets delta/(k(k+1)). isolated = each team sees only its own answers (one \
+         transcript each). rows needed: the fewest rows that serve every team {each} answers at \
+         worst case under that policy. best-of rules are left out."
+    );
+    Ok(ExitCode::SUCCESS)
+}
+
 /// Runs `holdout plan`.
 pub fn run_plan(args: &PlanArgs) -> anyhow::Result<ExitCode> {
+    if let (Some(teams), Some(each)) = (args.teams, args.answers_each) {
+        return run_fair(args, teams, each);
+    }
     let rows = plan_rows(args)?;
     if args.json {
         println!("{}", serde_json::to_string(&rows)?);

@@ -60,7 +60,7 @@ fn is_zero(x: &f64) -> bool {
 }
 
 /// The fraction of delta a sealed round reserves for its ranking when the policy names none.
-pub(crate) const DEFAULT_RANKING_SHARE: f64 = 0.2;
+pub const DEFAULT_RANKING_SHARE: f64 = 0.2;
 
 impl Default for PolicyInput {
     fn default() -> Self {

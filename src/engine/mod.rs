@@ -16,6 +16,7 @@ mod account;
 mod clock;
 mod compete;
 mod create;
+mod probe;
 mod read;
 mod reader;
 mod records;
@@ -24,6 +25,7 @@ mod rows;
 mod stored;
 mod submit;
 mod visibility;
+mod withdraw;
 mod worker;
 
 use std::collections::HashMap;
@@ -31,12 +33,13 @@ use std::sync::Arc;
 
 use rusqlite::{OptionalExtension, params};
 
-pub use account::{HoldoutPolicy, PolicyInput, Quote};
+pub use account::{DEFAULT_RANKING_SHARE, HoldoutPolicy, PolicyInput, Quote};
 pub use clock::{Clock, FixedClock, SystemClock};
 pub use compete::{
     Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
 };
 pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
+pub use probe::{ProbeFlag, ProbeSettings};
 pub use read::{Declared, HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,
@@ -51,7 +54,8 @@ pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
-pub use replay::{CloseRecord, ReadRecord, Record};
+pub use replay::{CloseRecord, ReadRecord, Record, WithdrawRecord, WithdrawRequestRecord};
+pub use withdraw::Withdrawal;
 
 use crate::error::{Error, Result};
 use crate::metric::Labels;
@@ -74,6 +78,8 @@ pub struct Engine {
     on_close: Option<CloseHook>,
     /// Holdouts closed inside the open write, for `on_close` after it commits.
     closed: Vec<String>,
+    /// Heavy-probing flags' state (`status` for organizers).
+    probes: probe::Probes,
 }
 
 /// What runs after a close commits: the connection (no write open), the closed holdouts'
@@ -115,7 +121,44 @@ impl Engine {
             replays: 0,
             on_close: None,
             closed: Vec::new(),
+            probes: probe::Probes::default(),
         }
+    }
+
+    /// Sets the thresholds of the heavy-probing flags (`holdout serve --probe-*`).
+    pub fn set_probe_settings(&mut self, settings: ProbeSettings) {
+        self.probes.settings = settings;
+    }
+
+    /// The heavy-probing flags of a holdout that `caller` may see: every team's for
+    /// organizers, custodians and auditors; an analyst's own team's only, and under
+    /// `isolated` not its transcript share (see `engine::probe`).
+    pub fn probe_flags(
+        &mut self,
+        caller: &crate::auth::Caller,
+        name: &str,
+    ) -> Result<Vec<ProbeFlag>> {
+        use crate::auth::Role;
+        let loaded = self.loaded(name)?;
+        let head = self.probes.nats_head(name);
+        let entries = crate::ledger::read_chain_after(self.store.conn(), name, head)?;
+        self.probes.add_entries(name, &entries);
+        let roster = match &loaded.policy.core.shares {
+            crate::stats::schedule::Shares::Roster { analysts, .. } => analysts.len(),
+            _ => 0,
+        };
+        let all = self.probes.flags(name, roster);
+        let overseer = [Role::Organizer, Role::Custodian, Role::Auditor]
+            .iter()
+            .any(|r| caller.has(*r));
+        if overseer {
+            return Ok(all);
+        }
+        let isolated = loaded.policy.isolated();
+        Ok(all
+            .into_iter()
+            .filter(|f| f.team == caller.team && !(isolated && f.kind == "transcript-share"))
+            .collect())
     }
 
     /// The store, for operations outside the engine (bootstrap, tests).
@@ -346,7 +389,10 @@ impl Engine {
         }
         let entry = crate::ledger::append(self.store.conn(), chain, kind, body)?;
         self.touch(chain);
-        let keeps_state = matches!(kind, Kind::Read | Kind::Close) || kind.is_identity();
+        let keeps_state = matches!(
+            kind,
+            Kind::Read | Kind::Close | Kind::WithdrawRequest | Kind::Withdraw
+        ) || kind.is_identity();
         match book {
             Some(book) => {
                 self.accountants

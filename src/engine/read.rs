@@ -32,6 +32,12 @@ pub struct HoldoutView {
     pub created_at: String,
     /// Open for queries.
     pub open: bool,
+    /// Withdrawn (released nothing; its rows and labels are free again), RFC 3339 time.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub withdrawn_at: Option<String>,
+    /// A withdrawal request waiting for the other role, in words (empty: none).
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub withdrawal_pending: String,
     /// Budget (the caller's team under isolated).
     pub budget: BudgetView,
     /// Genesis hash.
@@ -58,7 +64,15 @@ impl Engine {
         self.settle(&loaded)?;
         let closed = self.closed_at(loaded.id)?;
         let budget = self.budget_view(&loaded, &caller.team, closed.is_none())?;
+        let withdrawn_at = self.withdrawn_at(loaded.id)?;
+        let withdrawal_pending = if withdrawn_at.is_none() {
+            self.pending_withdrawal(loaded.id)?
+        } else {
+            String::new()
+        };
         Ok(HoldoutView {
+            withdrawn_at,
+            withdrawal_pending,
             name: loaded.name.clone(),
             description: loaded.description.clone(),
             rows: loaded.rows.len() as u64,

@@ -44,6 +44,52 @@ pub struct ReadRecord {
     pub at: String,
 }
 
+/// The body of a `withdraw-request` entry: one of the two roles a withdrawal needs asked for it
+/// (the custodian or the organizer; the other completes it with a `withdraw` entry).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WithdrawRequestRecord {
+    /// Who asked.
+    pub by: String,
+    /// The withdrawal roles they held (`custodian`, `organizer`).
+    pub roles: Vec<String>,
+    /// Why.
+    pub reason: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
+/// The body of a `withdraw` entry: a holdout that released nothing withdrawn by its custodian
+/// and its organizer together (one user holding both roles, or a request and its completion).
+/// Its rows and labels are then free for a new holdout.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WithdrawRecord {
+    /// Who asked first (the completer itself when one user holds both roles).
+    pub requested_by: String,
+    /// The withdrawal roles the requester held.
+    pub requested_roles: Vec<String>,
+    /// When the request was made (the withdrawal's own time when made in one call).
+    pub requested_at: String,
+    /// Who completed it.
+    pub by: String,
+    /// The withdrawal roles the completer held.
+    pub roles: Vec<String>,
+    /// Why (the completer's reason, else the request's).
+    pub reason: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
+impl WithdrawRecord {
+    /// Whether the requester and the completer together held the custodian and organizer
+    /// roles.
+    pub fn both_roles(&self) -> bool {
+        let has = |role: &str| {
+            self.roles.iter().any(|r| r == role) || self.requested_roles.iter().any(|r| r == role)
+        };
+        has("custodian") && has("organizer")
+    }
+}
+
 /// A ledger entry's body, parsed once by its kind.
 #[derive(Debug, Clone)]
 pub enum Record {
@@ -63,6 +109,10 @@ pub enum Record {
     Close(CloseRecord),
     /// A read of exact scores.
     Read(ReadRecord),
+    /// A request to withdraw a holdout that released nothing.
+    WithdrawRequest(WithdrawRequestRecord),
+    /// A completed withdrawal.
+    Withdraw(Box<WithdrawRecord>),
     /// An identity event (these belong to the `@users` chain, never to a holdout's).
     Identity(Kind, Box<Value>),
 }
@@ -94,6 +144,10 @@ impl Record {
             Kind::Round => Record::Round(Box::new(body(e, "a round record")?)),
             Kind::Close => Record::Close(body(e, "a close record")?),
             Kind::Read => Record::Read(body(e, "a read record")?),
+            Kind::WithdrawRequest => {
+                Record::WithdrawRequest(body(e, "a withdrawal request record")?)
+            }
+            Kind::Withdraw => Record::Withdraw(Box::new(body(e, "a withdrawal record")?)),
             k if k.is_identity() => Record::Identity(k, Box::new(body(e, "an identity event")?)),
             k => return Err(format!("entry kind {k} has no record parser")),
         })
@@ -116,6 +170,8 @@ impl Record {
             Record::Round(_) => Kind::Round,
             Record::Close(_) => Kind::Close,
             Record::Read(_) => Kind::Read,
+            Record::WithdrawRequest(_) => Kind::WithdrawRequest,
+            Record::Withdraw(_) => Kind::Withdraw,
             Record::Identity(k, _) => *k,
         }
     }
@@ -275,8 +331,15 @@ pub(crate) fn day_of(at: &str) -> String {
 pub(crate) struct Replayer<'p> {
     policy: &'p HoldoutPolicy,
     book: Book,
-    /// Entry that closed the holdout (a `close` or a `round`), if any.
+    /// Entry that closed the holdout (a `close`, a `round` or a `withdraw`), if any.
     closed_at: Option<u64>,
+    /// The first entry that released something learned from the labels (an answer, an
+    /// adoption, a sealed entry, a round), and its kind: a withdrawal after it is invalid.
+    released_at: Option<(u64, Kind)>,
+    /// The pending withdrawal request, if any, and its entry.
+    withdraw_request: Option<(u64, WithdrawRequestRecord)>,
+    /// Entry that withdrew the holdout, if any.
+    withdrawn_at: Option<u64>,
     /// Sealed entries waiting for the round's close, in ticket order.
     pending: Vec<SealedRecord>,
     /// Whether budgets shown with refusals are compared (the audit) or not (the daemon).
@@ -293,6 +356,9 @@ impl<'p> Replayer<'p> {
             policy,
             book: Book::new(policy)?,
             closed_at: None,
+            released_at: None,
+            withdraw_request: None,
+            withdrawn_at: None,
             pending: Vec::new(),
             check_budgets,
             memo: RefusalMemo::default(),
@@ -326,6 +392,25 @@ impl<'p> Replayer<'p> {
                 );
             }
         };
+        if matches!(
+            rec,
+            Record::Answer(_) | Record::Adopt(_) | Record::Sealed(_) | Record::Round(_)
+        ) && self.released_at.is_none()
+        {
+            self.released_at = Some((e.seq, rec.kind()));
+        }
+        if let Some(w) = self.withdrawn_at
+            && !matches!(rec, Record::Read(_))
+        {
+            cmp.push(
+                "kind",
+                format!(
+                    "a {} entry after the holdout was withdrawn at entry {w} (only reads may \
+                     follow a withdrawal)",
+                    rec.kind()
+                ),
+            );
+        }
         match rec {
             Record::Genesis(_) => {
                 if i != 0 {
@@ -384,12 +469,87 @@ impl<'p> Replayer<'p> {
                 self.closed_at = Some(e.seq);
             }
             Record::Read(r) => cmp.time(&r.at),
+            Record::WithdrawRequest(r) => self.withdraw_request(e.seq, r, &mut cmp),
+            Record::Withdraw(w) => self.withdraw(e.seq, w, &mut cmp),
             Record::Identity(k, _) => cmp.push(
                 "kind",
                 format!("a {k} identity event inside a holdout's chain (they belong to @users)"),
             ),
         }
         out.append(&mut cmp.out);
+    }
+
+    fn withdraw_request(&mut self, seq: u64, r: &WithdrawRequestRecord, cmp: &mut Cmp) {
+        cmp.time(&r.at);
+        if let Some((at, kind)) = self.released_at {
+            cmp.push(
+                "kind",
+                format!("a withdrawal requested after entry {at} ({kind}) released an answer"),
+            );
+        }
+        if !r.roles.iter().any(|x| x == "custodian" || x == "organizer") {
+            cmp.push(
+                "roles",
+                format!(
+                    "{} asked for a withdrawal without the custodian or organizer role",
+                    r.by
+                ),
+            );
+        }
+        self.withdraw_request = Some((seq, r.clone()));
+    }
+
+    fn withdraw(&mut self, seq: u64, w: &WithdrawRecord, cmp: &mut Cmp) {
+        cmp.time(&w.at);
+        if let Some((at, kind)) = self.released_at {
+            cmp.push(
+                "kind",
+                format!(
+                    "withdrawn after entry {at} ({kind}) released an answer: only a holdout \
+                     that released nothing can be withdrawn"
+                ),
+            );
+        }
+        if !w.both_roles() {
+            cmp.push(
+                "roles",
+                format!(
+                    "withdrawn by {} ({}) on the request of {} ({}): a withdrawal needs both \
+                     the custodian and the organizer role",
+                    w.by,
+                    w.roles.join(","),
+                    w.requested_by,
+                    w.requested_roles.join(",")
+                ),
+            );
+        }
+        let one_call = w.requested_by == w.by && w.requested_at == w.at;
+        if !one_call {
+            match &self.withdraw_request {
+                Some((_, r))
+                    if r.by == w.requested_by
+                        && r.at == w.requested_at
+                        && r.roles == w.requested_roles => {}
+                Some((at, r)) => cmp.push(
+                    "requested_by",
+                    format!(
+                        "names a request by {} at {}, but the request at entry {at} was made \
+                         by {} at {}",
+                        w.requested_by, w.requested_at, r.by, r.at
+                    ),
+                ),
+                None => cmp.push(
+                    "requested_by",
+                    format!(
+                        "names a request by {} at {} that no earlier entry records",
+                        w.requested_by, w.requested_at
+                    ),
+                ),
+            }
+        }
+        self.withdraw_request = None;
+        self.withdrawn_at = Some(seq);
+        self.closed_at.get_or_insert(seq);
     }
 
     /// Answers and sealed entries a team had on the UTC day of `at`, before this entry.

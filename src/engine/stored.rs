@@ -210,7 +210,7 @@ pub(super) fn first_overlap(tx: &Connection, rows: &Sorted) -> Result<Option<(St
     let stored: Vec<(i64, i64, String)> = {
         let mut stmt = tx.prepare(
             "SELECT i.holdout_id, i.row_count, h.name FROM holdout_ids i
-             JOIN holdouts h ON h.id = i.holdout_id",
+             JOIN holdouts h ON h.id = i.holdout_id WHERE h.withdrawn_at IS NULL",
         )?;
         stmt.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?
             .collect::<std::result::Result<_, _>>()?
@@ -231,7 +231,12 @@ pub(super) fn first_overlap(tx: &Connection, rows: &Sorted) -> Result<Option<(St
         }
     }
     // Holdouts stored one row per id: the primary key's index gives them in order.
-    let mut stmt = tx.prepare("SELECT row_id, holdout_id FROM holdout_rows ORDER BY row_id")?;
+    // (Withdrawn holdouts' rows are free again.)
+    let mut stmt = tx.prepare(
+        "SELECT row_id, holdout_id FROM holdout_rows
+         WHERE holdout_id NOT IN (SELECT id FROM holdouts WHERE withdrawn_at IS NOT NULL)
+         ORDER BY row_id",
+    )?;
     let mut old = stmt.query([])?;
     let mut ours = rows.ids().peekable();
     while let Some(r) = old.next()? {

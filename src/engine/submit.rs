@@ -186,8 +186,13 @@ impl Engine {
         }
         self.settle(&loaded)?;
         if let Some(at) = self.closed_at(loaded.id)? {
+            let what = if self.withdrawn_at(loaded.id)?.is_some() {
+                "withdrawn"
+            } else {
+                "closed"
+            };
             return Err(Error::FailedPrecondition(format!(
-                "holdout {} was closed at {at} and answers no more queries",
+                "holdout {} was {what} at {at} and answers no more queries",
                 loaded.name
             )));
         }
@@ -212,10 +217,26 @@ impl Engine {
             });
         }
 
-        if loaded.policy.sealed() {
-            return self.seal_entry(caller, &loaded, &req, target_index, &preds[0], digest);
+        let sample = super::probe::sample(&preds[0], self.probes.settings.max_rows);
+        let outcome = if loaded.policy.sealed() {
+            self.seal_entry(caller, &loaded, &req, target_index, &preds[0], digest)
+        } else {
+            self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models)
+        }?;
+        // A recorded submission (not a replay, not a refusal) moves the team's probing run.
+        if matches!(
+            outcome,
+            SubmitOutcome::Answer {
+                replayed: false,
+                ..
+            } | SubmitOutcome::Sealed {
+                replayed: false,
+                ..
+            }
+        ) {
+            self.probes.observe_sample(&loaded.name, &team, sample);
         }
-        self.answer_in_tx(caller, &loaded, &req, target_index, preds, digest, models)
+        Ok(outcome)
     }
 
     #[allow(clippy::too_many_arguments)]

@@ -62,6 +62,8 @@ pub(crate) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
         budget: Some(budget(&v.budget)),
         genesis_hash: v.genesis_hash.clone(),
         guarantee: v.guarantee.clone(),
+        withdrawn_at: v.withdrawn_at.clone().unwrap_or_default(),
+        withdrawal_pending: v.withdrawal_pending.clone(),
     }
 }
 

@@ -13,7 +13,8 @@ use crate::metric::Metric;
 use crate::proto::v1::{
     CloseHoldoutRequest, CreateHoldoutChunk, DeclarationChunk, GetDeclarationRequest,
     GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse,
-    create_holdout_chunk::Part, holdouts_server::Holdouts,
+    WithdrawHoldoutReply, WithdrawHoldoutRequest, create_holdout_chunk::Part,
+    holdouts_server::Holdouts,
 };
 
 /// Row ids per declaration chunk.
@@ -216,6 +217,23 @@ impl Holdouts for Daemon {
             .call(move |engine| engine.close_holdout(&caller, &req.name, &req.reason))
             .await?;
         Ok(Response::new(convert::holdout(&view)))
+    }
+
+    async fn withdraw_holdout(
+        &self,
+        request: Request<WithdrawHoldoutRequest>,
+    ) -> Result<Response<WithdrawHoldoutReply>, Status> {
+        let caller = self.caller(&request).await?;
+        let req = request.into_inner();
+        let w = self
+            .db
+            .call(move |engine| engine.withdraw_holdout(&caller, &req.name, &req.reason))
+            .await?;
+        Ok(Response::new(WithdrawHoldoutReply {
+            completed: w.completed,
+            message: w.message,
+            holdout: Some(convert::holdout(&w.holdout)),
+        }))
     }
 
     type GetDeclarationStream =

@@ -293,15 +293,27 @@ impl Submissions for Daemon {
     ) -> Result<Response<StatusResponse>, Status> {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
-        let view = self
+        let (view, flags) = self
             .db
-            .call(move |engine| engine.holdout_view(&caller, &name))
+            .call(move |engine| {
+                let view = engine.holdout_view(&caller, &name)?;
+                let flags = engine.probe_flags(&caller, &name)?;
+                Ok((view, flags))
+            })
             .await?;
         Ok(Response::new(StatusResponse {
             holdout: view.name.clone(),
             budget: Some(convert::budget(&view.budget)),
             guarantee: view.guarantee.clone(),
             policy: Some(convert::policy(&view.policy)),
+            flags: flags
+                .into_iter()
+                .map(|f| pb::ProbeFlag {
+                    team: f.team,
+                    kind: f.kind,
+                    detail: f.detail,
+                })
+                .collect(),
         }))
     }
 

@@ -11,10 +11,12 @@
 //! | the accountant the daemon and the audit share | [`accounting`] |
 //! | paired comparison of two models | [`paired`] |
 //! | planning: queries that fit, rows needed | [`plan`] |
+//! | fair service: which policies serve T teams M answers each | [`fair`] |
 
 pub mod accounting;
 pub mod beta;
 pub mod codes;
+pub mod fair;
 pub mod interval;
 mod kl;
 pub mod paired;

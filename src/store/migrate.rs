@@ -27,6 +27,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0005_row_blobs",
         include_str!("../../migrations/0005_row_blobs.sql"),
     ),
+    (
+        "0006_withdrawals",
+        include_str!("../../migrations/0006_withdrawals.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

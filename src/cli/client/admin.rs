@@ -11,7 +11,7 @@ use super::conn::{Conn, ServerArgs};
 use super::show;
 use crate::proto::v1::{
     AddUserRequest, CloseHoldoutRequest, HistoryRequest, ListHoldoutsRequest, ListUsersRequest,
-    RevokeUserRequest, RotateTokenRequest, StatusRequest, WhoAmIRequest,
+    RevokeUserRequest, RotateTokenRequest, StatusRequest, WhoAmIRequest, WithdrawHoldoutRequest,
 };
 
 /// `holdout status`.
@@ -69,6 +69,22 @@ pub struct CloseArgs {
     /// Holdout name.
     pub name: String,
     /// Why it is closed (recorded in the ledger).
+    #[arg(long, default_value = "")]
+    pub reason: String,
+    /// Print one JSON object.
+    #[arg(long)]
+    pub json: bool,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub server: ServerArgs,
+}
+
+/// `holdout withdraw`.
+#[derive(Debug, Args)]
+pub struct WithdrawArgs {
+    /// Holdout name.
+    pub name: String,
+    /// Why it is withdrawn (recorded in the ledger).
     #[arg(long, default_value = "")]
     pub reason: String,
     /// Print one JSON object.
@@ -195,6 +211,11 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
             "budget": show::budget_json(&budget),
             "policy": s.policy.as_ref().map_or(serde_json::Value::Null, show::policy_json),
             "guarantee": s.guarantee,
+            "flags": s.flags.iter().map(|f| json!({
+                "team": f.team,
+                "kind": f.kind,
+                "detail": f.detail,
+            })).collect::<Vec<_>>(),
         }));
     } else {
         println!("holdout    {}", s.holdout);
@@ -202,6 +223,14 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
             println!("policy     {}", show::policy_text(p));
         }
         println!("{}", show::budget_text(&budget));
+        for f in &s.flags {
+            println!(
+                "flag       {} ({}): {}",
+                show::safe_text(&f.team, 100),
+                f.kind,
+                f.detail
+            );
+        }
         if !s.guarantee.is_empty() {
             println!("\n{}", s.guarantee);
         }
@@ -285,7 +314,14 @@ pub async fn list(args: &ListArgs) -> anyhow::Result<ExitCode> {
                 h.name.clone(),
                 h.rows.to_string(),
                 targets.join(" "),
-                if h.open { "open" } else { "closed" }.to_string(),
+                if !h.withdrawn_at.is_empty() {
+                    "withdrawn"
+                } else if h.open {
+                    "open"
+                } else {
+                    "closed"
+                }
+                .to_string(),
                 b.answered.to_string(),
                 show::num(b.remaining),
                 show::queries_left_text(b.queries_left),
@@ -331,6 +367,34 @@ pub async fn close(args: &CloseArgs) -> anyhow::Result<ExitCode> {
         show::print_json(&show::holdout_json(&info));
     } else {
         println!("closed {}\n{}", info.name, show::holdout_text(&info));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Withdraws a holdout that released nothing (or records this role's request).
+///
+/// # Errors
+/// Connection, permission, not-found and state failures (anything released: exit 7).
+pub async fn withdraw(args: &WithdrawArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let reply = conn
+        .holdouts()
+        .withdraw_holdout(WithdrawHoldoutRequest {
+            name: args.name.clone(),
+            reason: args.reason.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    let info = reply.holdout.unwrap_or_default();
+    if args.json {
+        show::print_json(&json!({
+            "completed": reply.completed,
+            "message": reply.message,
+            "holdout": show::holdout_json(&info),
+        }));
+    } else {
+        println!("{}", reply.message);
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -85,9 +85,11 @@ pub struct CreateArgs {
     /// omit it or must repeat it exactly.
     #[arg(long, value_name = "TOTAL", requires = "family")]
     pub family_delta: Option<f64>,
-    /// How the budget is spread over queries: "series" (open-ended) or "even:K".
-    #[arg(long, default_value = "series")]
-    pub schedule: String,
+    /// How the budget is spread over queries: "series" (open-ended) or "even:K"
+    /// [default: series] (sealed rounds: even:K over the expected entries, K =
+    /// --expect-answers when given, else 100).
+    #[arg(long)]
+    pub schedule: Option<String>,
     /// Answer rule: rounded:ETA, threshold:TAU, ladder:ETA, best-of:ETA or sealed.
     #[arg(long, default_value = "rounded:0.01")]
     pub answers: String,
@@ -106,10 +108,14 @@ pub struct CreateArgs {
     #[arg(long, default_value = "none")]
     pub shares: String,
     /// Answers the policy must afford (at worst case, within the tolerance) for create to go
-    /// ahead; a policy that affords fewer is refused and nothing is sealed.
-    #[arg(long, value_name = "N", default_value_t = 1,
-          value_parser = clap::value_parser!(u32).range(1..))]
-    pub expect_answers: u32,
+    /// ahead; a policy that affords fewer is refused and nothing is sealed [default: 1; for a
+    /// sealed round it also sets the even schedule's K when --schedule is not given].
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    pub expect_answers: Option<u32>,
+    /// Teams you expect to submit, for the fair-service lines of the plan only (nothing is
+    /// sent; a --shares roster declares its teams itself).
+    #[arg(long, value_name = "T", value_parser = clap::value_parser!(u64).range(1..))]
+    pub teams: Option<u64>,
     /// Sealed rounds: deadline, RFC 3339 (e.g. 2026-06-30T12:00:00Z). Entries after it are
     /// refused and the round closes by itself; without it an organizer closes the round.
     #[arg(long, value_name = "TIME")]
@@ -404,10 +410,29 @@ pub fn joint_note(delta: f64, family: Option<&str>, family_delta: Option<f64>) -
     }
 }
 
+/// Entries a sealed round's default even schedule is spread over when --expect-answers is not
+/// given.
+pub const SEALED_DEFAULT_ENTRIES: u32 = 100;
+
+/// The schedule: as given; else `even:K` for a sealed round (K the expected entries), so that
+/// every entry gets the same share and, as nothing is released before the close, the same
+/// level: if the first entry fits the tolerance, all K do, and none is refused for the
+/// tolerance before the close (after K entries the round refuses as spent). Else `series`.
+fn schedule_of(args: &CreateArgs) -> String {
+    if let Some(s) = &args.schedule {
+        return s.clone();
+    }
+    if args.answers.trim().starts_with("sealed") {
+        let k = args.expect_answers.unwrap_or(SEALED_DEFAULT_ENTRIES);
+        return format!("even:{k}");
+    }
+    "series".into()
+}
+
 fn policy_of(args: &CreateArgs) -> Policy {
     Policy {
         delta: args.delta,
-        schedule: args.schedule.clone(),
+        schedule: schedule_of(args),
         answers: args.answers.clone(),
         tolerance: args.tolerance,
         sharing: match args.sharing {
@@ -517,7 +542,13 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
     })?;
 
     let policy = policy_of(args);
-    let plan = super::plan::describe(checked.rows, &policy, &targets, args.expected_error)?;
+    let plan = super::plan::describe(
+        checked.rows,
+        &policy,
+        &targets,
+        args.expected_error,
+        args.teams,
+    )?;
     let joint = joint_note(args.delta, args.family.as_deref(), args.family_delta);
     let family_json = args
         .family
@@ -550,7 +581,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         description: args.description.clone(),
         family: args.family.clone().unwrap_or_default(),
         family_delta: args.family_delta.unwrap_or(0.0),
-        expect_answers: args.expect_answers,
+        expect_answers: args.expect_answers.unwrap_or(1),
         rows_hint: checked.rows,
         id_bytes_hint: checked.id_bytes,
     };

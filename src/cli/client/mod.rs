@@ -5,7 +5,7 @@
 //! | `create` | [`create`] |
 //! | `split` | [`split`] |
 //! | `ids`, `validate`, `submit` | [`submit`] |
-//! | `status`, `history`, `list`, `close`, `user ...`, `whoami` | [`admin`] |
+//! | `status`, `history`, `list`, `close`, `withdraw`, `user ...`, `whoami` | [`admin`] |
 //! | `leaderboard`, `ranking`, `duplicates` | [`compete`] |
 //!
 //! Every command prints people-readable text by default and one JSON document with `--json`.
@@ -69,6 +69,10 @@ pub enum ClientCommand {
     /// Close a holdout: it answers no more queries (organizer). Closing a sealed round answers
     /// every entry at once and ranks them.
     Close(admin::CloseArgs),
+    /// Withdraw a holdout that released nothing, freeing its rows and labels for a new create
+    /// (custodian and organizer: the first records a request, the other completes it; one call
+    /// if you hold both roles). Refused once anything was answered or sealed.
+    Withdraw(admin::WithdrawArgs),
     /// Ladder holdouts: each team's best so far with the interval for its best true error.
     Leaderboard(compete::BoardArgs),
     /// Sealed rounds, once closed: the ranking, with paired comparisons between neighbours.
@@ -114,6 +118,7 @@ async fn dispatch(cmd: ClientCommand) -> anyhow::Result<ExitCode> {
         ClientCommand::Report(args) => report::run(&args).await,
         ClientCommand::List(args) => admin::list(&args).await,
         ClientCommand::Close(args) => admin::close(&args).await,
+        ClientCommand::Withdraw(args) => admin::withdraw(&args).await,
         ClientCommand::Leaderboard(args) => compete::leaderboard(&args).await,
         ClientCommand::Ranking(args) => compete::ranking(&args).await,
         ClientCommand::Duplicates(args) => compete::duplicates(&args).await,

@@ -40,7 +40,13 @@ fn count(q: f64) -> String {
 /// # Errors
 /// [`Error::InvalidArgument`] for a schedule, answer rule or method the core does not accept,
 /// so a bad policy is caught before anything is sent.
-pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64) -> Result<Plan> {
+pub fn describe(
+    n: u64,
+    policy: &Policy,
+    targets: &[Target],
+    expected_error: f64,
+    teams: Option<u64>,
+) -> Result<Plan> {
     let schedule: Schedule = policy
         .schedule
         .parse()
@@ -130,15 +136,140 @@ pub fn describe(n: u64, policy: &Policy, targets: &[Target], expected_error: f64
             "\n(best-of counts batches of {PLAN_BATCH} models; each model takes a share)"
         ));
     }
-    Ok(Plan {
+    let mut json = json!({
+        "rows": n,
+        "expected_error": expected_error,
+        "policy": show::policy_json(policy),
+        "targets": per_target,
+    });
+    if let Some(fair) = fair_service(n, policy, targets, expected_error, teams)? {
+        text.push_str(&format!("\n\n{}", fair.text));
+        json["teams"] = fair.json;
+    }
+    Ok(Plan { text, json })
+}
+
+/// Answers counted for one team when asking what it can expect (more is shown as "at least").
+const EXPECT_CAP: u64 = 10_000;
+
+/// The teams a policy declares (a roster), or `teams` when given; the roster's reserve.
+fn declared_teams(shares: &str, teams: Option<u64>) -> (Option<u64>, f64) {
+    let Some(rest) = shares.trim().strip_prefix("roster:") else {
+        return (teams, 0.0);
+    };
+    let (names, reserve) = match rest.rsplit_once(':') {
+        Some((names, r)) => (names, r.trim().parse().unwrap_or(0.0)),
+        None => (rest, 0.0),
+    };
+    let count = names.split(',').filter(|s| !s.trim().is_empty()).count() as u64;
+    (Some(count.max(1)), reserve)
+}
+
+/// Fair service lines for `create`, when teams are declared (`--shares roster:...`) or given
+/// (`--teams`): the answers each team can expect when the teams take turns, at the expected
+/// error and at worst case, and a warning when a first team that keeps submitting would starve
+/// the others. Counted for the first target (the targets share one budget).
+fn fair_service(
+    n: u64,
+    policy: &Policy,
+    targets: &[Target],
+    expected_error: f64,
+    teams: Option<u64>,
+) -> Result<Option<Plan>> {
+    use crate::stats::fair::{FairPolicy, FairSpec, PoolSplit, first_comer, served};
+    let (Some(teams), Some(target)) = (declared_teams(&policy.shares, teams).0, targets.first())
+    else {
+        return Ok(None);
+    };
+    let reserve = declared_teams(&policy.shares, Some(teams)).1;
+    let rule: Rule = policy
+        .answers
+        .parse()
+        .map_err(|e| Error::invalid("--answers", format!("{e}")))?;
+    if matches!(rule, Rule::BestOf(_)) {
+        return Ok(None);
+    }
+    let split = match policy.shares.trim() {
+        "none" | "" => PoolSplit::None,
+        "on-arrival" => PoolSplit::OnArrival,
+        _ => PoolSplit::Roster,
+    };
+    // The delta the teams' answers draw on: a roster's reserve and a sealed round's ranking
+    // share are kept apart (the daemon's default ranking share when none is given).
+    let ranking = if matches!(rule, Rule::Sealed(_)) {
+        if policy.ranking_share > 0.0 {
+            policy.ranking_share
+        } else {
+            crate::engine::DEFAULT_RANKING_SHARE
+        }
+    } else {
+        0.0
+    };
+    let method: Method = target
+        .method
+        .parse()
+        .map_err(|e| Error::invalid("--target", format!("method of {}: {e}", target.name)))?;
+    let spec = FairSpec {
+        rows: n,
+        delta: policy.delta * (1.0 - reserve) * (1.0 - ranking),
+        tolerance: policy.tolerance,
+        method,
+        teams,
+        answers_each: EXPECT_CAP,
+    };
+    let fair = FairPolicy {
+        rule,
+        schedule: policy
+            .schedule
+            .parse()
+            .map_err(|e| Error::invalid("--schedule", format!("{e}")))?,
+        split,
+        isolated: policy.sharing == "isolated",
+    };
+    let expected = served(&spec, &fair, expected_error);
+    let worst = served(&spec, &fair, 0.5);
+    let (alone, after) = first_comer(&spec, &fair, expected_error);
+    let each = |k: u64| {
+        if k >= EXPECT_CAP {
+            format!("at least {EXPECT_CAP}")
+        } else {
+            k.to_string()
+        }
+    };
+    let mut text = format!(
+        "fair service, {teams} teams taking turns: each can expect {} answers at the expected \
+         error {} ({} at worst case)",
+        each(expected),
+        show::num(expected_error),
+        each(worst)
+    );
+    let starves = after < expected;
+    if starves {
+        text.push_str(&format!(
+            "\nwarning: the first answers would starve later teams: a team that keeps submitting \
+             gets {} answers before its next is refused, and the other {} teams are then left \
+             {} each (instead of {}). Give each team its own pool (--shares roster:TEAM,... \
+             with --sharing isolated), an even schedule over the expected answers \
+             (--schedule even:K), or a daily quota (--daily-quota N); `holdout plan --rows {n} \
+             --teams {teams} --answers-each M` compares them",
+            each(alone),
+            teams - 1,
+            after,
+            each(expected)
+        ));
+    }
+    Ok(Some(Plan {
         text,
         json: json!({
-            "rows": n,
-            "expected_error": expected_error,
-            "policy": show::policy_json(policy),
-            "targets": per_target,
+            "teams": teams,
+            "each_expected": expected,
+            "each_worst_case": worst,
+            "first_team_alone": alone,
+            "others_after_first": after,
+            "starves": starves,
+            "counted_up_to": EXPECT_CAP,
         }),
-    })
+    }))
 }
 
 #[cfg(test)]
@@ -178,6 +309,7 @@ mod tests {
             &policy("rounded:0.01", "series"),
             &[target("hoeffding")],
             0.1,
+            None,
         )
         .expect("plan");
         assert_eq!(
@@ -196,11 +328,11 @@ mod tests {
             ("rounded:0.01", "weekly", "--schedule"),
             ("coin", "series", "--answers"),
         ] {
-            match describe(100, &policy(answers, schedule), &t, 0.1) {
+            match describe(100, &policy(answers, schedule), &t, 0.1, None) {
                 Err(Error::InvalidArgument { field: f, .. }) => assert_eq!(f, field),
                 other => panic!("expected a refusal, got {other:?}"),
             }
         }
-        assert!(describe(100, &policy("rounded:0.01", "series"), &t, 1.5).is_err());
+        assert!(describe(100, &policy("rounded:0.01", "series"), &t, 1.5, None).is_err());
     }
 }

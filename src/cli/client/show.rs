@@ -451,6 +451,8 @@ pub fn holdout_json(h: &HoldoutInfo) -> Value {
         "budget": h.budget.as_ref().map_or(Value::Null, budget_json),
         "genesis_hash": h.genesis_hash,
         "guarantee": h.guarantee,
+        "withdrawn_at": (!h.withdrawn_at.is_empty()).then_some(&h.withdrawn_at),
+        "withdrawal_pending": (!h.withdrawal_pending.is_empty()).then_some(&h.withdrawal_pending),
     })
 }
 
@@ -459,10 +461,25 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
     let mut s = format!(
         "holdout    {}{}\nrows       {}\ncreated    {}\n",
         h.name,
-        if h.open { "" } else { " (closed)" },
+        if !h.withdrawn_at.is_empty() {
+            " (withdrawn: released nothing; its rows and labels are free)"
+        } else if h.open {
+            ""
+        } else {
+            " (closed)"
+        },
         h.rows,
         h.created_at
     );
+    if !h.withdrawn_at.is_empty() {
+        s.push_str(&format!("withdrawn  {}\n", h.withdrawn_at));
+    }
+    if !h.withdrawal_pending.is_empty() {
+        s.push_str(&format!(
+            "withdrawal {}\n",
+            safe_text(&h.withdrawal_pending, 300)
+        ));
+    }
     if !h.description.is_empty() {
         s.push_str(&format!("about      {}\n", safe_text(&h.description, 500)));
     }

@@ -439,3 +439,17 @@ class Client:
                 ))
 
         return _holdout_info(self._unary(self._holdouts.CreateHoldout, chunks()))
+
+    def withdraw(self, name: str, reason: str = "") -> dict:
+        """Withdraws a holdout that released nothing (custodian and organizer: the first call
+        records a request, the other role's completes it; one call with both roles). Returns
+        ``{"completed": bool, "message": str, "holdout": HoldoutInfo}``. Refused with
+        ``HoldoutError`` (exit code 7) once anything was answered or sealed."""
+        reply = self._unary(
+            self._holdouts.WithdrawHoldout, _h.WithdrawHoldoutRequest(name=name, reason=reason)
+        )
+        return {
+            "completed": reply.completed,
+            "message": reply.message,
+            "holdout": _holdout_info(reply.holdout),
+        }

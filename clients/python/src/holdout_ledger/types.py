@@ -181,6 +181,10 @@ class HoldoutInfo:
     budget: Budget
     genesis_hash: str
     guarantee: str
+    #: When it was withdrawn (RFC 3339; empty: not withdrawn).
+    withdrawn_at: str = ""
+    #: A withdrawal request waiting for the other role, in words (empty: none).
+    withdrawal_pending: str = ""
 
 
 @dataclass(frozen=True)
@@ -334,6 +338,8 @@ def _holdout_info(m) -> HoldoutInfo:
         budget=_budget(m.budget),
         genesis_hash=m.genesis_hash,
         guarantee=m.guarantee,
+        withdrawn_at=m.withdrawn_at,
+        withdrawal_pending=m.withdrawal_pending,
     )
 
 
