@@ -38,6 +38,16 @@ fn a_policy_that_affords_too_few_answers_seals_nothing() {
         "{}",
         r.stderr
     );
+    // Per-team shares: each declared team's own share must afford the answers (one pool at
+    // the same tolerance would have; a team's share is smaller).
+    let r = create(&["--tolerance", "0.01", "--shares", "roster:north,south,east"]).code(2);
+    assert!(
+        r.stderr
+            .contains("affords 0 answers for each declared team")
+            && r.stderr.contains("nothing was sealed"),
+        "{}",
+        r.stderr
+    );
     // A sealed round whose deadline is past would refuse every entry.
     let r = create(&[
         "--answers",

@@ -192,18 +192,28 @@ impl Engine {
         // Canonical order: rows sorted by id, so digests do not depend on file order.
         let sorted = rows.finish()?;
         // With one pool (no per-team shares) the fresh budget is everyone's: it must afford the
-        // answers asked for. Per-team pools are checked by `plan`, not here.
-        if policy.core.shares == crate::stats::schedule::Shares::None {
-            let fresh = super::account::Book::new(&policy)?.budget(&policy, "");
+        // answers asked for. With a roster every declared team has an equal share of its own,
+        // and each must afford them on a fresh holdout (the first team's stands for all).
+        // On-arrival shares name no team in advance; `plan --teams` covers them.
+        use crate::stats::schedule::Shares;
+        let probe = match &policy.core.shares {
+            Shares::None => Some((String::new(), "")),
+            Shares::Roster { analysts, .. } => analysts
+                .first()
+                .map(|t| (t.clone(), " for each declared team")),
+            Shares::OnArrival => None,
+        };
+        if let Some((team, whom)) = probe {
+            let fresh = super::account::Book::new(&policy)?.budget(&policy, &team);
             let expect = u64::from(expect.max(1));
             if fresh.queries_left < expect {
                 return Err(Error::invalid(
                     "policy",
                     format!(
-                        "it affords {} answers within the tolerance {} at worst case on {n} rows, \
-                         fewer than the {expect} expected; nothing was sealed and the labels \
-                         stay free. Widen --tolerance, add rows, or pick a rule or schedule that \
-                         fits (`holdout plan --rows {n} --tolerance {}`)",
+                        "it affords {} answers{whom} within the tolerance {} at worst case on \
+                         {n} rows, fewer than the {expect} expected; nothing was sealed and the \
+                         labels stay free. Widen --tolerance, add rows, or pick a rule, schedule \
+                         or shares that fit (`holdout plan --rows {n} --tolerance {}`)",
                         fresh.queries_left, head.policy.tolerance, head.policy.tolerance
                     ),
                 ));
