@@ -108,7 +108,8 @@ pub struct CreateArgs {
     #[arg(long, default_value = "none")]
     pub shares: String,
     /// Answers the policy must afford (at worst case, within the tolerance) for create to go
-    /// ahead; a policy that affords fewer is refused and nothing is sealed [default: 1; for a
+    /// ahead, counted for each declared team under `--shares roster:...`; a policy that affords
+    /// fewer is refused and nothing is sealed [default: 1; for a
     /// sealed round it also sets the even schedule's K when --schedule is not given].
     #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     pub expect_answers: Option<u32>,
