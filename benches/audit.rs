@@ -6,7 +6,9 @@
 //! tolerance is reached, refusals after, as a long-lived holdout's ledger looks) and
 //! `all_answers` (tolerance 1.0: every entry an answer, each with its interval, code and
 //! forecast to re-derive). `AUDIT_BENCH_TOLERANCE` measures one ledger at that tolerance
-//! instead; `AUDIT_BENCH_ENTRIES` overrides the size (e.g. 20000 for a quick look).
+//! instead; `AUDIT_BENCH_ENTRIES` overrides the size (e.g. 20000 for a quick look);
+//! `AUDIT_BENCH_SAVE=DIR` also writes each generated export to `DIR`, to profile
+//! `holdout audit FILE` on it without generating it again.
 //!
 //! Every audit iteration starts with an empty memo of Beta evaluations on the calling thread
 //! (`stats::beta::memo::clear`), so the figures are those of a fresh `holdout audit` process,
@@ -74,6 +76,13 @@ fn bench_ledger(c: &mut Criterion, label: &str, n: usize, tolerance: f64) {
     let ex = ledger_of(n, tolerance);
     let mut bytes = Vec::new();
     ex.write_to(&mut bytes).expect("write the export");
+    if let Ok(dir) = std::env::var("AUDIT_BENCH_SAVE") {
+        // For profiling the audit alone (`holdout audit FILE` under a profiler), without
+        // generating the ledger again.
+        let path = std::path::Path::new(&dir).join(format!("audit-bench-{label}-{n}.jsonl"));
+        std::fs::write(&path, &bytes).expect("save the export");
+        eprintln!("saved {}", path.display());
+    }
     assert!(cold_audit(&ex).clean());
 
     let mut group = c.benchmark_group(format!("audit_{label}"));

@@ -737,12 +737,10 @@ fn parse_and_check_identities(
 }
 
 /// The parsing thread computes the widest cell ahead for one answer in this many; the replay's
-/// thread computes the others. Measured with callgrind on the bench's all-answer ledger: once
-/// the replay wrote each answer's core text without a string per field, and a widest cell took
-/// each Beta root once (its lower limit at `k` and upper limit at `n - k` are one root), the
-/// replay's own work fell below the parsing thread's; one in eight leaves the two threads within
-/// one per cent of each other (one in four left the parsing thread 7 % behind).
-const WIDEST_AHEAD_EVERY: u64 = 8;
+/// thread computes the others. Measured with callgrind (`holdout audit` on the bench's 4,000-entry
+/// all-answer ledger of core 3, `AUDIT_BENCH_SAVE`): one in eight left the replay's thread at
+/// 262M instructions and the parsing thread at 234M; one in five gives 248M and 250M.
+const WIDEST_AHEAD_EVERY: u64 = 5;
 
 /// Computes, on the parsing thread with a [`shared`] table filling, the intervals the replay
 /// of answer `r` (entry `seq`) will ask for if `r` records its level truly: under a rounded

@@ -205,16 +205,38 @@ pub(crate) fn ln_beta_reg_with(a: f64, b: f64, p: Point, precise: bool) -> Optio
     v
 }
 
+thread_local! {
+    static EVALUATIONS: std::cell::Cell<u64> = const { std::cell::Cell::new(0) };
+}
+
+/// How many times this thread evaluated `ln I_x(a, b)` so far (not counting values taken
+/// from the [`memo`]): lets tests compare the work of two searches.
+pub fn evaluations() -> u64 {
+    EVALUATIONS.get()
+}
+
 /// [`ln_beta_reg_with`] evaluated, never remembered.
 fn ln_beta_reg_eval(a: f64, b: f64, p: Point, precise: bool) -> Option<(f64, f64)> {
+    ln_beta_reg_eval_with(a, b, p, precise, &PairConsts::of(a, b))
+}
+
+/// [`ln_beta_reg_eval`] with the pair's constants at hand (a solve takes them once, not at
+/// each of its points).
+fn ln_beta_reg_eval_with(
+    a: f64,
+    b: f64,
+    p: Point,
+    precise: bool,
+    k: &PairConsts,
+) -> Option<(f64, f64)> {
+    EVALUATIONS.set(EVALUATIONS.get() + 1);
     if p.x <= 0.0 {
         return Some((f64::NEG_INFINITY, f64::NEG_INFINITY));
     }
     if p.y <= 0.0 {
         return Some((0.0, f64::NEG_INFINITY));
     }
-    let k = PairConsts::of(a, b);
-    let pre = ln_prefactor_with(a, b, p, &k);
+    let pre = ln_prefactor_with(a, b, p, k);
     if p.x < (a + 1.0) / (a + b + 2.0) {
         let cf = beta_cf(a, b, p.x, p.y, precise)?;
         Some((pre + cf.ln() - k.ln_a, pre))
@@ -266,37 +288,235 @@ pub(crate) fn solve_ln_beta_reg_with(a: f64, b: f64, target: f64, precise: bool)
     root
 }
 
-/// [`solve_ln_beta_reg_with`] computed, never remembered.
-fn solve_ln_beta_reg_eval(a: f64, b: f64, target: f64, precise: bool) -> Option<Point> {
-    let ln_beta_reg = |a, b, p| ln_beta_reg_with(a, b, p, precise);
+/// The root of `ln I_x(a, b) = target` as [`solve_ln_beta_reg_with`] with `precise`, searched
+/// from a guess of it (core version 3): the Wilson score limit of the same proportion
+/// ([`root_guess`]); the search brackets the root by steps growing away from the guess, then
+/// runs the same safeguarded Newton inside that bracket. It finds the same root to within the
+/// search's tolerance (about `1e-14` relative) with a handful of evaluations instead of dozens
+/// from the ends of the whole range, but not always to the same last bits, so holdouts of
+/// core version 2 keep [`solve_ln_beta_reg_with`]. The outward limits certify whatever root
+/// they are given, so their guarantee does not rest on the guess.
+pub(crate) fn solve_ln_beta_reg_from(a: f64, b: f64, target: f64) -> Option<Point> {
+    let key = memo::SolveKey::new(a, b, target, true).started();
+    if let Some(root) = memo::solved(&key) {
+        return root;
+    }
+    let root = solve_from_eval(a, b, target, root_guess(a, b, target));
+    memo::remember_solve(key, root);
+    root
+}
+
+/// A guess of the root `x` of `I_x(a, b) = e^target`, that is of the lower limit `x` with
+/// `P(Bin(m, x) >= a) = e^target` for `m = a + b - 1`: the Wilson score limit at the
+/// proportion `a / m` with `z^2 = 2t - ln(4 pi t)`, `t = -target` (the normal tail's
+/// asymptotic inverse). Only the number of evaluations depends on it.
+fn root_guess(a: f64, b: f64, target: f64) -> f64 {
+    let m = (a + b - 1.0).max(1.0);
+    let p = (a / m).clamp(0.0, 1.0);
+    let t = (-target).max(1e-3);
+    let z2 = (2.0 * t - (4.0 * std::f64::consts::PI * t).ln()).max(0.25);
+    let centre = p + z2 / (2.0 * m);
+    let spread = (z2 * (p * (1.0 - p) / m + z2 / (4.0 * m * m))).sqrt();
+    ((centre - spread) / (1.0 + z2 / m)).clamp(0.0, 1.0)
+}
+
+fn solve_from_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
+    let k = PairConsts::of(a, b);
     let half = Point { x: 0.5, y: 0.5 };
-    let (f_half, _) = ln_beta_reg(a, b, half)?;
+    let (f_half, _) = ln_beta_reg_with(a, b, half, true)?;
     let u_min = f64::MIN_POSITIVE.ln();
+    let top = half.x.ln();
     if f_half > target {
-        // Root below x = 1/2: search s = x, increasing; keep the side with g <= 0.
-        let g = |u: f64| {
+        // Root below x = 1/2, searched in u = ln x (as the plain solve).
+        let g = |u: f64, _: bool| {
             let p = Point::from_x(u.exp());
-            let (f, pre) = ln_beta_reg(a, b, p)?;
+            let (f, pre) = ln_beta_reg_eval_with(a, b, p, true, &k)?;
             Some((f - target, (pre - p.y.ln() - f).exp()))
         };
-        let (g_lo, _) = g(u_min)?;
+        let (g_lo, _) = ln_beta_reg_with(a, b, Point::from_x(u_min.exp()), true)
+            .map(|(f, _)| (f - target, 0.0))?;
         if g_lo > 0.0 {
             return None;
         }
-        let (lo, _) = solve_increasing(g, u_min, half.x.ln())?;
+        let start = guess.clamp(f64::MIN_POSITIVE, 0.5).ln().clamp(u_min, top);
+        let (lo, _) = bracket_and_solve(g, u_min, top, start)?;
         Some(Point::from_x(lo.exp()))
     } else {
-        // Root at or above x = 1/2: search s = y; g = target - f increases with y; keep g >= 0.
-        let g = |v: f64| {
+        // Root at or above x = 1/2, searched in v = ln y.
+        let g = |v: f64, _: bool| {
             let p = Point::from_y(v.exp());
-            let (f, pre) = ln_beta_reg(a, b, p)?;
+            let (f, pre) = ln_beta_reg_eval_with(a, b, p, true, &k)?;
             Some((target - f, (pre - p.x.ln() - f).exp()))
         };
-        let (g_lo, _) = g(u_min)?;
+        let (g_lo, _) = ln_beta_reg_with(a, b, Point::from_y(u_min.exp()), true)
+            .map(|(f, _)| (target - f, 0.0))?;
         if g_lo >= 0.0 {
             return Some(Point::from_y(f64::MIN_POSITIVE));
         }
-        let (_, hi) = solve_increasing(g, u_min, half.y.ln())?;
+        let start = (1.0 - guess)
+            .clamp(f64::MIN_POSITIVE, 0.5)
+            .ln()
+            .clamp(u_min, top);
+        let (_, hi) = bracket_and_solve(g, u_min, top, start)?;
+        Some(Point::from_y(hi.exp()))
+    }
+}
+
+/// For an increasing `g` with `g(lo) <= 0 < g(hi)` (checked by the caller): brackets the root
+/// from `start` by steps that grow fourfold (at most to `lo` and `hi` themselves), then
+/// searches the bracket as [`solve_increasing`] does, from the bracket's end nearer the root.
+fn bracket_and_solve<G>(mut g: G, lo: f64, hi: f64, start: f64) -> Option<(f64, f64)>
+where
+    G: FnMut(f64, bool) -> Option<(f64, f64)>,
+{
+    // A relative step of 1/64 in x (or y): the guesses are within a few per cent when the
+    // counts are not tiny, and the growth finds the root in a few more steps when they are.
+    let mut step = (1.0 / 64.0f64).max(1e-3 * start.abs());
+    let (g0, d0) = g(start, false)?;
+    let (mut a, mut b) = (lo, hi);
+    let (mut ga, mut gb) = (None, None);
+    if g0 <= 0.0 {
+        a = start;
+        ga = Some((g0, d0));
+        loop {
+            let u = (a + step).min(hi);
+            if u >= hi {
+                break;
+            }
+            let (gu, du) = g(u, false)?;
+            if gu > 0.0 {
+                b = u;
+                gb = Some((gu, du));
+                break;
+            }
+            a = u;
+            ga = Some((gu, du));
+            step *= 4.0;
+        }
+    } else {
+        b = start;
+        gb = Some((g0, d0));
+        loop {
+            let u = (b - step).max(lo);
+            if u <= lo {
+                break;
+            }
+            let (gu, du) = g(u, false)?;
+            if gu <= 0.0 {
+                a = u;
+                ga = Some((gu, du));
+                break;
+            }
+            b = u;
+            gb = Some((gu, du));
+            step *= 4.0;
+        }
+    }
+    // Start Newton from the end whose value is known and nearer zero.
+    let from = match (ga, gb) {
+        (Some((gl, dl)), Some((gh, dh))) => {
+            if gl.abs() < gh.abs() {
+                (a, gl, dl)
+            } else {
+                (b, gh, dh)
+            }
+        }
+        (Some((gl, dl)), None) => (a, gl, dl),
+        (None, Some((gh, dh))) => (b, gh, dh),
+        (None, None) => {
+            let (gh, dh) = g(b, false)?;
+            (b, gh, dh)
+        }
+    };
+    newton_tight(g, a, b, from)
+}
+
+/// Newton inside a bracket `[lo, hi]` of an increasing `g`, from `u` with known `(gu, du)`:
+/// a Newton step is taken when it stays inside the bracket and at least halves the step
+/// before it (converging as Newton does near a simple root), a bisection otherwise; once a
+/// step is below the tolerance, a step of the tolerance across the root closes the bracket.
+/// Returns the final bracket as [`solve_increasing`] does.
+fn newton_tight<G>(
+    mut g: G,
+    mut lo: f64,
+    mut hi: f64,
+    (mut u, mut gu, mut du): (f64, f64, f64),
+) -> Option<(f64, f64)>
+where
+    G: FnMut(f64, bool) -> Option<(f64, f64)>,
+{
+    let mut before = hi - lo;
+    for _ in 0..400 {
+        let tol = 1e-14 * u.abs().max(1.0);
+        if hi - lo <= tol {
+            return Some((lo, hi));
+        }
+        let step = gu / du;
+        let mut cand = if step.is_finite() { u - step } else { f64::NAN };
+        let close = step.is_finite() && step.abs() < 0.5 * tol;
+        if close {
+            cand = if gu > 0.0 { u - tol } else { u + tol };
+        }
+        if !(cand > lo && cand < hi) || (!close && 2.0 * step.abs() > before.abs()) {
+            cand = 0.5 * (lo + hi);
+        }
+        before = cand - u;
+        let (gc, dc) = g(cand, false)?;
+        if gc <= 0.0 {
+            lo = cand;
+        } else {
+            hi = cand;
+        }
+        u = cand;
+        gu = gc;
+        du = dc;
+    }
+    Some((lo, hi))
+}
+
+/// [`solve_ln_beta_reg_with`] computed, never remembered.
+///
+/// The search's start points and bisection midpoints go through the memo (they do not depend
+/// on `target`, so solves at other levels meet them again); its Newton steps land on points
+/// that depend on `target` and are evaluated without a look in the memo, which they never hit.
+/// Both routes give the same bits, so the root is the same either way.
+fn solve_ln_beta_reg_eval(a: f64, b: f64, target: f64, precise: bool) -> Option<Point> {
+    let k = PairConsts::of(a, b);
+    let ln_beta_reg = |a, b, p, remember: bool| {
+        if remember {
+            ln_beta_reg_with(a, b, p, precise)
+        } else {
+            ln_beta_reg_eval_with(a, b, p, precise, &k)
+        }
+    };
+    let half = Point { x: 0.5, y: 0.5 };
+    let (f_half, _) = ln_beta_reg(a, b, half, true)?;
+    let u_min = f64::MIN_POSITIVE.ln();
+    if f_half > target {
+        // Root below x = 1/2: search s = x, increasing; keep the side with g <= 0.
+        let g = |u: f64, remember: bool| {
+            let p = Point::from_x(u.exp());
+            let (f, pre) = ln_beta_reg(a, b, p, remember)?;
+            Some((f - target, (pre - p.y.ln() - f).exp()))
+        };
+        let (g_lo, _) = g(u_min, true)?;
+        if g_lo > 0.0 {
+            return None;
+        }
+        let (lo, _) = solve_increasing_marked(g, u_min, half.x.ln())?;
+        Some(Point::from_x(lo.exp()))
+    } else {
+        // Root at or above x = 1/2: search s = y; g = target - f increases with y; keep g >= 0.
+        let g = |v: f64, remember: bool| {
+            let p = Point::from_y(v.exp());
+            let (f, pre) = ln_beta_reg(a, b, p, remember)?;
+            Some((target - f, (pre - p.x.ln() - f).exp()))
+        };
+        let (g_lo, _) = g(u_min, true)?;
+        if g_lo >= 0.0 {
+            return Some(Point::from_y(f64::MIN_POSITIVE));
+        }
+        let (_, hi) = solve_increasing_marked(g, u_min, half.y.ln())?;
         Some(Point::from_y(hi.exp()))
     }
 }
@@ -304,12 +524,35 @@ fn solve_ln_beta_reg_eval(a: f64, b: f64, target: f64, precise: bool) -> Option<
 /// Safeguarded Newton on an increasing `g` with `g(lo) <= 0 <= g(hi)` (the caller has checked
 /// both ends). `g` returns its value and derivative. Returns the final bracket `(lo, hi)`,
 /// whose ends keep the signs above and are within about `1e-14` (relative to `u`) of each other.
-pub(crate) fn solve_increasing<G>(mut g: G, mut lo: f64, mut hi: f64) -> Option<(f64, f64)>
+pub(crate) fn solve_increasing<G>(mut g: G, lo: f64, hi: f64) -> Option<(f64, f64)>
 where
     G: FnMut(f64) -> Option<(f64, f64)>,
 {
-    let mut u = hi;
-    let (mut gu, mut du) = g(u)?;
+    solve_increasing_marked(|u, _| g(u), lo, hi)
+}
+
+/// [`solve_increasing`], telling `g` with each point whether it is a Newton step (`false`)
+/// or a start point or bisection midpoint (`true`), which repeat between searches from the
+/// same bracket. The points visited are the same.
+fn solve_increasing_marked<G>(mut g: G, lo: f64, hi: f64) -> Option<(f64, f64)>
+where
+    G: FnMut(f64, bool) -> Option<(f64, f64)>,
+{
+    let (gu, du) = g(hi, true)?;
+    newton_from(g, lo, hi, (hi, gu, du))
+}
+
+/// The search of [`solve_increasing_marked`] from the point `u` in `[lo, hi]`, whose value and
+/// derivative `(gu, du)` are known.
+fn newton_from<G>(
+    mut g: G,
+    mut lo: f64,
+    mut hi: f64,
+    (mut u, mut gu, mut du): (f64, f64, f64),
+) -> Option<(f64, f64)>
+where
+    G: FnMut(f64, bool) -> Option<(f64, f64)>,
+{
     let mut slow = 0u32;
     for _ in 0..400 {
         let tol = 1e-14 * u.abs().max(1.0);
@@ -323,11 +566,13 @@ where
             // Converged: step across the root by a hair to close the bracket.
             cand = if gu > 0.0 { u - tol } else { u + tol };
         }
+        let mut midpoint = false;
         if !(cand > lo && cand < hi) || slow >= 2 {
             cand = 0.5 * (lo + hi);
             slow = 0;
+            midpoint = true;
         }
-        let (gc, dc) = g(cand)?;
+        let (gc, dc) = g(cand, midpoint)?;
         if gc <= 0.0 {
             lo = cand;
         } else {
@@ -413,6 +658,9 @@ pub mod memo {
         b: u64,
         target: u64,
         precise: bool,
+        /// Searched from a guess (core version 3): a root of its own, not always the same
+        /// bits as the search from the ends.
+        started: bool,
     }
 
     impl SolveKey {
@@ -422,6 +670,16 @@ pub mod memo {
                 b: b.to_bits(),
                 target: target.to_bits(),
                 precise,
+                started: false,
+            }
+        }
+
+        /// The key of the search from a guess with the same arguments. The guess itself is
+        /// not part of the key: callers derive it from the arguments alone.
+        pub(super) fn started(self) -> SolveKey {
+            SolveKey {
+                started: true,
+                ..self
             }
         }
     }
