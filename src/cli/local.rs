@@ -187,6 +187,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         };
         check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
+        engine.record_migration_backup()?;
         if !(args.probe_share_factor > 0.0 && args.probe_diff > 0.0 && args.probe_diff < 1.0) {
             anyhow::bail!(
                 "--probe-share-factor must be positive and --probe-diff lie in (0, 1); got {} \
@@ -423,6 +424,7 @@ pub fn init(args: InitArgs) -> anyhow::Result<ExitCode> {
     let store =
         Store::open(&args.db).with_context(|| format!("opening database {}", args.db.display()))?;
     let mut engine = Engine::new(store, std::sync::Arc::new(crate::engine::SystemClock));
+    engine.record_migration_backup()?;
     let users: i64 = engine
         .store()
         .conn()
