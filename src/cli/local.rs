@@ -19,13 +19,22 @@ use crate::store::Store;
 /// `holdout serve`.
 #[derive(Debug, Args)]
 pub struct ServeArgs {
+    /// Read options from this TOML file (keys are these flags' names without dashes, e.g.
+    /// `listen = "127.0.0.1:7361"`, `max-connections = 512`); unknown keys are refused.
+    /// Precedence: flags, then environment variables, then the file, then defaults.
+    #[arg(long, env = "HOLDOUT_CONFIG", value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Print the effective options and where each came from (flag, environment, file,
+    /// default), then exit without serving.
+    #[arg(long)]
+    pub print_config: bool,
     /// Database file (created and migrated if needed). It holds the labels in clear: keep its
     /// permissions tight (new files are created readable by their owner only).
     #[arg(long, env = "HOLDOUT_DB", default_value = "holdout.db")]
     pub db: PathBuf,
     /// Address to listen on. Loopback by default; use a non-loopback address only behind TLS or
     /// a trusted network. Port 0 picks a free port (printed on stdout).
-    #[arg(long, default_value = DEFAULT_LISTEN)]
+    #[arg(long, env = "HOLDOUT_LISTEN", default_value = DEFAULT_LISTEN)]
     pub listen: String,
     /// Log filter (tracing's env-filter syntax), e.g. `info` or `holdout_ledger=debug`.
     #[arg(long, env = "HOLDOUT_LOG", default_value = "info")]
@@ -35,7 +44,7 @@ pub struct ServeArgs {
     /// head; `@users-SEQ.checkpoint.json` for the identity chain alone), at start and every
     /// --checkpoint-every seconds, when a sealed round closes at its deadline, and once more at
     /// shutdown; ship them elsewhere and pass them to `holdout audit --checkpoint`.
-    #[arg(long, value_name = "DIR")]
+    #[arg(long, env = "HOLDOUT_CHECKPOINT_DIR", value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
     /// TLS: the daemon's certificate chain (PEM). With --tls-key, every connection is TLS.
     #[arg(long, value_name = "FILE", requires = "tls_key")]
@@ -133,6 +142,12 @@ pub struct InitArgs {
 
 /// Runs the daemon until ctrl-c or SIGTERM.
 pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
+    let effective = crate::config::resolve_from_process(args)?;
+    if effective.args.print_config {
+        print!("{}", effective.render());
+        return Ok(ExitCode::SUCCESS);
+    }
+    let args = effective.args;
     let filter = tracing_subscriber::EnvFilter::try_new(&args.log)
         .map_err(|e| Error::invalid("--log", e.to_string()))?;
     tracing_subscriber::fmt()
