@@ -45,6 +45,9 @@ pub struct FileConfig {
     pub probe_share_factor: Option<f64>,
     pub probe_run: Option<u32>,
     pub probe_diff: Option<f64>,
+    pub alert_share: Option<f64>,
+    pub alert_margin: Option<f64>,
+    pub alert_command: Option<PathBuf>,
 }
 
 impl FileConfig {
@@ -272,6 +275,9 @@ pub fn resolve(mut args: ServeArgs, matches: &ArgMatches) -> Result<Effective> {
         probe_share_factor,
         probe_run,
         probe_diff,
+        alert_share,
+        alert_margin,
+        alert_command,
     );
     // The pairs the flags require of each other hold for the combination too.
     if args.tls_cert.is_some() != args.tls_key.is_some() {

@@ -22,6 +22,7 @@
 #![deny(missing_docs)]
 #![warn(unreachable_pub, rustdoc::broken_intra_doc_links)]
 
+pub mod alerts;
 pub mod audit;
 pub mod auth;
 pub mod cli;

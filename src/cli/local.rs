@@ -124,6 +124,18 @@ pub struct ServeArgs {
     /// near-duplicate of the team's previous one.
     #[arg(long, value_name = "FRACTION", default_value_t = 0.01)]
     pub probe_diff: f64,
+    /// Budget alert: when a holdout's spent budget (per team under `isolated`) reaches this
+    /// share of its delta, log it once (and run --alert-command).
+    #[arg(long, value_name = "SHARE")]
+    pub alert_share: Option<f64>,
+    /// Budget alert: when the next answer's half-width comes within this margin of the
+    /// tolerance, log it once (and run --alert-command).
+    #[arg(long, value_name = "MARGIN")]
+    pub alert_margin: Option<f64>,
+    /// A program run (no shell, detached) on each alert, with the arguments KIND HOLDOUT TEAM
+    /// SPENT DELTA NEXT_HALF_WIDTH TOLERANCE; KIND is budget-share or tolerance-margin.
+    #[arg(long, value_name = "PROGRAM")]
+    pub alert_command: Option<PathBuf>,
 }
 
 /// `holdout init`.
@@ -148,6 +160,28 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         return Ok(ExitCode::SUCCESS);
     }
     let args = effective.args;
+    if let Some(share) = args.alert_share
+        && !(share > 0.0 && share <= 1.0)
+    {
+        return Err(Error::invalid("--alert-share", format!("{share} is not in (0, 1]")).into());
+    }
+    if let Some(margin) = args.alert_margin
+        && !(margin >= 0.0 && margin.is_finite())
+    {
+        return Err(Error::invalid("--alert-margin", format!("{margin} is not >= 0")).into());
+    }
+    if args.alert_command.is_some() && args.alert_share.is_none() && args.alert_margin.is_none() {
+        return Err(Error::invalid(
+            "--alert-command",
+            "give --alert-share or --alert-margin too (nothing would run it)",
+        )
+        .into());
+    }
+    let alerts = crate::alerts::AlertSettings {
+        share: args.alert_share,
+        margin: args.alert_margin,
+        command: args.alert_command.clone(),
+    };
     let filter = tracing_subscriber::EnvFilter::try_new(&args.log)
         .map_err(|e| Error::invalid("--log", e.to_string()))?;
     tracing_subscriber::fmt()
@@ -286,7 +320,8 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             let stop = stopped(stop_rx.clone());
             tokio::spawn(crate::web::serve_web(web, db.clone(), stop, limits, web_tls))
         });
-        serve_on(listener, Daemon::new(db.clone()), stopped(stop_rx), limits, tls).await?;
+        let daemon = Daemon::new(db.clone()).with_alerts(crate::alerts::Alerts::new(alerts));
+        serve_on(listener, daemon, stopped(stop_rx), limits, tls).await?;
         if let Some(task) = web_task {
             match task.await {
                 Ok(Ok(())) => {}

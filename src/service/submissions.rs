@@ -240,13 +240,20 @@ impl Submissions for Daemon {
         let holdout = req.holdout.clone();
         // Group commit: queued submissions share one transaction; the reply leaves after it
         // committed (src/engine/worker.rs).
-        let (outcome, guarantee, closes_at) = self
+        let alert_holdout = holdout.clone();
+        let (outcome, guarantee, closes_at, tolerance, isolated) = self
             .db
             .call_batched(move |engine| {
                 let out = engine.submit(&caller, req)?;
                 let policy = &engine.loaded(&holdout)?.policy;
                 let closes_at = policy.closes_at.map(crate::auth::rfc3339);
-                Ok((out, policy.guarantee(), closes_at.unwrap_or_default()))
+                Ok((
+                    out,
+                    policy.guarantee(),
+                    closes_at.unwrap_or_default(),
+                    policy.input.tolerance,
+                    policy.isolated(),
+                ))
             })
             .await?;
         let outcome = match outcome {
@@ -254,7 +261,15 @@ impl Submissions for Daemon {
                 record,
                 receipt,
                 replayed,
-            } => Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee)),
+            } => {
+                // Alerts read the budget released with this answer, nothing else.
+                if !replayed {
+                    let team = if isolated { record.team.as_str() } else { "" };
+                    self.alerts
+                        .observe(&alert_holdout, team, &record.budget, tolerance);
+                }
+                Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee))
+            }
             SubmitOutcome::Refusal { record, receipt } => {
                 Outcome::Refusal(convert::refusal(&record, receipt.as_ref()))
             }
