@@ -34,6 +34,7 @@ pub struct AlertSettings {
 pub struct Alerts {
     settings: AlertSettings,
     fired: Mutex<HashSet<(String, String, &'static str)>>,
+    list: Mutex<Vec<Alert>>,
 }
 
 /// One alert.
@@ -56,6 +57,25 @@ pub struct Alert {
 }
 
 impl Alert {
+    /// What was crossed, in words.
+    pub fn detail(&self) -> String {
+        match self.kind {
+            "budget-share" => format!(
+                "spent {} of delta {} ({:.0}%); next half-width {}, tolerance {}",
+                self.spent,
+                self.delta,
+                100.0 * self.spent / self.delta,
+                self.next_half_width,
+                self.tolerance
+            ),
+            _ => format!(
+                "next half-width {} is within the alert margin of the tolerance {}; spent {} \
+                 of delta {}",
+                self.next_half_width, self.tolerance, self.spent, self.delta
+            ),
+        }
+    }
+
     /// The command's arguments.
     pub fn args(&self) -> Vec<String> {
         vec![
@@ -76,6 +96,7 @@ impl Alerts {
         Alerts {
             settings,
             fired: Mutex::default(),
+            list: Mutex::default(),
         }
     }
 
@@ -117,7 +138,22 @@ impl Alerts {
         }
         let mut fired = self.fired.lock().unwrap_or_else(|p| p.into_inner());
         out.retain(|a| fired.insert((a.holdout.clone(), a.team.clone(), a.kind)));
+        self.list
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .extend(out.iter().cloned());
         out
+    }
+
+    /// The alerts fired for `holdout` since the daemon started, in order.
+    pub fn fired_for(&self, holdout: &str) -> Vec<Alert> {
+        self.list
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .iter()
+            .filter(|a| a.holdout == holdout)
+            .cloned()
+            .collect()
     }
 
     /// Checks a released budget: logs each new alert and runs the command for it, detached.

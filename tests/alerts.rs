@@ -54,7 +54,10 @@ fn a_crossed_budget_share_runs_the_command_exactly_once() {
     for q in 0..5 {
         let preds = d.write(&format!("p{q}.csv"), &parts.defect_predictions(7 + q, 0));
         let out = d
-            .run(&analyst, &["submit", "bays", "--predictions", &preds, "--json"])
+            .run(
+                &analyst,
+                &["submit", "bays", "--predictions", &preds, "--json"],
+            )
             .ok()
             .json();
         spent.push(out["budget"]["spent"].as_f64().unwrap());
@@ -85,4 +88,49 @@ fn a_crossed_budget_share_runs_the_command_exactly_once() {
     assert_eq!(args[4], "0.05");
     assert_eq!(args[6], "0.5");
     assert!(d.log().contains("budget alert"), "{}", d.log());
+    // `status` shows it, to the analyst (shared holdout) and the organizer, text and JSON.
+    let status = d.run(&analyst, &["status", "bays", "--json"]).ok().json();
+    let alerts = status["alerts"].as_array().unwrap();
+    assert_eq!(alerts.len(), 1, "{status}");
+    assert_eq!(alerts[0]["kind"], "budget-share");
+    assert!(
+        alerts[0]["detail"]
+            .as_str()
+            .unwrap()
+            .contains("of delta 0.05 (67%)"),
+        "{status}"
+    );
+    let text = d.admin(&["status", "bays"]).ok().stdout;
+    assert!(text.contains("alert      budget-share: spent"), "{text}");
+}
+
+#[test]
+fn no_alert_without_a_threshold_and_status_lists_none() {
+    let d = Daemon::start();
+    let parts = Parts::new(N);
+    let labels = d.write("labels.csv", &parts.labels_csv());
+    d.admin(&[
+        "create",
+        "bays",
+        "--labels",
+        &labels,
+        "--metric",
+        "error",
+        "--classes",
+        "crack,dent,ok",
+        "--label-column",
+        "defect",
+        "--tolerance",
+        "0.5",
+    ])
+    .ok();
+    let analyst = d.add_user("ana", &["analyst"], Some("north"));
+    for q in 0..3 {
+        let preds = d.write(&format!("p{q}.csv"), &parts.defect_predictions(7 + q, 0));
+        d.run(&analyst, &["submit", "bays", "--predictions", &preds])
+            .ok();
+    }
+    let status = d.admin(&["status", "bays", "--json"]).ok().json();
+    assert_eq!(status["alerts"], serde_json::json!([]), "{status}");
+    assert!(!d.log().contains("budget alert"));
 }

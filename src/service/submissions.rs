@@ -308,14 +308,32 @@ impl Submissions for Daemon {
     ) -> Result<Response<StatusResponse>, Status> {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
-        let (view, flags) = self
+        let who = caller.clone();
+        let (view, flags, isolated) = self
             .db
             .call(move |engine| {
                 let view = engine.holdout_view(&caller, &name)?;
                 let flags = engine.probe_flags(&caller, &name)?;
-                Ok((view, flags))
+                let isolated = engine.loaded(&name)?.policy.isolated();
+                Ok((view, flags, isolated))
             })
             .await?;
+        // Every team's alerts for the roles that see every team's figures; an analyst under
+        // `isolated` sees its own team's only.
+        let all = who.has(crate::auth::Role::Organizer)
+            || who.has(crate::auth::Role::Custodian)
+            || who.has(crate::auth::Role::Auditor);
+        let alerts: Vec<pb::BudgetAlert> = self
+            .alerts
+            .fired_for(&view.name)
+            .into_iter()
+            .filter(|a| all || !isolated || a.team == who.team)
+            .map(|a| pb::BudgetAlert {
+                kind: a.kind.to_string(),
+                team: a.team.clone(),
+                detail: a.detail(),
+            })
+            .collect();
         Ok(Response::new(StatusResponse {
             holdout: view.name.clone(),
             budget: Some(convert::budget(&view.budget)),
@@ -329,6 +347,7 @@ impl Submissions for Daemon {
                     detail: f.detail,
                 })
                 .collect(),
+            alerts,
         }))
     }
 
