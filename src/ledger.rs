@@ -48,6 +48,10 @@ pub enum Kind {
     /// The completed withdrawal of a holdout that released nothing: its rows and labels are
     /// free for a new holdout; nothing but reads may follow it.
     Withdraw,
+    /// A copy of the whole database was taken (online or offline, or automatically before a
+    /// schema migration); recorded in every holdout's chain before the copy is made, so the copy
+    /// holds its own entry. It moves no accounting state.
+    Backup,
     /// Identity chain: a user was added (with roles and team).
     UserAdded,
     /// Identity chain: a user and its tokens were revoked.
@@ -58,7 +62,7 @@ pub enum Kind {
 
 impl Kind {
     /// Every kind, in a fixed order (reports list counts in this order).
-    pub const ALL: [Kind; 13] = [
+    pub const ALL: [Kind; 14] = [
         Kind::Genesis,
         Kind::Answer,
         Kind::Refusal,
@@ -69,6 +73,7 @@ impl Kind {
         Kind::Adopt,
         Kind::WithdrawRequest,
         Kind::Withdraw,
+        Kind::Backup,
         Kind::UserAdded,
         Kind::UserRevoked,
         Kind::TokenRotated,
@@ -87,6 +92,7 @@ impl Kind {
             Kind::Adopt => "adopt",
             Kind::WithdrawRequest => "withdraw-request",
             Kind::Withdraw => "withdraw",
+            Kind::Backup => "backup",
             Kind::UserAdded => "user-added",
             Kind::UserRevoked => "user-revoked",
             Kind::TokenRotated => "token-rotated",

@@ -18,13 +18,15 @@
 //! - [`web`]: the opt-in read-only web view (`serve --web`), on its own listener.
 //! - [`audit`]: ledger exports, signed checkpoints, and the offline audit that re-verifies and
 //!   replays them with the same accounting core.
-//! - [`cli`]: the `holdout` command line.
+//! - [`cli`]: the `holdout` command line; [`config`]: `serve --config` files and precedence.
 #![deny(missing_docs)]
 #![warn(unreachable_pub, rustdoc::broken_intra_doc_links)]
 
+pub mod alerts;
 pub mod audit;
 pub mod auth;
 pub mod cli;
+pub mod config;
 pub mod engine;
 pub mod error;
 pub mod files;

@@ -19,13 +19,22 @@ use crate::store::Store;
 /// `holdout serve`.
 #[derive(Debug, Args)]
 pub struct ServeArgs {
+    /// Read options from this TOML file (keys are these flags' names without dashes, e.g.
+    /// `listen = "127.0.0.1:7361"`, `max-connections = 512`); unknown keys are refused.
+    /// Precedence: flags, then environment variables, then the file, then defaults.
+    #[arg(long, env = "HOLDOUT_CONFIG", value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Print the effective options and where each came from (flag, environment, file,
+    /// default), then exit without serving.
+    #[arg(long)]
+    pub print_config: bool,
     /// Database file (created and migrated if needed). It holds the labels in clear: keep its
     /// permissions tight (new files are created readable by their owner only).
     #[arg(long, env = "HOLDOUT_DB", default_value = "holdout.db")]
     pub db: PathBuf,
     /// Address to listen on. Loopback by default; use a non-loopback address only behind TLS or
     /// a trusted network. Port 0 picks a free port (printed on stdout).
-    #[arg(long, default_value = DEFAULT_LISTEN)]
+    #[arg(long, env = "HOLDOUT_LISTEN", default_value = DEFAULT_LISTEN)]
     pub listen: String,
     /// Log filter (tracing's env-filter syntax), e.g. `info` or `holdout_ledger=debug`.
     #[arg(long, env = "HOLDOUT_LOG", default_value = "info")]
@@ -35,7 +44,7 @@ pub struct ServeArgs {
     /// head; `@users-SEQ.checkpoint.json` for the identity chain alone), at start and every
     /// --checkpoint-every seconds, when a sealed round closes at its deadline, and once more at
     /// shutdown; ship them elsewhere and pass them to `holdout audit --checkpoint`.
-    #[arg(long, value_name = "DIR")]
+    #[arg(long, env = "HOLDOUT_CHECKPOINT_DIR", value_name = "DIR")]
     pub checkpoint_dir: Option<PathBuf>,
     /// TLS: the daemon's certificate chain (PEM). With --tls-key, every connection is TLS.
     #[arg(long, value_name = "FILE", requires = "tls_key")]
@@ -115,6 +124,18 @@ pub struct ServeArgs {
     /// near-duplicate of the team's previous one.
     #[arg(long, value_name = "FRACTION", default_value_t = 0.01)]
     pub probe_diff: f64,
+    /// Budget alert: when a holdout's spent budget (per team under `isolated`) reaches this
+    /// share of its delta, log it once (and run --alert-command).
+    #[arg(long, value_name = "SHARE")]
+    pub alert_share: Option<f64>,
+    /// Budget alert: when the next answer's half-width comes within this margin of the
+    /// tolerance, log it once (and run --alert-command).
+    #[arg(long, value_name = "MARGIN")]
+    pub alert_margin: Option<f64>,
+    /// A program run (no shell, detached) on each alert, with the arguments KIND HOLDOUT TEAM
+    /// SPENT DELTA NEXT_HALF_WIDTH TOLERANCE; KIND is budget-share or tolerance-margin.
+    #[arg(long, value_name = "PROGRAM")]
+    pub alert_command: Option<PathBuf>,
 }
 
 /// `holdout init`.
@@ -133,6 +154,34 @@ pub struct InitArgs {
 
 /// Runs the daemon until ctrl-c or SIGTERM.
 pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
+    let effective = crate::config::resolve_from_process(args)?;
+    if effective.args.print_config {
+        print!("{}", effective.render());
+        return Ok(ExitCode::SUCCESS);
+    }
+    let args = effective.args;
+    if let Some(share) = args.alert_share
+        && !(share > 0.0 && share <= 1.0)
+    {
+        return Err(Error::invalid("--alert-share", format!("{share} is not in (0, 1]")).into());
+    }
+    if let Some(margin) = args.alert_margin
+        && !(margin >= 0.0 && margin.is_finite())
+    {
+        return Err(Error::invalid("--alert-margin", format!("{margin} is not >= 0")).into());
+    }
+    if args.alert_command.is_some() && args.alert_share.is_none() && args.alert_margin.is_none() {
+        return Err(Error::invalid(
+            "--alert-command",
+            "give --alert-share or --alert-margin too (nothing would run it)",
+        )
+        .into());
+    }
+    let alerts = crate::alerts::AlertSettings {
+        share: args.alert_share,
+        margin: args.alert_margin,
+        command: args.alert_command.clone(),
+    };
     let filter = tracing_subscriber::EnvFilter::try_new(&args.log)
         .map_err(|e| Error::invalid("--log", e.to_string()))?;
     tracing_subscriber::fmt()
@@ -187,6 +236,7 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
         };
         check_writable(&mut store, &args.db)?;
         let mut engine = Engine::new(store, Arc::new(SystemClock));
+        engine.record_migration_backup()?;
         if !(args.probe_share_factor > 0.0 && args.probe_diff > 0.0 && args.probe_diff < 1.0) {
             anyhow::bail!(
                 "--probe-share-factor must be positive and --probe-diff lie in (0, 1); got {} \
@@ -270,7 +320,8 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             let stop = stopped(stop_rx.clone());
             tokio::spawn(crate::web::serve_web(web, db.clone(), stop, limits, web_tls))
         });
-        serve_on(listener, Daemon::new(db.clone()), stopped(stop_rx), limits, tls).await?;
+        let daemon = Daemon::new(db.clone()).with_alerts(crate::alerts::Alerts::new(alerts));
+        serve_on(listener, daemon, stopped(stop_rx), limits, tls).await?;
         if let Some(task) = web_task {
             match task.await {
                 Ok(Ok(())) => {}
@@ -423,6 +474,7 @@ pub fn init(args: InitArgs) -> anyhow::Result<ExitCode> {
     let store =
         Store::open(&args.db).with_context(|| format!("opening database {}", args.db.display()))?;
     let mut engine = Engine::new(store, std::sync::Arc::new(crate::engine::SystemClock));
+    engine.record_migration_backup()?;
     let users: i64 = engine
         .store()
         .conn()

@@ -11,6 +11,7 @@ pub mod client;
 pub mod demo;
 pub mod exit;
 pub mod local;
+pub mod ops;
 pub mod stats_cmds;
 
 /// Exit codes, documented in `--help` and the README.
@@ -55,6 +56,13 @@ pub enum Command {
     Serve(local::ServeArgs),
     /// Create a database and its first custodian-and-organizer user; writes the token to a file.
     Init(local::InitArgs),
+    /// Write a consistent, checked copy of the whole database: through the running daemon
+    /// (custodian; the file is written on the daemon's machine), or offline with --db. Each
+    /// holdout's chain records the backup. The copy holds the labels in clear.
+    Backup(ops::BackupArgs),
+    /// Restore a copy from `holdout backup` to a database file (daemon stopped): refused when
+    /// the copy fails its checks or the database holds entries the copy lacks.
+    Restore(ops::RestoreArgs),
     /// Print the interval that holds with probability at least 1 - DELTA for one score (offline).
     Bound(stats_cmds::BoundArgs),
     /// How many queries a policy affords, or how many rows K queries need (offline).
@@ -73,6 +81,8 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Demo(args) => demo::run(args),
         Command::Serve(args) => local::serve(args),
         Command::Init(args) => local::init(args),
+        Command::Backup(args) => ops::run_backup(args),
+        Command::Restore(args) => ops::run_restore(args),
         Command::Bound(args) => stats_cmds::run_bound(&args),
         Command::Plan(args) => stats_cmds::run_plan(&args),
         Command::Client(cmd) => client::run(cmd),

@@ -16,6 +16,7 @@ mod account;
 mod clock;
 mod compete;
 mod create;
+mod ops;
 mod probe;
 mod read;
 mod reader;
@@ -53,8 +54,11 @@ pub use visibility::{Scope, Visibility};
 pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 // The offline audit replays ledgers with the daemon's own bookkeeping.
 pub(crate) use account::Book;
+pub use ops::LOCAL_OPERATOR;
+pub use replay::{
+    BackupRecord, CloseRecord, ReadRecord, Record, WithdrawRecord, WithdrawRequestRecord,
+};
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
-pub use replay::{CloseRecord, ReadRecord, Record, WithdrawRecord, WithdrawRequestRecord};
 pub use withdraw::Withdrawal;
 
 use crate::error::{Error, Result};
@@ -391,7 +395,7 @@ impl Engine {
         self.touch(chain);
         let keeps_state = matches!(
             kind,
-            Kind::Read | Kind::Close | Kind::WithdrawRequest | Kind::Withdraw
+            Kind::Read | Kind::Close | Kind::WithdrawRequest | Kind::Withdraw | Kind::Backup
         ) || kind.is_identity();
         match book {
             Some(book) => {

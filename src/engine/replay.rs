@@ -90,6 +90,24 @@ impl WithdrawRecord {
     }
 }
 
+/// The body of a `backup` entry: a copy of the whole database (labels, salts and exact scores
+/// included) was taken. Written in every holdout's chain just before the copy, so the copy
+/// holds it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BackupRecord {
+    /// Who took it (a user name online; `(local file access)` offline or automatically).
+    pub by: String,
+    /// Their roles then (empty offline).
+    #[serde(default)]
+    pub roles: String,
+    /// How: `online`, `offline`, or `before migration from schema N to M`.
+    pub how: String,
+    /// The file written (a path on the daemon's machine).
+    pub file: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
 /// A ledger entry's body, parsed once by its kind.
 #[derive(Debug, Clone)]
 pub enum Record {
@@ -113,6 +131,8 @@ pub enum Record {
     WithdrawRequest(WithdrawRequestRecord),
     /// A completed withdrawal.
     Withdraw(Box<WithdrawRecord>),
+    /// A copy of the database was taken.
+    Backup(Box<BackupRecord>),
     /// An identity event (these belong to the `@users` chain, never to a holdout's).
     Identity(Kind, Box<Value>),
 }
@@ -148,6 +168,7 @@ impl Record {
                 Record::WithdrawRequest(body(e, "a withdrawal request record")?)
             }
             Kind::Withdraw => Record::Withdraw(Box::new(body(e, "a withdrawal record")?)),
+            Kind::Backup => Record::Backup(Box::new(body(e, "a backup record")?)),
             k if k.is_identity() => Record::Identity(k, Box::new(body(e, "an identity event")?)),
             k => return Err(format!("entry kind {k} has no record parser")),
         })
@@ -172,6 +193,7 @@ impl Record {
             Record::Read(_) => Kind::Read,
             Record::WithdrawRequest(_) => Kind::WithdrawRequest,
             Record::Withdraw(_) => Kind::Withdraw,
+            Record::Backup(_) => Kind::Backup,
             Record::Identity(k, _) => *k,
         }
     }
@@ -400,12 +422,12 @@ impl<'p> Replayer<'p> {
             self.released_at = Some((e.seq, rec.kind()));
         }
         if let Some(w) = self.withdrawn_at
-            && !matches!(rec, Record::Read(_))
+            && !matches!(rec, Record::Read(_) | Record::Backup(_))
         {
             cmp.push(
                 "kind",
                 format!(
-                    "a {} entry after the holdout was withdrawn at entry {w} (only reads may \
+                    "a {} entry after the holdout was withdrawn at entry {w} (only reads and backups may \
                      follow a withdrawal)",
                     rec.kind()
                 ),
@@ -469,6 +491,7 @@ impl<'p> Replayer<'p> {
                 self.closed_at = Some(e.seq);
             }
             Record::Read(r) => cmp.time(&r.at),
+            Record::Backup(b) => cmp.time(&b.at),
             Record::WithdrawRequest(r) => self.withdraw_request(e.seq, r, &mut cmp),
             Record::Withdraw(w) => self.withdraw(e.seq, w, &mut cmp),
             Record::Identity(k, _) => cmp.push(

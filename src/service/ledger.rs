@@ -10,7 +10,8 @@ use crate::audit::anchor;
 use crate::auth::{Role, rfc3339};
 use crate::ledger::{self, Entry};
 use crate::proto::v1::{
-    CheckpointRequest, ExportRequest, LedgerEntry, SignedCheckpoint, ledger_server::Ledger,
+    BackupReply, BackupRequest, CheckpointRequest, ExportRequest, LedgerEntry, SignedCheckpoint,
+    ledger_server::Ledger,
 };
 
 fn to_proto(e: Entry) -> LedgerEntry {
@@ -112,6 +113,64 @@ impl Ledger for Daemon {
             format: cp.format,
             users_seq: cp.users_seq.unwrap_or_default(),
             users_head_hash: cp.users_head_hash.unwrap_or_default(),
+        }))
+    }
+
+    async fn backup(
+        &self,
+        request: Request<BackupRequest>,
+    ) -> Result<Response<BackupReply>, Status> {
+        let caller = self.caller(&request).await?;
+        caller.require("backing up the database", &[Role::Custodian])?;
+        let out = std::path::PathBuf::from(request.into_inner().out);
+        if !out.is_absolute() {
+            return Err(crate::error::Error::invalid(
+                "out",
+                "give an absolute path on the daemon's machine",
+            )
+            .into());
+        }
+        if out.exists() {
+            return Err(crate::error::Error::AlreadyExists(format!(
+                "{} exists on the daemon's machine; a backup never overwrites a file",
+                out.display()
+            ))
+            .into());
+        }
+        let file = out.display().to_string();
+        let (at, reader) = self
+            .db
+            .call(move |engine| {
+                let reader = engine.store().reader().ok_or_else(|| {
+                    crate::error::Error::FailedPrecondition(
+                        "the daemon runs on an in-memory database; nothing to back up".into(),
+                    )
+                })?;
+                let (_, at) = engine.record_backup(
+                    &caller.name,
+                    &crate::auth::role_list(&caller.roles),
+                    "online",
+                    &file,
+                )?;
+                Ok((at, reader))
+            })
+            .await?;
+        // Copied on a blocking thread from a read connection: one read transaction (a
+        // consistent snapshot holding every commit so far, the backup entries included) while
+        // the engine goes on writing.
+        let path = out.clone();
+        let verified =
+            tokio::task::spawn_blocking(move || crate::store::backup::copy_to(&reader, &path))
+                .await
+                .map_err(|e| Status::internal(format!("backup task: {e}")))??;
+        tracing::info!(file = %out.display(), bytes = verified.bytes, "backup written");
+        Ok(Response::new(BackupReply {
+            path: out.display().to_string(),
+            bytes: verified.bytes,
+            schema_version: verified.schema_version,
+            holdouts: verified.holdouts() as u64,
+            entries: verified.entries,
+            at,
         }))
     }
 }

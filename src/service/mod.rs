@@ -130,6 +130,7 @@ pub struct Daemon {
     db: Db,
     limits: StreamLimits,
     facts: Arc<Mutex<HashMap<String, SubmitFacts>>>,
+    alerts: Arc<crate::alerts::Alerts>,
 }
 
 impl Daemon {
@@ -139,7 +140,14 @@ impl Daemon {
             db,
             limits: StreamLimits::default(),
             facts: Arc::default(),
+            alerts: Arc::default(),
         }
+    }
+
+    /// The same services with budget alerts ([`crate::alerts`]).
+    pub fn with_alerts(mut self, alerts: crate::alerts::Alerts) -> Daemon {
+        self.alerts = Arc::new(alerts);
+        self
     }
 
     /// The same services with other stream limits.

@@ -240,13 +240,20 @@ impl Submissions for Daemon {
         let holdout = req.holdout.clone();
         // Group commit: queued submissions share one transaction; the reply leaves after it
         // committed (src/engine/worker.rs).
-        let (outcome, guarantee, closes_at) = self
+        let alert_holdout = holdout.clone();
+        let (outcome, guarantee, closes_at, tolerance, isolated) = self
             .db
             .call_batched(move |engine| {
                 let out = engine.submit(&caller, req)?;
                 let policy = &engine.loaded(&holdout)?.policy;
                 let closes_at = policy.closes_at.map(crate::auth::rfc3339);
-                Ok((out, policy.guarantee(), closes_at.unwrap_or_default()))
+                Ok((
+                    out,
+                    policy.guarantee(),
+                    closes_at.unwrap_or_default(),
+                    policy.input.tolerance,
+                    policy.isolated(),
+                ))
             })
             .await?;
         let outcome = match outcome {
@@ -254,7 +261,15 @@ impl Submissions for Daemon {
                 record,
                 receipt,
                 replayed,
-            } => Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee)),
+            } => {
+                // Alerts read the budget released with this answer, nothing else.
+                if !replayed {
+                    let team = if isolated { record.team.as_str() } else { "" };
+                    self.alerts
+                        .observe(&alert_holdout, team, &record.budget, tolerance);
+                }
+                Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee))
+            }
             SubmitOutcome::Refusal { record, receipt } => {
                 Outcome::Refusal(convert::refusal(&record, receipt.as_ref()))
             }
@@ -293,14 +308,32 @@ impl Submissions for Daemon {
     ) -> Result<Response<StatusResponse>, Status> {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
-        let (view, flags) = self
+        let who = caller.clone();
+        let (view, flags, isolated) = self
             .db
             .call(move |engine| {
                 let view = engine.holdout_view(&caller, &name)?;
                 let flags = engine.probe_flags(&caller, &name)?;
-                Ok((view, flags))
+                let isolated = engine.loaded(&name)?.policy.isolated();
+                Ok((view, flags, isolated))
             })
             .await?;
+        // Every team's alerts for the roles that see every team's figures; an analyst under
+        // `isolated` sees its own team's only.
+        let all = who.has(crate::auth::Role::Organizer)
+            || who.has(crate::auth::Role::Custodian)
+            || who.has(crate::auth::Role::Auditor);
+        let alerts: Vec<pb::BudgetAlert> = self
+            .alerts
+            .fired_for(&view.name)
+            .into_iter()
+            .filter(|a| all || !isolated || a.team == who.team)
+            .map(|a| pb::BudgetAlert {
+                kind: a.kind.to_string(),
+                team: a.team.clone(),
+                detail: a.detail(),
+            })
+            .collect();
         Ok(Response::new(StatusResponse {
             holdout: view.name.clone(),
             budget: Some(convert::budget(&view.budget)),
@@ -314,6 +347,7 @@ impl Submissions for Daemon {
                     detail: f.detail,
                 })
                 .collect(),
+            alerts,
         }))
     }
 

@@ -2,14 +2,15 @@
 //!
 //! The database holds the labels in clear, so a new file is created readable by its owner only.
 
+pub mod backup;
 mod migrate;
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use rusqlite::Connection;
 
-use crate::error::Result;
+use crate::error::{Error, Result};
 
 pub use migrate::{MIGRATIONS, current_version, latest_version, migrate};
 
@@ -17,21 +18,65 @@ pub use migrate::{MIGRATIONS, current_version, latest_version, migrate};
 #[derive(Debug)]
 pub struct Store {
     conn: Connection,
+    migration_backup: Option<MigrationBackup>,
+}
+
+/// The copy [`Store::open`] made before migrating an existing database to a newer schema.
+#[derive(Debug, Clone, PartialEq)]
+pub struct MigrationBackup {
+    /// The copy (beside the database).
+    pub path: PathBuf,
+    /// Schema version before.
+    pub from: u32,
+    /// Schema version after.
+    pub to: u32,
+    /// When the copy was made, RFC 3339 UTC.
+    pub at: String,
 }
 
 impl Store {
-    /// Opens (creating if needed) and migrates the database at `path`.
+    /// Opens (creating if needed) and migrates the database at `path`. An existing database
+    /// of an older schema is first copied beside itself
+    /// ([`backup::migration_backup_name`]) and the copy checked; the migration runs only once
+    /// the copy has passed ([`Store::migration_backup`] names it).
     ///
     /// # Failure
-    /// Fails when the file cannot be opened, a migration fails, or the file was written by a
-    /// newer binary.
+    /// Fails when the file cannot be opened, the copy before a migration fails, a migration
+    /// fails, or the file was written by a newer binary.
     pub fn open(path: &Path) -> Result<Store> {
         let existed = path.exists();
         let conn = Connection::open(path)?;
         if !existed {
             restrict_permissions(path)?;
         }
-        Store::setup(conn)
+        let mut migration_backup = None;
+        if existed {
+            let from = current_version(&conn)?;
+            let to = latest_version();
+            if from > 0 && from < to {
+                let at = crate::auth::rfc3339(chrono::Utc::now());
+                let copy = backup::migration_backup_name(path, from, to, &at);
+                backup::copy_to(&conn, &copy).map_err(|e| Error::Migration {
+                    name: format!("backup before migrating schema {from} to {to}"),
+                    detail: e.to_string(),
+                })?;
+                tracing::info!(copy = %copy.display(), from, to, "backed up before migrating");
+                migration_backup = Some(MigrationBackup {
+                    path: copy,
+                    from,
+                    to,
+                    at,
+                });
+            }
+        }
+        let mut store = Store::setup(conn)?;
+        store.migration_backup = migration_backup;
+        Ok(store)
+    }
+
+    /// The copy made before this open migrated the database, if it did.
+    pub fn migration_backup(&self) -> Option<&MigrationBackup> {
+        self.migration_backup.as_ref()
     }
 
     /// An in-memory database, for tests.
@@ -47,7 +92,10 @@ impl Store {
         conn.pragma_update(None, "foreign_keys", "ON")?;
         conn.busy_timeout(Duration::from_secs(10))?;
         migrate(&mut conn)?;
-        Ok(Store { conn })
+        Ok(Store {
+            conn,
+            migration_backup: None,
+        })
     }
 
     /// A second, read-only connection to the same file, for reads that must not wait behind

@@ -216,6 +216,11 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
                 "kind": f.kind,
                 "detail": f.detail,
             })).collect::<Vec<_>>(),
+            "alerts": s.alerts.iter().map(|a| json!({
+                "team": a.team,
+                "kind": a.kind,
+                "detail": a.detail,
+            })).collect::<Vec<_>>(),
         }));
     } else {
         println!("holdout    {}", s.holdout);
@@ -230,6 +235,14 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
                 f.kind,
                 f.detail
             );
+        }
+        for a in &s.alerts {
+            let team = if a.team.is_empty() {
+                String::new()
+            } else {
+                format!(" team {}", show::safe_text(&a.team, 100))
+            };
+            println!("alert      {}{team}: {}", a.kind, a.detail);
         }
         if !s.guarantee.is_empty() {
             println!("\n{}", s.guarantee);
