@@ -69,6 +69,49 @@ fn a_best_of_answer_names_the_file_and_charges_the_batch_code_once() {
 }
 
 #[test]
+fn best_per_team_under_rounded_answers_shows_each_team_s_lowest_upper_limit() {
+    let d = Daemon::start();
+    create(&d, "rb", "rounded:0.01", &[]);
+    let red = d.add_user("rae", &["analyst"], Some("red"));
+    let blue = d.add_user("bo", &["analyst"], Some("blue"));
+    for (token, file) in [
+        (&red, preds(&d, "r1.csv", 4, 0)),   // 0.25
+        (&blue, preds(&d, "b1.csv", 10, 0)), // 0.10
+        (&red, preds(&d, "r2.csv", 5, 0)),   // 0.20: red's best
+        (&blue, preds(&d, "b2.csv", 3, 1)),  // about 0.33: not blue's best
+    ] {
+        d.run(token, &["submit", "rb", "--predictions", &file]).ok();
+    }
+    let board = d.run(&blue, &["leaderboard", "rb", "--json"]).ok().json();
+    assert_eq!(board["kind"], "best-per-team", "{board}");
+    let rows = board["rows"].as_array().unwrap();
+    let got: Vec<(&str, u64, f64)> = rows
+        .iter()
+        .map(|r| {
+            (
+                r["team"].as_str().unwrap(),
+                r["query"].as_u64().unwrap(),
+                r["best"].as_f64().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(got, [("blue", 2, 0.1), ("red", 3, 0.2)], "{board}");
+    for r in rows {
+        let (lo, hi, best) = (
+            r["lower"].as_f64().unwrap(),
+            r["upper"].as_f64().unwrap(),
+            r["best"].as_f64().unwrap(),
+        );
+        assert!(lo <= best && best <= hi, "{r}");
+        assert_eq!(r["submissions"], 2, "{r}");
+    }
+    let text = d.run(&red, &["leaderboard", "rb"]).ok().stdout;
+    assert!(text.contains("best per team on rb"), "{text}");
+    assert!(text.contains("query 3"), "{text}");
+    assert!(text.contains("lowest upper limit"), "{text}");
+}
+
+#[test]
 fn threshold_gates_state_what_a_pass_certifies_and_that_a_fail_certifies_nothing() {
     let d = Daemon::start();
     create(&d, "gate", "threshold:0.2", &[]);

@@ -143,7 +143,11 @@ fn analyst_views(f: &mut Fixture, team: &str) -> Vec<String> {
             other => panic!("before the close only sealed entries exist: {other:?}"),
         })
         .collect();
-    let board = f.engine.leaderboard(&me, "final").unwrap_err().to_string();
+    // Best per team: a sealed round releases no answer before its close, so no row.
+    let board = f.engine.leaderboard(&me, "final").unwrap();
+    assert!(board.rows.is_empty(), "{board:?}");
+    assert_eq!(board.kind, "best-per-team");
+    let board = format!("{board:?}");
     let ranking = f.engine.ranking(&me, "final").unwrap_err();
     assert!(matches!(ranking, Error::FailedPrecondition(_)), "{ranking}");
     assert!(f.engine.history(&me, "final", true).is_err());
@@ -418,6 +422,77 @@ fn the_ladder_leaderboard_ranks_teams_and_respects_isolation() {
             assert!(mine.own_team_only);
             assert_eq!(mine.rows.len(), 1);
             assert_eq!(mine.rows[0].team, "t3");
+        } else {
+            assert_eq!(mine.rows, board.rows);
+        }
+    }
+}
+
+#[test]
+fn best_per_team_covers_every_other_rule_and_respects_isolation() {
+    let n = 2000;
+    for (answers, isolated) in [
+        ("rounded:0.01", false),
+        ("rounded:0.01", true),
+        ("best-of:0.01", false),
+    ] {
+        let mut f = fixture();
+        let p = PolicyInput {
+            answers: answers.into(),
+            tolerance: 0.2,
+            sharing: if isolated { "isolated" } else { "shared" }.into(),
+            shares: if isolated { "roster:t1,t2,t3" } else { "none" }.into(),
+            ..PolicyInput::default()
+        };
+        create(&mut f, "h", n, p).unwrap();
+        // t1: 0.30 then 0.20 then 0.21; t2: 0.15; t3: 0.25 twice.
+        for (team, wrong) in [
+            ("t1", 600),
+            ("t2", 300),
+            ("t1", 400),
+            ("t3", 500),
+            ("t3", 500),
+            ("t1", 420),
+        ] {
+            f.engine
+                .submit(&analyst(team), entry("h", wrong_on(n, 0, wrong), false))
+                .unwrap();
+        }
+        let board = f.engine.leaderboard(&organizer(), "h").unwrap();
+        assert_eq!(board.kind, "best-per-team", "{answers}");
+        // Each row is the team's answer with the lowest upper limit, read from the history.
+        let history = f.engine.history(&organizer(), "h", false).unwrap();
+        for r in &board.rows {
+            let mine: Vec<_> = history
+                .iter()
+                .filter_map(|h| match h {
+                    HistoryItem::Answer(a, _) if a.team == r.team => Some(a),
+                    _ => None,
+                })
+                .collect();
+            let lowest = mine.iter().map(|a| a.upper).fold(f64::INFINITY, f64::min);
+            assert_eq!(r.upper, lowest, "{answers} {r:?}");
+            assert_eq!(r.submissions, mine.len() as u64);
+            let shown = mine.iter().find(|a| a.query == r.query).unwrap();
+            assert_eq!((shown.lower, shown.upper), (r.lower, r.upper));
+        }
+        let order: Vec<(u64, &str)> = board
+            .rows
+            .iter()
+            .map(|r| (r.rank, r.team.as_str()))
+            .collect();
+        assert_eq!(order, [(1, "t2"), (2, "t1"), (3, "t3")], "{answers}");
+        // The true errors 0.15, 0.20 and 0.25 lie in the rows' intervals.
+        for (r, truth) in board.rows.iter().zip([0.15, 0.2, 0.25]) {
+            assert!(r.lower <= truth && truth <= r.upper, "{answers} {r:?}");
+        }
+        let mine = f.engine.leaderboard(&analyst("t3"), "h").unwrap();
+        if isolated {
+            assert!(mine.own_team_only);
+            assert_eq!(mine.rows.len(), 1);
+            assert_eq!(mine.rows[0].team, "t3");
+            // Team-local numbering: t3's answers are its queries 1 and 2.
+            assert!(mine.rows[0].query <= 2, "{:?}", mine.rows[0]);
         } else {
             assert_eq!(mine.rows, board.rows);
         }

@@ -163,11 +163,14 @@ pub(crate) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
                 submissions: r.submissions,
                 improvements: r.improvements,
                 best_at: r.best_at.clone().unwrap_or_default(),
+                target: r.target.clone(),
+                query: r.query,
             })
             .collect(),
         statement: l.statement.clone(),
         guarantee: l.guarantee.clone(),
         own_team_only: l.own_team_only,
+        kind: l.kind.clone(),
     }
 }
 
