@@ -221,6 +221,29 @@ fn a_sealed_round_through_the_cli() {
     // Before the close: no scores anywhere an analyst looks.
     let status = d.run(&blue, &["status", "final", "--json"]).ok().json();
     assert_eq!(status["budget"]["open"], true);
+    // Entries per team and each team's selected entry; no score.
+    let teams = status["round"]["teams"].as_array().unwrap();
+    let got: Vec<(&str, u64, bool)> = teams
+        .iter()
+        .map(|t| {
+            (
+                t["team"].as_str().unwrap(),
+                t["entries"].as_u64().unwrap(),
+                t["marked"].as_bool().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        got,
+        [("blue", 1, false), ("green", 1, false), ("red", 1, true)],
+        "{status}"
+    );
+    let text = d.run(&blue, &["status", "final"]).ok().stdout;
+    assert!(
+        text.contains("round      open, 3 entries from 3 teams; scores are sealed until the close"),
+        "{text}"
+    );
+    assert!(text.contains("query 1 (marked)"), "{text}");
     let history = d
         .run(&blue, &["history", "final", "--json"])
         .ok()

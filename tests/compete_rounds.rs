@@ -148,6 +148,7 @@ fn analyst_views(f: &mut Fixture, team: &str) -> Vec<String> {
     assert!(board.rows.is_empty(), "{board:?}");
     assert_eq!(board.kind, "best-per-team");
     let board = format!("{board:?}");
+    let round = format!("{:?}", f.engine.round_status(&me, "final").unwrap());
     let ranking = f.engine.ranking(&me, "final").unwrap_err();
     assert!(matches!(ranking, Error::FailedPrecondition(_)), "{ranking}");
     assert!(f.engine.history(&me, "final", true).is_err());
@@ -156,6 +157,7 @@ fn analyst_views(f: &mut Fixture, team: &str) -> Vec<String> {
         format!("open {}", view.open),
         history.join("; "),
         board,
+        round,
         ranking.to_string(),
     ]
 }
@@ -425,6 +427,96 @@ fn the_ladder_leaderboard_ranks_teams_and_respects_isolation() {
         } else {
             assert_eq!(mine.rows, board.rows);
         }
+    }
+}
+
+#[test]
+fn sealed_round_status_counts_entries_per_team_and_names_who_has_not_entered() {
+    let n = 2000;
+    for isolated in [false, true] {
+        let mut f = fixture();
+        let p = PolicyInput {
+            sharing: if isolated { "isolated" } else { "shared" }.into(),
+            shares: "roster:t1,t2,t3,t4".into(),
+            ..sealed_policy("2026-03-04T12:00:00Z")
+        };
+        create(&mut f, "final", n, p).unwrap();
+        // t1 marks its first entry and sends a later one; t2 marks its second; t3 marks none.
+        for (team, wrong, mark) in [
+            ("t1", 100, true),
+            ("t2", 200, false),
+            ("t1", 300, false),
+            ("t2", 250, true),
+            ("t3", 400, false),
+            ("t3", 410, false),
+            ("t2", 260, false),
+        ] {
+            f.engine
+                .submit(&analyst(team), entry("final", wrong_on(n, 0, wrong), mark))
+                .unwrap();
+        }
+        let all = f
+            .engine
+            .round_status(&organizer(), "final")
+            .unwrap()
+            .unwrap();
+        assert!(!all.closed && !all.own_team_only);
+        let got: Vec<(&str, u64, bool)> = all
+            .teams
+            .iter()
+            .map(|t| (t.team.as_str(), t.entries, t.marked))
+            .collect();
+        assert_eq!(got, [("t1", 2, true), ("t2", 3, true), ("t3", 2, false)]);
+        assert_eq!(all.not_submitted, ["t4"]);
+        // The selected entry is the one the close ranks: compare with the ranking's digests.
+        let history = f.engine.history(&organizer(), "final", false).unwrap();
+        let digest_of = |team: &str, query: u64| {
+            history
+                .iter()
+                .find_map(|h| match h {
+                    HistoryItem::Sealed(r, _) if r.team == team && r.query == query => {
+                        Some(r.digest.clone())
+                    }
+                    _ => None,
+                })
+                .unwrap()
+        };
+        let selected: Vec<(String, String)> = all
+            .teams
+            .iter()
+            .map(|t| (t.team.clone(), digest_of(&t.team, t.selected)))
+            .collect();
+        // An analyst under `isolated` sees its own team only and not who else is missing.
+        let mine = f
+            .engine
+            .round_status(&analyst("t3"), "final")
+            .unwrap()
+            .unwrap();
+        if isolated {
+            assert!(mine.own_team_only);
+            assert_eq!(mine.teams.len(), 1);
+            assert_eq!(mine.teams[0].team, "t3");
+            assert!(mine.not_submitted.is_empty());
+        } else {
+            assert_eq!(mine, all);
+        }
+        f.clock
+            .set(Utc.with_ymd_and_hms(2026, 3, 4, 12, 0, 0).unwrap());
+        let ranking = f.engine.ranking(&organizer(), "final").unwrap();
+        let mut ranked: Vec<(String, String)> = ranking
+            .entries
+            .iter()
+            .map(|e| (e.team.clone(), e.digest.clone()))
+            .collect();
+        ranked.sort();
+        assert_eq!(ranked, selected, "isolated {isolated}");
+        assert!(
+            f.engine
+                .round_status(&organizer(), "final")
+                .unwrap()
+                .unwrap()
+                .closed
+        );
     }
 }
 

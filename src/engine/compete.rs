@@ -190,6 +190,36 @@ pub struct Leaderboard {
     pub kind: String,
 }
 
+/// One team's entries on one target of a sealed round, as status shows them. Nothing about
+/// a score: only counts, and which entry the round will rank for the team.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RoundTeam {
+    /// Team.
+    pub team: String,
+    /// Target.
+    pub target: String,
+    /// Entries the team made on the target.
+    pub entries: u64,
+    /// Query number of the team's selected entry (the one the close ranks): its latest marked
+    /// entry, else its latest entry. Numbered as in its reply, receipt and history.
+    pub selected: u64,
+    /// Whether the team marked that entry itself (else it is selected as the latest).
+    pub marked: bool,
+}
+
+/// A sealed round's entries per team, for status.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RoundStatus {
+    /// Teams with entries, by target then team.
+    pub teams: Vec<RoundTeam>,
+    /// Declared (roster) teams with no entry yet; empty when the caller sees only its own team.
+    pub not_submitted: Vec<String>,
+    /// Whether the round has closed.
+    pub closed: bool,
+    /// Whether other teams were withheld from this caller (`isolated`).
+    pub own_team_only: bool,
+}
+
 /// The final ranking of a closed round.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Ranking {
@@ -977,6 +1007,65 @@ impl Engine {
             own_team_only: scope != super::Scope::Every,
             kind: "best-per-team".into(),
         })
+    }
+
+    /// A sealed round's entries per team, each team's selected entry and the declared teams
+    /// that have not entered; `None` for other holdouts and for callers who may see no team's
+    /// activity. Follows the history's visibility: under `isolated` an analyst sees its own team
+    /// only (and not who else has entered).
+    pub fn round_status(&mut self, caller: &Caller, name: &str) -> Result<Option<RoundStatus>> {
+        let loaded = self.loaded(name)?;
+        if !loaded.policy.sealed() {
+            return Ok(None);
+        }
+        let scope = super::Visibility::of(&loaded.policy, caller).history;
+        if scope == super::Scope::Nothing {
+            return Ok(None);
+        }
+        self.settle(&loaded)?;
+        let closed = self.closed_at(loaded.id)?.is_some();
+        let entries = ledger::read_chain(self.store.conn(), name)?;
+        let mut teams: BTreeMap<(usize, String), RoundTeam> = BTreeMap::new();
+        let mut entered: BTreeSet<String> = BTreeSet::new();
+        for e in &entries {
+            let Record::Sealed(r) = Record::read(e)? else {
+                continue;
+            };
+            entered.insert(r.team.clone());
+            if !scope.covers(&r.team) {
+                continue;
+            }
+            let t = teams
+                .entry((r.target_index, r.team.clone()))
+                .or_insert_with(|| RoundTeam {
+                    team: r.team.clone(),
+                    target: r.target.clone(),
+                    entries: 0,
+                    selected: r.query,
+                    marked: r.marked,
+                });
+            t.entries += 1;
+            // The same choice as the close's (`rank`): a later entry replaces the selected one
+            // unless that one was marked and the later one is not.
+            if r.marked || !t.marked {
+                (t.selected, t.marked) = (r.query, r.marked);
+            }
+        }
+        let every = scope == super::Scope::Every;
+        let not_submitted = match (&loaded.policy.core.shares, every) {
+            (crate::stats::schedule::Shares::Roster { analysts, .. }, true) => analysts
+                .iter()
+                .filter(|t| !entered.contains(*t))
+                .cloned()
+                .collect(),
+            _ => Vec::new(),
+        };
+        Ok(Some(RoundStatus {
+            teams: teams.into_values().collect(),
+            not_submitted,
+            closed,
+            own_team_only: !every,
+        }))
     }
 
     /// Identical prediction digests submitted by different teams (organizers and auditors).

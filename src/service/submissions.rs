@@ -293,12 +293,13 @@ impl Submissions for Daemon {
     ) -> Result<Response<StatusResponse>, Status> {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
-        let (view, flags) = self
+        let (view, flags, round) = self
             .db
             .call(move |engine| {
                 let view = engine.holdout_view(&caller, &name)?;
                 let flags = engine.probe_flags(&caller, &name)?;
-                Ok((view, flags))
+                let round = engine.round_status(&caller, &name)?;
+                Ok((view, flags, round))
             })
             .await?;
         Ok(Response::new(StatusResponse {
@@ -314,6 +315,22 @@ impl Submissions for Daemon {
                     detail: f.detail,
                 })
                 .collect(),
+            round: round.map(|r| pb::SealedRoundStatus {
+                teams: r
+                    .teams
+                    .into_iter()
+                    .map(|t| pb::RoundTeam {
+                        team: t.team,
+                        target: t.target,
+                        entries: t.entries,
+                        selected: t.selected,
+                        marked: t.marked,
+                    })
+                    .collect(),
+                not_submitted: r.not_submitted,
+                closed: r.closed,
+                own_team_only: r.own_team_only,
+            }),
         }))
     }
 
