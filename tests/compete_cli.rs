@@ -105,6 +105,18 @@ fn best_per_team_under_rounded_answers_shows_each_team_s_lowest_upper_limit() {
         assert!(lo <= best && best <= hi, "{r}");
         assert_eq!(r["submissions"], 2, "{r}");
     }
+    // A file written like the labels file is refused with the way out.
+    let like_labels = d.write("as-labels.csv", &Parts::new(N).labels_csv());
+    let refused = d
+        .run(&red, &["submit", "rb", "--predictions", &like_labels])
+        .code(2);
+    assert!(
+        refused
+            .stderr
+            .contains("looks like the labels file's; predictions are read from a column named `prediction`: rename `defect` to `prediction`, or pass --prediction-column defect"),
+        "{}",
+        refused.stderr
+    );
     let text = d.run(&red, &["leaderboard", "rb"]).ok().stdout;
     assert!(text.contains("best per team on rb"), "{text}");
     assert!(text.contains("query 3"), "{text}");
