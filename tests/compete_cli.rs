@@ -225,8 +225,13 @@ fn a_sealed_round_through_the_cli() {
             .unwrap()
             .contains("deadline 2099-01-01")
     );
-    d.run(&blue, &["submit", "final", "--predictions", &b1])
-        .ok();
+    let reply = d
+        .run(&blue, &["submit", "final", "--predictions", &b1])
+        .ok()
+        .stdout;
+    // The reply numbers the entry as its receipt and history do.
+    assert!(reply.starts_with("sealed entry, query 2 "), "{reply}");
+    assert!(reply.contains("query 2"), "{reply}");
     // Green sends blue's file: an identical prediction vector from another team.
     d.run(&green, &["submit", "final", "--predictions", &b1])
         .ok();

@@ -252,7 +252,9 @@ pub fn sealed_json(e: &SealedEntry) -> Value {
 
 /// A sealed entry's receipt for people.
 pub fn sealed_text(e: &SealedEntry) -> String {
-    let mut s = format!("sealed entry {} (target {})", e.ticket, e.target);
+    // One number for a query everywhere: the reply, its receipt and the history all say
+    // "query N" (per team under `isolated`); the position in the round stays in --json.
+    let mut s = format!("sealed entry, query {} (target {})", e.query, e.target);
     if e.replayed {
         s.push_str(", already entered: nothing charged");
     }
