@@ -124,6 +124,49 @@ fn best_per_team_under_rounded_answers_shows_each_team_s_lowest_upper_limit() {
 }
 
 #[test]
+fn under_a_roster_the_budget_names_whose_share_it_is() {
+    let d = Daemon::start();
+    let parts = Parts::new(N);
+    let labels = d.write("roster-labels.csv", &parts.labels_csv());
+    let created = d
+        .admin(&[
+            "create",
+            "ro",
+            "--labels",
+            &labels,
+            "--metric",
+            "error",
+            "--classes",
+            "crack,dent,ok",
+            "--label-column",
+            "defect",
+            "--answers",
+            "rounded:0.01",
+            "--tolerance",
+            "0.3",
+            "--shares",
+            "roster:red,blue",
+        ])
+        .ok()
+        .stdout;
+    // The creator is in no team: no pool of nobody ("spent 0 of delta 0 ... half-width 1").
+    assert!(
+        created.contains("delta      0.05 for the whole holdout"),
+        "{created}"
+    );
+    assert!(created.contains("your team has no share"), "{created}");
+    assert!(!created.contains("of delta 0,"), "{created}");
+    assert!(!created.contains("half-width 1 "), "{created}");
+    let red = d.add_user("rae", &["analyst"], Some("red"));
+    let status = d.run(&red, &["status", "ro"]).ok().stdout;
+    assert!(status.contains("below: team red's share"), "{status}");
+    assert!(status.contains("spent 0 of its share 0.025"), "{status}");
+    let json = d.run(&red, &["status", "ro", "--json"]).ok().json();
+    assert_eq!(json["budget_of"], "red", "{json}");
+    assert_eq!(json["no_share"], false, "{json}");
+}
+
+#[test]
 fn threshold_gates_state_what_a_pass_certifies_and_that_a_fail_certifies_nothing() {
     let d = Daemon::start();
     create(&d, "gate", "threshold:0.2", &[]);

@@ -64,6 +64,8 @@ pub(crate) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
         guarantee: v.guarantee.clone(),
         withdrawn_at: v.withdrawn_at.clone().unwrap_or_default(),
         withdrawal_pending: v.withdrawal_pending.clone(),
+        budget_of: v.budget_of.clone(),
+        no_share: v.no_share,
     }
 }
 

@@ -315,6 +315,8 @@ impl Submissions for Daemon {
                     detail: f.detail,
                 })
                 .collect(),
+            budget_of: view.budget_of.clone(),
+            no_share: view.no_share,
             round: round.map(|r| pb::SealedRoundStatus {
                 teams: r
                     .teams

@@ -209,6 +209,8 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         show::print_json(&json!({
             "holdout": s.holdout,
             "budget": show::budget_json(&budget),
+            "budget_of": s.budget_of,
+            "no_share": s.no_share,
             "policy": s.policy.as_ref().map_or(serde_json::Value::Null, show::policy_json),
             "guarantee": s.guarantee,
             "flags": s.flags.iter().map(|f| json!({
@@ -231,7 +233,11 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         if let Some(p) = &s.policy {
             println!("policy     {}", show::policy_text(p));
         }
-        println!("{}", show::budget_text(&budget));
+        let delta = s.policy.as_ref().map_or(budget.delta, |p| p.delta);
+        println!(
+            "{}",
+            show::budget_of_text(&budget, &s.budget_of, s.no_share, delta)
+        );
         if let Some(r) = &s.round {
             println!("{}", round_text(r));
         }

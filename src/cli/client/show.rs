@@ -182,6 +182,32 @@ pub fn budget_text(b: &Budget) -> String {
     s
 }
 
+/// The budget for people when delta may be split into per-team shares: the holdout's delta on
+/// its own line, then the caller's team's share (`budget_of`); with no share of its own
+/// (`no_share`, an organizer outside the roster) no pool's figures at all, since a pool of
+/// nobody ("spent 0 of delta 0 ... half-width 1") describes nothing. With one pool (both
+/// empty) it is [`budget_text`].
+pub fn budget_of_text(b: &Budget, budget_of: &str, no_share: bool, holdout_delta: f64) -> String {
+    if no_share {
+        return format!(
+            "delta      {} for the whole holdout, split into per-team shares\n\
+             budget     your team has no share of it; each team's status shows its own\n\
+             queries    {}",
+            num(holdout_delta),
+            if b.open { "open" } else { "closed" }
+        );
+    }
+    if budget_of.is_empty() {
+        return budget_text(b);
+    }
+    format!(
+        "delta      {} for the whole holdout, split into per-team shares; below: team {}'s share\n{}",
+        num(holdout_delta),
+        safe_text(budget_of, 100),
+        budget_text(b).replacen("of delta", "of its share", 1)
+    )
+}
+
 /// A receipt for people: the holdout, the query number and the entry's hash.
 pub fn receipt_text(r: &Receipt) -> String {
     if r.query > 0 {
@@ -449,6 +475,8 @@ pub fn holdout_json(h: &HoldoutInfo) -> Value {
         "policy": h.policy.as_ref().map_or(Value::Null, policy_json),
         "targets": h.targets.iter().map(target_json).collect::<Vec<_>>(),
         "budget": h.budget.as_ref().map_or(Value::Null, budget_json),
+        "budget_of": h.budget_of,
+        "no_share": h.no_share,
         "genesis_hash": h.genesis_hash,
         "guarantee": h.guarantee,
         "withdrawn_at": (!h.withdrawn_at.is_empty()).then_some(&h.withdrawn_at),
@@ -492,7 +520,8 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
     s.push_str(&format!("genesis    {}", h.genesis_hash));
     if let Some(b) = &h.budget {
         s.push('\n');
-        s.push_str(&budget_text(b));
+        let delta = h.policy.as_ref().map_or(b.delta, |p| p.delta);
+        s.push_str(&budget_of_text(b, &h.budget_of, h.no_share, delta));
     }
     if !h.guarantee.is_empty() {
         s.push_str("\n\n");
