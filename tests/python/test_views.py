@@ -56,8 +56,10 @@ def test_a_sealed_round_through_python(daemon, tmp_path):
     assert status.round is not None and not status.round.closed
     per_team = {t.team: (t.entries, t.selected, t.marked) for t in status.round.teams}
     assert per_team == {"kiln": (2, first.query, True), "glaze": (2, per_team["glaze"][1], False)}
+    assert status.budget_of == "kiln" and not status.no_share
     with hl.connect(daemon.url, daemon.admin) as organizer:
         assert organizer.status("tiles-round").round.not_submitted == ("slip",)
+        assert organizer.status("tiles-round").no_share
         dups = organizer.duplicates("tiles-round")
         assert [d.teams for d in dups] == [("glaze", "kiln")]
         assert {e.team for e in dups[0].entries} == {"glaze", "kiln"}

@@ -296,6 +296,35 @@ pub fn answer_text_with(a: &Answer, model_names: &[String], full_guarantee: bool
     s
 }
 
+/// The bound `B` of a regression metric (`abs_error:B`, `sq_error:B`) with the words for its
+/// mean loss, or `None` for metrics whose scale is already the reader's (error, brier...).
+pub fn target_scale(metric: &str) -> Option<(f64, &'static str)> {
+    let (name, bound) = metric.split_once(':')?;
+    let words = match name {
+        "abs_error" => "mean absolute error",
+        "sq_error" => "mean squared error",
+        _ => return None,
+    };
+    let b: f64 = bound.trim().parse().ok()?;
+    (b.is_finite() && b > 0.0).then_some((b, words))
+}
+
+/// For a regression target, the answer in the target's own units: the ledger, the symbol and
+/// the `[0, 1]` interval are the mean of the loss divided by `B` (each row's loss capped at
+/// `B`); multiplied back by `B` they read as a mean absolute (or squared) error, the interval
+/// rounded outward. `None` for other metrics.
+pub fn units_line(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
+    let (b, words) = target_scale(metric)?;
+    let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+    Some(format!(
+        "in units   {words} {score}{} (the [0, 1] figures above are that mean with each row \
+         capped at {}, divided by {})",
+        interval_text(lower * b, upper * b),
+        num(b),
+        num(b)
+    ))
+}
+
 /// An answer for people, with the holdout's guarantee in full.
 pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
     let mut s = format!("answer {} (target {})", a.query, a.target);

@@ -288,7 +288,20 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&show::answer_json(&a, &names));
             } else {
-                println!("{}", show::answer_text_with(&a, &names, args.guarantee));
+                let mut text = show::answer_text_with(&a, &names, args.guarantee);
+                if let (Some(i), Some(line)) = (
+                    a.interval.as_ref(),
+                    a.interval
+                        .as_ref()
+                        .and_then(|i| show::units_line(&target.metric, a.score, i.lower, i.upper)),
+                ) {
+                    // Right after the interval line.
+                    let at = format!("\ninterval   {}", show::interval_text(i.lower, i.upper));
+                    if let Some(pos) = text.find(&at) {
+                        text.insert_str(pos + at.len(), &format!("\n{line}"));
+                    }
+                }
+                println!("{text}");
             }
             if args.require_pass && a.symbol == "fail" {
                 eprintln!(

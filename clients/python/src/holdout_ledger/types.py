@@ -203,6 +203,10 @@ class Status:
     policy: Policy
     round: Optional[RoundStatus] = None
     flags: Tuple[ProbeFlag, ...] = field(default_factory=tuple)
+    #: Under per-team shares, whose share ``budget`` is (empty: the holdout's one pool).
+    budget_of: str = ""
+    #: True when the caller's team has no share: ``budget`` then describes no pool.
+    no_share: bool = False
 
 
 @dataclass(frozen=True)
@@ -480,7 +484,7 @@ def _status(m) -> Status:
         )
     return Status(
         holdout=m.holdout, budget=_budget(m.budget), guarantee=m.guarantee,
-        policy=_policy(m.policy), round=round_,
+        policy=_policy(m.policy), round=round_, budget_of=m.budget_of, no_share=m.no_share,
         flags=tuple(ProbeFlag(team=f.team, kind=f.kind, detail=f.detail) for f in m.flags),
     )
 
