@@ -69,6 +69,104 @@ fn a_best_of_answer_names_the_file_and_charges_the_batch_code_once() {
 }
 
 #[test]
+fn best_per_team_under_rounded_answers_shows_each_team_s_lowest_upper_limit() {
+    let d = Daemon::start();
+    create(&d, "rb", "rounded:0.01", &[]);
+    let red = d.add_user("rae", &["analyst"], Some("red"));
+    let blue = d.add_user("bo", &["analyst"], Some("blue"));
+    for (token, file) in [
+        (&red, preds(&d, "r1.csv", 4, 0)),   // 0.25
+        (&blue, preds(&d, "b1.csv", 10, 0)), // 0.10
+        (&red, preds(&d, "r2.csv", 5, 0)),   // 0.20: red's best
+        (&blue, preds(&d, "b2.csv", 3, 1)),  // about 0.33: not blue's best
+    ] {
+        d.run(token, &["submit", "rb", "--predictions", &file]).ok();
+    }
+    let board = d.run(&blue, &["leaderboard", "rb", "--json"]).ok().json();
+    assert_eq!(board["kind"], "best-per-team", "{board}");
+    let rows = board["rows"].as_array().unwrap();
+    let got: Vec<(&str, u64, f64)> = rows
+        .iter()
+        .map(|r| {
+            (
+                r["team"].as_str().unwrap(),
+                r["query"].as_u64().unwrap(),
+                r["best"].as_f64().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(got, [("blue", 2, 0.1), ("red", 3, 0.2)], "{board}");
+    for r in rows {
+        let (lo, hi, best) = (
+            r["lower"].as_f64().unwrap(),
+            r["upper"].as_f64().unwrap(),
+            r["best"].as_f64().unwrap(),
+        );
+        assert!(lo <= best && best <= hi, "{r}");
+        assert_eq!(r["submissions"], 2, "{r}");
+    }
+    // A file written like the labels file is refused with the way out.
+    let like_labels = d.write("as-labels.csv", &Parts::new(N).labels_csv());
+    let refused = d
+        .run(&red, &["submit", "rb", "--predictions", &like_labels])
+        .code(2);
+    assert!(
+        refused
+            .stderr
+            .contains("looks like the labels file's; predictions are read from a column named `prediction`: rename `defect` to `prediction`, or pass --prediction-column defect"),
+        "{}",
+        refused.stderr
+    );
+    let text = d.run(&red, &["leaderboard", "rb"]).ok().stdout;
+    assert!(text.contains("best per team on rb"), "{text}");
+    assert!(text.contains("query 3"), "{text}");
+    assert!(text.contains("lowest upper limit"), "{text}");
+}
+
+#[test]
+fn under_a_roster_the_budget_names_whose_share_it_is() {
+    let d = Daemon::start();
+    let parts = Parts::new(N);
+    let labels = d.write("roster-labels.csv", &parts.labels_csv());
+    let created = d
+        .admin(&[
+            "create",
+            "ro",
+            "--labels",
+            &labels,
+            "--metric",
+            "error",
+            "--classes",
+            "crack,dent,ok",
+            "--label-column",
+            "defect",
+            "--answers",
+            "rounded:0.01",
+            "--tolerance",
+            "0.3",
+            "--shares",
+            "roster:red,blue",
+        ])
+        .ok()
+        .stdout;
+    // The creator is in no team: no pool of nobody ("spent 0 of delta 0 ... half-width 1").
+    assert!(
+        created.contains("delta      0.05 for the whole holdout"),
+        "{created}"
+    );
+    assert!(created.contains("your team has no share"), "{created}");
+    assert!(!created.contains("of delta 0,"), "{created}");
+    assert!(!created.contains("half-width 1 "), "{created}");
+    let red = d.add_user("rae", &["analyst"], Some("red"));
+    let status = d.run(&red, &["status", "ro"]).ok().stdout;
+    assert!(status.contains("below: team red's share"), "{status}");
+    assert!(status.contains("spent 0 of its share 0.025"), "{status}");
+    let json = d.run(&red, &["status", "ro", "--json"]).ok().json();
+    assert_eq!(json["budget_of"], "red", "{json}");
+    assert_eq!(json["no_share"], false, "{json}");
+}
+
+#[test]
 fn threshold_gates_state_what_a_pass_certifies_and_that_a_fail_certifies_nothing() {
     let d = Daemon::start();
     create(&d, "gate", "threshold:0.2", &[]);
@@ -170,14 +268,42 @@ fn a_sealed_round_through_the_cli() {
             .unwrap()
             .contains("deadline 2099-01-01")
     );
-    d.run(&blue, &["submit", "final", "--predictions", &b1])
-        .ok();
+    let reply = d
+        .run(&blue, &["submit", "final", "--predictions", &b1])
+        .ok()
+        .stdout;
+    // The reply numbers the entry as its receipt and history do.
+    assert!(reply.starts_with("sealed entry, query 2 "), "{reply}");
+    assert!(reply.contains("query 2"), "{reply}");
     // Green sends blue's file: an identical prediction vector from another team.
     d.run(&green, &["submit", "final", "--predictions", &b1])
         .ok();
     // Before the close: no scores anywhere an analyst looks.
     let status = d.run(&blue, &["status", "final", "--json"]).ok().json();
     assert_eq!(status["budget"]["open"], true);
+    // Entries per team and each team's selected entry; no score.
+    let teams = status["round"]["teams"].as_array().unwrap();
+    let got: Vec<(&str, u64, bool)> = teams
+        .iter()
+        .map(|t| {
+            (
+                t["team"].as_str().unwrap(),
+                t["entries"].as_u64().unwrap(),
+                t["marked"].as_bool().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        got,
+        [("blue", 1, false), ("green", 1, false), ("red", 1, true)],
+        "{status}"
+    );
+    let text = d.run(&blue, &["status", "final"]).ok().stdout;
+    assert!(
+        text.contains("round      open, 3 entries from 3 teams; scores are sealed until the close"),
+        "{text}"
+    );
+    assert!(text.contains("query 1 (marked)"), "{text}");
     let history = d
         .run(&blue, &["history", "final", "--json"])
         .ok()

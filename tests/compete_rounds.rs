@@ -143,7 +143,12 @@ fn analyst_views(f: &mut Fixture, team: &str) -> Vec<String> {
             other => panic!("before the close only sealed entries exist: {other:?}"),
         })
         .collect();
-    let board = f.engine.leaderboard(&me, "final").unwrap_err().to_string();
+    // Best per team: a sealed round releases no answer before its close, so no row.
+    let board = f.engine.leaderboard(&me, "final").unwrap();
+    assert!(board.rows.is_empty(), "{board:?}");
+    assert_eq!(board.kind, "best-per-team");
+    let board = format!("{board:?}");
+    let round = format!("{:?}", f.engine.round_status(&me, "final").unwrap());
     let ranking = f.engine.ranking(&me, "final").unwrap_err();
     assert!(matches!(ranking, Error::FailedPrecondition(_)), "{ranking}");
     assert!(f.engine.history(&me, "final", true).is_err());
@@ -152,6 +157,7 @@ fn analyst_views(f: &mut Fixture, team: &str) -> Vec<String> {
         format!("open {}", view.open),
         history.join("; "),
         board,
+        round,
         ranking.to_string(),
     ]
 }
@@ -418,6 +424,167 @@ fn the_ladder_leaderboard_ranks_teams_and_respects_isolation() {
             assert!(mine.own_team_only);
             assert_eq!(mine.rows.len(), 1);
             assert_eq!(mine.rows[0].team, "t3");
+        } else {
+            assert_eq!(mine.rows, board.rows);
+        }
+    }
+}
+
+#[test]
+fn sealed_round_status_counts_entries_per_team_and_names_who_has_not_entered() {
+    let n = 2000;
+    for isolated in [false, true] {
+        let mut f = fixture();
+        let p = PolicyInput {
+            sharing: if isolated { "isolated" } else { "shared" }.into(),
+            shares: "roster:t1,t2,t3,t4".into(),
+            ..sealed_policy("2026-03-04T12:00:00Z")
+        };
+        create(&mut f, "final", n, p).unwrap();
+        // t1 marks its first entry and sends a later one; t2 marks its second; t3 marks none.
+        for (team, wrong, mark) in [
+            ("t1", 100, true),
+            ("t2", 200, false),
+            ("t1", 300, false),
+            ("t2", 250, true),
+            ("t3", 400, false),
+            ("t3", 410, false),
+            ("t2", 260, false),
+        ] {
+            f.engine
+                .submit(&analyst(team), entry("final", wrong_on(n, 0, wrong), mark))
+                .unwrap();
+        }
+        let all = f
+            .engine
+            .round_status(&organizer(), "final")
+            .unwrap()
+            .unwrap();
+        assert!(!all.closed && !all.own_team_only);
+        let got: Vec<(&str, u64, bool)> = all
+            .teams
+            .iter()
+            .map(|t| (t.team.as_str(), t.entries, t.marked))
+            .collect();
+        assert_eq!(got, [("t1", 2, true), ("t2", 3, true), ("t3", 2, false)]);
+        assert_eq!(all.not_submitted, ["t4"]);
+        // The selected entry is the one the close ranks: compare with the ranking's digests.
+        let history = f.engine.history(&organizer(), "final", false).unwrap();
+        let digest_of = |team: &str, query: u64| {
+            history
+                .iter()
+                .find_map(|h| match h {
+                    HistoryItem::Sealed(r, _) if r.team == team && r.query == query => {
+                        Some(r.digest.clone())
+                    }
+                    _ => None,
+                })
+                .unwrap()
+        };
+        let selected: Vec<(String, String)> = all
+            .teams
+            .iter()
+            .map(|t| (t.team.clone(), digest_of(&t.team, t.selected)))
+            .collect();
+        // An analyst under `isolated` sees its own team only and not who else is missing.
+        let mine = f
+            .engine
+            .round_status(&analyst("t3"), "final")
+            .unwrap()
+            .unwrap();
+        if isolated {
+            assert!(mine.own_team_only);
+            assert_eq!(mine.teams.len(), 1);
+            assert_eq!(mine.teams[0].team, "t3");
+            assert!(mine.not_submitted.is_empty());
+        } else {
+            assert_eq!(mine, all);
+        }
+        f.clock
+            .set(Utc.with_ymd_and_hms(2026, 3, 4, 12, 0, 0).unwrap());
+        let ranking = f.engine.ranking(&organizer(), "final").unwrap();
+        let mut ranked: Vec<(String, String)> = ranking
+            .entries
+            .iter()
+            .map(|e| (e.team.clone(), e.digest.clone()))
+            .collect();
+        ranked.sort();
+        assert_eq!(ranked, selected, "isolated {isolated}");
+        assert!(
+            f.engine
+                .round_status(&organizer(), "final")
+                .unwrap()
+                .unwrap()
+                .closed
+        );
+    }
+}
+
+#[test]
+fn best_per_team_covers_every_other_rule_and_respects_isolation() {
+    let n = 2000;
+    for (answers, isolated) in [
+        ("rounded:0.01", false),
+        ("rounded:0.01", true),
+        ("best-of:0.01", false),
+    ] {
+        let mut f = fixture();
+        let p = PolicyInput {
+            answers: answers.into(),
+            tolerance: 0.2,
+            sharing: if isolated { "isolated" } else { "shared" }.into(),
+            shares: if isolated { "roster:t1,t2,t3" } else { "none" }.into(),
+            ..PolicyInput::default()
+        };
+        create(&mut f, "h", n, p).unwrap();
+        // t1: 0.30 then 0.20 then 0.21; t2: 0.15; t3: 0.25 twice.
+        for (team, wrong) in [
+            ("t1", 600),
+            ("t2", 300),
+            ("t1", 400),
+            ("t3", 500),
+            ("t3", 500),
+            ("t1", 420),
+        ] {
+            f.engine
+                .submit(&analyst(team), entry("h", wrong_on(n, 0, wrong), false))
+                .unwrap();
+        }
+        let board = f.engine.leaderboard(&organizer(), "h").unwrap();
+        assert_eq!(board.kind, "best-per-team", "{answers}");
+        // Each row is the team's answer with the lowest upper limit, read from the history.
+        let history = f.engine.history(&organizer(), "h", false).unwrap();
+        for r in &board.rows {
+            let mine: Vec<_> = history
+                .iter()
+                .filter_map(|h| match h {
+                    HistoryItem::Answer(a, _) if a.team == r.team => Some(a),
+                    _ => None,
+                })
+                .collect();
+            let lowest = mine.iter().map(|a| a.upper).fold(f64::INFINITY, f64::min);
+            assert_eq!(r.upper, lowest, "{answers} {r:?}");
+            assert_eq!(r.submissions, mine.len() as u64);
+            let shown = mine.iter().find(|a| a.query == r.query).unwrap();
+            assert_eq!((shown.lower, shown.upper), (r.lower, r.upper));
+        }
+        let order: Vec<(u64, &str)> = board
+            .rows
+            .iter()
+            .map(|r| (r.rank, r.team.as_str()))
+            .collect();
+        assert_eq!(order, [(1, "t2"), (2, "t1"), (3, "t3")], "{answers}");
+        // The true errors 0.15, 0.20 and 0.25 lie in the rows' intervals.
+        for (r, truth) in board.rows.iter().zip([0.15, 0.2, 0.25]) {
+            assert!(r.lower <= truth && truth <= r.upper, "{answers} {r:?}");
+        }
+        let mine = f.engine.leaderboard(&analyst("t3"), "h").unwrap();
+        if isolated {
+            assert!(mine.own_team_only);
+            assert_eq!(mine.rows.len(), 1);
+            assert_eq!(mine.rows[0].team, "t3");
+            // Team-local numbering: t3's answers are its queries 1 and 2.
+            assert!(mine.rows[0].query <= 2, "{:?}", mine.rows[0]);
         } else {
             assert_eq!(mine.rows, board.rows);
         }

@@ -937,3 +937,47 @@ fn many_rows_stream_in_chunks_and_json_lines_are_read() {
     assert_eq!(again["replayed"], true);
     assert_eq!(budget(&d, &ivy, "big")["answered"], 1);
 }
+
+#[test]
+fn regression_answers_are_also_shown_in_the_target_s_own_units() {
+    let d = Daemon::start();
+    create_qc(&d, "qcu", &[]);
+    let alice = d.add_user("alice", &["analyst"], Some("red"));
+    // Every cost prediction is off by 30: a mean absolute error of 30, 0.3 on the [0, 1] scale
+    // of abs_error:100.
+    let costs = d.write("c30.csv", &Parts::new(N).cost_predictions(30.0));
+    let text = d
+        .run(
+            &alice,
+            &["submit", "qcu", "--target", "cost", "--predictions", &costs],
+        )
+        .ok()
+        .stdout;
+    let line = text
+        .lines()
+        .find(|l| l.starts_with("in units   mean absolute error 30 ["))
+        .unwrap_or_else(|| panic!("{text}"));
+    // The interval in units, read back, contains 30 and is 100 times the [0, 1] one.
+    let inner = &line[line.find('[').unwrap() + 1..line.find(']').unwrap()];
+    let (lo, hi) = inner.split_once(", ").unwrap();
+    let (lo, hi): (f64, f64) = (lo.parse().unwrap(), hi.parse().unwrap());
+    assert!(lo <= 30.0 && 30.0 <= hi && hi - lo > 1.0, "{line}");
+    assert!(line.contains("capped at 100, divided by 100"), "{line}");
+    // The error target has no units line.
+    let defects = d.write("d.csv", &Parts::new(N).defect_predictions(10, 0));
+    let text = d
+        .run(
+            &alice,
+            &[
+                "submit",
+                "qcu",
+                "--target",
+                "defect",
+                "--predictions",
+                &defects,
+            ],
+        )
+        .ok()
+        .stdout;
+    assert!(!text.contains("in units"), "{text}");
+}

@@ -139,13 +139,20 @@ pub(crate) fn guarantee_addendum(p: &HoldoutPolicy) -> String {
     }
 }
 
-/// One team's row of a ladder leaderboard.
+/// One team's row of a leaderboard: on a ladder, the team's best so far; under other rules, the
+/// team's released answer with the lowest upper limit on one target (best per team).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct LeaderboardRow {
-    /// Rank, from 1 (teams with no released best come last, unranked: 0).
+    /// Rank, from 1 (teams with no released best come last, unranked: 0); under other rules
+    /// than the ladder, counted within the row's target.
     pub rank: u64,
     /// Team.
     pub team: String,
+    /// Target of the row.
+    pub target: String,
+    /// Query number of the answer the row shows (the number its reply, receipt and history
+    /// give it; per team under `isolated`); 0 before a ladder team's first new best.
+    pub query: u64,
     /// Best score so far on the grid (`None` before a first new best).
     pub best: Option<f64>,
     /// Interval for the smallest true error among the team's submissions, from its latest
@@ -177,6 +184,39 @@ pub struct Leaderboard {
     /// The holdout's guarantee with its assumptions.
     pub guarantee: String,
     /// Whether other teams' rows were withheld from this caller.
+    pub own_team_only: bool,
+    /// `ladder` (each team's best so far on the grid) or `best-per-team` (each team's released
+    /// answer with the lowest upper limit, per target).
+    pub kind: String,
+}
+
+/// One team's entries on one target of a sealed round, as status shows them. Nothing about
+/// a score: only counts, and which entry the round will rank for the team.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RoundTeam {
+    /// Team.
+    pub team: String,
+    /// Target.
+    pub target: String,
+    /// Entries the team made on the target.
+    pub entries: u64,
+    /// Query number of the team's selected entry (the one the close ranks): its latest marked
+    /// entry, else its latest entry. Numbered as in its reply, receipt and history.
+    pub selected: u64,
+    /// Whether the team marked that entry itself (else it is selected as the latest).
+    pub marked: bool,
+}
+
+/// A sealed round's entries per team, for status.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RoundStatus {
+    /// Teams with entries, by target then team.
+    pub teams: Vec<RoundTeam>,
+    /// Declared (roster) teams with no entry yet; empty when the caller sees only its own team.
+    pub not_submitted: Vec<String>,
+    /// Whether the round has closed.
+    pub closed: bool,
+    /// Whether other teams were withheld from this caller (`isolated`).
     pub own_team_only: bool,
 }
 
@@ -806,18 +846,17 @@ impl Engine {
         })
     }
 
-    /// The ladder leaderboard: each team's best so far with its interval, ranked.
+    /// The leaderboard: on a ladder holdout each team's best so far with its interval, ranked;
+    /// under every other rule (sealed rounds included, once closed) each team's released answer
+    /// with the lowest upper limit on each target. Rows follow the leaderboard's visibility
+    /// (an analyst of an `isolated` holdout sees its own team's row only).
     pub fn leaderboard(&mut self, caller: &Caller, name: &str) -> Result<Leaderboard> {
         let loaded = self.loaded(name)?;
-        if !matches!(loaded.policy.core.rule, Rule::Ladder(_)) {
-            return Err(Error::FailedPrecondition(format!(
-                "holdout {name} answers with {}; leaderboards are for ladder holdouts (use \
-                 history, or ranking for a sealed round)",
-                loaded.policy.answers_spec()
-            )));
-        }
         let scope = super::Visibility::of(&loaded.policy, caller).leaderboard;
         let own_only = scope != super::Scope::Every;
+        if !matches!(loaded.policy.core.rule, Rule::Ladder(_)) {
+            return self.best_per_team(&loaded, scope);
+        }
         let entries = ledger::read_chain(self.store.conn(), name)?;
         let mut rows: BTreeMap<String, LeaderboardRow> = BTreeMap::new();
         // `adopt` entries (core 2): another team's answered file taken over as this team's new
@@ -834,6 +873,8 @@ impl Engine {
                 .or_insert_with(|| LeaderboardRow {
                     rank: 0,
                     team: r.team.clone(),
+                    target: r.target.clone(),
+                    query: 0,
                     best: None,
                     lower: 0.0,
                     upper: 1.0,
@@ -847,6 +888,7 @@ impl Engine {
             row.upper = r.upper;
             if r.symbol.starts_with("new-best") {
                 row.best = r.score;
+                row.query = r.query;
                 row.improvements += 1;
                 row.best_entry = Some(e.seq);
                 row.best_at = Some(r.at.clone());
@@ -882,7 +924,148 @@ impl Engine {
             ),
             guarantee: loaded.policy.guarantee(),
             own_team_only: own_only,
+            kind: "ladder".into(),
         })
+    }
+
+    /// Best per team for rules other than the ladder: per team and target, the released answer
+    /// with the lowest upper limit (ties: the earlier), ranked within each target by that limit.
+    /// A sealed round's answers are released at its close, so before it the table is empty.
+    fn best_per_team(&mut self, loaded: &Loaded, scope: super::Scope) -> Result<Leaderboard> {
+        let name = loaded.name.clone();
+        self.settle(loaded)?;
+        let entries = ledger::read_chain(self.store.conn(), &name)?;
+        let mut rows: BTreeMap<(usize, String), LeaderboardRow> = BTreeMap::new();
+        let mut take = |r: &AnswerRecord| {
+            if !scope.covers(&r.team) {
+                return;
+            }
+            let row = rows
+                .entry((r.target_index, r.team.clone()))
+                .or_insert_with(|| LeaderboardRow {
+                    rank: 0,
+                    team: r.team.clone(),
+                    target: r.target.clone(),
+                    query: r.query,
+                    best: r.score,
+                    lower: r.lower,
+                    upper: r.upper,
+                    submissions: 0,
+                    improvements: 0,
+                    best_entry: None,
+                    best_at: Some(r.at.clone()),
+                });
+            row.submissions += 1;
+            if row.submissions == 1 || r.upper < row.upper {
+                row.improvements += 1;
+                (row.query, row.best, row.lower, row.upper) = (r.query, r.score, r.lower, r.upper);
+                row.best_at = Some(r.at.clone());
+            }
+        };
+        for e in &entries {
+            match Record::read(e)? {
+                Record::Answer(r) | Record::Adopt(r) => take(&r),
+                Record::Round(round) => round.answers.iter().for_each(&mut take),
+                _ => {}
+            }
+        }
+        let mut ranked: Vec<(usize, LeaderboardRow)> =
+            rows.into_iter().map(|((t, _), r)| (t, r)).collect();
+        ranked.sort_by(|(ta, a), (tb, b)| {
+            ta.cmp(tb)
+                .then(a.upper.total_cmp(&b.upper))
+                .then(a.team.cmp(&b.team))
+        });
+        let mut rank = 0;
+        let mut last = usize::MAX;
+        for (t, r) in ranked.iter_mut() {
+            rank = if *t == last { rank + 1 } else { 1 };
+            last = *t;
+            r.rank = rank;
+        }
+        let sealed = loaded.policy.sealed();
+        Ok(Leaderboard {
+            holdout: name,
+            target: loaded.policy.targets[0].name.clone(),
+            rows: ranked.into_iter().map(|(_, r)| r).collect(),
+            statement: format!(
+                "Each row is, among one team's released answers on one target, the one with the \
+                 lowest upper limit; teams are ranked by that limit within each target. Every \
+                 interval this holdout reports holds simultaneously with all the others, with \
+                 probability at least 1 - {}, so picking one of them after the fact keeps it \
+                 valid: the row's interval contains the true error of the file that answer was \
+                 for.{}",
+                seven_digits(loaded.policy.input.delta),
+                if sealed {
+                    " A sealed round releases its answers at the close: until then the table is \
+                     empty (see status for the entries per team)."
+                } else {
+                    ""
+                }
+            ),
+            guarantee: loaded.policy.guarantee(),
+            own_team_only: scope != super::Scope::Every,
+            kind: "best-per-team".into(),
+        })
+    }
+
+    /// A sealed round's entries per team, each team's selected entry and the declared teams
+    /// that have not entered; `None` for other holdouts and for callers who may see no team's
+    /// activity. Follows the history's visibility: under `isolated` an analyst sees its own team
+    /// only (and not who else has entered).
+    pub fn round_status(&mut self, caller: &Caller, name: &str) -> Result<Option<RoundStatus>> {
+        let loaded = self.loaded(name)?;
+        if !loaded.policy.sealed() {
+            return Ok(None);
+        }
+        let scope = super::Visibility::of(&loaded.policy, caller).history;
+        if scope == super::Scope::Nothing {
+            return Ok(None);
+        }
+        self.settle(&loaded)?;
+        let closed = self.closed_at(loaded.id)?.is_some();
+        let entries = ledger::read_chain(self.store.conn(), name)?;
+        let mut teams: BTreeMap<(usize, String), RoundTeam> = BTreeMap::new();
+        let mut entered: BTreeSet<String> = BTreeSet::new();
+        for e in &entries {
+            let Record::Sealed(r) = Record::read(e)? else {
+                continue;
+            };
+            entered.insert(r.team.clone());
+            if !scope.covers(&r.team) {
+                continue;
+            }
+            let t = teams
+                .entry((r.target_index, r.team.clone()))
+                .or_insert_with(|| RoundTeam {
+                    team: r.team.clone(),
+                    target: r.target.clone(),
+                    entries: 0,
+                    selected: r.query,
+                    marked: r.marked,
+                });
+            t.entries += 1;
+            // The same choice as the close's (`rank`): a later entry replaces the selected one
+            // unless that one was marked and the later one is not.
+            if r.marked || !t.marked {
+                (t.selected, t.marked) = (r.query, r.marked);
+            }
+        }
+        let every = scope == super::Scope::Every;
+        let not_submitted = match (&loaded.policy.core.shares, every) {
+            (crate::stats::schedule::Shares::Roster { analysts, .. }, true) => analysts
+                .iter()
+                .filter(|t| !entered.contains(*t))
+                .cloned()
+                .collect(),
+            _ => Vec::new(),
+        };
+        Ok(Some(RoundStatus {
+            teams: teams.into_values().collect(),
+            not_submitted,
+            closed,
+            own_team_only: !every,
+        }))
     }
 
     /// Identical prediction digests submitted by different teams (organizers and auditors).

@@ -37,7 +37,8 @@ use rusqlite::{OptionalExtension, params};
 pub use account::{DEFAULT_RANKING_SHARE, HoldoutPolicy, PolicyInput, Quote};
 pub use clock::{Clock, FixedClock, SystemClock};
 pub use compete::{
-    Duplicate, Leaderboard, LeaderboardRow, Ranking, ranking_level, replay_comparison,
+    Duplicate, Leaderboard, LeaderboardRow, Ranking, RoundStatus, RoundTeam, ranking_level,
+    replay_comparison,
 };
 pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
 pub use probe::{ProbeFlag, ProbeSettings};

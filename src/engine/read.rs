@@ -17,6 +17,22 @@ use crate::auth::{Caller, Role, rfc3339};
 use crate::error::{Error, Result};
 use crate::ledger;
 
+/// Whose share of delta a `team`'s budget view describes: `("", false)` with one pool,
+/// `(team, false)` for a team with a share, `("", true)` for a caller whose team has none (not
+/// in the roster, or no team at all under on-arrival shares).
+pub(crate) fn share_of(policy: &HoldoutPolicy, team: &str) -> (String, bool) {
+    use crate::stats::schedule::Shares;
+    match &policy.core.shares {
+        Shares::None => (String::new(), false),
+        Shares::Roster { analysts, .. } if analysts.iter().any(|a| a == team) => {
+            (team.to_string(), false)
+        }
+        Shares::Roster { .. } => (String::new(), true),
+        Shares::OnArrival if team.is_empty() => (String::new(), true),
+        Shares::OnArrival => (team.to_string(), false),
+    }
+}
+
 /// A holdout's public facts and the caller's view of its budget.
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct HoldoutView {
@@ -40,6 +56,14 @@ pub struct HoldoutView {
     pub withdrawal_pending: String,
     /// Budget (the caller's team under isolated).
     pub budget: BudgetView,
+    /// Whose share `budget` is when delta is split into per-team shares (the caller's team);
+    /// empty for a holdout with one pool.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub budget_of: String,
+    /// True when delta is split into per-team shares and the caller's team has none (an
+    /// organizer outside the roster): `budget` then describes no pool at all.
+    #[serde(default)]
+    pub no_share: bool,
     /// Genesis hash.
     pub genesis_hash: String,
     /// Guarantee sentence and assumptions.
@@ -64,6 +88,7 @@ impl Engine {
         self.settle(&loaded)?;
         let closed = self.closed_at(loaded.id)?;
         let budget = self.budget_view(&loaded, &caller.team, closed.is_none())?;
+        let (budget_of, no_share) = share_of(&loaded.policy, &caller.team);
         let withdrawn_at = self.withdrawn_at(loaded.id)?;
         let withdrawal_pending = if withdrawn_at.is_none() {
             self.pending_withdrawal(loaded.id)?
@@ -80,6 +105,8 @@ impl Engine {
             created_at: loaded.created_at.clone(),
             open: closed.is_none(),
             budget,
+            budget_of,
+            no_share,
             genesis_hash: loaded.genesis_hash.clone(),
             guarantee: loaded.policy.guarantee(),
         })

@@ -64,6 +64,8 @@ pub(crate) fn holdout(v: &HoldoutView) -> pb::HoldoutInfo {
         guarantee: v.guarantee.clone(),
         withdrawn_at: v.withdrawn_at.clone().unwrap_or_default(),
         withdrawal_pending: v.withdrawal_pending.clone(),
+        budget_of: v.budget_of.clone(),
+        no_share: v.no_share,
     }
 }
 
@@ -163,11 +165,14 @@ pub(crate) fn leaderboard(l: &Leaderboard) -> pb::LeaderboardResponse {
                 submissions: r.submissions,
                 improvements: r.improvements,
                 best_at: r.best_at.clone().unwrap_or_default(),
+                target: r.target.clone(),
+                query: r.query,
             })
             .collect(),
         statement: l.statement.clone(),
         guarantee: l.guarantee.clone(),
         own_team_only: l.own_team_only,
+        kind: l.kind.clone(),
     }
 }
 

@@ -309,13 +309,14 @@ impl Submissions for Daemon {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
         let who = caller.clone();
-        let (view, flags, isolated) = self
+        let (view, flags, isolated, round) = self
             .db
             .call(move |engine| {
                 let view = engine.holdout_view(&caller, &name)?;
                 let flags = engine.probe_flags(&caller, &name)?;
                 let isolated = engine.loaded(&name)?.policy.isolated();
-                Ok((view, flags, isolated))
+                let round = engine.round_status(&caller, &name)?;
+                Ok((view, flags, isolated, round))
             })
             .await?;
         // Every team's alerts for the roles that see every team's figures; an analyst under
@@ -348,6 +349,24 @@ impl Submissions for Daemon {
                 })
                 .collect(),
             alerts,
+            budget_of: view.budget_of.clone(),
+            no_share: view.no_share,
+            round: round.map(|r| pb::SealedRoundStatus {
+                teams: r
+                    .teams
+                    .into_iter()
+                    .map(|t| pb::RoundTeam {
+                        team: t.team,
+                        target: t.target,
+                        entries: t.entries,
+                        selected: t.selected,
+                        marked: t.marked,
+                    })
+                    .collect(),
+                not_submitted: r.not_submitted,
+                closed: r.closed,
+                own_team_only: r.own_team_only,
+            }),
         }))
     }
 

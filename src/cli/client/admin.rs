@@ -209,6 +209,8 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         show::print_json(&json!({
             "holdout": s.holdout,
             "budget": show::budget_json(&budget),
+            "budget_of": s.budget_of,
+            "no_share": s.no_share,
             "policy": s.policy.as_ref().map_or(serde_json::Value::Null, show::policy_json),
             "guarantee": s.guarantee,
             "flags": s.flags.iter().map(|f| json!({
@@ -221,13 +223,29 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
                 "kind": a.kind,
                 "detail": a.detail,
             })).collect::<Vec<_>>(),
+            "round": s.round.as_ref().map_or(serde_json::Value::Null, |r| json!({
+                "closed": r.closed,
+                "own_team_only": r.own_team_only,
+                "teams": r.teams.iter().map(|t| json!({
+                    "team": t.team, "target": t.target, "entries": t.entries,
+                    "selected": t.selected, "marked": t.marked,
+                })).collect::<Vec<_>>(),
+                "not_submitted": r.not_submitted,
+            })),
         }));
     } else {
         println!("holdout    {}", s.holdout);
         if let Some(p) = &s.policy {
             println!("policy     {}", show::policy_text(p));
         }
-        println!("{}", show::budget_text(&budget));
+        let delta = s.policy.as_ref().map_or(budget.delta, |p| p.delta);
+        println!(
+            "{}",
+            show::budget_of_text(&budget, &s.budget_of, s.no_share, delta)
+        );
+        if let Some(r) = &s.round {
+            println!("{}", round_text(r));
+        }
         for f in &s.flags {
             println!(
                 "flag       {} ({}): {}",
@@ -249,6 +267,67 @@ pub async fn status(args: &StatusArgs) -> anyhow::Result<ExitCode> {
         }
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// A sealed round's entries per team for people: counts and selected entries only.
+fn round_text(r: &crate::proto::v1::SealedRoundStatus) -> String {
+    let entries: u64 = r.teams.iter().map(|t| t.entries).sum();
+    let mut out = format!(
+        "round      {}, {} from {}{}",
+        if r.closed { "closed" } else { "open" },
+        show::plural(entries, "entry", "entries"),
+        show::plural(
+            r.teams
+                .iter()
+                .map(|t| t.team.as_str())
+                .collect::<std::collections::BTreeSet<_>>()
+                .len() as u64,
+            "team",
+            "teams"
+        ),
+        if r.own_team_only {
+            " (your team's only)"
+        } else {
+            ""
+        }
+    );
+    if !r.closed {
+        out.push_str("; scores are sealed until the close");
+    }
+    if !r.teams.is_empty() {
+        let rows: Vec<Vec<String>> = r
+            .teams
+            .iter()
+            .map(|t| {
+                vec![
+                    show::safe_text(&t.team, 100),
+                    t.target.clone(),
+                    t.entries.to_string(),
+                    format!(
+                        "query {} ({})",
+                        t.selected,
+                        if t.marked { "marked" } else { "latest" }
+                    ),
+                ]
+            })
+            .collect();
+        out.push('\n');
+        out.push_str(&show::table(
+            &["team", "target", "entries", "selected entry"],
+            &rows,
+        ));
+    }
+    if !r.not_submitted.is_empty() {
+        out.push_str(&format!(
+            "\nno entry yet: {}",
+            r.not_submitted
+                .iter()
+                .map(|t| show::safe_text(t, 100))
+                .collect::<Vec<_>>()
+                .join(", ")
+        ));
+    }
+    out
 }
 
 /// Prints a holdout's released events.

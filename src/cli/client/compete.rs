@@ -1,4 +1,4 @@
-//! Competition commands: `leaderboard` (ladder holdouts), `ranking` (sealed rounds, after the
+//! Competition commands: `leaderboard` (ladder holdouts; best per team under the other rules), `ranking` (sealed rounds, after the
 //! close) and `duplicates` (organizers and auditors); and the reply to a sealed entry.
 //!
 //! Each prints text for people, one JSON object with `--json`, or CSV with `--csv` (one row per
@@ -54,10 +54,10 @@ fn csv_line(cells: &[String]) -> String {
         .join(",")
 }
 
-/// Prints a ladder leaderboard.
+/// Prints a ladder leaderboard, or the best per team under the other rules.
 ///
 /// # Errors
-/// Connection, permission and not-found failures; a holdout that is not a ladder.
+/// Connection, permission and not-found failures.
 pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     let conn = Conn::open(&args.server).await?;
     let b = conn
@@ -71,7 +71,7 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&leaderboard_json(&b));
     } else if args.csv {
-        println!("rank,team,best,lower,upper,submissions,improvements,best_at");
+        println!("rank,team,best,lower,upper,submissions,improvements,best_at,target,query");
         for r in &b.rows {
             let (lo, hi) = iv(r.interval.as_ref());
             println!(
@@ -85,11 +85,17 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     r.submissions.to_string(),
                     r.improvements.to_string(),
                     r.best_at.clone(),
+                    r.target.clone(),
+                    r.query.to_string(),
                 ])
             );
         }
     } else {
-        println!("leaderboard of {} (target {})", b.holdout, b.target);
+        if b.kind == "best-per-team" {
+            println!("best per team on {}", b.holdout);
+        } else {
+            println!("leaderboard of {} (target {})", b.holdout, b.target);
+        }
         if b.own_team_only {
             println!("(only your team's row: this leaderboard is shown in full to organizers)");
         }
@@ -246,7 +252,9 @@ pub fn sealed_json(e: &SealedEntry) -> Value {
 
 /// A sealed entry's receipt for people.
 pub fn sealed_text(e: &SealedEntry) -> String {
-    let mut s = format!("sealed entry {} (target {})", e.ticket, e.target);
+    // One number for a query everywhere: the reply, its receipt and the history all say
+    // "query N" (per team under `isolated`); the position in the round stays in --json.
+    let mut s = format!("sealed entry, query {} (target {})", e.query, e.target);
     if e.replayed {
         s.push_str(", already entered: nothing charged");
     }
@@ -275,10 +283,12 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
     json!({
         "holdout": b.holdout,
         "target": b.target,
+        "kind": b.kind,
         "own_team_only": b.own_team_only,
         "rows": b.rows.iter().map(|r| {
             let (lo, hi) = iv(r.interval.as_ref());
-            json!({"rank": r.rank, "team": r.team, "best": r.best, "lower": lo, "upper": hi,
+            json!({"rank": r.rank, "team": r.team, "target": r.target, "query": r.query,
+                   "best": r.best, "lower": lo, "upper": hi,
                    "submissions": r.submissions, "improvements": r.improvements,
                    "best_at": r.best_at})
         }).collect::<Vec<Value>>(),
@@ -287,8 +297,38 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
     })
 }
 
-/// A ladder leaderboard's rows as a table for people (without its statement and guarantee).
+/// A leaderboard's rows as a table for people (without its statement and guarantee).
 pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
+    if b.kind == "best-per-team" {
+        let rows: Vec<Vec<String>> = b
+            .rows
+            .iter()
+            .map(|r| {
+                let (lo, hi) = iv(r.interval.as_ref());
+                vec![
+                    r.target.clone(),
+                    r.rank.to_string(),
+                    r.team.clone(),
+                    format!("query {}", r.query),
+                    opt(r.best),
+                    show::interval_text(lo, hi),
+                    r.submissions.to_string(),
+                ]
+            })
+            .collect();
+        return show::table(
+            &[
+                "target",
+                "rank",
+                "team",
+                "best answer",
+                "score",
+                "interval for its true error",
+                "answered",
+            ],
+            &rows,
+        );
+    }
     let rows: Vec<Vec<String>> = b
         .rows
         .iter()

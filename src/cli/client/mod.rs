@@ -73,7 +73,8 @@ pub enum ClientCommand {
     /// (custodian and organizer: the first records a request, the other completes it; one call
     /// if you hold both roles). Refused once anything was answered or sealed.
     Withdraw(admin::WithdrawArgs),
-    /// Ladder holdouts: each team's best so far with the interval for its best true error.
+    /// Each team's best: on a ladder its best so far with the interval for its best true
+    /// error; under other rules its released answer with the lowest upper limit per target.
     Leaderboard(compete::BoardArgs),
     /// Sealed rounds, once closed: the ranking, with paired comparisons between neighbours.
     Ranking(compete::BoardArgs),

@@ -182,6 +182,32 @@ pub fn budget_text(b: &Budget) -> String {
     s
 }
 
+/// The budget for people when delta may be split into per-team shares: the holdout's delta on
+/// its own line, then the caller's team's share (`budget_of`); with no share of its own
+/// (`no_share`, an organizer outside the roster) no pool's figures at all, since a pool of
+/// nobody ("spent 0 of delta 0 ... half-width 1") describes nothing. With one pool (both
+/// empty) it is [`budget_text`].
+pub fn budget_of_text(b: &Budget, budget_of: &str, no_share: bool, holdout_delta: f64) -> String {
+    if no_share {
+        return format!(
+            "delta      {} for the whole holdout, split into per-team shares\n\
+             budget     your team has no share of it; each team's status shows its own\n\
+             queries    {}",
+            num(holdout_delta),
+            if b.open { "open" } else { "closed" }
+        );
+    }
+    if budget_of.is_empty() {
+        return budget_text(b);
+    }
+    format!(
+        "delta      {} for the whole holdout, split into per-team shares; below: team {}'s share\n{}",
+        num(holdout_delta),
+        safe_text(budget_of, 100),
+        budget_text(b).replacen("of delta", "of its share", 1)
+    )
+}
+
 /// A receipt for people: the holdout, the query number and the entry's hash.
 pub fn receipt_text(r: &Receipt) -> String {
     if r.query > 0 {
@@ -268,6 +294,35 @@ pub fn answer_text_with(a: &Answer, model_names: &[String], full_guarantee: bool
         }
     }
     s
+}
+
+/// The bound `B` of a regression metric (`abs_error:B`, `sq_error:B`) with the words for its
+/// mean loss, or `None` for metrics whose scale is already the reader's (error, brier...).
+pub fn target_scale(metric: &str) -> Option<(f64, &'static str)> {
+    let (name, bound) = metric.split_once(':')?;
+    let words = match name {
+        "abs_error" => "mean absolute error",
+        "sq_error" => "mean squared error",
+        _ => return None,
+    };
+    let b: f64 = bound.trim().parse().ok()?;
+    (b.is_finite() && b > 0.0).then_some((b, words))
+}
+
+/// For a regression target, the answer in the target's own units: the ledger, the symbol and
+/// the `[0, 1]` interval are the mean of the loss divided by `B` (each row's loss capped at
+/// `B`); multiplied back by `B` they read as a mean absolute (or squared) error, the interval
+/// rounded outward. `None` for other metrics.
+pub fn units_line(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
+    let (b, words) = target_scale(metric)?;
+    let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+    Some(format!(
+        "in units   {words} {score}{} (the [0, 1] figures above are that mean with each row \
+         capped at {}, divided by {})",
+        interval_text(lower * b, upper * b),
+        num(b),
+        num(b)
+    ))
 }
 
 /// An answer for people, with the holdout's guarantee in full.
@@ -449,6 +504,8 @@ pub fn holdout_json(h: &HoldoutInfo) -> Value {
         "policy": h.policy.as_ref().map_or(Value::Null, policy_json),
         "targets": h.targets.iter().map(target_json).collect::<Vec<_>>(),
         "budget": h.budget.as_ref().map_or(Value::Null, budget_json),
+        "budget_of": h.budget_of,
+        "no_share": h.no_share,
         "genesis_hash": h.genesis_hash,
         "guarantee": h.guarantee,
         "withdrawn_at": (!h.withdrawn_at.is_empty()).then_some(&h.withdrawn_at),
@@ -492,7 +549,8 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
     s.push_str(&format!("genesis    {}", h.genesis_hash));
     if let Some(b) = &h.budget {
         s.push('\n');
-        s.push_str(&budget_text(b));
+        let delta = h.policy.as_ref().map_or(b.delta, |p| p.delta);
+        s.push_str(&budget_of_text(b, &h.budget_of, h.no_share, delta));
     }
     if !h.guarantee.is_empty() {
         s.push_str("\n\n");

@@ -288,7 +288,20 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&show::answer_json(&a, &names));
             } else {
-                println!("{}", show::answer_text_with(&a, &names, args.guarantee));
+                let mut text = show::answer_text_with(&a, &names, args.guarantee);
+                if let (Some(i), Some(line)) = (
+                    a.interval.as_ref(),
+                    a.interval
+                        .as_ref()
+                        .and_then(|i| show::units_line(&target.metric, a.score, i.lower, i.upper)),
+                ) {
+                    // Right after the interval line.
+                    let at = format!("\ninterval   {}", show::interval_text(i.lower, i.upper));
+                    if let Some(pos) = text.find(&at) {
+                        text.insert_str(pos + at.len(), &format!("\n{line}"));
+                    }
+                }
+                println!("{text}");
             }
             if args.require_pass && a.symbol == "fail" {
                 eprintln!(
@@ -353,17 +366,59 @@ fn read_predictions(
     let spec = TableSpec::new(&input.id_column, [input.prediction_column.as_str()])
         .max_bytes(input.max_file_bytes)
         .max_rows(rows, format!("holdout {holdout}"));
+    read_encoded(path, &spec, target).map_err(|e| labels_header_hint(e, input, target))
+}
+
+/// A predictions file written like the labels file (`id,label`) is refused, not read: the
+/// column a file is scored on is named, never guessed, so a labels file sent by mistake (or a
+/// file whose `label` column means something else) is not scored. The refusal says how to fix
+/// it.
+fn labels_header_hint(
+    e: crate::error::Error,
+    input: &PredictionArgs,
+    target: &Target,
+) -> crate::error::Error {
+    use crate::error::Error;
+    let missing = format!("no column `{}`;", input.prediction_column);
+    match e {
+        Error::InvalidArgument { field, message } if message.starts_with(&missing) => {
+            let names: Vec<&str> = message
+                .split_once("the header has: ")
+                .map_or(Vec::new(), |(_, h)| h.split(", ").collect());
+            let like_labels = [target.column.as_str(), "label", &target.name]
+                .into_iter()
+                .find(|c| !c.is_empty() && names.contains(c));
+            let hint = match like_labels {
+                Some(c) => format!(
+                    " (this header looks like the labels file's; predictions are read from a \
+                     column named `{}`: rename `{c}` to `{}`, or pass --prediction-column {c})",
+                    input.prediction_column, input.prediction_column
+                ),
+                None => " (name the predictions column `prediction`, or pass \
+                         --prediction-column NAME)"
+                    .to_string(),
+            };
+            Error::InvalidArgument {
+                field,
+                message: format!("{message}{hint}"),
+            }
+        }
+        other => other,
+    }
+}
+
+fn read_encoded(path: &Path, spec: &TableSpec, target: &Target) -> crate::error::Result<Encoded> {
     Ok(match form(target) {
         Form::Indices => {
-            let c = files::read_column(path, &spec, class_index(target))?;
+            let c = files::read_column(path, spec, class_index(target))?;
             Encoded::ClassIndices(c.ids, c.values)
         }
         Form::Names => {
-            let c = files::read_column(path, &spec, |v, _| Ok(v.to_string()))?;
+            let c = files::read_column(path, spec, |v, _| Ok(v.to_string()))?;
             Encoded::ClassNames(c.ids, c.values)
         }
         Form::Numbers => {
-            let c = files::read_column(path, &spec, number(target))?;
+            let c = files::read_column(path, spec, number(target))?;
             Encoded::Values(c.ids, c.values)
         }
     })

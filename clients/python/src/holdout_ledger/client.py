@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import os
 from pathlib import Path
-from typing import Any, Iterator, List, Optional, Sequence, Union
+from typing import Any, Iterator, List, Optional, Sequence, Tuple, Union
 
 import grpc
 
@@ -13,20 +13,26 @@ from .errors import BudgetRefused, HoldoutError, InvalidInput, Unreachable, from
 from .types import (
     Answer,
     Declaration,
+    Duplicate,
     HistoryEntry,
     HoldoutInfo,
     Leaderboard,
     Quote,
+    Ranking,
     Refusal,
+    SealedEntry,
     Status,
     Target,
     Validation,
     _answer,
+    _duplicates,
     _history_entry,
     _holdout_info,
     _leaderboard,
     _quote,
+    _ranking,
     _refusal,
+    _sealed,
     _status,
     _target,
 )
@@ -185,7 +191,9 @@ class Client:
 
     def status(self, holdout: str) -> Status:
         """Budget position of a holdout as the caller may see it: spent, remaining, answered,
-        refused, next half-width, queries left, and the guarantee sentence."""
+        refused, next half-width, queries left, and the guarantee sentence; heavy-probing flags;
+        for a sealed round its entries per team, each team's selected entry and the declared
+        teams without an entry (``Status.round``)."""
         return _status(self._unary(self._submissions.GetStatus, _s.StatusRequest(holdout=holdout)))
 
     def history(self, holdout: str, exact: bool = False) -> List[HistoryEntry]:
@@ -199,10 +207,26 @@ class Client:
         return [_history_entry(m) for m in self._stream(self._submissions.History, req)]
 
     def leaderboard(self, holdout: str) -> Leaderboard:
-        """The ladder leaderboard of a ``ladder:ETA`` holdout: each team's shown best with its
-        interval, ranked (only the caller's row when the board is for organizers only)."""
+        """Each team's best, ranked: on a ``ladder:ETA`` holdout the team's shown best with its
+        interval; under every other rule the best per team, each team's released answer with
+        the lowest upper limit per target (a sealed round's only after its close). Only the
+        caller's row when the board is for organizers only."""
         req = _s.LeaderboardRequest(holdout=holdout)
         return _leaderboard(self._unary(self._submissions.Leaderboard, req))
+
+    def ranking(self, holdout: str) -> Ranking:
+        """The ranking of a closed sealed round with the paired comparisons between neighbours.
+
+        Raises:
+            StateConflict: the round has not closed (nothing about its entries is released).
+        """
+        req = _s.RankingRequest(holdout=holdout)
+        return _ranking(self._unary(self._submissions.Ranking, req))
+
+    def duplicates(self, holdout: str) -> Tuple[Duplicate, ...]:
+        """Prediction digests submitted by more than one team (organizers and auditors)."""
+        req = _s.DuplicatesRequest(holdout=holdout)
+        return _duplicates(self._unary(self._submissions.Duplicates, req))
 
     # -- submissions ------------------------------------------------------------------------
 
@@ -255,9 +279,11 @@ class Client:
     def submit(self, holdout: str, predictions: Any, ids: Optional[Sequence[Any]] = None, *,
                target: Optional[str] = None, id_column: str = "id",
                prediction_column: str = "prediction", note: str = "", request_id: str = "",
-               max_cost: Optional[float] = None, raise_on_refusal: bool = True
-               ) -> Union[Answer, Refusal]:
-        """Submits predictions for scoring: one answer, charged against the holdout's budget.
+               max_cost: Optional[float] = None, raise_on_refusal: bool = True,
+               final: bool = False) -> Union[Answer, Refusal, SealedEntry]:
+        """Submits predictions for scoring: one answer, charged against the holdout's budget;
+        on a sealed round a sealed entry (:class:`SealedEntry`, nothing about its score until
+        the close).
 
         Args:
             holdout: holdout name.
@@ -272,9 +298,12 @@ class Client:
                 would exceed this many nats.
             raise_on_refusal: when False a refusal is returned as a :class:`Refusal` instead
                 of raised.
+            final: on a sealed round, mark this entry as the team's selected entry (the one
+                the close ranks; without any mark the team's latest entry is ranked).
 
         Returns:
-            The :class:`Answer` (symbol, score, interval, level, budget, receipt, guarantee).
+            The :class:`Answer` (symbol, score, interval, level, budget, receipt, guarantee),
+            or on a sealed round the :class:`SealedEntry`.
 
         Raises:
             BudgetRefused: the daemon refused (budget spent, tolerance, quota, closed,
@@ -285,7 +314,7 @@ class Client:
             raise InvalidInput(f"max_cost must be a positive number of nats, got {max_cost}")
         out = self._send(holdout, [predictions], [ids], target, id_column, prediction_column,
                          mode=_s.SUBMIT_MODE_ANSWER, note=note, request_id=request_id,
-                         max_cost=max_cost)
+                         max_cost=max_cost, mark_final=final)
         return self._answer_or_refusal(out, raise_on_refusal)
 
     def submit_batch(self, holdout: str, predictions: Sequence[Any],
@@ -309,10 +338,12 @@ class Client:
         return self._answer_or_refusal(out, raise_on_refusal)
 
     @staticmethod
-    def _answer_or_refusal(out, raise_on_refusal: bool) -> Union[Answer, Refusal]:
+    def _answer_or_refusal(out, raise_on_refusal: bool) -> Union[Answer, Refusal, SealedEntry]:
         kind = out.WhichOneof("outcome")
         if kind == "answer":
             return _answer(out.answer)
+        if kind == "sealed":
+            return _sealed(out.sealed)
         if kind == "refusal":
             refusal = _refusal(out.refusal)
             if raise_on_refusal:
@@ -339,7 +370,8 @@ class Client:
         )
 
     def _send(self, holdout, predictions_list, ids_list, target, id_column, prediction_column, *,
-              mode, note="", request_id="", max_cost=None, model_names=None, resolved=None):
+              mode, note="", request_id="", max_cost=None, model_names=None, resolved=None,
+              mark_final=False):
         t = resolved or self._target(holdout, target)
         cache: List[List[str]] = []
 
@@ -367,6 +399,7 @@ class Client:
             models=len(models),
             model_names=list(model_names or ["python"] * len(models)),
             expected_rows=len(models[0][0]),
+            mark_final=mark_final,
         )
 
         def chunks() -> Iterator[Any]:

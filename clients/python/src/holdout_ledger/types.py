@@ -158,13 +158,55 @@ class Policy:
 
 
 @dataclass(frozen=True)
+class RoundTeam:
+    """One team's entries on one target of a sealed round: how many, and which one the close
+    ranks (``selected``, a query number as its reply, receipt and history give it: the team's
+    latest marked entry, else its latest; ``marked`` says which). Nothing about a score."""
+
+    team: str
+    target: str
+    entries: int
+    selected: int
+    marked: bool
+
+
+@dataclass(frozen=True)
+class RoundStatus:
+    """A sealed round's entries per team. ``not_submitted`` names the declared (roster) teams
+    without an entry; under ``isolated`` an analyst sees its own team only
+    (``own_team_only``) and not who else has entered."""
+
+    teams: Tuple[RoundTeam, ...]
+    not_submitted: Tuple[str, ...]
+    closed: bool
+    own_team_only: bool
+
+
+@dataclass(frozen=True)
+class ProbeFlag:
+    """A team flagged for heavy probing (``kind``: ``transcript-share`` or
+    ``near-duplicates``), with what was seen in words."""
+
+    team: str
+    kind: str
+    detail: str
+
+
+@dataclass(frozen=True)
 class Status:
-    """Budget position of a holdout as the caller may see it."""
+    """Budget position of a holdout as the caller may see it; for a sealed round also its
+    entries per team (``round``, None for other holdouts)."""
 
     holdout: str
     budget: Budget
     guarantee: str
     policy: Policy
+    round: Optional[RoundStatus] = None
+    flags: Tuple[ProbeFlag, ...] = field(default_factory=tuple)
+    #: Under per-team shares, whose share ``budget`` is (empty: the holdout's one pool).
+    budget_of: str = ""
+    #: True when the caller's team has no share: ``budget`` then describes no pool.
+    no_share: bool = False
 
 
 @dataclass(frozen=True)
@@ -215,9 +257,11 @@ class Declaration:
 
 @dataclass(frozen=True)
 class LeaderboardRow:
-    """One team's row of a ladder leaderboard: ``best`` is the team's shown best on the grid
-    (None before its first release), ``interval`` covers the smallest true error among the
-    team's submissions."""
+    """One team's row. On a ladder (``Leaderboard.kind == "ladder"``): ``best`` is the team's
+    shown best on the grid (None before its first release), ``interval`` covers the smallest
+    true error among the team's submissions. Best per team (every other rule): the team's
+    released answer with the lowest upper limit on ``target``, its score (``best``), interval
+    and query number (``query``); ``rank`` counts within the target."""
 
     rank: int
     team: str
@@ -226,12 +270,16 @@ class LeaderboardRow:
     submissions: int
     improvements: int
     best_at: str
+    target: str = ""
+    query: int = 0
 
 
 @dataclass(frozen=True)
 class Leaderboard:
-    """A ladder holdout's leaderboard, ranked. ``own_team_only`` is True when the policy shows
-    the full board to organizers only and the caller sees just its team's row."""
+    """Each team's best, ranked: a ladder leaderboard (``kind == "ladder"``) or, under every
+    other rule, the best per team (``kind == "best-per-team"``). ``own_team_only`` is True
+    when the policy shows the full board to organizers only and the caller sees just its
+    team's row."""
 
     holdout: str
     target: str
@@ -239,6 +287,84 @@ class Leaderboard:
     statement: str
     guarantee: str
     own_team_only: bool
+    kind: str = "ladder"
+
+
+@dataclass(frozen=True)
+class SealedEntry:
+    """The receipt of a sealed entry (``submit(..., final=True)`` or any entry of a sealed
+    round): nothing about its score until the round closes. ``query`` is its number as its
+    receipt and history give it; ``marked`` whether it is the team's selected entry."""
+
+    query: int
+    ticket: int
+    target: str
+    delta_i: float
+    level_nats: float
+    receipt: Receipt
+    digest: str
+    marked: bool
+    closes_at: str
+    statement: str
+    guarantee: str
+    replayed: bool
+
+
+@dataclass(frozen=True)
+class RankedEntry:
+    """One entry of a closed round's ranking (ranks count within ``target``)."""
+
+    rank: int
+    team: str
+    ticket: int
+    score: Optional[float]
+    interval: Interval
+    digest: str
+    target: str
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """The paired comparison of two neighbours (by ticket): ``difference`` is an interval for
+    R(ahead) - R(behind); ``distinguishable`` when it excludes 0."""
+
+    ahead: int
+    behind: int
+    difference: Interval
+    level_nats: float
+    distinguishable: bool
+    target: str
+
+
+@dataclass(frozen=True)
+class Ranking:
+    """A closed sealed round's ranking with the comparisons between neighbours."""
+
+    holdout: str
+    closed_at: str
+    trigger: str
+    entries: Tuple[RankedEntry, ...]
+    comparisons: Tuple[Comparison, ...]
+    statement: str
+    guarantee: str
+
+
+@dataclass(frozen=True)
+class DuplicateEntry:
+    """One ledger entry carrying a duplicated prediction digest."""
+
+    entry: int
+    team: str
+    user: str
+
+
+@dataclass(frozen=True)
+class Duplicate:
+    """A prediction digest submitted by more than one team."""
+
+    digest: str
+    teams: Tuple[str, ...]
+    entries: Tuple[DuplicateEntry, ...]
 
 
 # -- conversions from the generated protobuf messages -------------------------------------------
@@ -344,8 +470,78 @@ def _holdout_info(m) -> HoldoutInfo:
 
 
 def _status(m) -> Status:
+    round_ = None
+    if m.HasField("round"):
+        round_ = RoundStatus(
+            teams=tuple(
+                RoundTeam(team=t.team, target=t.target, entries=t.entries, selected=t.selected,
+                          marked=t.marked)
+                for t in m.round.teams
+            ),
+            not_submitted=tuple(m.round.not_submitted),
+            closed=m.round.closed,
+            own_team_only=m.round.own_team_only,
+        )
     return Status(
-        holdout=m.holdout, budget=_budget(m.budget), guarantee=m.guarantee, policy=_policy(m.policy)
+        holdout=m.holdout, budget=_budget(m.budget), guarantee=m.guarantee,
+        policy=_policy(m.policy), round=round_, budget_of=m.budget_of, no_share=m.no_share,
+        flags=tuple(ProbeFlag(team=f.team, kind=f.kind, detail=f.detail) for f in m.flags),
+    )
+
+
+def _sealed(m) -> SealedEntry:
+    return SealedEntry(
+        query=m.query,
+        ticket=m.ticket,
+        target=m.target,
+        delta_i=m.delta_i,
+        level_nats=m.level_nats,
+        receipt=_receipt(m.receipt),
+        digest=m.digest,
+        marked=m.marked,
+        closes_at=m.closes_at,
+        statement=m.statement,
+        guarantee=m.guarantee,
+        replayed=m.replayed,
+    )
+
+
+def _ranking(m) -> Ranking:
+    return Ranking(
+        holdout=m.holdout,
+        closed_at=m.closed_at,
+        trigger=m.trigger,
+        entries=tuple(
+            RankedEntry(
+                rank=e.rank, team=e.team, ticket=e.ticket,
+                score=e.score if e.HasField("score") else None,
+                interval=Interval(e.interval.lower, e.interval.upper), digest=e.digest,
+                target=e.target,
+            )
+            for e in m.entries
+        ),
+        comparisons=tuple(
+            Comparison(
+                ahead=c.ahead, behind=c.behind,
+                difference=Interval(c.difference.lower, c.difference.upper),
+                level_nats=c.level_nats, distinguishable=c.distinguishable, target=c.target,
+            )
+            for c in m.comparisons
+        ),
+        statement=m.statement,
+        guarantee=m.guarantee,
+    )
+
+
+def _duplicates(m) -> Tuple[Duplicate, ...]:
+    return tuple(
+        Duplicate(
+            digest=d.digest,
+            teams=tuple(d.teams),
+            entries=tuple(DuplicateEntry(entry=e.entry, team=e.team, user=e.user)
+                          for e in d.entries),
+        )
+        for d in m.duplicates
     )
 
 
@@ -376,10 +572,13 @@ def _leaderboard(m) -> Leaderboard:
                 submissions=r.submissions,
                 improvements=r.improvements,
                 best_at=r.best_at,
+                target=r.target,
+                query=r.query,
             )
             for r in m.rows
         ),
         statement=m.statement,
         guarantee=m.guarantee,
         own_team_only=m.own_team_only,
+        kind=m.kind or "ladder",
     )
