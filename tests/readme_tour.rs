@@ -9,21 +9,30 @@
 //! command of the tour does; and the lines the README shows as output are checked against what
 //! the commands really print (timestamps and hashes are not shown there, so nothing is masked;
 //! a line the README shortens with `...` is checked as a prefix).
+//!
+//! The same is done for the small competition of "Serving every team" (between the
+//! `<!-- recipe:begin -->` and `<!-- recipe:end -->` markers): 2,000 rows and five teams, each
+//! of them answered and ranked.
 
 use std::io::Write;
 use std::net::TcpListener;
 use std::path::Path;
 use std::process::Command;
 
-/// The `sh` blocks of the tour, in order.
-fn tour_blocks(readme: &str) -> Vec<String> {
+/// The part of the README between `<!-- NAME:begin -->` and `<!-- NAME:end -->`.
+fn region<'a>(readme: &'a str, name: &str) -> &'a str {
     let begin = readme
-        .find("<!-- tour:begin -->")
-        .expect("README has a tour:begin marker");
+        .find(&format!("<!-- {name}:begin -->"))
+        .unwrap_or_else(|| panic!("README has a {name}:begin marker"));
     let end = readme
-        .find("<!-- tour:end -->")
-        .expect("README has a tour:end marker");
-    let tour = &readme[begin..end];
+        .find(&format!("<!-- {name}:end -->"))
+        .unwrap_or_else(|| panic!("README has a {name}:end marker"));
+    &readme[begin..end]
+}
+
+/// The `sh` blocks of a region, in order.
+fn sh_blocks(readme: &str, name: &str) -> Vec<String> {
+    let tour = region(readme, name);
     let mut blocks = Vec::new();
     let mut rest = tour;
     while let Some(i) = rest.find("```sh\n") {
@@ -35,12 +44,10 @@ fn tour_blocks(readme: &str) -> Vec<String> {
     blocks
 }
 
-/// The `text` blocks of the tour (what the README says the commands print).
-fn shown_output(readme: &str) -> Vec<String> {
-    let begin = readme.find("<!-- tour:begin -->").unwrap();
-    let end = readme.find("<!-- tour:end -->").unwrap();
+/// The `text` blocks of a region (what the README says the commands print).
+fn shown_output(readme: &str, name: &str) -> Vec<String> {
     let mut lines = Vec::new();
-    let mut rest = &readme[begin..end];
+    let mut rest = region(readme, name);
     while let Some(i) = rest.find("```text\n") {
         let body = &rest[i + 8..];
         let j = body.find("```").unwrap();
@@ -58,22 +65,35 @@ fn free_port() -> u16 {
         .port()
 }
 
-#[test]
-fn the_readme_tour_runs_as_written() {
+/// Runs the `sh` blocks of region `name` as one bash script in an empty directory (the daemon
+/// started by `serve`, a line of the blocks, on a free port), checks that it succeeds and that
+/// every output line the region shows was printed; returns the directory and what was printed.
+fn run_region(
+    name: &str,
+    serve: &str,
+    min_blocks: usize,
+    min_lines: usize,
+) -> (tempfile::TempDir, String) {
     let readme = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md"))
         .expect("read README.md");
-    let blocks = tour_blocks(&readme);
-    assert!(blocks.len() >= 6, "the tour has {} sh blocks", blocks.len());
-    let serve = "holdout serve --db ledger.db &";
+    let blocks = sh_blocks(&readme, name);
+    assert!(
+        blocks.len() >= min_blocks,
+        "the {name} has {} sh blocks",
+        blocks.len()
+    );
     let script_body = blocks.join("\n");
     assert_eq!(
         script_body.matches(serve).count(),
         1,
-        "the tour starts the daemon once, as `{serve}`"
+        "the {name} starts the daemon once, as `{serve}`"
     );
     let port = free_port();
+    let db = serve
+        .trim_start_matches("holdout serve ")
+        .trim_end_matches(" &");
     let started = format!(
-        "holdout serve --db ledger.db --listen 127.0.0.1:{port} 2>serve.log &\n\
+        "holdout serve {db} --listen 127.0.0.1:{port} 2>serve.log &\n\
          SERVE_PID=$!\n\
          trap 'kill $SERVE_PID 2>/dev/null' EXIT\n\
          for _ in $(seq 200); do (exec 3<>/dev/tcp/127.0.0.1/{port}) 2>/dev/null && break; \
@@ -85,7 +105,7 @@ fn the_readme_tour_runs_as_written() {
     );
 
     let dir = tempfile::tempdir().unwrap();
-    let path = dir.path().join("tour.sh");
+    let path = dir.path().join(format!("{name}.sh"));
     std::fs::File::create(&path)
         .unwrap()
         .write_all(script.as_bytes())
@@ -108,7 +128,7 @@ fn the_readme_tour_runs_as_written() {
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(
         out.status.success(),
-        "the tour failed ({}):\n--- script\n{script}\n--- stdout\n{stdout}\n--- stderr\n{stderr}",
+        "the {name} failed ({}):\n--- script\n{script}\n--- stdout\n{stdout}\n--- stderr\n{stderr}",
         out.status
     );
 
@@ -118,7 +138,7 @@ fn the_readme_tour_runs_as_written() {
     let printed = format!("{stdout}\n{stderr}");
     let printed_lines: Vec<&str> = printed.lines().map(str::trim_end).collect();
     let mut checked = 0;
-    for line in shown_output(&readme) {
+    for line in shown_output(&readme, name) {
         let line = line.trim_end();
         if line.is_empty() || line == "..." {
             continue;
@@ -131,12 +151,47 @@ fn the_readme_tour_runs_as_written() {
         };
         assert!(
             found,
-            "the README shows `{line}`, which the tour did not print:\n{printed}"
+            "the README shows `{line}`, which the {name} did not print:\n{printed}"
         );
         checked += 1;
     }
-    assert!(checked >= 20, "only {checked} output lines were checked");
+    assert!(
+        checked >= min_lines,
+        "only {checked} output lines were checked"
+    );
+    (dir, printed)
+}
+
+#[test]
+fn the_readme_tour_runs_as_written() {
+    let (dir, _) = run_region("tour", "holdout serve --db ledger.db &", 6, 20);
     // The chart the README shows was made.
     let png = std::fs::read(dir.path().join("feedback.png")).expect("feedback.png written");
     assert!(png.starts_with(b"\x89PNG"), "feedback.png is a PNG");
+}
+
+/// The small competition of "Serving every team": 2,000 rows, five teams, as written; every
+/// team is answered on the feedback holdout and ranked in the final round.
+#[test]
+fn the_readme_small_competition_serves_every_team() {
+    let (_dir, printed) = run_region("recipe", "holdout serve --db cup.db &", 1, 10);
+    for team in ["ash", "birch", "cedar", "dune", "elm"] {
+        assert!(
+            printed
+                .lines()
+                .any(|l| l.split_whitespace().nth(1) == Some(team) && l.contains("[0.")),
+            "team {team} has no leaderboard row:\n{printed}"
+        );
+        assert!(
+            printed
+                .lines()
+                .any(|l| l.starts_with("label ") && l.split_whitespace().nth(2) == Some(team)),
+            "team {team} was not ranked:\n{printed}"
+        );
+    }
+    // A refusal prints a line starting "refused (REASON)".
+    assert!(
+        !printed.lines().any(|l| l.starts_with("refused")),
+        "a submission was refused:\n{printed}"
+    );
 }
