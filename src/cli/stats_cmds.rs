@@ -62,8 +62,9 @@ pub struct PlanArgs {
     /// Number of queries wanted; gives the rows needed instead.
     #[arg(long)]
     pub queries: Option<u64>,
-    /// Total FAILURE probability of the holdout, e.g. 0.05 (not the confidence 0.95).
-    #[arg(long)]
+    /// Total FAILURE probability of the holdout, e.g. 0.05 (not the confidence 0.95); the
+    /// default is `create`'s.
+    #[arg(long, default_value_t = 0.05)]
     pub delta: f64,
     /// Widest half-width still worth answering, e.g. 0.02.
     #[arg(long)]

@@ -210,11 +210,14 @@ impl Engine {
                 return Err(Error::invalid(
                     "policy",
                     format!(
-                        "it affords {} answers{whom} within the tolerance {} at worst case on \
-                         {n} rows, fewer than the {expect} expected; nothing was sealed and the \
-                         labels stay free. Widen --tolerance, add rows, or pick a rule, schedule \
-                         or shares that fit (`holdout plan --rows {n} --tolerance {}`)",
-                        fresh.queries_left, head.policy.tolerance, head.policy.tolerance
+                        "it affords {} answer{}{whom} within the tolerance {} at worst case \
+                         on {n} rows, fewer than the {expect} expected; nothing was sealed and \
+                         the labels stay free. Widen --tolerance, add rows, or pick a rule, \
+                         schedule or shares that fit (`holdout plan --rows {n} --tolerance {}`)",
+                        fresh.queries_left,
+                        if fresh.queries_left == 1 { "" } else { "s" },
+                        head.policy.tolerance,
+                        head.policy.tolerance
                     ),
                 ));
             }
