@@ -350,4 +350,15 @@ fn a_sealed_round_through_the_cli() {
     assert!(text.contains("told apart"), "{text}");
     let csv = d.run(&red, &["ranking", "final", "--csv"]).ok().stdout;
     assert_eq!(csv.lines().count(), 4, "{csv}");
+    // One numbering: the ranking names each entry by the query number of its reply (red's
+    // entry was query 1, blue's query 2, green's query 3), not by its position in the round.
+    assert_eq!(entries[0]["query"], 1, "{ranking}");
+    assert!(csv.starts_with("rank,team,query,"), "{csv}");
+    let mut queries: Vec<&str> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').nth(2).unwrap())
+        .collect();
+    queries.sort();
+    assert_eq!(queries, ["1", "2", "3"], "{csv}");
 }

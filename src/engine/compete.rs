@@ -231,6 +231,9 @@ pub struct Ranking {
     pub trigger: String,
     /// Entries, best first.
     pub entries: Vec<RankedEntry>,
+    /// Each entry's query number (as its reply, receipt and history number it), in the order
+    /// of `entries`.
+    pub queries: Vec<u64>,
     /// Neighbour comparisons, top first.
     pub comparisons: Vec<Comparison>,
     /// What the comparisons certify.
@@ -822,11 +825,21 @@ impl Engine {
         let r: RoundRecord = serde_json::from_str(&body)
             .map_err(|e| Error::Internal(format!("round entry: {e}")))?;
         let per_target = r.ranking.iter().any(|e| e.target.is_some());
+        let queries = r
+            .ranking
+            .iter()
+            .map(|e| {
+                r.answers
+                    .get(e.ticket as usize)
+                    .map_or(e.ticket + 1, |a| a.query)
+            })
+            .collect();
         Ok(Ranking {
             holdout: r.holdout,
             closed_at: r.at,
             trigger: r.trigger,
             entries: r.ranking,
+            queries,
             comparisons: r.comparisons,
             statement: format!(
                 "Each comparison is an interval for R(ahead) - R(behind), the difference of the \

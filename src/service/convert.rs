@@ -184,10 +184,12 @@ pub(crate) fn ranking(r: &Ranking) -> pb::RankingResponse {
         entries: r
             .entries
             .iter()
-            .map(|e| pb::RankedEntry {
+            .zip(&r.queries)
+            .map(|(e, &query)| pb::RankedEntry {
                 rank: e.rank,
                 team: e.team.clone(),
                 ticket: e.ticket,
+                query,
                 score: e.score,
                 interval: interval(e.lower, e.upper),
                 digest: e.digest.clone(),

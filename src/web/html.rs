@@ -400,7 +400,7 @@ pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, S
                 esc(&r.trigger)
             );
             b.push_str(
-                "<table><thead><tr><th class=\"n\">rank</th><th>team</th><th class=\"n\">ticket\
+                "<table><thead><tr><th class=\"n\">rank</th><th>team</th><th class=\"n\">query\
                  </th><th class=\"n\">score</th><th>interval</th><th>minus the next rank</th>\
                  </tr></thead><tbody>\n",
             );
@@ -432,7 +432,7 @@ pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, S
                     "<tr><td class=\"n\">{rank}</td><td>{}</td><td class=\"n\">{}</td>\
                      <td class=\"n\">{}</td><td>{}</td><td>{}</td></tr>",
                     esc(&e.team),
-                    e.ticket,
+                    e.query,
                     e.score.map_or("&ndash;".to_string(), num),
                     interval_text(iv.lower, iv.upper),
                     vs

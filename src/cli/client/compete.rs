@@ -124,7 +124,7 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&ranking_json(&r));
     } else if args.csv {
-        println!("rank,team,ticket,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
+        println!("rank,team,query,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
         for e in &r.entries {
             let (lo, hi) = iv(e.interval.as_ref());
             let (clo, chi, apart) =
@@ -137,7 +137,7 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                 csv_line(&[
                     e.rank.to_string(),
                     e.team.clone(),
-                    e.ticket.to_string(),
+                    e.query.to_string(),
                     e.score.map(|x| x.to_string()).unwrap_or_default(),
                     lo.to_string(),
                     hi.to_string(),
@@ -369,7 +369,8 @@ pub fn ranking_json(r: &RankingResponse) -> Value {
         "trigger": r.trigger,
         "entries": r.entries.iter().map(|e| {
             let (lo, hi) = iv(e.interval.as_ref());
-            json!({"rank": e.rank, "team": e.team, "ticket": e.ticket, "score": e.score,
+            json!({"rank": e.rank, "team": e.team, "query": e.query, "ticket": e.ticket,
+                   "score": e.score,
                    "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
         }).collect::<Vec<Value>>(),
         "comparisons": r.comparisons.iter().map(|c| {

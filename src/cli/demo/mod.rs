@@ -641,12 +641,12 @@ async fn final_entries(out: &Out, squads: &[Squad], s: &Shipments) -> anyhow::Re
         match rpc::submit(&squad.conn, "final-round", s, &says_late, &note, true).await? {
             Reply::Sealed(e) => {
                 out.say(format!(
-                    "   {} ({}) entered {file}: sealed entry {}, nothing released (true error \
+                    "   {} ({}) entered {file}: sealed entry, query {}, nothing released (true error \
                      {truth:.3}, known to the demo only)",
-                    squad.user, squad.team, e.ticket
+                    squad.user, squad.team, e.query
                 ));
                 entries.push(json!({"user": squad.user, "team": squad.team, "file": file,
-                                    "ticket": e.ticket, "true_error": truth}));
+                                    "query": e.query, "true_error": truth}));
             }
             Reply::Refusal(r) => bail!("the final round refused an entry: {}", r.message),
             Reply::Answer(_) => bail!("a sealed round answered before its close"),

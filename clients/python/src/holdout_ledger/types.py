@@ -321,6 +321,7 @@ class RankedEntry:
     interval: Interval
     digest: str
     target: str
+    query: int = 0  # as its reply, receipt and history number it
 
 
 @dataclass(frozen=True)
@@ -516,7 +517,7 @@ def _ranking(m) -> Ranking:
                 rank=e.rank, team=e.team, ticket=e.ticket,
                 score=e.score if e.HasField("score") else None,
                 interval=Interval(e.interval.lower, e.interval.upper), digest=e.digest,
-                target=e.target,
+                target=e.target, query=e.query,
             )
             for e in m.entries
         ),
