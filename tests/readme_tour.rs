@@ -189,6 +189,11 @@ fn the_readme_small_competition_serves_every_team() {
             "team {team} was not ranked:\n{printed}"
         );
     }
+    // The feedback holdout's answers are charged to each team's own share, and say so.
+    assert!(
+        printed.contains("budget     spent 0.005 of its share 0.01, remaining 0.005"),
+        "{printed}"
+    );
     // A refusal prints a line starting "refused (REASON)".
     assert!(
         !printed.lines().any(|l| l.starts_with("refused")),

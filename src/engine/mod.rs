@@ -42,6 +42,7 @@ pub use compete::{
 };
 pub use create::{CreateHead, CreateRequest, FamilyRequest, TargetDecl};
 pub use probe::{ProbeFlag, ProbeSettings};
+pub(crate) use read::share_of;
 pub use read::{Declared, HistoryItem, HoldoutView};
 pub use records::{
     AnswerRecord, BudgetView, Comparison, CoreJson, RankedEntry, RefusalRecord, RoundRecord,

@@ -102,6 +102,8 @@ pub(crate) fn answer(
         replayed,
         digest: r.digest.clone(),
         target: r.target.clone(),
+        // Set by the submit path, which knows the policy's shares.
+        budget_of: String::new(),
     }
 }
 

@@ -241,7 +241,7 @@ impl Submissions for Daemon {
         // Group commit: queued submissions share one transaction; the reply leaves after it
         // committed (src/engine/worker.rs).
         let alert_holdout = holdout.clone();
-        let (outcome, guarantee, closes_at, tolerance, isolated) = self
+        let (outcome, guarantee, closes_at, tolerance, isolated, budget_of) = self
             .db
             .call_batched(move |engine| {
                 let out = engine.submit(&caller, req)?;
@@ -253,6 +253,7 @@ impl Submissions for Daemon {
                     closes_at.unwrap_or_default(),
                     policy.input.tolerance,
                     policy.isolated(),
+                    crate::engine::share_of(policy, &caller.team).0,
                 ))
             })
             .await?;
@@ -268,7 +269,9 @@ impl Submissions for Daemon {
                     self.alerts
                         .observe(&alert_holdout, team, &record.budget, tolerance);
                 }
-                Outcome::Answer(convert::answer(&record, &receipt, replayed, &guarantee))
+                let mut answer = convert::answer(&record, &receipt, replayed, &guarantee);
+                answer.budget_of = budget_of;
+                Outcome::Answer(answer)
             }
             SubmitOutcome::Refusal { record, receipt } => {
                 Outcome::Refusal(convert::refusal(&record, receipt.as_ref()))

@@ -347,7 +347,12 @@ pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
     ));
     if let Some(b) = &a.budget {
         s.push('\n');
-        s.push_str(&budget_text(b));
+        if a.budget_of.is_empty() {
+            s.push_str(&budget_text(b));
+        } else {
+            // Under per-team shares the figures are the team's share, not the holdout's delta.
+            s.push_str(&budget_text(b).replacen("of delta", "of its share", 1));
+        }
     }
     if let Some(r) = &a.receipt {
         s.push_str(&format!("\nreceipt    {}", receipt_text(r)));
