@@ -28,6 +28,11 @@ use holdout_ledger::engine::PolicyInput;
 use holdout_ledger::ledger;
 use holdout_ledger::stats::beta::memo;
 
+/// The allocator of the `holdout` binary (see `src/main.rs`), so that the figures are those of
+/// `holdout audit`.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn ledger_of(entries: usize, tolerance: f64) -> Export {
     let started = Instant::now();
     // Four teams submit in turn to a 2,000-row holdout under an open-ended series schedule.
