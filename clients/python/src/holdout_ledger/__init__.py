@@ -58,7 +58,7 @@ from .types import (
     Validation,
 )
 
-__version__ = "0.3.0"
+__version__ = "0.4.0"
 
 __all__ = [
     "connect", "Client", "DEFAULT_SERVER", "CHUNK_ROWS",
