@@ -232,7 +232,36 @@ pub(crate) async fn fetch_export(conn: &Conn, name: &str) -> anyhow::Result<Expo
     let entries = fetch_chain(conn, name).await?;
     let users = fetch_chain(conn, ledger::USERS_CHAIN).await?;
     let at = crate::auth::rfc3339(chrono::Utc::now());
-    Ok(Export::new(name, &at, entries, users))
+    let ex = Export::new(name, &at, entries, users);
+    // Kept prediction files, only when the genesis declares them (a daemon before retention
+    // has no such call, and its holdouts keep none).
+    let keeps = ex
+        .entries
+        .first()
+        .and_then(|g| serde_json::from_str::<Value>(&g.body).ok())
+        .is_some_and(|g| g["retention"]["predictions"].as_str() == Some("kept"));
+    if !keeps {
+        return Ok(ex);
+    }
+    let mut stream = conn
+        .ledger()
+        .kept_predictions(ExportRequest {
+            holdout: name.to_string(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    let mut kept = Vec::new();
+    while let Some(k) = stream.message().await.map_err(|e| conn.fail(e))? {
+        kept.push(crate::audit::kept::KeptFile {
+            entry: k.entry,
+            target: k.target,
+            digest: k.digest,
+            at: k.at,
+            data: k.data,
+        });
+    }
+    Ok(ex.with_kept(kept))
 }
 
 /// A signed checkpoint of a holdout's head through the daemon.
@@ -630,10 +659,27 @@ fn from_db(
     let id: i64 = conn.query_row("SELECT id FROM holdouts WHERE name = ?1", [name], |r| {
         r.get(0)
     })?;
-    let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
+    let shredded: Option<String> = conn
+        .query_row("SELECT shredded_at FROM holdouts WHERE id = ?1", [id], |r| {
+            r.get(0)
+        })
+        .unwrap_or(None);
+    // A database of a schema before retention (7) keeps no files.
+    let kept = if crate::store::current_version(&conn)? >= 7 {
+        crate::engine::kept_files(&conn, name)?
+    } else {
+        Vec::new()
+    };
     let at = crate::auth::rfc3339(chrono::Utc::now());
+    let export = Export::new(name, &at, entries, users).with_kept(kept);
+    if shredded.is_some() {
+        // Nothing to read: the audit says the labels were shredded and what that leaves
+        // unchecked.
+        return Ok((export, Err(String::new())));
+    }
+    let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
     Ok((
-        Export::new(name, &at, entries, users),
+        export,
         columns.map(|columns| LabelColumns { ids, columns }),
     ))
 }
@@ -668,6 +714,8 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
             let (ex, labels) = from_db(db, &args.source)?;
             match labels {
                 Ok(labels) => (ex, Some(labels)),
+                // Shredded labels: not a finding (the ledger records the shred).
+                Err(why) if why.is_empty() => (ex, None),
                 Err(why) => {
                     label_problem = Some(why);
                     (ex, None)
@@ -804,6 +852,49 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
     })
 }
 
+/// The retention lines of the audit's report: what was kept, dropped, shredded and re-scored.
+fn print_retention(r: &audit::RetentionReport) {
+    let list = |v: &[u64]| {
+        v.iter()
+            .map(u64::to_string)
+            .collect::<Vec<_>>()
+            .join(", ")
+    };
+    let mut line = format!("retention  {}", r.declared);
+    if !r.kept.is_empty() {
+        line += &format!(
+            "; {} kept file{} carried (entries {}), each checked against its digest",
+            r.kept.len(),
+            if r.kept.len() == 1 { "" } else { "s" },
+            list(&r.kept)
+        );
+    }
+    if !r.dropped.is_empty() {
+        line += &format!(
+            "; dropped at the end of the retention: entries {}",
+            list(&r.dropped)
+        );
+    }
+    println!("{line}");
+    if let Some(s) = r.labels_shredded_at {
+        println!("labels     shredded at entry {s} (the genesis entry keeps their digest)");
+    }
+    if !r.kept.is_empty() {
+        match &r.not_rescored {
+            None => println!(
+                "rescored   {} kept file{} against the labels: every exact loss as recorded",
+                r.rescored.len(),
+                if r.rescored.len() == 1 { "" } else { "s" }
+            ),
+            Some(why) => println!(
+                "rescored   {} of {} kept files: not the others ({why})",
+                r.rescored.len(),
+                r.kept.len()
+            ),
+        }
+    }
+}
+
 fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     println!(
         "holdout {}: {} entries, {} answers, {} sealed entries, {} rounds, {} refusals, {} reads \
@@ -836,6 +927,9 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     }
     if report.labels_checked {
         println!("labels     digest checked against the genesis entry");
+    }
+    if let Some(r) = &report.retention {
+        print_retention(r);
     }
     println!(
         "\nentry  query  team          target      symbol            interval              ok"
