@@ -54,8 +54,7 @@ const DAY: i64 = 86_400;
 #[test]
 fn kept_files_are_dropped_after_their_days_and_the_audit_rescores_the_rest() {
     let mut g = Generated::keeping("kept", 300, policy(), 2, 5, Retention::Keep { days: 3 });
-    let genesis: serde_json::Value =
-        serde_json::from_str(&g.export().entries[0].body).unwrap();
+    let genesis: serde_json::Value = serde_json::from_str(&g.export().entries[0].body).unwrap();
     assert_eq!(
         genesis["retention"],
         serde_json::json!({"predictions": "kept", "days": 3})
@@ -274,7 +273,10 @@ fn labels_are_shredded_by_the_custodian_of_a_closed_holdout_only() {
     assert!(holds(&copy_before), "the check must be able to see labels");
 
     g.advance(60);
-    let s = g.engine.shred_labels(&keeper, "shred", "contract ended").unwrap();
+    let s = g
+        .engine
+        .shred_labels(&keeper, "shred", "contract ended")
+        .unwrap();
     assert_eq!(s.targets, 1);
     assert!(s.message.contains("--labels"), "{}", s.message);
     let err = g.engine.shred_labels(&keeper, "shred", "").unwrap_err();
@@ -282,7 +284,10 @@ fn labels_are_shredded_by_the_custodian_of_a_closed_holdout_only() {
 
     let copy_after = dir.path().join("after.db");
     holdout_ledger::store::backup::copy_to(g.engine.store().conn(), &copy_after).unwrap();
-    assert!(!holds(&copy_after), "a backup after the shred holds the labels");
+    assert!(
+        !holds(&copy_after),
+        "a backup after the shred holds the labels"
+    );
     let left: i64 = g
         .engine
         .store()
@@ -366,9 +371,9 @@ fn the_replay_refuses_a_shred_of_an_open_holdout_and_an_early_drop() {
     // The drop turned into a shred of the still-open holdout.
     let mut ex = good.clone();
     ex.entries[last].kind = "labels-shredded".into();
-    let digest = serde_json::from_str::<serde_json::Value>(&ex.entries[0].body).unwrap()
-        ["labels_sha256"]
-        .clone();
+    let digest =
+        serde_json::from_str::<serde_json::Value>(&ex.entries[0].body).unwrap()["labels_sha256"]
+            .clone();
     edit_body(&mut ex.entries[last], |b| {
         *b = serde_json::json!({"by": "custodian", "roles": "custodian",
             "labels_sha256": digest, "reason": "", "at": "2026-03-04T09:00:00Z"});
@@ -378,7 +383,8 @@ fn the_replay_refuses_a_shred_of_an_open_holdout_and_an_early_drop() {
     assert!(
         r.findings
             .iter()
-            .any(|f| f.entry == Some(last as u64) && f.problem.contains("while the holdout was open")),
+            .any(|f| f.entry == Some(last as u64)
+                && f.problem.contains("while the holdout was open")),
         "{:#?}",
         r.findings
     );

@@ -116,7 +116,9 @@ pub fn decode(data: &[u8]) -> Result<Vec<Predictions>, String> {
     let [models, rows, kind] = fields[..] else {
         return Err("a header without MODELS ROWS KIND".into());
     };
-    let models: u64 = models.parse().map_err(|_| "a bad model count".to_string())?;
+    let models: u64 = models
+        .parse()
+        .map_err(|_| "a bad model count".to_string())?;
     let rows: u64 = rows.parse().map_err(|_| "a bad row count".to_string())?;
     if models.saturating_mul(rows) > MAX_VALUES {
         return Err(format!("{models} models of {rows} rows: too large"));
@@ -166,7 +168,12 @@ mod tests {
             Predictions::Classes(vec![1, 1, 1, 0]),
         ];
         assert_eq!(decode(&encode(&c)).unwrap(), c);
-        let n = vec![Predictions::Numbers(vec![0.1, -0.0, 1e300, f64::MIN_POSITIVE])];
+        let n = vec![Predictions::Numbers(vec![
+            0.1,
+            -0.0,
+            1e300,
+            f64::MIN_POSITIVE,
+        ])];
         let back = decode(&encode(&n)).unwrap();
         let (Predictions::Numbers(a), Predictions::Numbers(b)) = (&back[0], &n[0]) else {
             panic!("kind changed");
@@ -182,6 +189,10 @@ mod tests {
         let mut z = flate2::write::ZlibEncoder::new(Vec::new(), flate2::Compression::default());
         z.write_all(b"holdout-ledger-kept/1\n1 99999999999 numbers\n")
             .unwrap();
-        assert!(decode(&z.finish().unwrap()).unwrap_err().contains("too large"));
+        assert!(
+            decode(&z.finish().unwrap())
+                .unwrap_err()
+                .contains("too large")
+        );
     }
 }

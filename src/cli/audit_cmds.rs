@@ -660,9 +660,11 @@ fn from_db(
         r.get(0)
     })?;
     let shredded: Option<String> = conn
-        .query_row("SELECT shredded_at FROM holdouts WHERE id = ?1", [id], |r| {
-            r.get(0)
-        })
+        .query_row(
+            "SELECT shredded_at FROM holdouts WHERE id = ?1",
+            [id],
+            |r| r.get(0),
+        )
         .unwrap_or(None);
     // A database of a schema before retention (7) keeps no files.
     let kept = if crate::store::current_version(&conn)? >= 7 {
@@ -678,10 +680,7 @@ fn from_db(
         return Ok((export, Err(String::new())));
     }
     let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
-    Ok((
-        export,
-        columns.map(|columns| LabelColumns { ids, columns }),
-    ))
+    Ok((export, columns.map(|columns| LabelColumns { ids, columns })))
 }
 
 fn read_labels(path: &Path, id_column: &str, export: &Export) -> anyhow::Result<LabelColumns> {
@@ -854,12 +853,7 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
 
 /// The retention lines of the audit's report: what was kept, dropped, shredded and re-scored.
 fn print_retention(r: &audit::RetentionReport) {
-    let list = |v: &[u64]| {
-        v.iter()
-            .map(u64::to_string)
-            .collect::<Vec<_>>()
-            .join(", ")
-    };
+    let list = |v: &[u64]| v.iter().map(u64::to_string).collect::<Vec<_>>().join(", ");
     let mut line = format!("retention  {}", r.declared);
     if !r.kept.is_empty() {
         line += &format!(

@@ -561,7 +561,12 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
     let rows = Rows::new(ids);
     let mut labels = Vec::new();
     // Shredded labels are gone from the store; the holdout is closed and scores nothing.
-    for (t, target) in policy.targets.iter().enumerate().filter(|_| shredded.is_none()) {
+    for (t, target) in policy
+        .targets
+        .iter()
+        .enumerate()
+        .filter(|_| shredded.is_none())
+    {
         let (encoding, blob) = stored::read_labels(conn, id, t)?;
         labels.push(
             parse_stored(target, &encoding, &blob, &rows)

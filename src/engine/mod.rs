@@ -62,8 +62,8 @@ pub use replay::{
     BackupRecord, CloseRecord, DropRecord, ReadRecord, Record, ShredRecord, WithdrawRecord,
     WithdrawRequestRecord,
 };
-pub use retention::{MAX_KEEP_DAYS, Retention, Shredded, kept_files};
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
+pub use retention::{MAX_KEEP_DAYS, Retention, Shredded, kept_files};
 pub use withdraw::Withdrawal;
 
 use crate::error::{Error, Result};

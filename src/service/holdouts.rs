@@ -12,8 +12,8 @@ use crate::error::Error;
 use crate::metric::Metric;
 use crate::proto::v1::{
     CloseHoldoutRequest, CreateHoldoutChunk, DeclarationChunk, GetDeclarationRequest,
-    GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse,
-    ShredLabelsReply, ShredLabelsRequest, WithdrawHoldoutReply, WithdrawHoldoutRequest, create_holdout_chunk::Part,
+    GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse, ShredLabelsReply,
+    ShredLabelsRequest, WithdrawHoldoutReply, WithdrawHoldoutRequest, create_holdout_chunk::Part,
     holdouts_server::Holdouts,
 };
 

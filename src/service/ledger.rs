@@ -11,8 +11,7 @@ use crate::auth::{Role, rfc3339};
 use crate::ledger::{self, Entry};
 use crate::proto::v1::{
     BackupReply, BackupRequest, CheckpointRequest, ExportRequest, KeptPrediction, LedgerEntry,
-    SignedCheckpoint,
-    ledger_server::Ledger,
+    SignedCheckpoint, ledger_server::Ledger,
 };
 
 fn to_proto(e: Entry) -> LedgerEntry {

@@ -11,7 +11,8 @@ use super::conn::{Conn, ServerArgs};
 use super::show;
 use crate::proto::v1::{
     AddUserRequest, CloseHoldoutRequest, HistoryRequest, ListHoldoutsRequest, ListUsersRequest,
-    RevokeUserRequest, RotateTokenRequest, ShredLabelsRequest, StatusRequest, WhoAmIRequest, WithdrawHoldoutRequest,
+    RevokeUserRequest, RotateTokenRequest, ShredLabelsRequest, StatusRequest, WhoAmIRequest,
+    WithdrawHoldoutRequest,
 };
 
 /// `holdout status`.
