@@ -239,7 +239,8 @@ pub(crate) async fn fetch_export(conn: &Conn, name: &str) -> anyhow::Result<Expo
         .entries
         .first()
         .and_then(|g| serde_json::from_str::<Value>(&g.body).ok())
-        .is_some_and(|g| g["retention"]["predictions"].as_str() == Some("kept"));
+        .and_then(|g| crate::engine::Retention::from_genesis(&g).ok())
+        .is_some_and(|r| r.days().is_some());
     if !keeps {
         return Ok(ex);
     }
