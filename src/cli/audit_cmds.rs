@@ -33,7 +33,9 @@ Checks, without the daemon: (1) the hash chains of the holdout and of @users, th
 the chain still holds every entry a --checkpoint or --receipt names (a rebuilt or truncated chain \
 fails) and the checkpoint signatures; (2) replays every answer and refusal with the daemon's own \
 accounting core and compares every charge, level, symbol, interval, code and budget field; \
-(3) with --labels and --predictions, re-scores the prediction files found in the ledger; (4) \
+(3) with --labels and --predictions, re-scores the prediction files found in the ledger, and \
+with --labels (or --db) every kept prediction file the export carries (each also checked against \
+its entry's digest; files dropped at the end of their retention and shredded labels are named); (4) \
 that refusals and quotas follow from public facts (the decision is recomputed; no exact score \
 in a refusal); (5) with --family, audits the other members' exports too and checks that the \
 family's members agree on its total and that their shares sum to at most it. Every discrepancy is listed with its entry number and field. Exit 0 when clean, \
