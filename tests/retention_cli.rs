@@ -97,6 +97,17 @@ fn kept_files_travel_in_the_export_and_shredded_labels_need_the_custodians_copy(
         Some(2)
     );
 
+    // Offline on the database file: its own labels re-score the kept files.
+    let db = d.path("holdout.db").display().to_string();
+    let offline = run(holdout(), &["audit", "qc", "--db", &db]).ok();
+    assert!(
+        offline
+            .stdout
+            .contains("rescored   2 kept files against the labels"),
+        "{}",
+        offline.stdout
+    );
+
     // Shred: refused while open, and to an analyst or an organizer.
     let open = d.admin(&["shred", "qc"]).code(7);
     assert!(open.stderr.contains("is open"), "{}", open.stderr);
@@ -124,6 +135,18 @@ fn kept_files_travel_in_the_export_and_shredded_labels_need_the_custodians_copy(
         plain.stdout.contains("rescored   0 of 2 kept files"),
         "{}",
         plain.stdout
+    );
+    // The database no longer holds the labels: not a finding, and said.
+    let offline = run(holdout(), &["audit", "qc", "--db", &db]).ok();
+    assert!(
+        offline.stdout.contains("labels     shredded at entry"),
+        "{}",
+        offline.stdout
+    );
+    assert!(
+        offline.stdout.contains("rescored   0 of 2 kept files"),
+        "{}",
+        offline.stdout
     );
     let with_copy = run(holdout(), &["audit", &after, "--labels", &labels]).ok();
     assert!(
