@@ -52,6 +52,12 @@ pub enum Kind {
     /// schema migration); recorded in every holdout's chain before the copy is made, so the copy
     /// holds its own entry. It moves no accounting state.
     Backup,
+    /// Kept prediction files were dropped once older than the holdout's retention (it names
+    /// their entries). Moves no accounting state.
+    PredictionsDropped,
+    /// The custodian shredded a closed holdout's labels (and its kept prediction files); the
+    /// labels digest stays in the genesis entry. Moves no accounting state.
+    LabelsShredded,
     /// Identity chain: a user was added (with roles and team).
     UserAdded,
     /// Identity chain: a user and its tokens were revoked.
@@ -62,7 +68,7 @@ pub enum Kind {
 
 impl Kind {
     /// Every kind, in a fixed order (reports list counts in this order).
-    pub const ALL: [Kind; 14] = [
+    pub const ALL: [Kind; 16] = [
         Kind::Genesis,
         Kind::Answer,
         Kind::Refusal,
@@ -74,6 +80,8 @@ impl Kind {
         Kind::WithdrawRequest,
         Kind::Withdraw,
         Kind::Backup,
+        Kind::PredictionsDropped,
+        Kind::LabelsShredded,
         Kind::UserAdded,
         Kind::UserRevoked,
         Kind::TokenRotated,
@@ -93,6 +101,8 @@ impl Kind {
             Kind::WithdrawRequest => "withdraw-request",
             Kind::Withdraw => "withdraw",
             Kind::Backup => "backup",
+            Kind::PredictionsDropped => "predictions-dropped",
+            Kind::LabelsShredded => "labels-shredded",
             Kind::UserAdded => "user-added",
             Kind::UserRevoked => "user-revoked",
             Kind::TokenRotated => "token-rotated",

@@ -145,6 +145,9 @@ pub struct Report {
     pub findings: Vec<Finding>,
     /// What the audit cannot check.
     pub cannot_check: Vec<String>,
+    /// Kept prediction files, drops, shredded labels and re-scores (`None` when the genesis
+    /// is unreadable).
+    pub retention: Option<super::retention::RetentionReport>,
 }
 
 impl Report {
@@ -604,6 +607,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
         labels_checked: false,
         findings: Vec::new(),
         cannot_check: CANNOT_CHECK.iter().map(|s| s.to_string()).collect(),
+        retention: None,
     };
     for (line, other) in &export.foreign {
         report.findings.push(whole(
@@ -667,6 +671,7 @@ pub fn audit(export: &Export, mut opts: AuditOptions<'_>) -> Report {
     report.findings.extend(mid);
     report.findings.extend(identities.findings);
     report.findings.extend(tail);
+    super::retention::check(export, opts.labels.as_ref(), &mut report);
     report
 }
 

@@ -6,12 +6,18 @@
 //! canonical JSON text exactly as hashed (a string, so re-encoding cannot change the bytes).
 //! The holdout's chain comes first, then the identity chain `@users`. Labels are never part of
 //! it: the genesis entry carries only their digest.
+//!
+//! Under a retention that keeps prediction files, the files still kept follow the entries, one
+//! line each, `{"kept":{"entry","target","digest","at","data"}}` (`data`: the compressed
+//! [`kept`](super::kept) file in base64), and the header counts them (`"kept":N`; absent when
+//! there are none, as in every export written before).
 
 use std::io::{BufRead, Write};
 use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
+use super::kept::KeptFile;
 use crate::error::{Error, Result};
 use crate::ledger::{self, Entry};
 
@@ -33,6 +39,15 @@ pub struct Header {
     pub binary: String,
     /// Entries per chain, as written.
     pub chains: std::collections::BTreeMap<String, u64>,
+    /// Kept prediction files carried after the entries (absent: none).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub kept: Option<u64>,
+}
+
+/// A kept-file line of an export.
+#[derive(Serialize, Deserialize)]
+struct KeptLine {
+    kept: KeptFile,
 }
 
 /// A parsed export: the holdout's chain and the identity chain.
@@ -46,6 +61,8 @@ pub struct Export {
     pub users: Vec<Entry>,
     /// Entry lines whose chain is neither (named in the audit report).
     pub foreign: Vec<(u64, String)>,
+    /// Kept prediction files, in entry order.
+    pub kept: Vec<KeptFile>,
 }
 
 impl Export {
@@ -62,11 +79,20 @@ impl Export {
                 encoding: ledger::ENCODING.into(),
                 binary: env!("CARGO_PKG_VERSION").into(),
                 chains,
+                kept: None,
             },
             entries,
             users,
             foreign: Vec::new(),
+            kept: Vec::new(),
         }
+    }
+
+    /// The export with these kept prediction files (counted in the header).
+    pub fn with_kept(mut self, kept: Vec<KeptFile>) -> Export {
+        self.header.kept = (!kept.is_empty()).then_some(kept.len() as u64);
+        self.kept = kept;
+        self
     }
 
     /// Writes the export as JSON Lines.
@@ -75,6 +101,10 @@ impl Export {
         out.write_all(b"\n")?;
         for e in self.entries.iter().chain(&self.users) {
             serde_json::to_writer(&mut out, e)?;
+            out.write_all(b"\n")?;
+        }
+        for k in &self.kept {
+            serde_json::to_writer(&mut out, &KeptLine { kept: k.clone() })?;
             out.write_all(b"\n")?;
         }
         out.flush()
@@ -122,11 +152,18 @@ impl Export {
             entries: Vec::new(),
             users: Vec::new(),
             foreign: Vec::new(),
+            kept: Vec::new(),
         };
         for (i, line) in lines.enumerate() {
             let n = i as u64 + 2;
             let line = line.map_err(|e| bad(n, e.to_string()))?;
             if line.trim().is_empty() {
+                continue;
+            }
+            if line.starts_with("{\"kept\":") {
+                let k: KeptLine = serde_json::from_str(&line)
+                    .map_err(|e| bad(n, format!("not a kept prediction file: {e}")))?;
+                out.kept.push(k.kept);
                 continue;
             }
             let e: Entry =

@@ -20,7 +20,9 @@ mod digest;
 pub mod export;
 pub mod family;
 mod identity;
+pub mod kept;
 mod replay;
+mod retention;
 pub mod trace;
 
 use serde::Serialize;
@@ -31,6 +33,7 @@ pub use check::{
 };
 pub use digest::predictions_digest;
 pub use replay::QuerySummary;
+pub use retention::RetentionReport;
 
 /// One discrepancy, named by chain, entry number and field.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]

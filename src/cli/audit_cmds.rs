@@ -33,7 +33,9 @@ Checks, without the daemon: (1) the hash chains of the holdout and of @users, th
 the chain still holds every entry a --checkpoint or --receipt names (a rebuilt or truncated chain \
 fails) and the checkpoint signatures; (2) replays every answer and refusal with the daemon's own \
 accounting core and compares every charge, level, symbol, interval, code and budget field; \
-(3) with --labels and --predictions, re-scores the prediction files found in the ledger; (4) \
+(3) with --labels and --predictions, re-scores the prediction files found in the ledger, and \
+with --labels (or --db) every kept prediction file the export carries (each also checked against \
+its entry's digest; files dropped at the end of their retention and shredded labels are named); (4) \
 that refusals and quotas follow from public facts (the decision is recomputed; no exact score \
 in a refusal); (5) with --family, audits the other members' exports too and checks that the \
 family's members agree on its total and that their shares sum to at most it. Every discrepancy is listed with its entry number and field. Exit 0 when clean, \
@@ -232,7 +234,37 @@ pub(crate) async fn fetch_export(conn: &Conn, name: &str) -> anyhow::Result<Expo
     let entries = fetch_chain(conn, name).await?;
     let users = fetch_chain(conn, ledger::USERS_CHAIN).await?;
     let at = crate::auth::rfc3339(chrono::Utc::now());
-    Ok(Export::new(name, &at, entries, users))
+    let ex = Export::new(name, &at, entries, users);
+    // Kept prediction files, only when the genesis declares them (a daemon before retention
+    // has no such call, and its holdouts keep none).
+    let keeps = ex
+        .entries
+        .first()
+        .and_then(|g| serde_json::from_str::<Value>(&g.body).ok())
+        .and_then(|g| crate::engine::Retention::from_genesis(&g).ok())
+        .is_some_and(|r| r.days().is_some());
+    if !keeps {
+        return Ok(ex);
+    }
+    let mut stream = conn
+        .ledger()
+        .kept_predictions(ExportRequest {
+            holdout: name.to_string(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    let mut kept = Vec::new();
+    while let Some(k) = stream.message().await.map_err(|e| conn.fail(e))? {
+        kept.push(crate::audit::kept::KeptFile {
+            entry: k.entry,
+            target: k.target,
+            digest: k.digest,
+            at: k.at,
+            data: k.data,
+        });
+    }
+    Ok(ex.with_kept(kept))
 }
 
 /// A signed checkpoint of a holdout's head through the daemon.
@@ -630,12 +662,28 @@ fn from_db(
     let id: i64 = conn.query_row("SELECT id FROM holdouts WHERE name = ?1", [name], |r| {
         r.get(0)
     })?;
-    let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
+    let shredded: Option<String> = conn
+        .query_row(
+            "SELECT shredded_at FROM holdouts WHERE id = ?1",
+            [id],
+            |r| r.get(0),
+        )
+        .unwrap_or(None);
+    // A database of a schema before retention (7) keeps no files.
+    let kept = if crate::store::current_version(&conn)? >= 7 {
+        crate::engine::kept_files(&conn, name)?
+    } else {
+        Vec::new()
+    };
     let at = crate::auth::rfc3339(chrono::Utc::now());
-    Ok((
-        Export::new(name, &at, entries, users),
-        columns.map(|columns| LabelColumns { ids, columns }),
-    ))
+    let export = Export::new(name, &at, entries, users).with_kept(kept);
+    if shredded.is_some() {
+        // Nothing to read: the audit says the labels were shredded and what that leaves
+        // unchecked.
+        return Ok((export, Err(String::new())));
+    }
+    let (ids, columns) = crate::engine::stored_texts(&conn, id)?;
+    Ok((export, columns.map(|columns| LabelColumns { ids, columns })))
 }
 
 fn read_labels(path: &Path, id_column: &str, export: &Export) -> anyhow::Result<LabelColumns> {
@@ -668,6 +716,8 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
             let (ex, labels) = from_db(db, &args.source)?;
             match labels {
                 Ok(labels) => (ex, Some(labels)),
+                // Shredded labels: not a finding (the ledger records the shred).
+                Err(why) if why.is_empty() => (ex, None),
                 Err(why) => {
                     label_problem = Some(why);
                     (ex, None)
@@ -804,6 +854,44 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
     })
 }
 
+/// The retention lines of the audit's report: what was kept, dropped, shredded and re-scored.
+fn print_retention(r: &audit::RetentionReport) {
+    let list = |v: &[u64]| v.iter().map(u64::to_string).collect::<Vec<_>>().join(", ");
+    let mut line = format!("retention  {}", r.declared);
+    if !r.kept.is_empty() {
+        line += &format!(
+            "; {} kept file{} carried (entries {}), each checked against its digest",
+            r.kept.len(),
+            if r.kept.len() == 1 { "" } else { "s" },
+            list(&r.kept)
+        );
+    }
+    if !r.dropped.is_empty() {
+        line += &format!(
+            "; dropped at the end of the retention: entries {}",
+            list(&r.dropped)
+        );
+    }
+    println!("{line}");
+    if let Some(s) = r.labels_shredded_at {
+        println!("labels     shredded at entry {s} (the genesis entry keeps their digest)");
+    }
+    if !r.kept.is_empty() {
+        match &r.not_rescored {
+            None => println!(
+                "rescored   {} kept file{} against the labels: every exact loss as recorded",
+                r.rescored.len(),
+                if r.rescored.len() == 1 { "" } else { "s" }
+            ),
+            Some(why) => println!(
+                "rescored   {} of {} kept files: not the others ({why})",
+                r.rescored.len(),
+                r.kept.len()
+            ),
+        }
+    }
+}
+
 fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     println!(
         "holdout {}: {} entries, {} answers, {} sealed entries, {} rounds, {} refusals, {} reads \
@@ -836,6 +924,9 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     }
     if report.labels_checked {
         println!("labels     digest checked against the genesis entry");
+    }
+    if let Some(r) = &report.retention {
+        print_retention(r);
     }
     println!(
         "\nentry  query  team          target      symbol            interval              ok"

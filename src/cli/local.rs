@@ -435,8 +435,22 @@ async fn checkpoint_now(db: &Db, dir: PathBuf) {
 
 async fn settle_deadlines(db: Db) {
     let mut tick = tokio::time::interval(std::time::Duration::from_secs(5));
+    let mut n: u64 = 0;
     loop {
         tick.tick().await;
+        // Kept prediction files past their holdout's retention go once a minute (each drop is
+        // a ledger entry naming the files).
+        if n.is_multiple_of(12) {
+            match db.call(|engine| engine.drop_expired_predictions()).await {
+                Ok(dropped) => {
+                    for (name, files) in dropped {
+                        tracing::info!(holdout = %name, files, "dropped kept prediction files past their retention");
+                    }
+                }
+                Err(e) => tracing::warn!(error = %e, "dropping expired prediction files failed"),
+            }
+        }
+        n += 1;
         match db.call(|engine| engine.settle_deadlines()).await {
             Ok(closed) => {
                 for name in closed {

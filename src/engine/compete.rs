@@ -594,6 +594,14 @@ impl Engine {
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("sealed entry encoding: {e}")))?;
             let entry = self.append(&loaded.name, ledger::Kind::Sealed, &body, None)?;
+            self.keep_predictions(
+                loaded,
+                entry.seq,
+                &target.name,
+                &digest,
+                &at,
+                std::slice::from_ref(preds),
+            )?;
             let conn = self.store.conn();
             conn.execute(
                 "INSERT INTO sealed_entries

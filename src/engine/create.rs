@@ -57,6 +57,8 @@ pub struct CreateHead {
     pub description: String,
     /// Policy as given.
     pub policy: PolicyInput,
+    /// What is kept of each submitted prediction file (stated in the genesis entry).
+    pub retention: super::Retention,
 }
 
 /// Membership asked for at creation: the holdout joins family `name`, its own delta being its
@@ -128,10 +130,24 @@ impl Engine {
         family: Option<FamilyRequest>,
         expect: u32,
     ) -> Result<super::HoldoutView> {
+        self.create_keeping(caller, req, family, expect, super::Retention::Digests)
+    }
+
+    /// [`Engine::create_expecting`] with a retention of prediction files other than the
+    /// default (digests only).
+    pub fn create_keeping(
+        &mut self,
+        caller: &Caller,
+        req: CreateRequest,
+        family: Option<FamilyRequest>,
+        expect: u32,
+        retention: super::Retention,
+    ) -> Result<super::HoldoutView> {
         let head = CreateHead {
             name: req.name,
             description: req.description,
             policy: req.policy,
+            retention,
         };
         check_head(caller, &head, family.as_ref())?;
         if req.ids.is_empty() {
@@ -271,8 +287,8 @@ impl Engine {
                 .map_err(|e| Error::Internal(format!("policy encoding: {e}")))?;
             tx.execute(
                 "INSERT INTO holdouts (name, description, row_count, policy_json, targets_json,
-                                       labels_digest, created_at)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                                       labels_digest, created_at, keep_predictions_days)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
                 params![
                     head.name,
                     head.description,
@@ -280,7 +296,8 @@ impl Engine {
                     policy_json,
                     serde_json::to_string(&policy.targets).unwrap_or_default(),
                     labels_digest,
-                    at
+                    at,
+                    head.retention.days()
                 ],
             )?;
             let holdout_id = tx.last_insert_rowid();
@@ -302,6 +319,7 @@ impl Engine {
                     "targets": serde_json::to_value(&policy.targets).unwrap_or_default(),
                 },
                 "labels_sha256": labels_digest,
+                "retention": head.retention.to_genesis(),
                 "versions": versions(),
                 "created_by": caller.name,
                 "at": at,
@@ -500,14 +518,26 @@ pub(super) fn check_targets(targets: Vec<TargetDecl>) -> Result<Vec<TargetDecl>>
 
 /// Loads a holdout's immutable facts.
 pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
-    let row: Option<(i64, String, String, String)> = conn
+    type Row = (i64, String, String, String, Option<u32>, Option<String>);
+    let row: Option<Row> = conn
         .query_row(
-            "SELECT id, description, created_at, policy_json FROM holdouts WHERE name = ?1",
+            "SELECT id, description, created_at, policy_json, keep_predictions_days, shredded_at
+             FROM holdouts WHERE name = ?1",
             [name],
-            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)),
+            |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                ))
+            },
         )
         .optional()?;
-    let (id, description, created_at, policy_json) = row.ok_or_else(|| unknown_holdout(name))?;
+    let (id, description, created_at, policy_json, keep_days, shredded) =
+        row.ok_or_else(|| unknown_holdout(name))?;
     let policy: HoldoutPolicy = serde_json::from_str(&policy_json)
         .map_err(|e| Error::Internal(format!("stored policy of {name}: {e}")))?;
     let ids = match stored::read_ids(conn, id)? {
@@ -530,7 +560,13 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
     };
     let rows = Rows::new(ids);
     let mut labels = Vec::new();
-    for (t, target) in policy.targets.iter().enumerate() {
+    // Shredded labels are gone from the store; the holdout is closed and scores nothing.
+    for (t, target) in policy
+        .targets
+        .iter()
+        .enumerate()
+        .filter(|_| shredded.is_none())
+    {
         let (encoding, blob) = stored::read_labels(conn, id, t)?;
         labels.push(
             parse_stored(target, &encoding, &blob, &rows)
@@ -551,5 +587,6 @@ pub(super) fn load(conn: &rusqlite::Connection, name: &str) -> Result<Loaded> {
         rows,
         labels,
         genesis_hash,
+        keep_days,
     })
 }

@@ -22,6 +22,7 @@ mod read;
 mod reader;
 mod records;
 mod replay;
+mod retention;
 mod rows;
 mod stored;
 mod submit;
@@ -58,9 +59,11 @@ pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 pub(crate) use account::Book;
 pub use ops::LOCAL_OPERATOR;
 pub use replay::{
-    BackupRecord, CloseRecord, ReadRecord, Record, WithdrawRecord, WithdrawRequestRecord,
+    BackupRecord, CloseRecord, DropRecord, ReadRecord, Record, ShredRecord, WithdrawRecord,
+    WithdrawRequestRecord,
 };
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
+pub use retention::{MAX_KEEP_DAYS, Retention, Shredded, kept_files};
 pub use withdraw::Withdrawal;
 
 use crate::error::{Error, Result};
@@ -111,8 +114,11 @@ pub(crate) struct Loaded {
     pub(crate) policy: HoldoutPolicy,
     /// Row ids in the canonical order, and the row of each id (`rows::Rows`).
     pub(crate) rows: rows::Rows,
+    /// Labels per target; empty once shredded (the holdout is closed then: nothing scores).
     pub(crate) labels: Vec<Labels>,
     pub(crate) genesis_hash: String,
+    /// Days its prediction files are kept (`None`: digests only).
+    pub(crate) keep_days: Option<u32>,
 }
 
 impl Engine {
@@ -397,7 +403,13 @@ impl Engine {
         self.touch(chain);
         let keeps_state = matches!(
             kind,
-            Kind::Read | Kind::Close | Kind::WithdrawRequest | Kind::Withdraw | Kind::Backup
+            Kind::Read
+                | Kind::Close
+                | Kind::WithdrawRequest
+                | Kind::Withdraw
+                | Kind::Backup
+                | Kind::PredictionsDropped
+                | Kind::LabelsShredded
         ) || kind.is_identity();
         match book {
             Some(book) => {

@@ -108,6 +108,37 @@ pub struct BackupRecord {
     pub at: String,
 }
 
+/// The body of a `predictions-dropped` entry: kept prediction files older than the holdout's
+/// retention were deleted from the store (written by the daemon's retention sweep).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DropRecord {
+    /// The answer and sealed entries whose kept files were dropped, in order.
+    pub entries: Vec<u64>,
+    /// The retention declared in the genesis entry, days.
+    pub days: u32,
+    /// When, RFC 3339 UTC (the engine's clock).
+    pub at: String,
+}
+
+/// The body of a `labels-shredded` entry: the custodian deleted a closed holdout's labels (and
+/// the per-row losses of its sealed entries, which follow from them) from the store. The
+/// genesis entry keeps the labels' digest, so a copy of the labels can still be checked
+/// against it. Kept prediction files stay until their retention ends: they hold nothing of the
+/// labels, and with the custodian's copy of the labels they can still be re-scored.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ShredRecord {
+    /// Who shredded them.
+    pub by: String,
+    /// Their roles then.
+    pub roles: String,
+    /// The labels digest of the genesis entry (what a copy must match).
+    pub labels_sha256: String,
+    /// Why.
+    pub reason: String,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
 /// A ledger entry's body, parsed once by its kind.
 #[derive(Debug, Clone)]
 pub enum Record {
@@ -133,6 +164,10 @@ pub enum Record {
     Withdraw(Box<WithdrawRecord>),
     /// A copy of the database was taken.
     Backup(Box<BackupRecord>),
+    /// Kept prediction files dropped at the end of their retention.
+    PredictionsDropped(Box<DropRecord>),
+    /// A closed holdout's labels shredded by its custodian.
+    LabelsShredded(Box<ShredRecord>),
     /// An identity event (these belong to the `@users` chain, never to a holdout's).
     Identity(Kind, Box<Value>),
 }
@@ -169,6 +204,12 @@ impl Record {
             }
             Kind::Withdraw => Record::Withdraw(Box::new(body(e, "a withdrawal record")?)),
             Kind::Backup => Record::Backup(Box::new(body(e, "a backup record")?)),
+            Kind::PredictionsDropped => {
+                Record::PredictionsDropped(Box::new(body(e, "a predictions-dropped record")?))
+            }
+            Kind::LabelsShredded => {
+                Record::LabelsShredded(Box::new(body(e, "a labels-shredded record")?))
+            }
             k if k.is_identity() => Record::Identity(k, Box::new(body(e, "an identity event")?)),
             k => return Err(format!("entry kind {k} has no record parser")),
         })
@@ -194,6 +235,8 @@ impl Record {
             Record::WithdrawRequest(_) => Kind::WithdrawRequest,
             Record::Withdraw(_) => Kind::Withdraw,
             Record::Backup(_) => Kind::Backup,
+            Record::PredictionsDropped(_) => Kind::PredictionsDropped,
+            Record::LabelsShredded(_) => Kind::LabelsShredded,
             Record::Identity(k, _) => *k,
         }
     }
@@ -362,6 +405,10 @@ pub(crate) struct Replayer<'p> {
     withdraw_request: Option<(u64, WithdrawRequestRecord)>,
     /// Entry that withdrew the holdout, if any.
     withdrawn_at: Option<u64>,
+    /// Entry that shredded the labels, if any.
+    shredded_at: Option<u64>,
+    /// Entries whose kept prediction files were dropped, and the entry that dropped them.
+    gone: HashMap<u64, u64>,
     /// Sealed entries waiting for the round's close, in ticket order.
     pending: Vec<SealedRecord>,
     /// Whether budgets shown with refusals are compared (the audit) or not (the daemon).
@@ -381,6 +428,8 @@ impl<'p> Replayer<'p> {
             released_at: None,
             withdraw_request: None,
             withdrawn_at: None,
+            shredded_at: None,
+            gone: HashMap::new(),
             pending: Vec::new(),
             check_budgets,
             memo: RefusalMemo::default(),
@@ -421,8 +470,26 @@ impl<'p> Replayer<'p> {
         {
             self.released_at = Some((e.seq, rec.kind()));
         }
+        if let Some(s) = self.shredded_at
+            && !matches!(
+                rec,
+                Record::Read(_) | Record::Backup(_) | Record::PredictionsDropped(_)
+            )
+        {
+            cmp.push(
+                "kind",
+                format!(
+                    "a {} entry after the labels were shredded at entry {s} (only reads, \
+                     backups and drops of kept files may follow a shred)",
+                    rec.kind()
+                ),
+            );
+        }
         if let Some(w) = self.withdrawn_at
-            && !matches!(rec, Record::Read(_) | Record::Backup(_))
+            && !matches!(
+                rec,
+                Record::Read(_) | Record::Backup(_) | Record::LabelsShredded(_)
+            )
         {
             cmp.push(
                 "kind",
@@ -492,6 +559,8 @@ impl<'p> Replayer<'p> {
             }
             Record::Read(r) => cmp.time(&r.at),
             Record::Backup(b) => cmp.time(&b.at),
+            Record::PredictionsDropped(d) => self.dropped(entries, e.seq, d, &mut cmp),
+            Record::LabelsShredded(r) => self.shredded(entries, e.seq, r, &mut cmp),
             Record::WithdrawRequest(r) => self.withdraw_request(e.seq, r, &mut cmp),
             Record::Withdraw(w) => self.withdraw(e.seq, w, &mut cmp),
             Record::Identity(k, _) => cmp.push(
@@ -500,6 +569,105 @@ impl<'p> Replayer<'p> {
             ),
         }
         out.append(&mut cmp.out);
+    }
+
+    /// The entries a drop names: each an earlier answer or sealed entry whose file was kept
+    /// and is not gone already.
+    fn kept_entries(&mut self, entries: &[Entry], seq: u64, named: &[u64], cmp: &mut Cmp) {
+        for &n in named {
+            let kind = entries
+                .get(n as usize)
+                .filter(|x| x.seq == n && n < seq)
+                .and_then(Entry::kind);
+            if !matches!(kind, Some(Kind::Answer | Kind::Sealed)) {
+                cmp.push(
+                    "entries",
+                    format!("names entry {n}, which is not an earlier answer or sealed entry"),
+                );
+            } else if let Some(by) = self.gone.insert(n, seq) {
+                cmp.push(
+                    "entries",
+                    format!("names entry {n}, whose kept file was already gone at entry {by}"),
+                );
+            }
+        }
+    }
+
+    fn dropped(&mut self, entries: &[Entry], seq: u64, d: &DropRecord, cmp: &mut Cmp) {
+        cmp.time(&d.at);
+        let declared = entries
+            .first()
+            .and_then(|g| serde_json::from_str::<Value>(&g.body).ok())
+            .map(|g| super::retention::Retention::from_genesis(&g));
+        match declared {
+            Some(Ok(super::retention::Retention::Keep { days })) if days == d.days => {}
+            Some(Ok(r)) => cmp.push(
+                "days",
+                format!(
+                    "drops kept files after {} days, the genesis entry declares {}",
+                    d.days,
+                    r.describe()
+                ),
+            ),
+            _ => cmp.push("days", "the genesis entry's retention is unreadable".into()),
+        }
+        self.kept_entries(entries, seq, &d.entries, cmp);
+        let Ok(now) = chrono::DateTime::parse_from_rfc3339(&d.at) else {
+            return;
+        };
+        for &n in &d.entries {
+            let at = entries
+                .get(n as usize)
+                .and_then(|x| Record::parse(x).ok())
+                .and_then(|r| match r {
+                    Record::Answer(a) => Some(a.at),
+                    Record::Sealed(s) => Some(s.at),
+                    _ => None,
+                })
+                .and_then(|at| chrono::DateTime::parse_from_rfc3339(&at).ok());
+            if let Some(at) = at
+                && now < at + chrono::Duration::days(i64::from(d.days))
+            {
+                cmp.push(
+                    "entries",
+                    format!(
+                        "drops the kept file of entry {n} (at {at}) before its {} days were up",
+                        d.days
+                    ),
+                );
+            }
+        }
+    }
+
+    fn shredded(&mut self, entries: &[Entry], seq: u64, r: &ShredRecord, cmp: &mut Cmp) {
+        cmp.time(&r.at);
+        if self.closed_at.is_none() {
+            cmp.push(
+                "kind",
+                "labels shredded while the holdout was open (only a closed holdout's may be)"
+                    .into(),
+            );
+        }
+        if !r.roles.split(',').any(|x| x.trim() == "custodian") {
+            cmp.push(
+                "roles",
+                format!("{} shredded the labels without the custodian role", r.by),
+            );
+        }
+        let recorded = entries
+            .first()
+            .and_then(|g| serde_json::from_str::<Value>(&g.body).ok())
+            .and_then(|g| g["labels_sha256"].as_str().map(str::to_string));
+        if recorded.as_deref() != Some(r.labels_sha256.as_str()) {
+            cmp.push(
+                "labels_sha256",
+                format!(
+                    "names the labels digest {}, the genesis entry records {:?}",
+                    r.labels_sha256, recorded
+                ),
+            );
+        }
+        self.shredded_at = Some(seq);
     }
 
     fn withdraw_request(&mut self, seq: u64, r: &WithdrawRequestRecord, cmp: &mut Cmp) {

@@ -403,6 +403,7 @@ impl Engine {
             let body = serde_json::to_value(&record)
                 .map_err(|e| Error::Internal(format!("answer encoding: {e}")))?;
             let entry = self.append(&loaded.name, ledger::Kind::Answer, &body, None)?;
+            self.keep_predictions(loaded, entry.seq, &target.name, &digest, &at, &preds)?;
             let conn = self.store.conn();
             conn.execute(
                 "INSERT OR IGNORE INTO answered_digests (holdout_id, target, scope, digest, seq)

@@ -12,8 +12,8 @@ use crate::error::Error;
 use crate::metric::Metric;
 use crate::proto::v1::{
     CloseHoldoutRequest, CreateHoldoutChunk, DeclarationChunk, GetDeclarationRequest,
-    GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse,
-    WithdrawHoldoutReply, WithdrawHoldoutRequest, create_holdout_chunk::Part,
+    GetHoldoutRequest, HoldoutInfo, ListHoldoutsRequest, ListHoldoutsResponse, ShredLabelsReply,
+    ShredLabelsRequest, WithdrawHoldoutReply, WithdrawHoldoutRequest, create_holdout_chunk::Part,
     holdouts_server::Holdouts,
 };
 
@@ -88,6 +88,7 @@ impl Holdouts for Daemon {
             return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
         };
         let expect = spec.expect_answers.max(1);
+        let retention = crate::engine::Retention::from_days(spec.keep_predictions_days)?;
         let family = if spec.family.is_empty() {
             if spec.family_delta != 0.0 {
                 return Err(Error::invalid(
@@ -170,6 +171,7 @@ impl Holdouts for Daemon {
             name: spec.name,
             description: spec.description,
             policy: policy_input(spec.policy.unwrap_or_default()),
+            retention,
         };
         let view = self
             .db
@@ -233,6 +235,22 @@ impl Holdouts for Daemon {
             completed: w.completed,
             message: w.message,
             holdout: Some(convert::holdout(&w.holdout)),
+        }))
+    }
+
+    async fn shred_labels(
+        &self,
+        request: Request<ShredLabelsRequest>,
+    ) -> Result<Response<ShredLabelsReply>, Status> {
+        let caller = self.caller(&request).await?;
+        let req = request.into_inner();
+        let s = self
+            .db
+            .call(move |engine| engine.shred_labels(&caller, &req.name, &req.reason))
+            .await?;
+        Ok(Response::new(ShredLabelsReply {
+            message: s.message,
+            entry: s.entry,
         }))
     }
 

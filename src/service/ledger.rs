@@ -10,8 +10,8 @@ use crate::audit::anchor;
 use crate::auth::{Role, rfc3339};
 use crate::ledger::{self, Entry};
 use crate::proto::v1::{
-    BackupReply, BackupRequest, CheckpointRequest, ExportRequest, LedgerEntry, SignedCheckpoint,
-    ledger_server::Ledger,
+    BackupReply, BackupRequest, CheckpointRequest, ExportRequest, KeptPrediction, LedgerEntry,
+    SignedCheckpoint, ledger_server::Ledger,
 };
 
 fn to_proto(e: Entry) -> LedgerEntry {
@@ -172,5 +172,37 @@ impl Ledger for Daemon {
             entries: verified.entries,
             at,
         }))
+    }
+
+    type KeptPredictionsStream =
+        Pin<Box<dyn Stream<Item = Result<KeptPrediction, Status>> + Send + 'static>>;
+
+    async fn kept_predictions(
+        &self,
+        request: Request<ExportRequest>,
+    ) -> Result<Response<Self::KeptPredictionsStream>, Status> {
+        let caller = self.caller(&request).await?;
+        caller.require("reading kept prediction files", &[Role::Auditor])?;
+        let name = request.into_inner().holdout;
+        let files = self
+            .db
+            .call(move |engine| {
+                engine.loaded(&name)?;
+                crate::engine::kept_files(engine.store().conn(), &name)
+            })
+            .await?;
+        let out: Vec<Result<KeptPrediction, Status>> = files
+            .into_iter()
+            .map(|k| {
+                Ok(KeptPrediction {
+                    entry: k.entry,
+                    target: k.target,
+                    digest: k.digest,
+                    at: k.at,
+                    data: k.data,
+                })
+            })
+            .collect();
+        Ok(Response::new(Box::pin(tokio_stream::iter(out))))
     }
 }

@@ -31,6 +31,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0006_withdrawals",
         include_str!("../../migrations/0006_withdrawals.sql"),
     ),
+    (
+        "0007_retention",
+        include_str!("../../migrations/0007_retention.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

@@ -90,6 +90,9 @@ impl Store {
         conn.pragma_update(None, "journal_mode", "WAL")?;
         conn.pragma_update(None, "synchronous", "FULL")?;
         conn.pragma_update(None, "foreign_keys", "ON")?;
+        // Deleted content (shredded labels, dropped prediction files) is overwritten with
+        // zeros, so copies taken afterwards do not hold it in free pages.
+        conn.pragma_update(None, "secure_delete", "ON")?;
         conn.busy_timeout(Duration::from_secs(10))?;
         migrate(&mut conn)?;
         Ok(Store {

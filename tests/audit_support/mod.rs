@@ -9,8 +9,8 @@ use holdout_ledger::audit::LabelColumns;
 use holdout_ledger::audit::export::Export;
 use holdout_ledger::auth::{self, Caller, Role};
 use holdout_ledger::engine::{
-    CreateRequest, Engine, FixedClock, ModelPredictions, PolicyInput, RawValues, SubmitMode,
-    SubmitOutcome, SubmitRequest, TargetDecl,
+    CreateRequest, Engine, FixedClock, ModelPredictions, PolicyInput, RawValues, Retention,
+    SubmitMode, SubmitOutcome, SubmitRequest, TargetDecl,
 };
 use holdout_ledger::ledger;
 use holdout_ledger::store::Store;
@@ -44,6 +44,18 @@ fn caller(engine: &mut Engine, name: &str, roles: &[Role], team: Option<&str>) -
 impl Generated {
     /// A binary-error holdout of `rows` rows under `policy`, with `teams` analyst teams.
     pub fn new(name: &str, rows: usize, policy: PolicyInput, teams: usize, seed: u64) -> Self {
+        Generated::keeping(name, rows, policy, teams, seed, Retention::Digests)
+    }
+
+    /// [`Generated::new`] under a retention of prediction files.
+    pub fn keeping(
+        name: &str,
+        rows: usize,
+        policy: PolicyInput,
+        teams: usize,
+        seed: u64,
+        retention: Retention,
+    ) -> Self {
         let t0 = chrono::DateTime::parse_from_rfc3339("2026-03-01T09:00:00Z")
             .unwrap()
             .to_utc();
@@ -68,7 +80,7 @@ impl Generated {
         let ids: Vec<String> = (0..rows).map(|i| format!("r{i:06}")).collect();
         let labels: Vec<String> = (0..rows).map(|_| (next() % 2).to_string()).collect();
         engine
-            .create_holdout(
+            .create_keeping(
                 &custodian,
                 CreateRequest {
                     name: name.into(),
@@ -84,6 +96,9 @@ impl Generated {
                     ids: ids.clone(),
                     columns: vec![labels.clone()],
                 },
+                None,
+                1,
+                retention,
             )
             .unwrap();
         Generated {
@@ -250,7 +265,8 @@ impl Generated {
         let conn = self.engine.store().conn();
         let entries = ledger::read_chain(conn, &self.name).unwrap();
         let users = ledger::read_chain(conn, ledger::USERS_CHAIN).unwrap();
-        Export::new(&self.name, "2026-03-02T00:00:00Z", entries, users)
+        let kept = holdout_ledger::engine::kept_files(conn, &self.name).unwrap();
+        Export::new(&self.name, "2026-03-02T00:00:00Z", entries, users).with_kept(kept)
     }
 
     /// A predictions file (`id,prediction`) for `preds` in row order.

@@ -11,7 +11,8 @@ use super::conn::{Conn, ServerArgs};
 use super::show;
 use crate::proto::v1::{
     AddUserRequest, CloseHoldoutRequest, HistoryRequest, ListHoldoutsRequest, ListUsersRequest,
-    RevokeUserRequest, RotateTokenRequest, StatusRequest, WhoAmIRequest, WithdrawHoldoutRequest,
+    RevokeUserRequest, RotateTokenRequest, ShredLabelsRequest, StatusRequest, WhoAmIRequest,
+    WithdrawHoldoutRequest,
 };
 
 /// `holdout status`.
@@ -85,6 +86,22 @@ pub struct WithdrawArgs {
     /// Holdout name.
     pub name: String,
     /// Why it is withdrawn (recorded in the ledger).
+    #[arg(long, default_value = "")]
+    pub reason: String,
+    /// Print one JSON object.
+    #[arg(long)]
+    pub json: bool,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub server: ServerArgs,
+}
+
+/// `holdout shred`.
+#[derive(Debug, Args)]
+pub struct ShredArgs {
+    /// Holdout name (closed).
+    pub name: String,
+    /// Why the labels are shredded (recorded in the ledger).
     #[arg(long, default_value = "")]
     pub reason: String,
     /// Print one JSON object.
@@ -484,6 +501,32 @@ pub async fn withdraw(args: &WithdrawArgs) -> anyhow::Result<ExitCode> {
             "completed": reply.completed,
             "message": reply.message,
             "holdout": show::holdout_json(&info),
+        }));
+    } else {
+        println!("{}", reply.message);
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// Shreds a closed holdout's labels (custodian).
+///
+/// # Errors
+/// Connection, permission and not-found failures; an open holdout (exit 7).
+pub async fn shred(args: &ShredArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let reply = conn
+        .holdouts()
+        .shred_labels(ShredLabelsRequest {
+            name: args.name.clone(),
+            reason: args.reason.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    if args.json {
+        show::print_json(&json!({
+            "message": reply.message,
+            "entry": reply.entry,
         }));
     } else {
         println!("{}", reply.message);

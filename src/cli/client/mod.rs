@@ -5,7 +5,7 @@
 //! | `create` | [`create`] |
 //! | `split` | [`split`] |
 //! | `ids`, `validate`, `submit` | [`submit`] |
-//! | `status`, `history`, `list`, `close`, `withdraw`, `user ...`, `whoami` | [`admin`] |
+//! | `status`, `history`, `list`, `close`, `withdraw`, `shred`, `user ...`, `whoami` | [`admin`] |
 //! | `leaderboard`, `ranking`, `duplicates` | [`compete`] |
 //!
 //! Every command prints people-readable text by default and one JSON document with `--json`.
@@ -73,6 +73,10 @@ pub enum ClientCommand {
     /// (custodian and organizer: the first records a request, the other completes it; one call
     /// if you hold both roles). Refused once anything was answered or sealed.
     Withdraw(admin::WithdrawArgs),
+    /// Shred a closed holdout's labels (custodian): they are deleted from the daemon's
+    /// database, recorded in the ledger; the labels digest stays, so the chain still audits.
+    /// Refused while the holdout is open.
+    Shred(admin::ShredArgs),
     /// Each team's best: on a ladder its best so far with the interval for its best true
     /// error; under other rules its released answer with the lowest upper limit per target.
     Leaderboard(compete::BoardArgs),
@@ -120,6 +124,7 @@ async fn dispatch(cmd: ClientCommand) -> anyhow::Result<ExitCode> {
         ClientCommand::List(args) => admin::list(&args).await,
         ClientCommand::Close(args) => admin::close(&args).await,
         ClientCommand::Withdraw(args) => admin::withdraw(&args).await,
+        ClientCommand::Shred(args) => admin::shred(&args).await,
         ClientCommand::Leaderboard(args) => compete::leaderboard(&args).await,
         ClientCommand::Ranking(args) => compete::ranking(&args).await,
         ClientCommand::Duplicates(args) => compete::duplicates(&args).await,
