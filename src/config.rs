@@ -48,6 +48,7 @@ pub struct FileConfig {
     pub alert_share: Option<f64>,
     pub alert_margin: Option<f64>,
     pub alert_command: Option<PathBuf>,
+    pub keep_predictions_days: Option<u32>,
 }
 
 impl FileConfig {
@@ -278,6 +279,7 @@ pub fn resolve(mut args: ServeArgs, matches: &ArgMatches) -> Result<Effective> {
         alert_share,
         alert_margin,
         alert_command,
+        keep_predictions_days,
     );
     // The pairs the flags require of each other hold for the combination too.
     if args.tls_cert.is_some() != args.tls_key.is_some() {

@@ -45,7 +45,7 @@ fn kept_files_travel_in_the_export_and_shredded_labels_need_the_custodians_copy(
             "--label-column",
             "defect",
             "--keep-predictions",
-            "0",
+            "36501",
         ])
         .code(2);
     assert!(
@@ -156,4 +156,58 @@ fn kept_files_travel_in_the_export_and_shredded_labels_need_the_custodians_copy(
         "{}",
         with_copy.stdout
     );
+}
+
+/// The daemon's default retention (`serve --keep-predictions-days`, also a configuration-file
+/// key) applies to a create that does not ask for one; `--keep-predictions 0` asks for digests
+/// only; the genesis entry states what each holdout got.
+#[test]
+fn the_daemons_default_retention_applies_to_creates_that_do_not_choose() {
+    let d = Daemon::start_with(&["--keep-predictions-days", "9"]);
+    let create = |name: &str, rows: usize, extra: &[&str]| {
+        // Rows and labels of their own for each holdout (a set of labels gets one budget).
+        let labels = d.write(
+            &format!("{name}.labels.csv"),
+            &Parts::new(rows)
+                .labels_csv()
+                .replace("part-", &format!("{name}-")),
+        );
+        let mut args = vec![
+            "create",
+            name,
+            "--labels",
+            &labels,
+            "--metric",
+            "error",
+            "--classes",
+            "crack,dent,ok",
+            "--label-column",
+            "defect",
+            "--tolerance",
+            "0.2",
+        ];
+        args.extend_from_slice(extra);
+        d.admin(&args).ok();
+    };
+    create("by-default", N, &[]);
+    create("digests", N + 1, &["--keep-predictions", "0"]);
+    create("own", N + 2, &["--keep-predictions", "2"]);
+    let auditor = d.add_user("ann", &["auditor"], None);
+    for (name, want) in [
+        ("by-default", r#"{"days":9,"predictions":"kept"}"#),
+        ("digests", r#"{"predictions":"digests"}"#),
+        ("own", r#"{"days":2,"predictions":"kept"}"#),
+    ] {
+        let export = d.path(&format!("{name}.jsonl")).display().to_string();
+        d.run(&auditor, &["export", name, "--out", &export]).ok();
+        let text = std::fs::read_to_string(&export).unwrap();
+        let genesis: serde_json::Value = text
+            .lines()
+            .filter_map(|l| serde_json::from_str::<serde_json::Value>(l).ok())
+            .find(|e| e["kind"] == "genesis")
+            .expect("a genesis entry");
+        let body: serde_json::Value =
+            serde_json::from_str(genesis["body"].as_str().unwrap()).unwrap();
+        assert_eq!(body["retention"].to_string(), want, "{name}");
+    }
 }

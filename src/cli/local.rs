@@ -136,6 +136,13 @@ pub struct ServeArgs {
     /// SPENT DELTA NEXT_HALF_WIDTH TOLERANCE; KIND is budget-share or tolerance-margin.
     #[arg(long, value_name = "PROGRAM")]
     pub alert_command: Option<PathBuf>,
+    /// Retention of prediction files for holdouts created without `create
+    /// --keep-predictions`: keep each file (parsed, compressed) for DAYS days so an audit can
+    /// re-score it; 0 keeps only its digest. Each holdout's genesis entry states the retention
+    /// it got, so a later change of this default changes no existing holdout.
+    #[arg(long, value_name = "DAYS", default_value_t = 0,
+          value_parser = clap::value_parser!(u32).range(0..=crate::engine::MAX_KEEP_DAYS as i64))]
+    pub keep_predictions_days: u32,
 }
 
 /// `holdout init`.
@@ -320,7 +327,9 @@ pub fn serve(args: ServeArgs) -> anyhow::Result<ExitCode> {
             let stop = stopped(stop_rx.clone());
             tokio::spawn(crate::web::serve_web(web, db.clone(), stop, limits, web_tls))
         });
-        let daemon = Daemon::new(db.clone()).with_alerts(crate::alerts::Alerts::new(alerts));
+        let daemon = Daemon::new(db.clone())
+            .with_alerts(crate::alerts::Alerts::new(alerts))
+            .with_default_retention(args.keep_predictions_days);
         serve_on(listener, daemon, stopped(stop_rx), limits, tls).await?;
         if let Some(task) = web_task {
             match task.await {

@@ -88,7 +88,9 @@ impl Holdouts for Daemon {
             return Err(Error::invalid("stream", "the first chunk must carry the spec").into());
         };
         let expect = spec.expect_answers.max(1);
-        let retention = crate::engine::Retention::from_days(spec.keep_predictions_days)?;
+        let retention = crate::engine::Retention::from_days(
+            spec.keep_predictions_days.unwrap_or(self.default_keep_days),
+        )?;
         let family = if spec.family.is_empty() {
             if spec.family_delta != 0.0 {
                 return Err(Error::invalid(

@@ -131,6 +131,9 @@ pub struct Daemon {
     limits: StreamLimits,
     facts: Arc<Mutex<HashMap<String, SubmitFacts>>>,
     alerts: Arc<crate::alerts::Alerts>,
+    /// Days to keep prediction files of holdouts created without a retention of their own
+    /// (`serve --keep-predictions-days`; 0: digests only).
+    default_keep_days: u32,
 }
 
 impl Daemon {
@@ -141,7 +144,15 @@ impl Daemon {
             limits: StreamLimits::default(),
             facts: Arc::default(),
             alerts: Arc::default(),
+            default_keep_days: 0,
         }
+    }
+
+    /// The same services with a default retention of prediction files, in days (0: digests
+    /// only), for creates that do not ask for one.
+    pub fn with_default_retention(mut self, days: u32) -> Daemon {
+        self.default_keep_days = days;
+        self
     }
 
     /// The same services with budget alerts ([`crate::alerts`]).

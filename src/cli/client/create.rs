@@ -118,10 +118,11 @@ pub struct CreateArgs {
     #[arg(long, value_name = "T", value_parser = clap::value_parser!(u64).range(1..))]
     pub teams: Option<u64>,
     /// Keep each submitted prediction file (parsed, compressed, in the daemon's database) for
-    /// DAYS days so an audit can re-score it, then drop it [default: keep only its digest].
-    /// Stated in the genesis entry.
+    /// DAYS days so an audit can re-score it, then drop it; 0 keeps only its digest [default:
+    /// the daemon's `serve --keep-predictions-days`, itself digests only unless set]. Stated
+    /// in the genesis entry.
     #[arg(long, value_name = "DAYS",
-          value_parser = clap::value_parser!(u32).range(1..=crate::engine::MAX_KEEP_DAYS as i64))]
+          value_parser = clap::value_parser!(u32).range(0..=crate::engine::MAX_KEEP_DAYS as i64))]
     pub keep_predictions: Option<u32>,
     /// Sealed rounds: deadline, RFC 3339 (e.g. 2026-06-30T12:00:00Z). Entries after it are
     /// refused and the round closes by itself; without it an organizer closes the round.
@@ -591,7 +592,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         expect_answers: args.expect_answers.unwrap_or(1),
         rows_hint: checked.rows,
         id_bytes_hint: checked.id_bytes,
-        keep_predictions_days: args.keep_predictions.unwrap_or(0),
+        keep_predictions_days: args.keep_predictions,
     };
     let info = upload(
         &conn,
