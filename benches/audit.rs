@@ -25,7 +25,7 @@ use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use holdout_ledger::audit::export::Export;
 use holdout_ledger::audit::{AuditOptions, audit};
 use holdout_ledger::engine::PolicyInput;
-use holdout_ledger::ledger;
+use holdout_ledger::ledger::{self, Kind};
 use holdout_ledger::stats::beta::memo;
 
 /// The allocator of the `holdout` binary (see `src/main.rs`), so that the figures are those of
@@ -61,8 +61,8 @@ fn ledger_of(entries: usize, tolerance: f64) -> Export {
         entries,
         "every submission should be recorded"
     );
-    let answers = ex.entries.iter().filter(|e| e.kind == "answer").count();
-    let refusals = ex.entries.iter().filter(|e| e.kind == "refusal").count();
+    let answers = ex.entries.iter().filter(|e| e.kind() == Some(Kind::Answer)).count();
+    let refusals = ex.entries.iter().filter(|e| e.kind() == Some(Kind::Refusal)).count();
     eprintln!(
         "generated {} entries ({answers} answers, {refusals} refusals) in {:.1} s",
         ex.entries.len(),
