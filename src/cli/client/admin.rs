@@ -345,13 +345,14 @@ pub async fn history(args: &HistoryArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
+    let units = conn.units(&args.name).await;
     let mut rows = Vec::new();
     while let Some(entry) = stream.next().await {
         let entry = entry.map_err(|e| conn.fail(e))?;
         if args.json {
-            show::print_json(&show::history_json(&entry));
+            show::print_json(&show::history_json(&entry, &units));
         } else {
-            rows.push(show::history_row(&entry, args.exact));
+            rows.push(show::history_row(&entry, args.exact, &units));
         }
     }
     if !args.json {

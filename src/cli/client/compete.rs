@@ -40,6 +40,16 @@ fn opt(x: Option<f64>) -> String {
     x.map(num).unwrap_or_else(|| "-".into())
 }
 
+/// An interval for people, followed for a regression target by the same in its own units
+/// (`[0.12, 0.15] = mean absolute error 13 [12, 15]`).
+fn in_units(units: &show::Units, target: &str, score: Option<f64>, lo: f64, hi: f64) -> String {
+    let shown = show::interval_text(lo, hi);
+    match units.text(target, score, lo, hi) {
+        Some(u) => format!("{shown} = {u}"),
+        None => shown,
+    }
+}
+
 fn csv_line(cells: &[String]) -> String {
     cells
         .iter()
@@ -68,8 +78,9 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
+    let units = conn.units(&args.name).await;
     if args.json {
-        show::print_json(&leaderboard_json(&b));
+        show::print_json(&leaderboard_json(&b, &units));
     } else if args.csv {
         println!("rank,team,best,lower,upper,submissions,improvements,best_at,target,query");
         for r in &b.rows {
@@ -99,7 +110,7 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         if b.own_team_only {
             println!("(only your team's row: this leaderboard is shown in full to organizers)");
         }
-        println!("{}", leaderboard_table(&b));
+        println!("{}", leaderboard_table(&b, &units));
         println!("\n{}\n\n{}", b.statement, b.guarantee);
     }
     Ok(ExitCode::SUCCESS)
@@ -121,8 +132,9 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .into_inner();
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
+    let units = conn.units(&args.name).await;
     if args.json {
-        show::print_json(&ranking_json(&r));
+        show::print_json(&ranking_json(&r, &units));
     } else if args.csv {
         println!("rank,team,query,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
         for e in &r.entries {
@@ -152,7 +164,7 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             "ranking of {} (closed {} by {})",
             r.holdout, r.closed_at, r.trigger
         );
-        println!("{}", ranking_table(&r));
+        println!("{}", ranking_table(&r, &units));
         println!("\n{}\n\n{}", r.statement, r.guarantee);
     }
     Ok(ExitCode::SUCCESS)
@@ -279,7 +291,7 @@ pub fn sealed_text(e: &SealedEntry) -> String {
 }
 
 /// A ladder leaderboard as one JSON object.
-pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
+pub fn leaderboard_json(b: &LeaderboardResponse, units: &show::Units) -> Value {
     json!({
         "holdout": b.holdout,
         "target": b.target,
@@ -290,7 +302,7 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
             json!({"rank": r.rank, "team": r.team, "target": r.target, "query": r.query,
                    "best": r.best, "lower": lo, "upper": hi,
                    "submissions": r.submissions, "improvements": r.improvements,
-                   "best_at": r.best_at})
+                   "best_at": r.best_at, "units": units.json(&r.target, r.best, lo, hi)})
         }).collect::<Vec<Value>>(),
         "statement": b.statement,
         "guarantee": b.guarantee,
@@ -298,7 +310,8 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
 }
 
 /// A leaderboard's rows as a table for people (without its statement and guarantee).
-pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
+/// With `units`, rows of regression targets show their interval in the target's own units too.
+pub fn leaderboard_table(b: &LeaderboardResponse, units: &show::Units) -> String {
     if b.kind == "best-per-team" {
         let rows: Vec<Vec<String>> = b
             .rows
@@ -311,7 +324,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
                     r.team.clone(),
                     format!("query {}", r.query),
                     opt(r.best),
-                    show::interval_text(lo, hi),
+                    in_units(units, &r.target, r.best, lo, hi),
                     r.submissions.to_string(),
                 ]
             })
@@ -342,7 +355,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
                 },
                 r.team.clone(),
                 opt(r.best),
-                show::interval_text(lo, hi),
+                in_units(units, &r.target, r.best, lo, hi),
                 r.submissions.to_string(),
                 r.improvements.to_string(),
             ]
@@ -362,7 +375,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
 }
 
 /// A closed round's ranking as one JSON object.
-pub fn ranking_json(r: &RankingResponse) -> Value {
+pub fn ranking_json(r: &RankingResponse, units: &show::Units) -> Value {
     json!({
         "holdout": r.holdout,
         "closed_at": r.closed_at,
@@ -371,13 +384,15 @@ pub fn ranking_json(r: &RankingResponse) -> Value {
             let (lo, hi) = iv(e.interval.as_ref());
             json!({"rank": e.rank, "team": e.team, "query": e.query, "ticket": e.ticket,
                    "score": e.score,
-                   "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
+                   "lower": lo, "upper": hi, "digest": e.digest, "target": e.target,
+                   "units": units.json(&e.target, e.score, lo, hi)})
         }).collect::<Vec<Value>>(),
         "comparisons": r.comparisons.iter().map(|c| {
             let (lo, hi) = iv(c.difference.as_ref());
             json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
                    "level_nats": c.level_nats, "distinguishable": c.distinguishable,
-                   "target": c.target})
+                   "target": c.target,
+                   "units": units.json(&c.target, None, lo, hi)})
         }).collect::<Vec<Value>>(),
         "statement": r.statement,
         "guarantee": r.guarantee,
@@ -386,7 +401,9 @@ pub fn ranking_json(r: &RankingResponse) -> Value {
 
 /// A closed round's ranking as a table for people: each entry, its interval and the paired
 /// comparison with the entry ranked just below (without the statement and guarantee).
-pub fn ranking_table(r: &RankingResponse) -> String {
+/// With `units`, entries of regression targets show their interval (and the comparison) in the
+/// target's own units too.
+pub fn ranking_table(r: &RankingResponse, units: &show::Units) -> String {
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
     let rows: Vec<Vec<String>> = r
@@ -398,7 +415,7 @@ pub fn ranking_table(r: &RankingResponse) -> String {
                 let (a, b) = iv(c.difference.as_ref());
                 format!(
                     "{} {}",
-                    show::interval_text(a, b),
+                    in_units(units, &c.target, None, a, b),
                     if c.distinguishable {
                         "told apart"
                     } else {
@@ -415,7 +432,7 @@ pub fn ranking_table(r: &RankingResponse) -> String {
                 },
                 e.team.clone(),
                 opt(e.score),
-                show::interval_text(lo, hi),
+                in_units(units, &e.target, e.score, lo, hi),
                 vs,
             ]
         })

@@ -191,6 +191,22 @@ impl Conn {
             .max_encoding_message_size(MAX_REQUEST_BYTES)
     }
 
+    /// The own units of a holdout's regression targets ([`super::show::Units`]), for views
+    /// that show released intervals; empty when the holdout cannot be read (the view itself
+    /// then reports why) or has no regression target.
+    pub async fn units(&self, holdout: &str) -> super::show::Units {
+        match self
+            .holdouts()
+            .get_holdout(crate::proto::v1::GetHoldoutRequest {
+                name: holdout.to_string(),
+            })
+            .await
+        {
+            Ok(info) => super::show::Units::of(&info.into_inner().targets),
+            Err(_) => super::show::Units::default(),
+        }
+    }
+
     /// Wraps a failed call. The connection was open when the call began ([`Conn::open`]
     /// connects eagerly), so a status that comes from the transport rather than from the daemon
     /// means the connection broke with the request on its way or in the daemon's hands: the

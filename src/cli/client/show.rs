@@ -231,6 +231,12 @@ pub fn receipt_json(r: Option<&Receipt>) -> Value {
 
 /// An answer as JSON: the flat fields scripts read, plus the whole budget.
 pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
+    answer_json_in(a, model_names, &Units::default())
+}
+
+/// [`answer_json`] with `units`: a regression target's answer in its own units (`units`,
+/// see [`Units::json`]; `null` for other targets).
+pub fn answer_json_in(a: &Answer, model_names: &[String], units: &Units) -> Value {
     let b = a.budget.clone().unwrap_or_default();
     let (lower, upper) = a.interval.as_ref().map_or((Value::Null, Value::Null), |i| {
         (json!(i.lower), json!(i.upper))
@@ -263,6 +269,9 @@ pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
         "replayed": a.replayed,
         "best_model": a.best_model,
         "best_model_name": best_name,
+        "units": a.interval.as_ref().map_or(Value::Null, |i| {
+            units.json(&a.target, a.score, i.lower, i.upper)
+        }),
     })
 }
 
@@ -315,14 +324,121 @@ pub fn target_scale(metric: &str) -> Option<(f64, &'static str)> {
 /// rounded outward. `None` for other metrics.
 pub fn units_line(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
     let (b, words) = target_scale(metric)?;
-    let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+    let units = Units(vec![(String::new(), b, words)], 1);
     Some(format!(
-        "in units   {words} {score}{} (the [0, 1] figures above are that mean with each row \
-         capped at {}, divided by {})",
-        interval_text(lower * b, upper * b),
+        "in units   {} (the [0, 1] figures above are that mean with each row capped at {}, \
+         divided by {})",
+        units.text("", score, lower, upper)?,
         num(b),
         num(b)
     ))
+}
+
+/// Each regression target's own units, by target name: the bound `B` of `abs_error:B` or
+/// `sq_error:B` and the words for its mean loss. Answers, intervals and limits of these
+/// targets are released on `[0, 1]` (each row's loss capped at `B`, divided by `B`); every
+/// view shows them also multiplied back by `B`, limits converted outward. Empty for holdouts
+/// whose targets are already on the reader's scale (error, brier, log loss...).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Units(Vec<(String, f64, &'static str)>, usize);
+
+impl Units {
+    /// The units of a holdout's targets.
+    pub fn of(targets: &[Target]) -> Units {
+        Units(
+            targets
+                .iter()
+                .filter_map(|t| target_scale(&t.metric).map(|(b, w)| (t.name.clone(), b, w)))
+                .collect(),
+            targets.len(),
+        )
+    }
+
+    /// Whether any target has units of its own.
+    pub fn any(&self) -> bool {
+        !self.0.is_empty()
+    }
+
+    /// The bound and words of `target`, if it is a regression target (an empty name, as
+    /// rounds recorded before targets were named leave it, is the holdout's only target).
+    pub fn scale(&self, target: &str) -> Option<(f64, &'static str)> {
+        self.0
+            .iter()
+            .find(|(n, _, _)| n == target || (target.is_empty() && self.1 == 1))
+            .map(|&(_, b, w)| (b, w))
+    }
+
+    /// A `[0, 1]` score and interval of `target` in its own units, as JSON: `{"measure",
+    /// "bound", "score", "lower", "upper"}` (`lower` rounded down and `upper` up, so the
+    /// converted interval contains the exact product); `null` for targets without units.
+    pub fn json(&self, target: &str, score: Option<f64>, lower: f64, upper: f64) -> Value {
+        match self.scale(target) {
+            None => Value::Null,
+            Some((b, words)) => {
+                let (lo, hi) = scaled_outward(lower, upper, b);
+                json!({
+                    "measure": words,
+                    "bound": b,
+                    "score": score.map(|s| tidy(s * b)),
+                    "lower": lo,
+                    "upper": hi,
+                })
+            }
+        }
+    }
+
+    /// The same for people: `mean absolute error 44 [40.1, 48.3]`; `None` without units.
+    pub fn text(&self, target: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
+        let (b, words) = self.scale(target)?;
+        let (lo, hi) = scaled_outward(lower, upper, b);
+        let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+        Some(format!("{words} {score}{}", units_interval_text(lo, hi)))
+    }
+}
+
+/// `lower * b` and `upper * b` rounded outward: the product's rounding error is found exactly
+/// (a fused multiply-add) and a limit the rounding moved inward is stepped one ulp out.
+pub fn scaled_outward(lower: f64, upper: f64, b: f64) -> (f64, f64) {
+    let mut lo = lower * b;
+    if lower.mul_add(b, -lo) < 0.0 {
+        lo = lo.next_down();
+    }
+    let mut hi = upper * b;
+    if upper.mul_add(b, -hi) > 0.0 {
+        hi = hi.next_up();
+    }
+    (lo, hi)
+}
+
+/// A figure in a target's units for JSON: the double with float noise in its last places
+/// removed (twelve significant digits), so 44.000000000000004 reads 44. Not for limits.
+fn tidy(x: f64) -> f64 {
+    format!("{x:.11e}").parse().unwrap_or(x)
+}
+
+/// An interval in a target's own units for people, rounded outward to four significant
+/// digits of its larger end (whole numbers from 1,000 up).
+pub fn units_interval_text(lower: f64, upper: f64) -> String {
+    let big = lower.abs().max(upper.abs());
+    if !big.is_finite() || big == 0.0 {
+        return interval_text(lower, upper);
+    }
+    let magnitude = big.log10().floor() as i32;
+    let decimals = (3 - magnitude).clamp(0, 8) as usize;
+    let (lo, hi) = crate::stats::interval::display_outward(lower, upper, decimals);
+    let trim = |t: String| {
+        if t.contains('.') {
+            let t = t.trim_end_matches('0').trim_end_matches('.');
+            if t == "-0" {
+                "0".to_string()
+            } else {
+                t.to_string()
+            }
+        } else {
+            t
+        }
+    };
+    format!("[{}, {}]", trim(lo), trim(hi))
 }
 
 /// An answer for people, with the holdout's guarantee in full.
@@ -564,8 +680,8 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
     s
 }
 
-/// A history entry as one JSON object.
-pub fn history_json(e: &HistoryEntry) -> Value {
+/// A history entry as one JSON object (a regression answer's `units` as [`answer_json_in`]).
+pub fn history_json(e: &HistoryEntry, units: &Units) -> Value {
     json!({
         "entry": e.entry,
         "entry_hash": e.entry_hash,
@@ -573,22 +689,27 @@ pub fn history_json(e: &HistoryEntry) -> Value {
         "team": e.team,
         "at": e.at,
         "note": e.note,
-        "answer": e.answer.as_ref().map_or(Value::Null, |a| answer_json(a, &[])),
+        "answer": e.answer.as_ref().map_or(Value::Null, |a| answer_json_in(a, &[], units)),
         "refusal": e.refusal.as_ref().map_or(Value::Null, refusal_json),
         "exact_scores": e.exact_scores,
     })
 }
 
 /// What a history entry released, as text: (query number, what, interval); `other` is the
-/// "what" of an entry that is neither an answer nor a refusal.
-pub fn history_cells(e: &HistoryEntry, other: &str) -> (String, String, String) {
+/// "what" of an entry that is neither an answer nor a refusal. A regression answer's interval
+/// is followed by the same in the target's own units.
+pub fn history_cells(e: &HistoryEntry, other: &str, units: &Units) -> (String, String, String) {
     match (&e.answer, &e.refusal) {
         (Some(a), _) => (
             a.query.to_string(),
             format!("{} {}", a.target, a.symbol),
-            a.interval
-                .as_ref()
-                .map_or(String::new(), |i| interval_text(i.lower, i.upper)),
+            a.interval.as_ref().map_or(String::new(), |i| {
+                let shown = interval_text(i.lower, i.upper);
+                match units.text(&a.target, a.score, i.lower, i.upper) {
+                    Some(u) => format!("{shown} = {u}"),
+                    None => shown,
+                }
+            }),
         ),
         (None, Some(r)) => (
             String::new(),
@@ -600,8 +721,8 @@ pub fn history_cells(e: &HistoryEntry, other: &str) -> (String, String, String) 
 }
 
 /// A history entry as a table row: entry, time, team, kind, what was released.
-pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
-    let (query, what, interval) = history_cells(e, "");
+pub fn history_row(e: &HistoryEntry, exact: bool, units: &Units) -> Vec<String> {
+    let (query, what, interval) = history_cells(e, "", units);
     let mut row = vec![
         e.entry.to_string(),
         e.at.clone(),

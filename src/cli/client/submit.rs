@@ -286,7 +286,8 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
     match send(&conn, header, models).await? {
         Outcome::Answer(a) => {
             if args.json {
-                show::print_json(&show::answer_json(&a, &names));
+                let units = show::Units::of(std::slice::from_ref(&target));
+                show::print_json(&show::answer_json_in(&a, &names, &units));
             } else {
                 let mut text = show::answer_text_with(&a, &names, args.guarantee);
                 if let (Some(i), Some(line)) = (
