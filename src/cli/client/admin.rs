@@ -459,7 +459,7 @@ pub async fn close(args: &CloseArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&show::holdout_json(&info));
     } else {
-        println!("closed {}\n{}", info.name, show::holdout_text(&info));
+        println!("closed {}\n{}", info.name, show::holdout_text_brief(&info));
     }
     Ok(ExitCode::SUCCESS)
 }

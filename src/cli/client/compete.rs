@@ -27,6 +27,10 @@ pub struct BoardArgs {
     /// Print CSV with a header row.
     #[arg(long)]
     pub csv: bool,
+    /// State the holdout's guarantee and its assumptions in full after the table (without
+    /// it, one line names them; `holdout status` and --json always carry them in full).
+    #[arg(long)]
+    pub guarantee: bool,
     #[command(flatten)]
     #[allow(missing_docs)]
     pub server: ServerArgs,
@@ -47,6 +51,23 @@ fn in_units(units: &show::Units, target: &str, score: Option<f64>, lo: f64, hi: 
     match units.text(target, score, lo, hi) {
         Some(u) => format!("{shown} = {u}"),
         None => shown,
+    }
+}
+
+/// After a leaderboard or ranking: the holdout's guarantee in full with `--guarantee`, else
+/// in one line (the table's statement above already gives the probability it holds with).
+fn board_guarantee(guarantee: &str, args: &BoardArgs, delta: Option<f64>) -> String {
+    if args.guarantee {
+        format!("\n{guarantee}")
+    } else {
+        show::guarantee_brief(
+            delta,
+            "these intervals hold together with every other this holdout reports",
+            &format!(
+                "--guarantee or `holdout status {}`",
+                show::safe_text(&args.name, 100)
+            ),
+        )
     }
 }
 
@@ -78,7 +99,11 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
-    let units = conn.units(&args.name).await;
+    let info = conn.holdout_info(&args.name).await;
+    let units = info
+        .as_ref()
+        .map_or_else(show::Units::default, |i| show::Units::of(&i.targets));
+    let delta = info.and_then(|i| i.policy).map(|p| p.delta);
     if args.json {
         show::print_json(&leaderboard_json(&b, &units));
     } else if args.csv {
@@ -111,7 +136,11 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             println!("(only your team's row: this leaderboard is shown in full to organizers)");
         }
         println!("{}", leaderboard_table(&b, &units));
-        println!("\n{}\n\n{}", b.statement, b.guarantee);
+        println!(
+            "\n{}\n{}",
+            b.statement,
+            board_guarantee(&b.guarantee, args, delta)
+        );
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -132,7 +161,11 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .into_inner();
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
-    let units = conn.units(&args.name).await;
+    let info = conn.holdout_info(&args.name).await;
+    let units = info
+        .as_ref()
+        .map_or_else(show::Units::default, |i| show::Units::of(&i.targets));
+    let delta = info.and_then(|i| i.policy).map(|p| p.delta);
     if args.json {
         show::print_json(&ranking_json(&r, &units));
     } else if args.csv {
@@ -165,7 +198,11 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             r.holdout, r.closed_at, r.trigger
         );
         println!("{}", ranking_table(&r, &units));
-        println!("\n{}\n\n{}", r.statement, r.guarantee);
+        println!(
+            "\n{}\n{}",
+            r.statement,
+            board_guarantee(&r.guarantee, args, delta)
+        );
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -262,8 +299,8 @@ pub fn sealed_json(e: &SealedEntry) -> Value {
     })
 }
 
-/// A sealed entry's receipt for people.
-pub fn sealed_text(e: &SealedEntry) -> String {
+/// A sealed entry's receipt for people; the holdout's guarantee in one line unless `full`.
+pub fn sealed_text(e: &SealedEntry, full: bool, delta: Option<f64>) -> String {
     // One number for a query everywhere: the reply, its receipt and the history all say
     // "query N" (per team under `isolated`); the position in the round stays in --json.
     let mut s = format!("sealed entry, query {} (target {})", e.query, e.target);
@@ -283,9 +320,19 @@ pub fn sealed_text(e: &SealedEntry) -> String {
     }
     s.push_str(&format!("\nstatement  {}", e.statement));
     s.push_str(&format!("\ndigest     {}", e.digest));
-    if !e.guarantee.is_empty() {
+    if full && !e.guarantee.is_empty() {
         s.push_str("\n\n");
         s.push_str(&e.guarantee);
+    } else if !e.guarantee.is_empty() {
+        s.push_str(&format!(
+            "\n{}",
+            show::guarantee_brief(
+                delta,
+                "every interval this round reports at its close holds together with every \
+                 other this holdout reports",
+                "--guarantee or `holdout status`"
+            )
+        ));
     }
     s
 }

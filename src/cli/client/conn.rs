@@ -195,16 +195,24 @@ impl Conn {
     /// that show released intervals; empty when the holdout cannot be read (the view itself
     /// then reports why) or has no regression target.
     pub async fn units(&self, holdout: &str) -> super::show::Units {
-        match self
-            .holdouts()
+        self.holdout_info(holdout)
+            .await
+            .map_or_else(super::show::Units::default, |i| {
+                super::show::Units::of(&i.targets)
+            })
+    }
+
+    /// The holdout's public facts as the caller may see them, for views that add its targets'
+    /// units or its delta to another reply; `None` when it cannot be read (the view itself
+    /// then reports why).
+    pub async fn holdout_info(&self, holdout: &str) -> Option<crate::proto::v1::HoldoutInfo> {
+        self.holdouts()
             .get_holdout(crate::proto::v1::GetHoldoutRequest {
                 name: holdout.to_string(),
             })
             .await
-        {
-            Ok(info) => super::show::Units::of(&info.into_inner().targets),
-            Err(_) => super::show::Units::default(),
-        }
+            .ok()
+            .map(tonic::Response::into_inner)
     }
 
     /// Wraps a failed call. The connection was open when the call began ([`Conn::open`]

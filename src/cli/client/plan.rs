@@ -26,14 +26,7 @@ pub struct Plan {
     pub json: Value,
 }
 
-/// A count of queries for people: exact below a million, rounded above.
-fn count(q: f64) -> String {
-    if q < 1e6 {
-        format!("{}", q as u64)
-    } else {
-        format!("~{q:.1e}")
-    }
-}
+use super::show::count;
 
 /// Describes what the policy buys for `n` rows.
 ///

@@ -46,16 +46,71 @@ pub fn interval_text(lower: f64, upper: f64) -> String {
     format!("[{}, {}]", trim(lo), trim(hi))
 }
 
-/// A number for people: four decimals for ordinary sizes, scientific notation for tiny ones.
+/// A number for people, the one formatter of every figure the command line and the web view
+/// print: four decimals for ordinary sizes (0.010000000000000002 reads 0.01), at most five
+/// significant digits from 10 up (11.695 nats); three
+/// significant digits for small ones, written out (0.000758); words for large ones (2.3
+/// trillion); powers of ten only past those (3.1×10^-14, 1.8×10^24). Never e-notation.
+/// Rounded to nearest: figures that are limits go through [`interval_text`] (outward).
 pub fn num(x: f64) -> String {
-    if x == 0.0 || !x.is_finite() {
-        format!("{x}")
-    } else if x.abs() >= 1e-3 && x.abs() < 1e6 {
-        let s = format!("{x:.4}");
-        let s = s.trim_end_matches('0').trim_end_matches('.');
-        s.to_string()
+    if x == 0.0 {
+        return "0".into();
+    }
+    if !x.is_finite() {
+        return format!("{x}");
+    }
+    let a = x.abs();
+    let trim = |s: String| {
+        if s.contains('.') {
+            s.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            s
+        }
+    };
+    if (1e-3..1e6).contains(&a) {
+        // Four decimals below 10, then five significant digits (11.695, 1234.6, 123457).
+        let decimals = (4 - (a.log10().floor() as i32)).clamp(0, 4) as usize;
+        let s = trim(format!("{x:.decimals$}"));
+        return if s == "-0" { "0".into() } else { s };
+    }
+    if (1e-9..1e-3).contains(&a) {
+        let decimals = (-a.log10().floor()) as usize + 2;
+        return trim(format!("{x:.decimals$}"));
+    }
+    if (1e6..1e15).contains(&a) {
+        for (size, word) in [(1e12, "trillion"), (1e9, "billion"), (1e6, "million")] {
+            if a >= size {
+                let m = x / size;
+                // Three significant digits of the multiple.
+                let decimals = if m.abs() >= 100.0 {
+                    0
+                } else if m.abs() >= 10.0 {
+                    1
+                } else {
+                    2
+                };
+                return format!("{} {word}", trim(format!("{m:.decimals$}")));
+            }
+        }
+    }
+    // Past the words: a mantissa of two significant digits and a power of ten.
+    let e = a.log10().floor() as i32;
+    let m = x / 10f64.powi(e);
+    let (m, e) = if trim(format!("{m:.1}")).trim_start_matches('-') == "10" {
+        (m / 10.0, e + 1)
     } else {
-        format!("{x:.3e}")
+        (m, e)
+    };
+    format!("{}\u{d7}10^{e}", trim(format!("{m:.1}")))
+}
+
+/// A count that may be large or fractional, for people: whole below a million, then as
+/// [`num`] prints it, with "about" ("about 500 million").
+pub fn count(q: f64) -> String {
+    if q < 1e6 {
+        format!("{}", q.max(0.0) as u64)
+    } else {
+        format!("about {}", num(q))
     }
 }
 
@@ -278,16 +333,45 @@ pub fn answer_json_in(a: &Answer, model_names: &[String], units: &Units) -> Valu
 /// The guarantee in one sentence, with its assumptions named, for replies that show an
 /// interval but not the holdout's full statement (which `status` and `--guarantee` print).
 pub fn guarantee_line(delta: Option<f64>) -> String {
+    guarantee_brief(
+        delta,
+        "this interval holds together with every other this holdout reports",
+        "--guarantee or `holdout status`",
+    )
+}
+
+/// The guarantee in one sentence for any reply or view: `claim` is what holds ("these
+/// intervals hold together with..."), `full` where the full statement is (a flag, a command).
+pub fn guarantee_brief(delta: Option<f64>, claim: &str, full: &str) -> String {
     let chance = delta.map_or_else(
         || "with the holdout's probability".to_string(),
         |d| format!("with probability at least 1 - {}", num(d)),
     );
     format!(
-        "guarantee  {chance}, this interval holds together with every other this holdout \
-         reports, if its rows are i.i.d., labels are reached only through answers and the \
-         sharing declared at creation holds; a statistical statement, not a certification \
-         (high-stakes uses need their domain's review). In full: --guarantee or `holdout status`."
+        "guarantee  {chance}, {claim}, if its rows are i.i.d., labels are reached only through \
+         answers and the sharing declared at creation holds; a statistical statement, not a \
+         certification (high-stakes uses need their domain's review). In full: {full}."
     )
+}
+
+/// Holdout facts for people with the guarantee in one line (pointing to `holdout status`,
+/// which states it in full): for replies that are not the holdout's own view (create, close).
+pub fn holdout_text_brief(h: &HoldoutInfo) -> String {
+    let mut s = holdout_text(h);
+    if !h.guarantee.is_empty() {
+        let full = format!("\n\n{}", h.guarantee);
+        if let Some(head) = s.strip_suffix(&full) {
+            s = format!(
+                "{head}\n{}",
+                guarantee_brief(
+                    h.policy.as_ref().map(|p| p.delta),
+                    "every interval this holdout reports holds simultaneously",
+                    &format!("`holdout status {}`", safe_text(&h.name, 100))
+                )
+            );
+        }
+    }
+    s
 }
 
 /// An answer for people. The guarantee is stated in one line unless `full_guarantee`.
@@ -468,6 +552,16 @@ pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
         } else {
             // Under per-team shares the figures are the team's share, not the holdout's delta.
             s.push_str(&budget_text(b).replacen("of delta", "of its share", 1));
+        }
+        let ladder = a.symbol.starts_with("new-best") || a.symbol == "no-improvement";
+        if ladder && b.open && b.queries_left != u64::MAX {
+            // Why two teams with the same share can be told different counts.
+            s.push_str(
+                "\nforecast   the count assumes every later answer is a new best, each coded \
+                 among the grid cells below the team's best so far: the higher that best, the \
+                 more cells and the longer each code, so a team with a higher best can fit one \
+                 fewer",
+            );
         }
     }
     if let Some(r) = &a.receipt {
@@ -835,7 +929,33 @@ mod tests {
         assert_eq!(num(0.12345), "0.1235");
         assert_eq!(num(1.0), "1");
         assert_eq!(num(0.0), "0");
-        assert_eq!(num(2.5e-7), "2.500e-7");
+        assert_eq!(num(2.5e-7), "0.00000025");
+        assert_eq!(num(7.58e-4), "0.000758");
+        assert_eq!(num(0.010000000000000002), "0.01");
+        assert_eq!(num(-0.00001), "-0.00001");
+        assert_eq!(num(2.3e13), "23 trillion");
+        assert_eq!(num(5.0e8), "500 million");
+        assert_eq!(num(1.25e6), "1.25 million");
+        assert_eq!(num(1.8e24), "1.8\u{d7}10^24");
+        assert_eq!(num(9.96e24), "1\u{d7}10^25");
+        assert_eq!(num(3.1e-14), "3.1\u{d7}10^-14");
+        assert_eq!(num(11.69524), "11.695");
+        assert_eq!(num(5.29832), "5.2983");
+        assert_eq!(num(1234.5678), "1234.6");
+        assert_eq!(num(44.0), "44");
+        assert_eq!(count(17.0), "17");
+        assert_eq!(count(5.04e8), "about 504 million");
+        for x in [1e-300, 2.5e-7, 7.58e-4, 0.123456, 44.5, 2.3e13, 1e300] {
+            let s = num(x);
+            assert!(!s.contains('e'), "{x}: {s}");
+            let digits = s.split('\u{d7}').next().unwrap().chars();
+            let significant: String = digits
+                .filter(char::is_ascii_digit)
+                .collect::<String>()
+                .trim_start_matches('0')
+                .to_string();
+            assert!(significant.len() <= 5, "{x}: {s}");
+        }
     }
 
     #[test]

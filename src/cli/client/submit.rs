@@ -204,7 +204,7 @@ async fn write_template(
 /// Bad input (local or from the daemon), connection, permission and not-found failures.
 pub async fn validate(args: &ValidateArgs) -> anyhow::Result<ExitCode> {
     let conn = Conn::open(&args.server).await?;
-    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let (target, rows, _) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
     let models = vec![read_predictions(
         &args.predictions,
         &args.input,
@@ -260,7 +260,8 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
     // The holdout's size comes first: a file with more rows than the holdout is refused at
     // the row past it, without reading the rest.
     let conn = Conn::open(&args.server).await?;
-    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let (target, rows, delta) =
+        find_target(&conn, &args.name, args.input.target.as_deref()).await?;
     let models = args
         .predictions
         .iter()
@@ -334,7 +335,7 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&super::compete::sealed_json(&e));
             } else {
-                println!("{}", super::compete::sealed_text(&e));
+                println!("{}", super::compete::sealed_text(&e, args.guarantee, delta));
             }
             Ok(ExitCode::SUCCESS)
         }
@@ -430,7 +431,7 @@ async fn find_target(
     conn: &Conn,
     holdout: &str,
     wanted: Option<&str>,
-) -> anyhow::Result<(Target, u64)> {
+) -> anyhow::Result<(Target, u64, Option<f64>)> {
     let info = conn
         .holdouts()
         .get_holdout(GetHoldoutRequest {
@@ -440,7 +441,7 @@ async fn find_target(
         .map_err(|e| conn.fail(e))?
         .into_inner();
     let target = pick_target(&info.targets, holdout, wanted)?;
-    Ok((target, info.rows))
+    Ok((target, info.rows, info.policy.map(|p| p.delta)))
 }
 
 fn pick_target(
