@@ -232,8 +232,21 @@ fn the_ladder_leaderboard_ranks_teams_with_its_guarantee() {
     assert_eq!(lines.len(), 3, "{csv}");
     assert!(lines[0].starts_with("rank,team,best"));
     assert!(lines[1].starts_with("1,blue,0.1,"), "{csv}");
+    // The guarantee in one line that names its assumptions and where the full text is; in
+    // full with --guarantee.
     let text = d.run(&red, &["leaderboard", "lad"]).ok().stdout;
-    assert!(text.contains("sharing 'shared'"), "{text}");
+    assert!(
+        text.contains("guarantee  with probability at least 1 - 0.05, these intervals hold")
+            && text.contains("i.i.d.")
+            && text.contains("In full: --guarantee or `holdout status lad`"),
+        "{text}"
+    );
+    assert!(!text.contains("Assumptions:"), "{text}");
+    let full = d
+        .run(&red, &["leaderboard", "lad", "--guarantee"])
+        .ok()
+        .stdout;
+    assert!(full.contains("sharing 'shared'"), "{full}");
     // A ladder holdout has no final ranking.
     d.run(&red, &["ranking", "lad"]).code(7);
 }

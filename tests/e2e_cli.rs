@@ -981,3 +981,128 @@ fn regression_answers_are_also_shown_in_the_target_s_own_units() {
         .stdout;
     assert!(!text.contains("in units"), "{text}");
 }
+
+#[test]
+fn every_view_of_a_regression_answer_shows_the_target_s_own_units() {
+    let d = Daemon::start();
+    create_qc(&d, "qcv", &["--tolerance", "0.3"]);
+    let alice = d.add_user("alice", &["analyst"], Some("red"));
+    let costs = d.write("c30.csv", &Parts::new(N).cost_predictions(30.0));
+    d.run(
+        &alice,
+        &["submit", "qcv", "--target", "cost", "--predictions", &costs],
+    )
+    .ok();
+    // history: the text row and the JSON answer.
+    let text = d.run(&alice, &["history", "qcv"]).ok().stdout;
+    assert!(text.contains("= mean absolute error 30 ["), "{text}");
+    let h = d
+        .run(&alice, &["history", "qcv", "--json"])
+        .ok()
+        .json_lines();
+    let a = &h[0]["answer"];
+    let u = &a["units"];
+    assert_eq!(u["measure"], "mean absolute error", "{a}");
+    assert_eq!(u["bound"], 100.0);
+    assert_eq!(u["score"], 30.0);
+    let (lo, hi) = (a["lower"].as_f64().unwrap(), a["upper"].as_f64().unwrap());
+    let (ulo, uhi) = (u["lower"].as_f64().unwrap(), u["upper"].as_f64().unwrap());
+    assert!(ulo <= 30.0 && 30.0 <= uhi, "{u}");
+    assert!(
+        ulo <= lo * 100.0 && uhi >= hi * 100.0,
+        "outward: {u} vs [{lo}, {hi}]"
+    );
+    // leaderboard (best per team): text and JSON.
+    let text = d.run(&alice, &["leaderboard", "qcv"]).ok().stdout;
+    assert!(text.contains("= mean absolute error 30 ["), "{text}");
+    let b = d.run(&alice, &["leaderboard", "qcv", "--json"]).ok().json();
+    let row = b["rows"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|r| r["target"] == "cost")
+        .expect("a cost row");
+    assert_eq!(row["units"]["score"], 30.0, "{row}");
+    // submit --json.
+    let again = d.write("c31.csv", &Parts::new(N).cost_predictions(31.0));
+    let a = d
+        .run(
+            &alice,
+            &[
+                "submit",
+                "qcv",
+                "--target",
+                "cost",
+                "--predictions",
+                &again,
+                "--json",
+            ],
+        )
+        .ok()
+        .json();
+    assert_eq!(a["units"]["measure"], "mean absolute error", "{a}");
+
+    // A sealed round's ranking: entries and comparisons in units too.
+    // Rows of their own (a row belongs to one holdout).
+    let own = |t: String| t.replace("part-", "final-");
+    let labels = d.write("fin-labels.csv", &own(Parts::new(N).labels_csv()));
+    d.admin(&[
+        "create",
+        "fin",
+        "--labels",
+        &labels,
+        "--target",
+        "cost:cost:abs_error:100",
+        "--answers",
+        "sealed:0.01",
+        "--tolerance",
+        "0.3",
+        "--expect-answers",
+        "2",
+        "--closes-at",
+        "2099-01-01T00:00:00Z",
+    ])
+    .ok();
+    let bob = d.add_user("bob", &["analyst"], Some("blue"));
+    let far = d.write("c50.csv", &own(Parts::new(N).cost_predictions(50.0)));
+    let costs = d.write("f30.csv", &own(Parts::new(N).cost_predictions(30.0)));
+    d.run(
+        &alice,
+        &["submit", "fin", "--predictions", &costs, "--final"],
+    )
+    .ok();
+    d.run(&bob, &["submit", "fin", "--predictions", &far, "--final"])
+        .ok();
+    d.admin(&["close", "fin"]).ok();
+    let text = d.admin(&["ranking", "fin"]).ok().stdout;
+    assert!(text.contains("= mean absolute error 30 ["), "{text}");
+    assert!(text.contains("= mean absolute error 50 ["), "{text}");
+    let r = d.admin(&["ranking", "fin", "--json"]).ok().json();
+    for e in r["entries"].as_array().unwrap() {
+        assert_eq!(e["units"]["measure"], "mean absolute error", "{e}");
+    }
+    let c = &r["comparisons"][0];
+    let (lo, ulo) = (
+        c["lower"].as_f64().unwrap(),
+        c["units"]["lower"].as_f64().unwrap(),
+    );
+    assert!(ulo <= lo * 100.0 && (ulo - lo * 100.0).abs() < 1e-9, "{c}");
+    // A classification target carries none.
+    let defects = d.write("d.csv", &Parts::new(N).defect_predictions(10, 0));
+    let a = d
+        .run(
+            &alice,
+            &[
+                "submit",
+                "qcv",
+                "--target",
+                "defect",
+                "--predictions",
+                &defects,
+                "--json",
+            ],
+        )
+        .ok()
+        .json();
+    assert!(a["units"].is_null(), "{a}");
+}

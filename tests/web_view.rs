@@ -452,6 +452,14 @@ fn every_page(w: &World) -> Vec<(String, Reply)> {
     pages
 }
 
+fn rows_units_null(board: &Value) -> bool {
+    board["board"]["rows"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|r| r["units"].is_null())
+}
+
 #[test]
 fn pages_show_what_each_caller_may_see_and_never_a_label_or_an_exact_score() {
     let w = world();
@@ -549,7 +557,7 @@ fn pages_show_what_each_caller_may_see_and_never_a_label_or_an_exact_score() {
     // An analyst of the shared holdout sees its history (as `holdout history` shows it), but
     // only its own team's leaderboard row.
     let ana = page("analyst /holdouts/vault/leaderboard?format=json").json();
-    let teams: Vec<&str> = ana["board"]["best_per_team"]
+    let teams: Vec<&str> = ana["board"]["rows"]
         .as_array()
         .unwrap()
         .iter()
@@ -593,6 +601,56 @@ fn pages_show_what_each_caller_may_see_and_never_a_label_or_an_exact_score() {
             assert!(!p.body.contains("<img"), "{what} carries an img element");
         }
     }
+
+    // Every leaderboard page is the engine's own table, the one `holdout leaderboard` prints,
+    // for each caller (best per team and ladder alike), so the two can never disagree.
+    for (who, token) in [("analyst", &w.kestrel), ("organizer", &w.organizer)] {
+        for name in ["yard", "vault", "gauge", "lad", "fin"] {
+            let web = page(&format!("{who} /holdouts/{name}/leaderboard?format=json")).json();
+            let cli = w.d.run(token, &["leaderboard", name, "--json"]).ok().json();
+            assert_eq!(
+                web["board"], cli,
+                "{who} {name}: the web board differs from the CLI's"
+            );
+        }
+    }
+    // A regression target's rows carry its own units beside the [0, 1] figures: the web
+    // board, the history (JSON and HTML) and the CLI's leaderboard.
+    let gauge = page("public /holdouts/gauge/leaderboard?format=json").json();
+    let rows = gauge["board"]["rows"].as_array().unwrap();
+    assert_eq!(rows.len(), 2, "{gauge}");
+    for r in rows {
+        let u = &r["units"];
+        assert_eq!(u["measure"], "mean absolute error", "{r}");
+        let (lo, hi) = (r["lower"].as_f64().unwrap(), r["upper"].as_f64().unwrap());
+        let (ulo, uhi) = (u["lower"].as_f64().unwrap(), u["upper"].as_f64().unwrap());
+        assert!(ulo <= lo * 100.0 && uhi >= hi * 100.0, "{r}");
+        assert!((ulo - lo * 100.0).abs() < 1e-9 && (uhi - hi * 100.0).abs() < 1e-9);
+    }
+    assert!(
+        page("public /holdouts/gauge/leaderboard")
+            .body
+            .contains("= mean absolute error"),
+        "the HTML board shows the units"
+    );
+    let history = page("organizer /holdouts/gauge?format=json").json();
+    assert!(
+        history["history"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .all(|e| e["answer"]["units"]["measure"] == "mean absolute error"),
+        "{history}"
+    );
+    assert!(
+        page("organizer /holdouts/gauge")
+            .body
+            .contains("= mean absolute error")
+    );
+    // ... and none on a classification target.
+    assert!(rows_units_null(
+        &page("public /holdouts/lad/leaderboard?format=json").json()
+    ));
 
     // The ladder's leaderboard and the closed round's ranking with its comparisons.
     let board = page("public /holdouts/lad/leaderboard?format=json").json();

@@ -252,11 +252,7 @@ pub fn plan_rows(args: &PlanArgs) -> anyhow::Result<Vec<PlanRow>> {
 }
 
 fn count_text(q: Option<f64>) -> String {
-    match q {
-        None => "-".into(),
-        Some(q) if q < 1e15 => format!("{q:.0}"),
-        Some(q) => format!("{q:.1e}"),
-    }
+    q.map_or("-".into(), crate::cli::client::show::count)
 }
 
 /// Computes the rows of `holdout plan --teams T --answers-each M`.

@@ -1004,7 +1004,8 @@ impl Engine {
             last = *t;
             r.rank = rank;
         }
-        let sealed = loaded.policy.sealed();
+        // Before the close a sealed round's table is empty: say why (and only then).
+        let sealed_open = loaded.policy.sealed() && self.closed_at(loaded.id)?.is_none();
         Ok(Leaderboard {
             holdout: name,
             target: loaded.policy.targets[0].name.clone(),
@@ -1017,7 +1018,7 @@ impl Engine {
                  valid: the row's interval contains the true error of the file that answer was \
                  for.{}",
                 seven_digits(loaded.policy.input.delta),
-                if sealed {
+                if sealed_open {
                     " A sealed round releases its answers at the close: until then the table is \
                      empty (see status for the entries per team)."
                 } else {

@@ -133,9 +133,9 @@ pub(crate) fn sealed(
         marked: r.marked,
         closes_at: closes_at.to_string(),
         statement: format!(
-            "sealed: entry {} of the round is recorded and its share taken; nothing about its \
-             score is released until the round closes ({}), when every entry is answered at once",
-            r.ticket,
+            "sealed: query {} is recorded and its share taken; nothing about its score is \
+             released until the round closes ({}), when every entry is answered at once",
+            r.query,
             if closes_at.is_empty() {
                 "by an organizer".to_string()
             } else {

@@ -6,9 +6,9 @@ use std::fmt::Write as _;
 
 use axum::http::StatusCode;
 
-use super::pages::{BEST_STATEMENT, Board, Facts};
+use super::pages::{Board, Facts};
 use crate::auth::Caller;
-use crate::cli::client::show::{history_cells, interval_text, num, queries_left_text};
+use crate::cli::client::show::{Units, history_cells, interval_text, num, queries_left_text};
 use crate::proto::v1::{HistoryEntry, RankingResponse};
 use crate::report::{self, ReportData};
 
@@ -275,14 +275,14 @@ pub(super) fn status(v: &Viewer, f: &Facts, history: Option<&[HistoryEntry]>) ->
                 let _ = writeln!(b, "<p class=\"note\">{}</p>", esc(&e.to_string()));
             }
         }
-        b.push_str(&history_table(history));
+        b.push_str(&history_table(history, &Units::of(&f.info.targets)));
     }
     b.push_str(&guarantee(&f.info.guarantee));
     layout(v, &f.info.name, &b)
 }
 
 /// The released history, newest first (at most 500 rows).
-fn history_table(history: &[HistoryEntry]) -> String {
+fn history_table(history: &[HistoryEntry], units: &Units) -> String {
     const MAX_ROWS: usize = 500;
     let mut s = format!(
         "<h2>History</h2>\n<p>{} entries{}.</p>\n<table><thead><tr><th class=\"n\">#</th>\
@@ -296,7 +296,7 @@ fn history_table(history: &[HistoryEntry]) -> String {
         }
     );
     for e in history.iter().rev().take(MAX_ROWS) {
-        let (query, what, interval) = history_cells(e, &e.kind);
+        let (query, what, interval) = history_cells(e, &e.kind, units);
         let _ = writeln!(
             s,
             "<tr><td class=\"n\">{}</td><td>{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td>\
@@ -314,71 +314,86 @@ fn history_table(history: &[HistoryEntry]) -> String {
     s
 }
 
-/// The ladder leaderboard or the best interval per team.
+/// An interval, followed for a regression target by the same in its own units.
+fn interval_in(units: &Units, target: &str, score: Option<f64>, lower: f64, upper: f64) -> String {
+    let shown = interval_text(lower, upper);
+    match units.text(target, score, lower, upper) {
+        Some(u) => format!("{shown} = {u}"),
+        None => shown,
+    }
+}
+
+/// The holdout's leaderboard, the engine's own table (`holdout leaderboard`): the ladder's, or
+/// each team's best released answer per target under the other rules.
 pub(super) fn board(v: &Viewer, f: &Facts, board: &Board) -> String {
     let title = if f.ladder {
         ": leaderboard"
     } else {
         ": best per team"
     };
+    let units = Units::of(&f.info.targets);
     let mut b = heading(v, f, title);
     match board {
         Board::Hidden => b.push_str(&hidden_note(v)),
-        Board::Ladder(l) => {
+        Board::Shown(l) => {
             if l.own_team_only {
                 b.push_str(
                     "<p class=\"note\">Only your team's row: this leaderboard is shown in full \
                      to organizers.</p>\n",
                 );
             }
-            let _ = writeln!(b, "<p>Target {}.</p>", esc(&l.target));
-            b.push_str(
-                "<table><thead><tr><th class=\"n\">rank</th><th>team</th><th class=\"n\">best\
-                 </th><th>best true error among its submissions</th><th class=\"n\">answered</th>\
-                 <th class=\"n\">new bests</th></tr></thead><tbody>\n",
-            );
-            for r in &l.rows {
-                let iv = r.interval.unwrap_or_default();
-                let _ = writeln!(
-                    b,
-                    "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td>\
-                     <td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
-                    if r.rank == 0 {
-                        "&ndash;".to_string()
-                    } else {
-                        r.rank.to_string()
-                    },
-                    esc(&r.team),
-                    r.best.map_or("&ndash;".to_string(), num),
-                    interval_text(iv.lower, iv.upper),
-                    r.submissions,
-                    r.improvements
+            if l.kind == "best-per-team" {
+                b.push_str(
+                    "<table><thead><tr><th>target</th><th class=\"n\">rank</th><th>team</th>\
+                     <th class=\"n\">best answer</th><th class=\"n\">score</th>\
+                     <th>interval for its true error</th><th class=\"n\">answered</th></tr>\
+                     </thead><tbody>\n",
                 );
+                for r in &l.rows {
+                    let iv = r.interval.unwrap_or_default();
+                    let _ = writeln!(
+                        b,
+                        "<tr><td>{}</td><td class=\"n\">{}</td><td>{}</td>\
+                         <td class=\"n\">query {}</td><td class=\"n\">{}</td><td>{}</td>\
+                         <td class=\"n\">{}</td></tr>",
+                        esc(&r.target),
+                        r.rank,
+                        esc(&r.team),
+                        r.query,
+                        r.best.map_or("&ndash;".to_string(), num),
+                        esc(&interval_in(&units, &r.target, r.best, iv.lower, iv.upper)),
+                        r.submissions
+                    );
+                }
+            } else {
+                let _ = writeln!(b, "<p>Target {}.</p>", esc(&l.target));
+                b.push_str(
+                    "<table><thead><tr><th class=\"n\">rank</th><th>team</th><th class=\"n\">\
+                     best</th><th>best true error among its submissions</th>\
+                     <th class=\"n\">answered</th><th class=\"n\">new bests</th></tr></thead>\
+                     <tbody>\n",
+                );
+                for r in &l.rows {
+                    let iv = r.interval.unwrap_or_default();
+                    let _ = writeln!(
+                        b,
+                        "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{}</td>\
+                         <td>{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>",
+                        if r.rank == 0 {
+                            "&ndash;".to_string()
+                        } else {
+                            r.rank.to_string()
+                        },
+                        esc(&r.team),
+                        r.best.map_or("&ndash;".to_string(), num),
+                        esc(&interval_in(&units, &r.target, r.best, iv.lower, iv.upper)),
+                        r.submissions,
+                        r.improvements
+                    );
+                }
             }
             b.push_str("</tbody></table>\n");
             let _ = writeln!(b, "<p>{}</p>", esc(&l.statement));
-        }
-        Board::Best(rows) => {
-            b.push_str(
-                "<table><thead><tr><th>team</th><th>target</th><th class=\"n\">answers</th>\
-                 <th class=\"n\">query</th><th>released</th><th>interval</th></tr></thead>\
-                 <tbody>\n",
-            );
-            for r in rows {
-                let _ = writeln!(
-                    b,
-                    "<tr><td>{}</td><td>{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td>\
-                     <td>{}</td><td>{}</td></tr>",
-                    esc(&r.team),
-                    esc(&r.target),
-                    r.answers,
-                    r.query,
-                    esc(&r.symbol),
-                    interval_text(r.lower, r.upper)
-                );
-            }
-            b.push_str("</tbody></table>\n");
-            let _ = writeln!(b, "<p>{}</p>", esc(BEST_STATEMENT));
         }
     }
     b.push_str(&guarantee(&f.info.guarantee));
@@ -387,6 +402,7 @@ pub(super) fn board(v: &Viewer, f: &Facts, board: &Board) -> String {
 
 /// A closed round's ranking with the paired comparison of each entry with the next.
 pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, String>) -> String {
+    let units = Units::of(&f.info.targets);
     let mut b = heading(v, f, ": ranking");
     match ranking {
         Err(why) => {
@@ -414,7 +430,7 @@ pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, S
                             let d = c.difference.unwrap_or_default();
                             format!(
                                 "{} {}",
-                                interval_text(d.lower, d.upper),
+                                esc(&interval_in(&units, &c.target, None, d.lower, d.upper)),
                                 if c.distinguishable {
                                     "told apart"
                                 } else {
@@ -434,7 +450,7 @@ pub(super) fn ranking(v: &Viewer, f: &Facts, ranking: &Result<RankingResponse, S
                     esc(&e.team),
                     e.query,
                     e.score.map_or("&ndash;".to_string(), num),
-                    interval_text(iv.lower, iv.upper),
+                    esc(&interval_in(&units, &e.target, e.score, iv.lower, iv.upper)),
                     vs
                 );
             }

@@ -6,8 +6,6 @@
 //! ones the gRPC services call, converted to the same `holdout.v1` messages; what is hidden is
 //! decided there ([`Visibility::of`]), never here.
 
-use std::collections::BTreeMap;
-
 use axum::Router;
 use axum::body::Body;
 use axum::extract::{Path, State};
@@ -19,7 +17,7 @@ use serde_json::{Value, json};
 use super::html::{self, Viewer};
 use crate::auth::Caller;
 use crate::cli::client::compete::{leaderboard_json, ranking_json};
-use crate::cli::client::show::{history_json, holdout_json};
+use crate::cli::client::show::{Units, history_json, holdout_json};
 use crate::engine::{Db, Engine, HoldoutPolicy, Scope, Visibility};
 use crate::error::Error;
 use crate::proto::v1::{HistoryEntry, HoldoutInfo, LeaderboardResponse, RankingResponse};
@@ -357,7 +355,8 @@ async fn status(
                 "viewer": viewer_json(v.caller),
                 "holdout": facts_json(&facts),
                 "history": history.as_ref().map_or(Value::Null, |h| {
-                    Value::Array(h.iter().map(history_json).collect())
+                    let units = Units::of(&facts.info.targets);
+                    Value::Array(h.iter().map(|e| history_json(e, &units)).collect())
                 }),
             });
             (html::status(v, &facts, history.as_deref()), json)
@@ -366,64 +365,14 @@ async fn status(
     .await
 }
 
-/// A ladder holdout's leaderboard, or for other rules the best interval per team.
+/// The holdout's leaderboard as the `Leaderboard` RPC returns it (`holdout leaderboard`): a
+/// ladder's, or for other rules the engine's best-per-team table, so the page and the command
+/// line can never disagree.
 pub(super) enum Board {
-    /// The ladder leaderboard as the `Leaderboard` RPC returns it.
-    Ladder(LeaderboardResponse),
-    /// For other rules: per team and target, the answer with the lowest upper limit.
-    Best(Vec<BestRow>),
+    /// The engine's table, rows already limited to what the caller may see.
+    Shown(LeaderboardResponse),
     /// The caller may see no team's rows.
     Hidden,
-}
-
-/// One team's answer with the lowest upper limit on one target.
-pub(super) struct BestRow {
-    pub(super) team: String,
-    pub(super) target: String,
-    pub(super) answers: u64,
-    pub(super) query: u64,
-    pub(super) symbol: String,
-    pub(super) lower: f64,
-    pub(super) upper: f64,
-}
-
-/// What the best-per-team table certifies.
-pub(super) const BEST_STATEMENT: &str = "Each row is, among one team's released answers on one \
-    target, the one with the lowest upper limit. Every interval this holdout reports holds \
-    simultaneously with all the others (the guarantee below), so picking one of them after the \
-    fact keeps it valid: the row's interval contains the true error of the file that answer was \
-    for.";
-
-fn best_rows(history: &[HistoryEntry]) -> Vec<BestRow> {
-    let mut best: BTreeMap<(String, String), BestRow> = BTreeMap::new();
-    for e in history {
-        let Some(a) = &e.answer else { continue };
-        let Some(iv) = &a.interval else { continue };
-        let row = best
-            .entry((e.team.clone(), a.target.clone()))
-            .or_insert_with(|| BestRow {
-                team: e.team.clone(),
-                target: a.target.clone(),
-                answers: 0,
-                query: a.query,
-                symbol: a.symbol.clone(),
-                lower: iv.lower,
-                upper: iv.upper,
-            });
-        row.answers += 1;
-        if iv.upper < row.upper {
-            (row.query, row.symbol, row.lower, row.upper) =
-                (a.query, a.symbol.clone(), iv.lower, iv.upper);
-        }
-    }
-    let mut rows: Vec<BestRow> = best.into_values().collect();
-    rows.sort_by(|a, b| {
-        a.target
-            .cmp(&b.target)
-            .then(a.upper.total_cmp(&b.upper))
-            .then(a.team.cmp(&b.team))
-    });
-    rows
 }
 
 async fn board(
@@ -438,38 +387,17 @@ async fn board(
         headers,
         move |engine, caller| {
             let facts = facts(engine, caller, &name)?;
-            let board = if facts.ladder {
-                if facts.visibility.leaderboard == Scope::Nothing {
-                    Board::Hidden
-                } else {
-                    Board::Ladder(convert::leaderboard(&engine.leaderboard(caller, &name)?))
-                }
+            let board = if facts.visibility.leaderboard == Scope::Nothing {
+                Board::Hidden
             } else {
-                // A table of teams is a leaderboard: it follows the leaderboard's scope.
-                match history(engine, caller, &facts)? {
-                    Some(h) if facts.visibility.leaderboard != Scope::Nothing => Board::Best(
-                        best_rows(&h)
-                            .into_iter()
-                            .filter(|r| facts.visibility.leaderboard.covers(&r.team))
-                            .collect(),
-                    ),
-                    _ => Board::Hidden,
-                }
+                Board::Shown(convert::leaderboard(&engine.leaderboard(caller, &name)?))
             };
             Ok((facts, board))
         },
         |v, (facts, board): (Facts, Board)| {
+            let units = Units::of(&facts.info.targets);
             let rows = match &board {
-                Board::Ladder(b) => leaderboard_json(b),
-                Board::Best(rows) => json!({
-                    "holdout": facts.info.name,
-                    "best_per_team": rows.iter().map(|r| json!({
-                        "team": r.team, "target": r.target, "answers": r.answers,
-                        "query": r.query, "symbol": r.symbol, "lower": r.lower, "upper": r.upper,
-                    })).collect::<Vec<_>>(),
-                    "statement": BEST_STATEMENT,
-                    "guarantee": facts.info.guarantee,
-                }),
+                Board::Shown(b) => leaderboard_json(b, &units),
                 Board::Hidden => Value::Null,
             };
             let json = json!({
@@ -520,7 +448,9 @@ async fn ranking(
             let json = json!({
                 "viewer": viewer_json(v.caller),
                 "holdout": facts_json(&facts),
-                "ranking": ranking.as_ref().map_or(Value::Null, ranking_json),
+                "ranking": ranking.as_ref().map_or(Value::Null, |r| {
+                    ranking_json(r, &Units::of(&facts.info.targets))
+                }),
                 "not_shown": ranking.as_ref().err(),
             });
             (html::ranking(v, &facts, &ranking), json)

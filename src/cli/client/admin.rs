@@ -362,13 +362,14 @@ pub async fn history(args: &HistoryArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
+    let units = conn.units(&args.name).await;
     let mut rows = Vec::new();
     while let Some(entry) = stream.next().await {
         let entry = entry.map_err(|e| conn.fail(e))?;
         if args.json {
-            show::print_json(&show::history_json(&entry));
+            show::print_json(&show::history_json(&entry, &units));
         } else {
-            rows.push(show::history_row(&entry, args.exact));
+            rows.push(show::history_row(&entry, args.exact, &units));
         }
     }
     if !args.json {
@@ -475,7 +476,7 @@ pub async fn close(args: &CloseArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&show::holdout_json(&info));
     } else {
-        println!("closed {}\n{}", info.name, show::holdout_text(&info));
+        println!("closed {}\n{}", info.name, show::holdout_text_brief(&info));
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -27,6 +27,10 @@ pub struct BoardArgs {
     /// Print CSV with a header row.
     #[arg(long)]
     pub csv: bool,
+    /// State the holdout's guarantee and its assumptions in full after the table (without
+    /// it, one line names them; `holdout status` and --json always carry them in full).
+    #[arg(long)]
+    pub guarantee: bool,
     #[command(flatten)]
     #[allow(missing_docs)]
     pub server: ServerArgs,
@@ -38,6 +42,33 @@ fn iv(i: Option<&Interval>) -> (f64, f64) {
 
 fn opt(x: Option<f64>) -> String {
     x.map(num).unwrap_or_else(|| "-".into())
+}
+
+/// An interval for people, followed for a regression target by the same in its own units
+/// (`[0.12, 0.15] = mean absolute error 13 [12, 15]`).
+fn in_units(units: &show::Units, target: &str, score: Option<f64>, lo: f64, hi: f64) -> String {
+    let shown = show::interval_text(lo, hi);
+    match units.text(target, score, lo, hi) {
+        Some(u) => format!("{shown} = {u}"),
+        None => shown,
+    }
+}
+
+/// After a leaderboard or ranking: the holdout's guarantee in full with `--guarantee`, else
+/// in one line (the table's statement above already gives the probability it holds with).
+fn board_guarantee(guarantee: &str, args: &BoardArgs, delta: Option<f64>) -> String {
+    if args.guarantee {
+        format!("\n{guarantee}")
+    } else {
+        show::guarantee_brief(
+            delta,
+            "these intervals hold together with every other this holdout reports",
+            &format!(
+                "--guarantee or `holdout status {}`",
+                show::safe_text(&args.name, 100)
+            ),
+        )
+    }
 }
 
 fn csv_line(cells: &[String]) -> String {
@@ -68,8 +99,13 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .await
         .map_err(|e| conn.fail(e))?
         .into_inner();
+    let info = conn.holdout_info(&args.name).await;
+    let units = info
+        .as_ref()
+        .map_or_else(show::Units::default, |i| show::Units::of(&i.targets));
+    let delta = info.and_then(|i| i.policy).map(|p| p.delta);
     if args.json {
-        show::print_json(&leaderboard_json(&b));
+        show::print_json(&leaderboard_json(&b, &units));
     } else if args.csv {
         println!("rank,team,best,lower,upper,submissions,improvements,best_at,target,query");
         for r in &b.rows {
@@ -99,8 +135,12 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         if b.own_team_only {
             println!("(only your team's row: this leaderboard is shown in full to organizers)");
         }
-        println!("{}", leaderboard_table(&b));
-        println!("\n{}\n\n{}", b.statement, b.guarantee);
+        println!("{}", leaderboard_table(&b, &units));
+        println!(
+            "\n{}\n{}",
+            b.statement,
+            board_guarantee(&b.guarantee, args, delta)
+        );
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -121,8 +161,13 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
         .into_inner();
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
+    let info = conn.holdout_info(&args.name).await;
+    let units = info
+        .as_ref()
+        .map_or_else(show::Units::default, |i| show::Units::of(&i.targets));
+    let delta = info.and_then(|i| i.policy).map(|p| p.delta);
     if args.json {
-        show::print_json(&ranking_json(&r));
+        show::print_json(&ranking_json(&r, &units));
     } else if args.csv {
         println!("rank,team,query,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
         for e in &r.entries {
@@ -152,8 +197,12 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
             "ranking of {} (closed {} by {})",
             r.holdout, r.closed_at, r.trigger
         );
-        println!("{}", ranking_table(&r));
-        println!("\n{}\n\n{}", r.statement, r.guarantee);
+        println!("{}", ranking_table(&r, &units));
+        println!(
+            "\n{}\n{}",
+            r.statement,
+            board_guarantee(&r.guarantee, args, delta)
+        );
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -250,8 +299,8 @@ pub fn sealed_json(e: &SealedEntry) -> Value {
     })
 }
 
-/// A sealed entry's receipt for people.
-pub fn sealed_text(e: &SealedEntry) -> String {
+/// A sealed entry's receipt for people; the holdout's guarantee in one line unless `full`.
+pub fn sealed_text(e: &SealedEntry, full: bool, delta: Option<f64>) -> String {
     // One number for a query everywhere: the reply, its receipt and the history all say
     // "query N" (per team under `isolated`); the position in the round stays in --json.
     let mut s = format!("sealed entry, query {} (target {})", e.query, e.target);
@@ -271,15 +320,25 @@ pub fn sealed_text(e: &SealedEntry) -> String {
     }
     s.push_str(&format!("\nstatement  {}", e.statement));
     s.push_str(&format!("\ndigest     {}", e.digest));
-    if !e.guarantee.is_empty() {
+    if full && !e.guarantee.is_empty() {
         s.push_str("\n\n");
         s.push_str(&e.guarantee);
+    } else if !e.guarantee.is_empty() {
+        s.push_str(&format!(
+            "\n{}",
+            show::guarantee_brief(
+                delta,
+                "every interval this round reports at its close holds together with every \
+                 other this holdout reports",
+                "--guarantee or `holdout status`"
+            )
+        ));
     }
     s
 }
 
 /// A ladder leaderboard as one JSON object.
-pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
+pub fn leaderboard_json(b: &LeaderboardResponse, units: &show::Units) -> Value {
     json!({
         "holdout": b.holdout,
         "target": b.target,
@@ -290,7 +349,7 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
             json!({"rank": r.rank, "team": r.team, "target": r.target, "query": r.query,
                    "best": r.best, "lower": lo, "upper": hi,
                    "submissions": r.submissions, "improvements": r.improvements,
-                   "best_at": r.best_at})
+                   "best_at": r.best_at, "units": units.json(&r.target, r.best, lo, hi)})
         }).collect::<Vec<Value>>(),
         "statement": b.statement,
         "guarantee": b.guarantee,
@@ -298,7 +357,8 @@ pub fn leaderboard_json(b: &LeaderboardResponse) -> Value {
 }
 
 /// A leaderboard's rows as a table for people (without its statement and guarantee).
-pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
+/// With `units`, rows of regression targets show their interval in the target's own units too.
+pub fn leaderboard_table(b: &LeaderboardResponse, units: &show::Units) -> String {
     if b.kind == "best-per-team" {
         let rows: Vec<Vec<String>> = b
             .rows
@@ -311,7 +371,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
                     r.team.clone(),
                     format!("query {}", r.query),
                     opt(r.best),
-                    show::interval_text(lo, hi),
+                    in_units(units, &r.target, r.best, lo, hi),
                     r.submissions.to_string(),
                 ]
             })
@@ -342,7 +402,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
                 },
                 r.team.clone(),
                 opt(r.best),
-                show::interval_text(lo, hi),
+                in_units(units, &r.target, r.best, lo, hi),
                 r.submissions.to_string(),
                 r.improvements.to_string(),
             ]
@@ -362,7 +422,7 @@ pub fn leaderboard_table(b: &LeaderboardResponse) -> String {
 }
 
 /// A closed round's ranking as one JSON object.
-pub fn ranking_json(r: &RankingResponse) -> Value {
+pub fn ranking_json(r: &RankingResponse, units: &show::Units) -> Value {
     json!({
         "holdout": r.holdout,
         "closed_at": r.closed_at,
@@ -371,13 +431,15 @@ pub fn ranking_json(r: &RankingResponse) -> Value {
             let (lo, hi) = iv(e.interval.as_ref());
             json!({"rank": e.rank, "team": e.team, "query": e.query, "ticket": e.ticket,
                    "score": e.score,
-                   "lower": lo, "upper": hi, "digest": e.digest, "target": e.target})
+                   "lower": lo, "upper": hi, "digest": e.digest, "target": e.target,
+                   "units": units.json(&e.target, e.score, lo, hi)})
         }).collect::<Vec<Value>>(),
         "comparisons": r.comparisons.iter().map(|c| {
             let (lo, hi) = iv(c.difference.as_ref());
             json!({"ahead": c.ahead, "behind": c.behind, "lower": lo, "upper": hi,
                    "level_nats": c.level_nats, "distinguishable": c.distinguishable,
-                   "target": c.target})
+                   "target": c.target,
+                   "units": units.json(&c.target, None, lo, hi)})
         }).collect::<Vec<Value>>(),
         "statement": r.statement,
         "guarantee": r.guarantee,
@@ -386,7 +448,9 @@ pub fn ranking_json(r: &RankingResponse) -> Value {
 
 /// A closed round's ranking as a table for people: each entry, its interval and the paired
 /// comparison with the entry ranked just below (without the statement and guarantee).
-pub fn ranking_table(r: &RankingResponse) -> String {
+/// With `units`, entries of regression targets show their interval (and the comparison) in the
+/// target's own units too.
+pub fn ranking_table(r: &RankingResponse, units: &show::Units) -> String {
     // The comparison with the entry ranked just below, by ticket of the entry ahead.
     let below = |ticket: u64| r.comparisons.iter().find(|c| c.ahead == ticket);
     let rows: Vec<Vec<String>> = r
@@ -398,7 +462,7 @@ pub fn ranking_table(r: &RankingResponse) -> String {
                 let (a, b) = iv(c.difference.as_ref());
                 format!(
                     "{} {}",
-                    show::interval_text(a, b),
+                    in_units(units, &c.target, None, a, b),
                     if c.distinguishable {
                         "told apart"
                     } else {
@@ -415,7 +479,7 @@ pub fn ranking_table(r: &RankingResponse) -> String {
                 },
                 e.team.clone(),
                 opt(e.score),
-                show::interval_text(lo, hi),
+                in_units(units, &e.target, e.score, lo, hi),
                 vs,
             ]
         })

@@ -191,6 +191,30 @@ impl Conn {
             .max_encoding_message_size(MAX_REQUEST_BYTES)
     }
 
+    /// The own units of a holdout's regression targets ([`super::show::Units`]), for views
+    /// that show released intervals; empty when the holdout cannot be read (the view itself
+    /// then reports why) or has no regression target.
+    pub async fn units(&self, holdout: &str) -> super::show::Units {
+        self.holdout_info(holdout)
+            .await
+            .map_or_else(super::show::Units::default, |i| {
+                super::show::Units::of(&i.targets)
+            })
+    }
+
+    /// The holdout's public facts as the caller may see them, for views that add its targets'
+    /// units or its delta to another reply; `None` when it cannot be read (the view itself
+    /// then reports why).
+    pub async fn holdout_info(&self, holdout: &str) -> Option<crate::proto::v1::HoldoutInfo> {
+        self.holdouts()
+            .get_holdout(crate::proto::v1::GetHoldoutRequest {
+                name: holdout.to_string(),
+            })
+            .await
+            .ok()
+            .map(tonic::Response::into_inner)
+    }
+
     /// Wraps a failed call. The connection was open when the call began ([`Conn::open`]
     /// connects eagerly), so a status that comes from the transport rather than from the daemon
     /// means the connection broke with the request on its way or in the daemon's hands: the

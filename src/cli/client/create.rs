@@ -612,7 +612,7 @@ pub async fn run(args: &CreateArgs) -> anyhow::Result<ExitCode> {
         show::print_json(&v);
     } else {
         // The joint-delta note was printed with the plan, before the upload.
-        println!("\ncreated\n{}", show::holdout_text(&info));
+        println!("\ncreated\n{}", show::holdout_text_brief(&info));
     }
     Ok(ExitCode::SUCCESS)
 }

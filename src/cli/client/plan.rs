@@ -26,14 +26,7 @@ pub struct Plan {
     pub json: Value,
 }
 
-/// A count of queries for people: exact below a million, rounded above.
-fn count(q: f64) -> String {
-    if q < 1e6 {
-        format!("{}", q as u64)
-    } else {
-        format!("~{q:.1e}")
-    }
-}
+use super::show::count;
 
 /// Describes what the policy buys for `n` rows.
 ///
@@ -74,10 +67,27 @@ pub fn describe(
             rules.push(r);
         }
     }
+    // Under a roster every team draws on its own share of delta, so every figure below is a
+    // team's: its share is the delta its answers use (less the roster's reserve and a sealed
+    // round's ranking share), split evenly over the declared teams.
+    let team_share = team_share(policy, &rule);
+    let plan_delta = team_share.map_or(policy.delta, |(_, d)| d);
     let mut text = format!(
-        "{n} rows; policy: {}\nWhat the policy buys (queries that fit before the half-width passes \
-         the tolerance {}, every answer coded at its worst case; {} = the chosen rule):",
+        "{n} rows; policy: {}\nWhat the policy buys{} (queries that fit before the half-width \
+         passes the tolerance {}, every answer coded at its worst case; {} = the chosen rule):",
         show::policy_text(policy),
+        team_share.map_or(String::new(), |(teams, d)| format!(
+            " for each team, on its share {} of delta (per team: {} split over {teams} teams{})",
+            show::num(d),
+            show::num(policy.delta),
+            if policy.sharing == "isolated" {
+                String::new()
+            } else {
+                "; under shared sharing the teams' answers lengthen one transcript, so these \
+                 counts are for a team submitting alone"
+                    .to_string()
+            }
+        )),
         show::num(policy.tolerance),
         "*"
     );
@@ -89,13 +99,13 @@ pub fn describe(
             .map_err(|e| Error::invalid("--target", format!("method of {}: {e}", t.name)))?;
         let spec = PlanSpec {
             rows: n,
-            delta: policy.delta,
+            delta: plan_delta,
             tolerance: policy.tolerance,
             schedule,
             method,
             batch: PLAN_BATCH,
         };
-        let first_level = schedule.ln_inv_fraction(1).map(|f| -policy.delta.ln() + f);
+        let first_level = schedule.ln_inv_fraction(1).map(|f| -plan_delta.ln() + f);
         let first_hw =
             first_level.and_then(|l| reference_half_width(method, n, 0.5, l, rule.sides()).ok());
         let table = plan_table(&spec, &rules, Some(expected_error));
@@ -112,10 +122,15 @@ pub fn describe(
             .collect();
         let expected_col = format!("at expected loss {}", show::num(expected_error));
         text.push_str(&format!(
-            "\n\ntarget {} ({}, method {}): first answer's half-width {} at worst\n{}",
+            "\n\ntarget {} ({}, method {}): {}first answer's half-width {} at worst\n{}",
             t.name,
             t.metric,
             method,
+            if team_share.is_some() {
+                "a team's "
+            } else {
+                ""
+            },
             first_hw.map_or("-".to_string(), show::num),
             show::table(&["rule", "worst case", &expected_col], &rows)
         ));
@@ -141,12 +156,39 @@ pub fn describe(
         "expected_error": expected_error,
         "policy": show::policy_json(policy),
         "targets": per_target,
+        "per_team": team_share.map_or(Value::Null, |(teams, d)| json!({"teams": teams, "delta": d})),
     });
     if let Some(fair) = fair_service(n, policy, targets, expected_error, teams)? {
         text.push_str(&format!("\n\n{}", fair.text));
         json["teams"] = fair.json;
     }
     Ok(Plan { text, json })
+}
+
+/// Under per-team shares (`--shares roster:...`): the declared teams and the delta each
+/// team's answers draw on (the holdout's delta less the roster's reserve and, for a sealed
+/// round, the ranking's share, split evenly). `None` with one pool (or on-arrival shares,
+/// whose teams are not known in advance).
+fn team_share(policy: &Policy, rule: &Rule) -> Option<(u64, f64)> {
+    if !policy.shares.trim().starts_with("roster:") {
+        return None;
+    }
+    let (Some(teams), reserve) = declared_teams(&policy.shares, None) else {
+        return None;
+    };
+    let ranking = if matches!(rule, Rule::Sealed(_)) {
+        if policy.ranking_share > 0.0 {
+            policy.ranking_share
+        } else {
+            crate::engine::DEFAULT_RANKING_SHARE
+        }
+    } else {
+        0.0
+    };
+    Some((
+        teams,
+        policy.delta * (1.0 - reserve) * (1.0 - ranking) / teams as f64,
+    ))
 }
 
 /// Answers counted for one team when asking what it can expect (more is shown as "at least").
@@ -319,6 +361,42 @@ mod tests {
         );
         assert!(p.text.contains("* rounded:0.01"), "{}", p.text);
         assert!(p.text.contains("sealed"), "{}", p.text);
+    }
+
+    #[test]
+    fn under_a_roster_every_figure_is_a_teams_share() {
+        // Five teams on a roster with a 0.2 reserve: each team's share is 0.05 * 0.8 / 5 =
+        // 0.008, and the table and half-width are those of one pool of delta 0.008.
+        let mut roster = policy("ladder:0.01", "series");
+        roster.shares = "roster:a,b,c,d,e:0.2".into();
+        roster.sharing = "isolated".into();
+        let mut alone = policy("ladder:0.01", "series");
+        alone.delta = 0.05 * 0.8 / 5.0;
+        let t = [target("exact")];
+        let per_team = describe(2000, &roster, &t, 0.1, None).expect("plan");
+        let one_pool = describe(2000, &alone, &t, 0.1, None).expect("plan");
+        let whole = describe(2000, &policy("ladder:0.01", "series"), &t, 0.1, None).unwrap();
+        let hw = |p: &Plan| p.json["targets"][0]["first_half_width"].as_f64().unwrap();
+        assert_eq!(hw(&per_team), hw(&one_pool));
+        assert!(
+            hw(&per_team) > hw(&whole),
+            "a share is less than the whole delta"
+        );
+        assert_eq!(
+            per_team.json["targets"][0]["rules"],
+            one_pool.json["targets"][0]["rules"]
+        );
+        assert_eq!(per_team.json["per_team"]["teams"], 5);
+        assert!((per_team.json["per_team"]["delta"].as_f64().unwrap() - 0.008).abs() < 1e-12);
+        assert!(one_pool.json["per_team"].is_null());
+        assert!(
+            per_team
+                .text
+                .contains("for each team, on its share 0.008 of delta")
+                && per_team.text.contains("a team's first answer's half-width"),
+            "{}",
+            per_team.text
+        );
     }
 
     #[test]

@@ -46,16 +46,71 @@ pub fn interval_text(lower: f64, upper: f64) -> String {
     format!("[{}, {}]", trim(lo), trim(hi))
 }
 
-/// A number for people: four decimals for ordinary sizes, scientific notation for tiny ones.
+/// A number for people, the one formatter of every figure the command line and the web view
+/// print: four decimals for ordinary sizes (0.010000000000000002 reads 0.01), at most five
+/// significant digits from 10 up (11.695 nats); three
+/// significant digits for small ones, written out (0.000758); words for large ones (2.3
+/// trillion); powers of ten only past those (3.1×10^-14, 1.8×10^24). Never e-notation.
+/// Rounded to nearest: figures that are limits go through [`interval_text`] (outward).
 pub fn num(x: f64) -> String {
-    if x == 0.0 || !x.is_finite() {
-        format!("{x}")
-    } else if x.abs() >= 1e-3 && x.abs() < 1e6 {
-        let s = format!("{x:.4}");
-        let s = s.trim_end_matches('0').trim_end_matches('.');
-        s.to_string()
+    if x == 0.0 {
+        return "0".into();
+    }
+    if !x.is_finite() {
+        return format!("{x}");
+    }
+    let a = x.abs();
+    let trim = |s: String| {
+        if s.contains('.') {
+            s.trim_end_matches('0').trim_end_matches('.').to_string()
+        } else {
+            s
+        }
+    };
+    if (1e-3..1e6).contains(&a) {
+        // Four decimals below 10, then five significant digits (11.695, 1234.6, 123457).
+        let decimals = (4 - (a.log10().floor() as i32)).clamp(0, 4) as usize;
+        let s = trim(format!("{x:.decimals$}"));
+        return if s == "-0" { "0".into() } else { s };
+    }
+    if (1e-9..1e-3).contains(&a) {
+        let decimals = (-a.log10().floor()) as usize + 2;
+        return trim(format!("{x:.decimals$}"));
+    }
+    if (1e6..1e15).contains(&a) {
+        for (size, word) in [(1e12, "trillion"), (1e9, "billion"), (1e6, "million")] {
+            if a >= size {
+                let m = x / size;
+                // Three significant digits of the multiple.
+                let decimals = if m.abs() >= 100.0 {
+                    0
+                } else if m.abs() >= 10.0 {
+                    1
+                } else {
+                    2
+                };
+                return format!("{} {word}", trim(format!("{m:.decimals$}")));
+            }
+        }
+    }
+    // Past the words: a mantissa of two significant digits and a power of ten.
+    let e = a.log10().floor() as i32;
+    let m = x / 10f64.powi(e);
+    let (m, e) = if trim(format!("{m:.1}")).trim_start_matches('-') == "10" {
+        (m / 10.0, e + 1)
     } else {
-        format!("{x:.3e}")
+        (m, e)
+    };
+    format!("{}\u{d7}10^{e}", trim(format!("{m:.1}")))
+}
+
+/// A count that may be large or fractional, for people: whole below a million, then as
+/// [`num`] prints it, with "about" ("about 500 million").
+pub fn count(q: f64) -> String {
+    if q < 1e6 {
+        format!("{}", q.max(0.0) as u64)
+    } else {
+        format!("about {}", num(q))
     }
 }
 
@@ -231,6 +286,12 @@ pub fn receipt_json(r: Option<&Receipt>) -> Value {
 
 /// An answer as JSON: the flat fields scripts read, plus the whole budget.
 pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
+    answer_json_in(a, model_names, &Units::default())
+}
+
+/// [`answer_json`] with `units`: a regression target's answer in its own units (`units`,
+/// see [`Units::json`]; `null` for other targets).
+pub fn answer_json_in(a: &Answer, model_names: &[String], units: &Units) -> Value {
     let b = a.budget.clone().unwrap_or_default();
     let (lower, upper) = a.interval.as_ref().map_or((Value::Null, Value::Null), |i| {
         (json!(i.lower), json!(i.upper))
@@ -263,22 +324,54 @@ pub fn answer_json(a: &Answer, model_names: &[String]) -> Value {
         "replayed": a.replayed,
         "best_model": a.best_model,
         "best_model_name": best_name,
+        "units": a.interval.as_ref().map_or(Value::Null, |i| {
+            units.json(&a.target, a.score, i.lower, i.upper)
+        }),
     })
 }
 
 /// The guarantee in one sentence, with its assumptions named, for replies that show an
 /// interval but not the holdout's full statement (which `status` and `--guarantee` print).
 pub fn guarantee_line(delta: Option<f64>) -> String {
+    guarantee_brief(
+        delta,
+        "this interval holds together with every other this holdout reports",
+        "--guarantee or `holdout status`",
+    )
+}
+
+/// The guarantee in one sentence for any reply or view: `claim` is what holds ("these
+/// intervals hold together with..."), `full` where the full statement is (a flag, a command).
+pub fn guarantee_brief(delta: Option<f64>, claim: &str, full: &str) -> String {
     let chance = delta.map_or_else(
         || "with the holdout's probability".to_string(),
         |d| format!("with probability at least 1 - {}", num(d)),
     );
     format!(
-        "guarantee  {chance}, this interval holds together with every other this holdout \
-         reports, if its rows are i.i.d., labels are reached only through answers and the \
-         sharing declared at creation holds; a statistical statement, not a certification \
-         (high-stakes uses need their domain's review). In full: --guarantee or `holdout status`."
+        "guarantee  {chance}, {claim}, if its rows are i.i.d., labels are reached only through \
+         answers and the sharing declared at creation holds; a statistical statement, not a \
+         certification (high-stakes uses need their domain's review). In full: {full}."
     )
+}
+
+/// Holdout facts for people with the guarantee in one line (pointing to `holdout status`,
+/// which states it in full): for replies that are not the holdout's own view (create, close).
+pub fn holdout_text_brief(h: &HoldoutInfo) -> String {
+    let mut s = holdout_text(h);
+    if !h.guarantee.is_empty() {
+        let full = format!("\n\n{}", h.guarantee);
+        if let Some(head) = s.strip_suffix(&full) {
+            s = format!(
+                "{head}\n{}",
+                guarantee_brief(
+                    h.policy.as_ref().map(|p| p.delta),
+                    "every interval this holdout reports holds simultaneously",
+                    &format!("`holdout status {}`", safe_text(&h.name, 100))
+                )
+            );
+        }
+    }
+    s
 }
 
 /// An answer for people. The guarantee is stated in one line unless `full_guarantee`.
@@ -315,14 +408,121 @@ pub fn target_scale(metric: &str) -> Option<(f64, &'static str)> {
 /// rounded outward. `None` for other metrics.
 pub fn units_line(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
     let (b, words) = target_scale(metric)?;
-    let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+    let units = Units(vec![(String::new(), b, words)], 1);
     Some(format!(
-        "in units   {words} {score}{} (the [0, 1] figures above are that mean with each row \
-         capped at {}, divided by {})",
-        interval_text(lower * b, upper * b),
+        "in units   {} (the [0, 1] figures above are that mean with each row capped at {}, \
+         divided by {})",
+        units.text("", score, lower, upper)?,
         num(b),
         num(b)
     ))
+}
+
+/// Each regression target's own units, by target name: the bound `B` of `abs_error:B` or
+/// `sq_error:B` and the words for its mean loss. Answers, intervals and limits of these
+/// targets are released on `[0, 1]` (each row's loss capped at `B`, divided by `B`); every
+/// view shows them also multiplied back by `B`, limits converted outward. Empty for holdouts
+/// whose targets are already on the reader's scale (error, brier, log loss...).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Units(Vec<(String, f64, &'static str)>, usize);
+
+impl Units {
+    /// The units of a holdout's targets.
+    pub fn of(targets: &[Target]) -> Units {
+        Units(
+            targets
+                .iter()
+                .filter_map(|t| target_scale(&t.metric).map(|(b, w)| (t.name.clone(), b, w)))
+                .collect(),
+            targets.len(),
+        )
+    }
+
+    /// Whether any target has units of its own.
+    pub fn any(&self) -> bool {
+        !self.0.is_empty()
+    }
+
+    /// The bound and words of `target`, if it is a regression target (an empty name, as
+    /// rounds recorded before targets were named leave it, is the holdout's only target).
+    pub fn scale(&self, target: &str) -> Option<(f64, &'static str)> {
+        self.0
+            .iter()
+            .find(|(n, _, _)| n == target || (target.is_empty() && self.1 == 1))
+            .map(|&(_, b, w)| (b, w))
+    }
+
+    /// A `[0, 1]` score and interval of `target` in its own units, as JSON: `{"measure",
+    /// "bound", "score", "lower", "upper"}` (`lower` rounded down and `upper` up, so the
+    /// converted interval contains the exact product); `null` for targets without units.
+    pub fn json(&self, target: &str, score: Option<f64>, lower: f64, upper: f64) -> Value {
+        match self.scale(target) {
+            None => Value::Null,
+            Some((b, words)) => {
+                let (lo, hi) = scaled_outward(lower, upper, b);
+                json!({
+                    "measure": words,
+                    "bound": b,
+                    "score": score.map(|s| tidy(s * b)),
+                    "lower": lo,
+                    "upper": hi,
+                })
+            }
+        }
+    }
+
+    /// The same for people: `mean absolute error 44 [40.1, 48.3]`; `None` without units.
+    pub fn text(&self, target: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
+        let (b, words) = self.scale(target)?;
+        let (lo, hi) = scaled_outward(lower, upper, b);
+        let score = score.map_or(String::new(), |s| format!("{} ", num(s * b)));
+        Some(format!("{words} {score}{}", units_interval_text(lo, hi)))
+    }
+}
+
+/// `lower * b` and `upper * b` rounded outward: the product's rounding error is found exactly
+/// (a fused multiply-add) and a limit the rounding moved inward is stepped one ulp out.
+pub fn scaled_outward(lower: f64, upper: f64, b: f64) -> (f64, f64) {
+    let mut lo = lower * b;
+    if lower.mul_add(b, -lo) < 0.0 {
+        lo = lo.next_down();
+    }
+    let mut hi = upper * b;
+    if upper.mul_add(b, -hi) > 0.0 {
+        hi = hi.next_up();
+    }
+    (lo, hi)
+}
+
+/// A figure in a target's units for JSON: the double with float noise in its last places
+/// removed (twelve significant digits), so 44.000000000000004 reads 44. Not for limits.
+fn tidy(x: f64) -> f64 {
+    format!("{x:.11e}").parse().unwrap_or(x)
+}
+
+/// An interval in a target's own units for people, rounded outward to four significant
+/// digits of its larger end (whole numbers from 1,000 up).
+pub fn units_interval_text(lower: f64, upper: f64) -> String {
+    let big = lower.abs().max(upper.abs());
+    if !big.is_finite() || big == 0.0 {
+        return interval_text(lower, upper);
+    }
+    let magnitude = big.log10().floor() as i32;
+    let decimals = (3 - magnitude).clamp(0, 8) as usize;
+    let (lo, hi) = crate::stats::interval::display_outward(lower, upper, decimals);
+    let trim = |t: String| {
+        if t.contains('.') {
+            let t = t.trim_end_matches('0').trim_end_matches('.');
+            if t == "-0" {
+                "0".to_string()
+            } else {
+                t.to_string()
+            }
+        } else {
+            t
+        }
+    };
+    format!("[{}, {}]", trim(lo), trim(hi))
 }
 
 /// An answer for people, with the holdout's guarantee in full.
@@ -352,6 +552,16 @@ pub fn answer_text(a: &Answer, model_names: &[String]) -> String {
         } else {
             // Under per-team shares the figures are the team's share, not the holdout's delta.
             s.push_str(&budget_text(b).replacen("of delta", "of its share", 1));
+        }
+        let ladder = a.symbol.starts_with("new-best") || a.symbol == "no-improvement";
+        if ladder && b.open && b.queries_left != u64::MAX {
+            // Why two teams with the same share can be told different counts.
+            s.push_str(
+                "\nforecast   the count assumes every later answer is a new best, each coded \
+                 among the grid cells below the team's best so far: the higher that best, the \
+                 more cells and the longer each code, so a team with a higher best can fit one \
+                 fewer",
+            );
         }
     }
     if let Some(r) = &a.receipt {
@@ -564,8 +774,8 @@ pub fn holdout_text(h: &HoldoutInfo) -> String {
     s
 }
 
-/// A history entry as one JSON object.
-pub fn history_json(e: &HistoryEntry) -> Value {
+/// A history entry as one JSON object (a regression answer's `units` as [`answer_json_in`]).
+pub fn history_json(e: &HistoryEntry, units: &Units) -> Value {
     json!({
         "entry": e.entry,
         "entry_hash": e.entry_hash,
@@ -573,22 +783,27 @@ pub fn history_json(e: &HistoryEntry) -> Value {
         "team": e.team,
         "at": e.at,
         "note": e.note,
-        "answer": e.answer.as_ref().map_or(Value::Null, |a| answer_json(a, &[])),
+        "answer": e.answer.as_ref().map_or(Value::Null, |a| answer_json_in(a, &[], units)),
         "refusal": e.refusal.as_ref().map_or(Value::Null, refusal_json),
         "exact_scores": e.exact_scores,
     })
 }
 
 /// What a history entry released, as text: (query number, what, interval); `other` is the
-/// "what" of an entry that is neither an answer nor a refusal.
-pub fn history_cells(e: &HistoryEntry, other: &str) -> (String, String, String) {
+/// "what" of an entry that is neither an answer nor a refusal. A regression answer's interval
+/// is followed by the same in the target's own units.
+pub fn history_cells(e: &HistoryEntry, other: &str, units: &Units) -> (String, String, String) {
     match (&e.answer, &e.refusal) {
         (Some(a), _) => (
             a.query.to_string(),
             format!("{} {}", a.target, a.symbol),
-            a.interval
-                .as_ref()
-                .map_or(String::new(), |i| interval_text(i.lower, i.upper)),
+            a.interval.as_ref().map_or(String::new(), |i| {
+                let shown = interval_text(i.lower, i.upper);
+                match units.text(&a.target, a.score, i.lower, i.upper) {
+                    Some(u) => format!("{shown} = {u}"),
+                    None => shown,
+                }
+            }),
         ),
         (None, Some(r)) => (
             String::new(),
@@ -600,8 +815,8 @@ pub fn history_cells(e: &HistoryEntry, other: &str) -> (String, String, String) 
 }
 
 /// A history entry as a table row: entry, time, team, kind, what was released.
-pub fn history_row(e: &HistoryEntry, exact: bool) -> Vec<String> {
-    let (query, what, interval) = history_cells(e, "");
+pub fn history_row(e: &HistoryEntry, exact: bool, units: &Units) -> Vec<String> {
+    let (query, what, interval) = history_cells(e, "", units);
     let mut row = vec![
         e.entry.to_string(),
         e.at.clone(),
@@ -714,7 +929,33 @@ mod tests {
         assert_eq!(num(0.12345), "0.1235");
         assert_eq!(num(1.0), "1");
         assert_eq!(num(0.0), "0");
-        assert_eq!(num(2.5e-7), "2.500e-7");
+        assert_eq!(num(2.5e-7), "0.00000025");
+        assert_eq!(num(7.58e-4), "0.000758");
+        assert_eq!(num(0.010000000000000002), "0.01");
+        assert_eq!(num(-0.00001), "-0.00001");
+        assert_eq!(num(2.3e13), "23 trillion");
+        assert_eq!(num(5.0e8), "500 million");
+        assert_eq!(num(1.25e6), "1.25 million");
+        assert_eq!(num(1.8e24), "1.8\u{d7}10^24");
+        assert_eq!(num(9.96e24), "1\u{d7}10^25");
+        assert_eq!(num(3.1e-14), "3.1\u{d7}10^-14");
+        assert_eq!(num(11.69524), "11.695");
+        assert_eq!(num(5.29832), "5.2983");
+        assert_eq!(num(1234.5678), "1234.6");
+        assert_eq!(num(44.0), "44");
+        assert_eq!(count(17.0), "17");
+        assert_eq!(count(5.04e8), "about 504 million");
+        for x in [1e-300, 2.5e-7, 7.58e-4, 0.123456, 44.5, 2.3e13, 1e300] {
+            let s = num(x);
+            assert!(!s.contains('e'), "{x}: {s}");
+            let digits = s.split('\u{d7}').next().unwrap().chars();
+            let significant: String = digits
+                .filter(char::is_ascii_digit)
+                .collect::<String>()
+                .trim_start_matches('0')
+                .to_string();
+            assert!(significant.len() <= 5, "{x}: {s}");
+        }
     }
 
     #[test]

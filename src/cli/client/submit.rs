@@ -204,7 +204,7 @@ async fn write_template(
 /// Bad input (local or from the daemon), connection, permission and not-found failures.
 pub async fn validate(args: &ValidateArgs) -> anyhow::Result<ExitCode> {
     let conn = Conn::open(&args.server).await?;
-    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let (target, rows, _) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
     let models = vec![read_predictions(
         &args.predictions,
         &args.input,
@@ -260,7 +260,12 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
     // The holdout's size comes first: a file with more rows than the holdout is refused at
     // the row past it, without reading the rest.
     let conn = Conn::open(&args.server).await?;
-    let (target, rows) = find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let (target, rows, policy) =
+        find_target(&conn, &args.name, args.input.target.as_deref()).await?;
+    let delta = policy.as_ref().map(|p| p.delta);
+    let per_team = policy
+        .as_ref()
+        .is_some_and(|p| p.shares.trim() != "none" && !p.shares.trim().is_empty());
     let models = args
         .predictions
         .iter()
@@ -286,7 +291,8 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
     match send(&conn, header, models).await? {
         Outcome::Answer(a) => {
             if args.json {
-                show::print_json(&show::answer_json(&a, &names));
+                let units = show::Units::of(std::slice::from_ref(&target));
+                show::print_json(&show::answer_json_in(&a, &names, &units));
             } else {
                 let mut text = show::answer_text_with(&a, &names, args.guarantee);
                 if let (Some(i), Some(line)) = (
@@ -325,7 +331,16 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&show::quote_json(&q));
             } else {
-                println!("{}", show::quote_text(&q));
+                let text = show::quote_text(&q);
+                // Under per-team shares the budget is the team's share, not the holdout's delta.
+                println!(
+                    "{}",
+                    if per_team {
+                        text.replacen("of delta", "of its share", 1)
+                    } else {
+                        text
+                    }
+                );
             }
             Ok(ExitCode::SUCCESS)
         }
@@ -333,7 +348,7 @@ pub async fn submit(args: &SubmitArgs) -> anyhow::Result<ExitCode> {
             if args.json {
                 show::print_json(&super::compete::sealed_json(&e));
             } else {
-                println!("{}", super::compete::sealed_text(&e));
+                println!("{}", super::compete::sealed_text(&e, args.guarantee, delta));
             }
             Ok(ExitCode::SUCCESS)
         }
@@ -429,7 +444,7 @@ async fn find_target(
     conn: &Conn,
     holdout: &str,
     wanted: Option<&str>,
-) -> anyhow::Result<(Target, u64)> {
+) -> anyhow::Result<(Target, u64, Option<crate::proto::v1::Policy>)> {
     let info = conn
         .holdouts()
         .get_holdout(GetHoldoutRequest {
@@ -439,7 +454,7 @@ async fn find_target(
         .map_err(|e| conn.fail(e))?
         .into_inner();
     let target = pick_target(&info.targets, holdout, wanted)?;
-    Ok((target, info.rows))
+    Ok((target, info.rows, info.policy))
 }
 
 fn pick_target(

@@ -26,8 +26,8 @@ use serde_json::{Value, json};
 
 use self::rpc::Reply;
 use self::world::{Mix, Model, Shipments};
-use super::client::compete;
 use super::client::conn::Conn;
+use super::client::{compete, show};
 use crate::audit::{self, AuditOptions, LabelColumns};
 use crate::auth::{self, Role};
 use crate::engine::{Db, Engine, SystemClock};
@@ -316,7 +316,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         .into_inner();
     out.say(format!(
         "   {board_submissions} submissions, answered or refused:\n{}\n   {}\n",
-        indent(&compete::leaderboard_table(&lb)),
+        indent(&compete::leaderboard_table(&lb, &show::Units::default())),
         lb.statement
     ));
 
@@ -350,7 +350,7 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
         .into_inner();
     out.say(format!(
         "   ada (organizer) closed the round: every entry answered at once and ranked.\n{}\n   {}\n",
-        indent(&compete::ranking_table(&ranking)),
+        indent(&compete::ranking_table(&ranking, &show::Units::default())),
         ranking.statement
     ));
 
@@ -422,8 +422,8 @@ async fn demo(args: DemoArgs) -> anyhow::Result<ExitCode> {
             "attack": attack,
             "shared": {"holdout": "parcel-lateness", "queries": shared_run.rows,
                        "refusal": shared_run.refusal},
-            "leaderboard": compete::leaderboard_json(&lb),
-            "final_round": {"entries": entries, "ranking": compete::ranking_json(&ranking)},
+            "leaderboard": compete::leaderboard_json(&lb, &show::Units::default()),
+            "final_round": {"entries": entries, "ranking": compete::ranking_json(&ranking, &show::Units::default())},
             "audits": audits,
             "guarantee": info.guarantee,
             "seconds": seconds,

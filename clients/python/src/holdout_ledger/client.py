@@ -25,6 +25,8 @@ from .types import (
     Target,
     Validation,
     _answer,
+    _bounds,
+    _in_units,
     _duplicates,
     _history_entry,
     _holdout_info,
@@ -204,7 +206,9 @@ class Client:
         itself recorded in the ledger.
         """
         req = _s.HistoryRequest(holdout=holdout, exact=exact)
-        return [_history_entry(m) for m in self._stream(self._submissions.History, req)]
+        entries = [_history_entry(m) for m in self._stream(self._submissions.History, req)]
+        bounds = self._bounds(holdout)
+        return [_in_units(e, bounds) for e in entries]
 
     def leaderboard(self, holdout: str) -> Leaderboard:
         """Each team's best, ranked: on a ``ladder:ETA`` holdout the team's shown best with its
@@ -212,7 +216,8 @@ class Client:
         the lowest upper limit per target (a sealed round's only after its close). Only the
         caller's row when the board is for organizers only."""
         req = _s.LeaderboardRequest(holdout=holdout)
-        return _leaderboard(self._unary(self._submissions.Leaderboard, req))
+        board = _leaderboard(self._unary(self._submissions.Leaderboard, req))
+        return _in_units(board, self._bounds(holdout))
 
     def ranking(self, holdout: str) -> Ranking:
         """The ranking of a closed sealed round with the paired comparisons between neighbours.
@@ -221,7 +226,16 @@ class Client:
             StateConflict: the round has not closed (nothing about its entries is released).
         """
         req = _s.RankingRequest(holdout=holdout)
-        return _ranking(self._unary(self._submissions.Ranking, req))
+        ranking = _ranking(self._unary(self._submissions.Ranking, req))
+        return _in_units(ranking, self._bounds(holdout))
+
+    def _bounds(self, holdout: str) -> dict:
+        """The bounds of the holdout's regression targets, for the ``units`` fields (empty
+        when the holdout cannot be read: the call that needs them says why)."""
+        try:
+            return _bounds(self.holdout(holdout).targets)
+        except HoldoutError:
+            return {}
 
     def duplicates(self, holdout: str) -> Tuple[Duplicate, ...]:
         """Prediction digests submitted by more than one team (organizers and auditors)."""
@@ -315,7 +329,7 @@ class Client:
         out = self._send(holdout, [predictions], [ids], target, id_column, prediction_column,
                          mode=_s.SUBMIT_MODE_ANSWER, note=note, request_id=request_id,
                          max_cost=max_cost, mark_final=final)
-        return self._answer_or_refusal(out, raise_on_refusal)
+        return _in_units(self._answer_or_refusal(out, raise_on_refusal), self._bounds(holdout))
 
     def submit_batch(self, holdout: str, predictions: Sequence[Any],
                      model_names: Optional[Sequence[str]] = None, *,

@@ -27,6 +27,19 @@ class Interval:
     def __contains__(self, x: float) -> bool:
         return self.lower <= x <= self.upper
 
+    def scaled(self, bound: float) -> "Interval":
+        """This interval multiplied by ``bound``, converted outward: each limit is stepped one
+        ulp out whenever the product's rounding moved it inward, so the result contains the
+        exact product (as the command line and web view convert regression answers)."""
+        from fractions import Fraction
+
+        lo, hi = self.lower * bound, self.upper * bound
+        if Fraction(lo) > Fraction(self.lower) * Fraction(bound):
+            lo = math.nextafter(lo, -math.inf)
+        if Fraction(hi) < Fraction(self.upper) * Fraction(bound):
+            hi = math.nextafter(hi, math.inf)
+        return Interval(lo, hi)
+
 
 @dataclass(frozen=True)
 class Budget:
@@ -83,6 +96,10 @@ class Answer:
     replayed: bool
     digest: str
     target: str
+    #: A regression target's interval in its own units (``interval`` times the metric's bound,
+    #: converted outward); None for other targets. ``score_units`` likewise for ``score``.
+    units: Optional[Interval] = None
+    score_units: Optional[float] = None
 
     @property
     def level(self) -> float:
@@ -140,6 +157,27 @@ class Target:
     def uses_classes(self) -> bool:
         """True when predictions are class names (metric ``error``), False for numbers."""
         return self.metric.split(":", 1)[0] == "error"
+
+    @property
+    def bound(self) -> Optional[float]:
+        """The bound ``B`` of a regression metric (``abs_error:B``, ``sq_error:B``): its
+        answers are released on [0, 1] as the mean loss (each row capped at ``B``) divided by
+        ``B``. None for metrics already on the reader's scale (error, brier, log_loss)."""
+        name, _, b = self.metric.partition(":")
+        if name not in ("abs_error", "sq_error"):
+            return None
+        try:
+            value = float(b)
+        except ValueError:
+            return None
+        return value if math.isfinite(value) and value > 0 else None
+
+    @property
+    def measure(self) -> str:
+        """What the target's own units measure (``"mean absolute error"``...); empty for
+        metrics without a bound."""
+        return {"abs_error": "mean absolute error", "sq_error": "mean squared error"}.get(
+            self.metric.split(":", 1)[0], "") if self.bound is not None else ""
 
 
 @dataclass(frozen=True)
@@ -272,6 +310,9 @@ class LeaderboardRow:
     best_at: str
     target: str = ""
     query: int = 0
+    #: For a regression target, ``interval`` and ``best`` in the target's own units.
+    units: Optional[Interval] = None
+    best_units: Optional[float] = None
 
 
 @dataclass(frozen=True)
@@ -322,6 +363,9 @@ class RankedEntry:
     digest: str
     target: str
     query: int = 0  # as its reply, receipt and history number it
+    #: For a regression target, ``interval`` and ``score`` in the target's own units.
+    units: Optional[Interval] = None
+    score_units: Optional[float] = None
 
 
 @dataclass(frozen=True)
@@ -335,6 +379,8 @@ class Comparison:
     level_nats: float
     distinguishable: bool
     target: str
+    #: For a regression target, ``difference`` in the target's own units.
+    units: Optional[Interval] = None
 
 
 @dataclass(frozen=True)
@@ -583,3 +629,37 @@ def _leaderboard(m) -> Leaderboard:
         own_team_only=m.own_team_only,
         kind=m.kind or "ladder",
     )
+
+
+def _bounds(targets) -> dict:
+    """Each regression target's bound, by name (with ``""`` for a holdout's only target)."""
+    out = {t.name: t.bound for t in targets if t.bound is not None}
+    if len(targets) == 1 and targets[0].bound is not None:
+        out[""] = targets[0].bound
+    return out
+
+
+def _in_units(x, bounds: dict):
+    """``x`` (an Answer, LeaderboardRow, RankedEntry, Comparison, HistoryEntry, Leaderboard
+    or Ranking) with its ``units`` fields filled for regression targets."""
+    from dataclasses import replace
+
+    if isinstance(x, Leaderboard):
+        return replace(x, rows=tuple(_in_units(r, bounds) for r in x.rows))
+    if isinstance(x, Ranking):
+        return replace(x, entries=tuple(_in_units(e, bounds) for e in x.entries),
+                       comparisons=tuple(_in_units(c, bounds) for c in x.comparisons))
+    if isinstance(x, HistoryEntry):
+        return replace(x, answer=_in_units(x.answer, bounds)) if x.answer else x
+    b = bounds.get(getattr(x, "target", ""))
+    if b is None:
+        return x
+    if isinstance(x, Comparison):
+        return replace(x, units=x.difference.scaled(b))
+    if isinstance(x, LeaderboardRow):
+        return replace(x, units=x.interval.scaled(b),
+                       best_units=None if x.best is None else x.best * b)
+    if isinstance(x, (Answer, RankedEntry)):
+        return replace(x, units=x.interval.scaled(b),
+                       score_units=None if x.score is None else x.score * b)
+    return x
