@@ -61,8 +61,16 @@ fn ledger_of(entries: usize, tolerance: f64) -> Export {
         entries,
         "every submission should be recorded"
     );
-    let answers = ex.entries.iter().filter(|e| e.kind() == Some(Kind::Answer)).count();
-    let refusals = ex.entries.iter().filter(|e| e.kind() == Some(Kind::Refusal)).count();
+    let answers = ex
+        .entries
+        .iter()
+        .filter(|e| e.kind() == Some(Kind::Answer))
+        .count();
+    let refusals = ex
+        .entries
+        .iter()
+        .filter(|e| e.kind() == Some(Kind::Refusal))
+        .count();
     eprintln!(
         "generated {} entries ({answers} answers, {refusals} refusals) in {:.1} s",
         ex.entries.len(),

@@ -893,17 +893,21 @@ fn print_retention(r: &audit::RetentionReport) {
 }
 
 fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
+    let n = |k: usize, one: &str, many: &str| show::plural(k as u64, one, many);
     println!(
-        "holdout {}: {} entries, {} answers, {} sealed entries, {} rounds, {} refusals, {} reads \
-         of exact scores, {} identity events",
+        "holdout {}: {}, {}, {}, {}, {}, {} of exact scores, {}",
         report.holdout,
-        report.entries,
-        report.queries.len(),
-        report.sealed,
-        report.rounds.len(),
-        report.refusals,
-        report.reads.len(),
-        report.identity_events
+        n(report.entries as usize, "entry", "entries"),
+        n(report.queries.len(), "answer", "answers"),
+        n(report.sealed as usize, "sealed entry", "sealed entries"),
+        n(report.rounds.len(), "round", "rounds"),
+        n(report.refusals as usize, "refusal", "refusals"),
+        n(report.reads.len(), "read", "reads"),
+        n(
+            report.identity_events as usize,
+            "identity event",
+            "identity events"
+        ),
     );
     let checked: Vec<String> = report
         .checked
@@ -933,14 +937,14 @@ fn print_report(report: &Report, extra: &serde_json::Map<String, Value>) {
     );
     for q in &report.queries {
         println!(
-            "{:<6} {:<6} {:<13} {:<11} {:<17} [{}, {}]  {}",
+            "{:<6} {:<6} {:<13} {:<11} {:<17} {}  {}",
             q.entry,
             q.query,
             q.team,
             q.target,
             q.symbol,
-            show::num(q.lower),
-            show::num(q.upper),
+            // Outward, as every other view shows a limit (never rounded inward).
+            show::interval_text(q.lower, q.upper),
             if q.replayed { "yes" } else { "NO" }
         );
     }
