@@ -1023,6 +1023,22 @@ fn every_view_of_a_regression_answer_shows_the_target_s_own_units() {
         .find(|r| r["target"] == "cost")
         .expect("a cost row");
     assert_eq!(row["units"]["score"], 30.0, "{row}");
+    // leaderboard --csv: unit columns at the end of each row.
+    let csv = d.run(&alice, &["leaderboard", "qcv", "--csv"]).ok().stdout;
+    let header: Vec<&str> = csv.lines().next().unwrap().split(',').collect();
+    let at = |name: &str| header.iter().position(|h| *h == name).expect(name);
+    let cost_row: Vec<&str> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').collect::<Vec<_>>())
+        .find(|r| r[at("target")] == "cost")
+        .expect("a cost row");
+    assert_eq!(cost_row[at("units_best")], "30", "{csv}");
+    let (ul, uu): (f64, f64) = (
+        cost_row[at("units_lower")].parse().unwrap(),
+        cost_row[at("units_upper")].parse().unwrap(),
+    );
+    assert!(ul <= 30.0 && 30.0 <= uu, "{csv}");
     // submit --json.
     let again = d.write("c31.csv", &Parts::new(N).cost_predictions(31.0));
     let a = d
@@ -1041,6 +1057,23 @@ fn every_view_of_a_regression_answer_shows_the_target_s_own_units() {
         .ok()
         .json();
     assert_eq!(a["units"]["measure"], "mean absolute error", "{a}");
+    // The certificate of the first answer: in words and in JSON, in the target's units too.
+    let auditor = d.add_user("ann", &["auditor"], None);
+    let cert = d
+        .run(&auditor, &["certify", "qcv", "--query", "1", "--json"])
+        .ok()
+        .json();
+    let words = cert["answer"]["in_words"].as_str().unwrap();
+    assert!(
+        words.contains("in the target's units, mean absolute error 30 ["),
+        "{words}"
+    );
+    assert_eq!(cert["answer"]["units"]["score"], 30.0, "{cert}");
+    let text = d
+        .run(&auditor, &["certify", "qcv", "--query", "1"])
+        .ok()
+        .stdout;
+    assert!(text.contains("mean absolute error 30 ["), "{text}");
 
     // A sealed round's ranking: entries and comparisons in units too.
     // Rows of their own (a row belongs to one holdout).

@@ -428,6 +428,11 @@ fn in_words(c: &Certified, r: &AnswerRecord) -> String {
     } else {
         String::new()
     };
+    // A regression target's answer also in its own units (the ledger's figures are on [0, 1]).
+    let between = match show::units_text(&metric, r.score, r.lower, r.upper) {
+        Some(units) => format!("{between}; in the target's units, {units}"),
+        None => between,
+    };
     match r.score {
         Some(score) => {
             // The symbol ends with the released value as its grid writes it (0.10 on a 0.01
@@ -464,6 +469,7 @@ fn certificate_json(c: &Certified) -> Value {
             "metric": metric_name(c, r.target_index), "symbol": r.symbol, "score": r.score,
             "interval": [r.lower, r.upper], "interval_text": show::interval_text(r.lower, r.upper),
             "in_words": in_words(c, r), "level_nats": r.level_nats, "delta_i": r.delta_i,
+            "units": show::units_json(&metric_name(c, r.target_index), r.score, r.lower, r.upper),
             "statement": r.statement, "digest": r.digest, "at": r.at, "models": r.models,
             "best_model": r.best_model,
             "best_model_name": r.best_model.and_then(|m| r.model_names.get(m as usize)),

@@ -85,6 +85,13 @@ fn csv_line(cells: &[String]) -> String {
         .join(",")
 }
 
+/// The score and limits of [`show::Units::json`] as three CSV cells (empty for a target
+/// without units of its own).
+fn units_cells(units: &Value) -> [String; 3] {
+    ["score", "lower", "upper"]
+        .map(|k| units[k].as_f64().map(|x| x.to_string()).unwrap_or_default())
+}
+
 /// Prints a ladder leaderboard, or the best per team under the other rules.
 ///
 /// # Errors
@@ -107,9 +114,13 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&leaderboard_json(&b, &units));
     } else if args.csv {
-        println!("rank,team,best,lower,upper,submissions,improvements,best_at,target,query");
+        println!(
+            "rank,team,best,lower,upper,submissions,improvements,best_at,target,query,\
+             units_best,units_lower,units_upper"
+        );
         for r in &b.rows {
             let (lo, hi) = iv(r.interval.as_ref());
+            let [ub, ul, uu] = units_cells(&units.json(&r.target, r.best, lo, hi));
             println!(
                 "{}",
                 csv_line(&[
@@ -123,6 +134,9 @@ pub async fn leaderboard(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     r.best_at.clone(),
                     r.target.clone(),
                     r.query.to_string(),
+                    ub,
+                    ul,
+                    uu,
                 ])
             );
         }
@@ -169,9 +183,13 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
     if args.json {
         show::print_json(&ranking_json(&r, &units));
     } else if args.csv {
-        println!("rank,team,query,score,lower,upper,vs_next_lower,vs_next_upper,told_apart");
+        println!(
+            "rank,team,query,score,lower,upper,vs_next_lower,vs_next_upper,told_apart,\
+             units_score,units_lower,units_upper"
+        );
         for e in &r.entries {
             let (lo, hi) = iv(e.interval.as_ref());
+            let [us, ul, uu] = units_cells(&units.json(&e.target, e.score, lo, hi));
             let (clo, chi, apart) =
                 below(e.ticket).map_or((String::new(), String::new(), String::new()), |c| {
                     let (a, b) = iv(c.difference.as_ref());
@@ -189,6 +207,9 @@ pub async fn ranking(args: &BoardArgs) -> anyhow::Result<ExitCode> {
                     clo,
                     chi,
                     apart,
+                    us,
+                    ul,
+                    uu,
                 ])
             );
         }

@@ -407,15 +407,31 @@ pub fn target_scale(metric: &str) -> Option<(f64, &'static str)> {
 /// `B`); multiplied back by `B` they read as a mean absolute (or squared) error, the interval
 /// rounded outward. `None` for other metrics.
 pub fn units_line(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
-    let (b, words) = target_scale(metric)?;
-    let units = Units(vec![(String::new(), b, words)], 1);
+    let (b, _) = target_scale(metric)?;
     Some(format!(
         "in units   {} (the [0, 1] figures above are that mean with each row capped at {}, \
          divided by {})",
-        units.text("", score, lower, upper)?,
+        units_text(metric, score, lower, upper)?,
         num(b),
         num(b)
     ))
+}
+
+/// For a regression target, the answer in the target's own units as [`Units::json`] writes it;
+/// `null` for other metrics.
+pub fn units_json(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Value {
+    match target_scale(metric) {
+        Some((b, words)) => Units(vec![(String::new(), b, words)], 1).json("", score, lower, upper),
+        None => Value::Null,
+    }
+}
+
+/// For a regression target, the answer in the target's own units as [`Units::text`] writes
+/// it (e.g. `mean absolute error 30 [30, 31]`), for a view that knows one target's metric;
+/// `None` for other metrics.
+pub fn units_text(metric: &str, score: Option<f64>, lower: f64, upper: f64) -> Option<String> {
+    let (b, words) = target_scale(metric)?;
+    Units(vec![(String::new(), b, words)], 1).text("", score, lower, upper)
 }
 
 /// Each regression target's own units, by target name: the bound `B` of `abs_error:B` or
