@@ -314,3 +314,39 @@ fn a_non_loopback_listen_without_tls_is_refused_unless_allowed() {
         r.stderr
     );
 }
+
+/// `user add --token-out FILE` makes the file before asking the daemon (a path that cannot be
+/// written costs no user), and removes it again when no user was added: the same command then
+/// runs as written once the daemon answers (found by a new user whose daemon was not up yet).
+#[test]
+fn a_failed_user_add_leaves_no_token_file_behind() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let token = dir.path().join("ines.token");
+    let token_arg = token.display().to_string();
+    let url = dead_url();
+    let args = [
+        "user",
+        "add",
+        "ines",
+        "--role",
+        "analyst",
+        "--team",
+        "north",
+        "--token-out",
+        &token_arg,
+        "--server",
+        &url,
+    ];
+    let failed = run(holdout(), &args).code(6);
+    assert!(failed.stderr.contains("cannot reach"), "{}", failed.stderr);
+    assert!(!token.exists(), "an empty token file was left behind");
+    // An existing file is still never overwritten.
+    std::fs::write(&token, "kept").unwrap();
+    let refused = run(holdout(), &args).code(2);
+    assert!(
+        refused.stderr.contains("must not exist"),
+        "{}",
+        refused.stderr
+    );
+    assert_eq!(std::fs::read_to_string(&token).unwrap(), "kept");
+}

@@ -294,8 +294,10 @@ fn run_fair(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<ExitCode> 
     let n = args.rows.unwrap_or(1);
     let serving = rows.iter().filter(|r| r.serves).count();
     println!(
-        "{teams} teams, {each} answers each, on {n} rows at tolerance {} (delta {}): {serving} of \
-         {} policies serve every team at worst case",
+        "{}, {} each, on {n} rows at tolerance {} (delta {}): {serving} of {} policies serve \
+         every team at worst case",
+        crate::cli::client::show::plural(teams as u64, "team", "teams"),
+        crate::cli::client::show::plural(each as u64, "answer", "answers"),
         args.tolerance,
         args.delta,
         rows.len()

@@ -113,6 +113,8 @@ pub(crate) fn refusal(r: &RefusalRecord, rc: Option<&Receipt>) -> pb::Refusal {
         message: r.message.clone(),
         budget: Some(budget(&r.budget)),
         receipt: rc.map(receipt),
+        // Set by the submit path, which knows the policy's shares.
+        budget_of: String::new(),
     }
 }
 

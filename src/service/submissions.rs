@@ -274,7 +274,9 @@ impl Submissions for Daemon {
                 Outcome::Answer(answer)
             }
             SubmitOutcome::Refusal { record, receipt } => {
-                Outcome::Refusal(convert::refusal(&record, receipt.as_ref()))
+                let mut refusal = convert::refusal(&record, receipt.as_ref());
+                refusal.budget_of = budget_of;
+                Outcome::Refusal(refusal)
             }
             SubmitOutcome::Quote {
                 quote,

@@ -545,17 +545,33 @@ pub async fn user(cmd: &UserCommand) -> anyhow::Result<ExitCode> {
             // The file is made before the user exists, so a path that cannot be written costs
             // no user whose token nobody has.
             let mut file = args.token_out.as_deref().map(token_file).transpose()?;
-            let conn = Conn::open(&args.server).await?;
-            let reply = conn
-                .users()
-                .add_user(AddUserRequest {
-                    name: args.name.clone(),
-                    roles: args.roles.iter().map(|r| r.as_str().to_string()).collect(),
-                    team: args.team.clone(),
-                })
-                .await
-                .map_err(|e| conn.fail(e))?
-                .into_inner();
+            let added = async {
+                let conn = Conn::open(&args.server).await?;
+                let reply = conn
+                    .users()
+                    .add_user(AddUserRequest {
+                        name: args.name.clone(),
+                        roles: args.roles.iter().map(|r| r.as_str().to_string()).collect(),
+                        team: args.team.clone(),
+                    })
+                    .await
+                    .map_err(|e| conn.fail(e))?
+                    .into_inner();
+                anyhow::Ok(reply)
+            }
+            .await;
+            let reply = match added {
+                Ok(reply) => reply,
+                Err(e) => {
+                    // No user was added: the empty file made for its token goes too, so that
+                    // the same command can be run again once the daemon answers.
+                    if let (Some(f), Some(path)) = (file.take(), &args.token_out) {
+                        drop(f);
+                        let _ = std::fs::remove_file(path);
+                    }
+                    return Err(e);
+                }
+            };
             match (&mut file, &args.token_out) {
                 (Some(f), Some(path)) => {
                     use std::io::Write;

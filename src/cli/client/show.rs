@@ -612,7 +612,12 @@ pub fn refusal_text(r: &Refusal) -> String {
     let mut s = format!("refused ({}): {}", r.reason, r.message);
     if let Some(b) = &r.budget {
         s.push('\n');
-        s.push_str(&budget_text(b));
+        if r.budget_of.is_empty() {
+            s.push_str(&budget_text(b));
+        } else {
+            // Under per-team shares the figures are the team's share, not the holdout's delta.
+            s.push_str(&budget_text(b).replacen("of delta", "of its share", 1));
+        }
     }
     match &r.receipt {
         Some(rc) if !rc.entry_hash.is_empty() => {
@@ -1014,11 +1019,40 @@ mod tests {
                 ..Default::default()
             }),
             receipt: None,
+            budget_of: String::new(),
         };
         let v = refusal_json(&r);
         assert_eq!(v["refused"], json!(true));
         assert_eq!(v["reason"], json!("budget-spent"));
         assert_eq!(v["remaining"], json!(0.0));
         assert!(v["receipt"].is_null());
+    }
+
+    /// Under per-team shares a refusal's budget is the team's share, as an answer's is (a new
+    /// user's refused submission read "spent 0.0083 of delta 0.0167" on a 0.05 holdout).
+    #[test]
+    fn a_refusal_under_per_team_shares_names_the_share() {
+        let mut r = Refusal {
+            reason: "tolerance".into(),
+            message: "spent".into(),
+            budget: Some(Budget {
+                delta: 0.0167,
+                spent: 0.0083,
+                remaining: 0.0084,
+                open: true,
+                ..Default::default()
+            }),
+            receipt: None,
+            budget_of: String::new(),
+        };
+        assert!(
+            refusal_text(&r).contains("of delta 0.0167"),
+            "{}",
+            refusal_text(&r)
+        );
+        r.budget_of = "a".into();
+        let text = refusal_text(&r);
+        assert!(text.contains("spent 0.0083 of its share 0.0167"), "{text}");
+        assert!(!text.contains("of delta"), "{text}");
     }
 }
