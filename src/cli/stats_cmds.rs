@@ -296,8 +296,8 @@ fn run_fair(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<ExitCode> 
     println!(
         "{}, {} each, on {n} rows at tolerance {} (delta {}): {serving} of {} policies serve \
          every team at worst case",
-        crate::cli::client::show::plural(teams as u64, "team", "teams"),
-        crate::cli::client::show::plural(each as u64, "answer", "answers"),
+        crate::cli::client::show::plural(teams, "team", "teams"),
+        crate::cli::client::show::plural(each, "answer", "answers"),
         args.tolerance,
         args.delta,
         rows.len()
