@@ -301,7 +301,7 @@ pub(crate) fn solve_ln_beta_reg_from(a: f64, b: f64, target: f64) -> Option<Poin
     if let Some(root) = memo::solved(&key) {
         return root;
     }
-    let root = solve_from_eval(a, b, target, root_guess(a, b, target));
+    let root = solve_from_eval(a, b, target, root_guess(a, b, target), Search::Bracket);
     memo::remember_solve(key, root);
     root
 }
@@ -319,7 +319,7 @@ pub(crate) fn solve_ln_beta_reg_newton(a: f64, b: f64, target: f64) -> Option<Po
     if let Some(root) = memo::solved(&key) {
         return root;
     }
-    let root = solve_newton_eval(a, b, target, root_guess(a, b, target));
+    let root = solve_from_eval(a, b, target, root_guess(a, b, target), Search::Newton);
     memo::remember_solve(key, root);
     root
 }
@@ -328,48 +328,6 @@ pub(crate) fn solve_ln_beta_reg_newton(a: f64, b: f64, target: f64) -> Option<Po
 /// of the searched coordinate (so a relative size in the coordinate itself).
 const NEWTON_STOP: f64 = 1e-8;
 
-fn solve_newton_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
-    let k = PairConsts::of(a, b);
-    let half = Point { x: 0.5, y: 0.5 };
-    let (f_half, _) = ln_beta_reg_with(a, b, half, true)?;
-    let u_min = f64::MIN_POSITIVE.ln();
-    let top = half.x.ln();
-    if f_half > target {
-        // Root below x = 1/2, searched in u = ln x.
-        let g = |u: f64| {
-            let p = Point::from_x(u.exp());
-            let (f, pre) = ln_beta_reg_eval_with(a, b, p, true, &k)?;
-            Some((f - target, (pre - p.y.ln() - f).exp()))
-        };
-        let (g_lo, _) = ln_beta_reg_with(a, b, Point::from_x(u_min.exp()), true)
-            .map(|(f, _)| (f - target, 0.0))?;
-        if g_lo > 0.0 {
-            return None;
-        }
-        let start = guess.clamp(f64::MIN_POSITIVE, 0.5).ln().clamp(u_min, top);
-        let u = newton_loose(g, u_min, top, start)?;
-        Some(Point::from_x(u.exp()))
-    } else {
-        // Root at or above x = 1/2, searched in v = ln y.
-        let g = |v: f64| {
-            let p = Point::from_y(v.exp());
-            let (f, pre) = ln_beta_reg_eval_with(a, b, p, true, &k)?;
-            Some((target - f, (pre - p.x.ln() - f).exp()))
-        };
-        let (g_lo, _) = ln_beta_reg_with(a, b, Point::from_y(u_min.exp()), true)
-            .map(|(f, _)| (target - f, 0.0))?;
-        if g_lo >= 0.0 {
-            return Some(Point::from_y(f64::MIN_POSITIVE));
-        }
-        let start = (1.0 - guess)
-            .clamp(f64::MIN_POSITIVE, 0.5)
-            .ln()
-            .clamp(u_min, top);
-        let v = newton_loose(g, u_min, top, start)?;
-        Some(Point::from_y(v.exp()))
-    }
-}
-
 /// Newton's method on an increasing `g` with `g(lo) <= 0 < g(hi)`, from `start`: each
 /// evaluation narrows the bracket; a Newton step is taken when it stays inside the bracket and
 /// is at most half the step before it, a bisection of the bracket otherwise.
@@ -377,10 +335,10 @@ fn solve_newton_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
 /// or the bracket's middle once the bracket itself is that narrow.
 fn newton_loose<G>(mut g: G, mut lo: f64, mut hi: f64, start: f64) -> Option<f64>
 where
-    G: FnMut(f64) -> Option<(f64, f64)>,
+    G: FnMut(f64, bool) -> Option<(f64, f64)>,
 {
     let mut u = start;
-    let (mut gu, mut du) = g(u)?;
+    let (mut gu, mut du) = g(u, false)?;
     let mut before = f64::INFINITY;
     for _ in 0..400 {
         if gu <= 0.0 {
@@ -405,7 +363,7 @@ where
         };
         before = (next - u).abs();
         u = next;
-        (gu, du) = g(u)?;
+        (gu, du) = g(u, false)?;
     }
     Some(0.5 * (lo + hi))
 }
@@ -424,7 +382,18 @@ fn root_guess(a: f64, b: f64, target: f64) -> f64 {
     ((centre - spread) / (1.0 + z2 / m)).clamp(0.0, 1.0)
 }
 
-fn solve_from_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
+/// How a search from a guess finds its root once it has the guess.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Search {
+    /// Bracket the root by steps growing away from the guess, then Newton inside the bracket
+    /// until it is closed (core version 3, [`bracket_and_solve`]).
+    Bracket,
+    /// Newton from the guess, stopped at the first small step (core version 4,
+    /// [`newton_loose`]).
+    Newton,
+}
+
+fn solve_from_eval(a: f64, b: f64, target: f64, guess: f64, search: Search) -> Option<Point> {
     let k = PairConsts::of(a, b);
     let half = Point { x: 0.5, y: 0.5 };
     let (f_half, _) = ln_beta_reg_with(a, b, half, true)?;
@@ -443,7 +412,10 @@ fn solve_from_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
             return None;
         }
         let start = guess.clamp(f64::MIN_POSITIVE, 0.5).ln().clamp(u_min, top);
-        let (lo, _) = bracket_and_solve(g, u_min, top, start)?;
+        let lo = match search {
+            Search::Bracket => bracket_and_solve(g, u_min, top, start)?.0,
+            Search::Newton => newton_loose(g, u_min, top, start)?,
+        };
         Some(Point::from_x(lo.exp()))
     } else {
         // Root at or above x = 1/2, searched in v = ln y.
@@ -461,7 +433,10 @@ fn solve_from_eval(a: f64, b: f64, target: f64, guess: f64) -> Option<Point> {
             .clamp(f64::MIN_POSITIVE, 0.5)
             .ln()
             .clamp(u_min, top);
-        let (_, hi) = bracket_and_solve(g, u_min, top, start)?;
+        let hi = match search {
+            Search::Bracket => bracket_and_solve(g, u_min, top, start)?.1,
+            Search::Newton => newton_loose(g, u_min, top, start)?,
+        };
         Some(Point::from_y(hi.exp()))
     }
 }
