@@ -350,3 +350,28 @@ fn a_failed_user_add_leaves_no_token_file_behind() {
     );
     assert_eq!(std::fs::read_to_string(&token).unwrap(), "kept");
 }
+
+/// `plan --metric` plans with the interval method `create` gives that metric (a regression
+/// user tried `plan --metric abs_error:350` first): the same table as `--method kl`, and for
+/// `error` the same as the default exact method; a bad metric is named.
+#[test]
+fn plan_takes_the_metric_as_create_does() {
+    let base = ["plan", "--rows", "142", "--tolerance", "0.15", "--json"];
+    let with = |extra: &[&str]| {
+        let mut args = base.to_vec();
+        args.extend_from_slice(extra);
+        run(holdout(), &args).ok().stdout
+    };
+    let by_metric = with(&["--metric", "abs_error:350"]);
+    assert_eq!(by_metric, with(&["--method", "kl"]));
+    assert_ne!(by_metric, with(&["--method", "exact"]));
+    assert_eq!(with(&["--metric", "error"]), with(&[]));
+    let mut bad = base.to_vec();
+    bad.extend_from_slice(&["--metric", "nonsense"]);
+    let refused = run(holdout(), &bad).code(2);
+    assert!(
+        refused.stderr.contains("unknown metric"),
+        "{}",
+        refused.stderr
+    );
+}

@@ -81,6 +81,11 @@ pub struct PlanArgs {
     /// Interval method: exact (0-1 loss), kl or hoeffding.
     #[arg(long, value_parser = parse_method, default_value = "exact")]
     pub method: Method,
+    /// The target's metric, as `create --metric` takes it (error, brier, abs_error:B,
+    /// sq_error:B, log_loss...): plans with the interval method create gives it (exact for
+    /// error, kl otherwise), in place of --method.
+    #[arg(long, value_name = "METRIC", conflicts_with = "method")]
+    pub metric: Option<String>,
     /// Models per best-of batch.
     #[arg(long, default_value_t = 10)]
     pub batch: u32,
@@ -107,6 +112,17 @@ fn default_rules() -> Vec<String> {
     ]
     .map(String::from)
     .to_vec()
+}
+
+/// The interval method a plan uses: the one `create` gives `--metric`, else `--method`.
+fn plan_method(args: &PlanArgs) -> anyhow::Result<Method> {
+    match &args.metric {
+        None => Ok(args.method),
+        Some(m) => {
+            let metric: crate::metric::Metric = m.parse()?;
+            parse_method(metric.default_method()).map_err(|e| anyhow::anyhow!(e))
+        }
+    }
 }
 
 fn parse_method(s: &str) -> Result<Method, String> {
@@ -219,6 +235,7 @@ pub fn run_bound(args: &BoundArgs) -> anyhow::Result<ExitCode> {
 
 /// Computes the rows of `holdout plan`.
 pub fn plan_rows(args: &PlanArgs) -> anyhow::Result<Vec<PlanRow>> {
+    let method = plan_method(args)?;
     check_delta(args.delta)?;
     if !(args.tolerance > 0.0 && args.tolerance <= 1.0) {
         bail!("--tolerance must lie in (0, 1], got {}", args.tolerance);
@@ -239,7 +256,7 @@ pub fn plan_rows(args: &PlanArgs) -> anyhow::Result<Vec<PlanRow>> {
         delta: args.delta,
         tolerance: args.tolerance,
         schedule,
-        method: args.method,
+        method,
         batch: args.batch.max(1),
     };
     Ok(match (args.rows, args.queries) {
@@ -257,6 +274,7 @@ fn count_text(q: Option<f64>) -> String {
 
 /// Computes the rows of `holdout plan --teams T --answers-each M`.
 pub fn fair_rows(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<Vec<FairRow>> {
+    let method = plan_method(args)?;
     plan_rows(args)?; // the same checks of the common inputs
     let rules = args
         .answers
@@ -267,7 +285,7 @@ pub fn fair_rows(args: &PlanArgs, teams: u64, each: u64) -> anyhow::Result<Vec<F
         rows: args.rows.unwrap_or(1),
         delta: args.delta,
         tolerance: args.tolerance,
-        method: args.method,
+        method,
         teams,
         answers_each: each,
     };
