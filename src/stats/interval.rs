@@ -887,14 +887,17 @@ mod from_guess_tests {
     use super::*;
     use crate::stats::beta::{evaluations, memo};
 
-    /// Core version 3 searches each Clopper-Pearson limit from a guess: the limits agree with
-    /// core version 2's (which the reference tests check against scipy) to within the
-    /// search's tolerance, they are still certified (the same outward step follows), and the
-    /// searches take far fewer evaluations.
-    #[test]
-    fn limits_from_a_guess_match_version_2_with_fewer_evaluations() {
-        let mut cases = 0u32;
-        let (mut evals_2, mut evals_3) = (0u64, 0u64);
+    /// Compares the limits of two roundings over a grid of `n` (1 to 1,000,000), counts at the
+    /// ends and inside, the given levels and every side, with the memo off: every limit of
+    /// `new` within `rel` (relative) of `old`'s. Returns the number of cases, the evaluations
+    /// each took, and the largest relative difference.
+    fn compare_limits(
+        old: Rounding,
+        new: Rounding,
+        levels: &[f64],
+        rel: f64,
+    ) -> (u32, u64, u64, f64) {
+        let (mut cases, mut evals_old, mut evals_new, mut worst) = (0u32, 0u64, 0u64, 0.0f64);
         for &n in &[1u64, 2, 7, 30, 250, 2000, 20_000, 1_000_000] {
             let ks = [
                 0,
@@ -909,40 +912,27 @@ mod from_guess_tests {
             ];
             for &k in &ks {
                 let k = k.min(n);
-                for &level in &[0.5, 3.0, 7.3, 20.0, 60.0, 400.0] {
+                for &level in levels {
                     for sides in [Sides::Two, Sides::Upper, Sides::Lower] {
-                        let (v2, v3) = memo::with_memo(false, || {
+                        let (a, b) = memo::with_memo(false, || {
+                            let interval = |r| {
+                                errors_range_interval_with(r, Method::Exact, n, k, k, level, sides)
+                                    .unwrap()
+                            };
                             let e0 = evaluations();
-                            let v2 = errors_range_interval_with(
-                                Rounding::Outward,
-                                Method::Exact,
-                                n,
-                                k,
-                                k,
-                                level,
-                                sides,
-                            )
-                            .unwrap();
+                            let a = interval(old);
                             let e1 = evaluations();
-                            let v3 = errors_range_interval_with(
-                                Rounding::OutwardFromGuess,
-                                Method::Exact,
-                                n,
-                                k,
-                                k,
-                                level,
-                                sides,
-                            )
-                            .unwrap();
-                            evals_2 += e1 - e0;
-                            evals_3 += evaluations() - e1;
-                            (v2, v3)
+                            let b = interval(new);
+                            evals_old += e1 - e0;
+                            evals_new += evaluations() - e1;
+                            (a, b)
                         });
-                        for (a, b) in [(v2.lower, v3.lower), (v2.upper, v3.upper)] {
-                            let tol = 1e-11 * a.abs().max(b.abs()).max(1e-300);
+                        for (x, y) in [(a.lower, b.lower), (a.upper, b.upper)] {
+                            let scale = x.abs().max(y.abs()).max(1e-300);
+                            worst = worst.max((x - y).abs() / scale);
                             assert!(
-                                (a - b).abs() <= tol,
-                                "n {n} k {k} level {level} {sides:?}: v2 {a:e} v3 {b:e}"
+                                (x - y).abs() <= rel * scale,
+                                "n {n} k {k} level {level} {sides:?}: {old:?} {x:e} {new:?} {y:e}"
                             );
                         }
                         cases += 1;
@@ -950,6 +940,21 @@ mod from_guess_tests {
                 }
             }
         }
+        (cases, evals_old, evals_new, worst)
+    }
+
+    /// Core version 3 searches each Clopper-Pearson limit from a guess: the limits agree with
+    /// core version 2's (which the reference tests check against scipy) to within the
+    /// search's tolerance, they are still certified (the same outward step follows), and the
+    /// searches take far fewer evaluations.
+    #[test]
+    fn limits_from_a_guess_match_version_2_with_fewer_evaluations() {
+        let (cases, evals_2, evals_3, _) = compare_limits(
+            Rounding::Outward,
+            Rounding::OutwardFromGuess,
+            &[0.5, 3.0, 7.3, 20.0, 60.0, 400.0],
+            1e-11,
+        );
         assert!(cases > 1000);
         assert!(
             evals_3 * 3 < evals_2,
@@ -965,65 +970,12 @@ mod from_guess_tests {
     /// the ends, where nothing is searched; see the next test for realistic counts).
     #[test]
     fn newton_limits_match_version_3_with_fewer_evaluations() {
-        let mut cases = 0u32;
-        let (mut evals_3, mut evals_4) = (0u64, 0u64);
-        let mut worst = 0.0f64;
-        for &n in &[1u64, 2, 7, 30, 250, 2000, 20_000, 1_000_000] {
-            let ks = [
-                0,
-                1,
-                2,
-                n / 20,
-                n / 3,
-                n / 2,
-                n - n / 10,
-                n.saturating_sub(1),
-                n,
-            ];
-            for &k in &ks {
-                let k = k.min(n);
-                for &level in &[0.5, 3.0, 7.3, 14.2, 20.0, 60.0, 400.0] {
-                    for sides in [Sides::Two, Sides::Upper, Sides::Lower] {
-                        let (v3, v4) = memo::with_memo(false, || {
-                            let e0 = evaluations();
-                            let v3 = errors_range_interval_with(
-                                Rounding::OutwardFromGuess,
-                                Method::Exact,
-                                n,
-                                k,
-                                k,
-                                level,
-                                sides,
-                            )
-                            .unwrap();
-                            let e1 = evaluations();
-                            let v4 = errors_range_interval_with(
-                                Rounding::OutwardNewton,
-                                Method::Exact,
-                                n,
-                                k,
-                                k,
-                                level,
-                                sides,
-                            )
-                            .unwrap();
-                            evals_3 += e1 - e0;
-                            evals_4 += evaluations() - e1;
-                            (v3, v4)
-                        });
-                        for (a, b) in [(v3.lower, v4.lower), (v3.upper, v4.upper)] {
-                            let tol = 1e-8 * a.abs().max(b.abs()).max(1e-300);
-                            worst = worst.max((a - b).abs() / a.abs().max(b.abs()).max(1e-300));
-                            assert!(
-                                (a - b).abs() <= tol,
-                                "n {n} k {k} level {level} {sides:?}: v3 {a:e} v4 {b:e}"
-                            );
-                        }
-                        cases += 1;
-                    }
-                }
-            }
-        }
+        let (cases, evals_3, evals_4, worst) = compare_limits(
+            Rounding::OutwardFromGuess,
+            Rounding::OutwardNewton,
+            &[0.5, 3.0, 7.3, 14.2, 20.0, 60.0, 400.0],
+            1e-8,
+        );
         assert!(cases > 1000);
         assert!(
             evals_4 * 10 <= evals_3 * 9,
