@@ -108,6 +108,20 @@ fn outward_limits_are_never_narrower_than_50_digit_reference() {
     );
     // Not absurdly wider: the margin is an error bound of a few ulps per evaluated term.
     assert!(worst <= 1e-6, "widening {worst:e} at {worst_case}");
+    // Cores 3 and 4 search their roots differently (from a guess; by Newton stopped early) and
+    // certify them the same way: never narrower than the mpmath limits either.
+    for rounding in [Rounding::OutwardFromGuess, Rounding::OutwardNewton] {
+        let (checked, narrow, worst, worst_case) = compare(rounding, &reference);
+        println!(
+            "{rounding:?}: {checked} limits, {} narrower, worst widening {worst:e}",
+            narrow.len()
+        );
+        assert!(narrow.is_empty(), "{rounding:?}: {narrow:#?}");
+        assert!(
+            worst <= 1e-6,
+            "{rounding:?}: widening {worst:e} at {worst_case}"
+        );
+    }
     // The reference can fail: rounded to nearest, core 1 is narrow on part of it (the review's
     // examples are among the cases).
     assert!(narrow_v1.len() >= 10, "{narrow_v1:?}");
