@@ -27,6 +27,7 @@ fn policy(rule: &str, rows: u64, tolerance: f64, method: Method, core: u32) -> P
             binary: true,
             method,
             // Exact is only for binary targets; the callers below keep to that.
+            class_counts: None,
         }],
         core_version: core,
         // The uniform codes (version 1), whose figures these tests check.

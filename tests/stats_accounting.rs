@@ -22,6 +22,7 @@ fn policy(rule: &str, schedule: &str, rows: u64, tolerance: f64) -> Policy {
             name: "y".into(),
             binary: true,
             method: Method::Exact,
+            class_counts: None,
         }],
         core_version: holdout_ledger::stats::CORE,
         // The uniform codes (version 1), whose figures these tests check.

@@ -254,6 +254,7 @@ fn policy(rule: &str, rows: u64, tolerance: f64, sharing: Sharing) -> Policy {
             name: "y".into(),
             binary: true,
             method: Method::Exact,
+            class_counts: None,
         }],
         core_version: holdout_ledger::stats::CORE,
         code_version: holdout_ledger::stats::codes::CODE,

@@ -99,6 +99,7 @@ fn attack_run(seed: u64, queries: usize) -> (bool, bool, f64, f64) {
             name: "y".into(),
             binary: true,
             method: Method::Exact,
+            class_counts: None,
         }],
         core_version: holdout_ledger::stats::CORE,
         code_version: holdout_ledger::stats::codes::CODE,

@@ -213,6 +213,7 @@ impl HoldoutPolicy {
                     .map_err(|e: crate::stats::interval::IntervalError| {
                         Error::invalid(format!("target {}", t.name), e.to_string())
                     })?,
+                class_counts: None,
             });
         }
         let core = Policy {

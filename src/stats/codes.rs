@@ -145,6 +145,23 @@ impl Code {
     }
 }
 
+/// The code of a release of class counts (DESIGN 4.8, "class counts are label facts"): the
+/// counts `(n_1, ..., n_C)` of `rows` rows over `classes` classes, coded uniformly over every
+/// composition of `rows` into `classes` non-negative parts, `p = 1 / C(n + C - 1, C - 1)`.
+/// The compositions are the symbols the release could take; they number exactly
+/// `C(n + C - 1, C - 1)`, so the probabilities sum to 1 (Kraft) and every possible count
+/// vector has `p > 0`. The code depends on `n` and `C` only (public facts), never on the
+/// counts: what a release costs is known before it is made.
+///
+/// Computed as `sum over j = 1..C-1 of ln(1 + n / j)`, then raised by a relative `1e-12` so
+/// that float rounding can only overcharge: about 34.2 nats for 180 rows and 10 classes,
+/// `ln(n + 1)` for two classes. `0` for one class (nothing is revealed).
+pub fn composition_nats(rows: u64, classes: u32) -> f64 {
+    let n = rows as f64;
+    let exact: f64 = (1..classes).map(|j| (n / f64::from(j)).ln_1p()).sum();
+    exact * (1.0 + 1e-12)
+}
+
 /// An upper bound on the total drop code of `k` new bests from a best of `b` cells (after the
 /// team's first new best), whatever the drops: each new best lowers the best by at least one
 /// cell, so the `t`-th (from 0) is coded over at most `b - t` cells and costs at most

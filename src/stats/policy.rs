@@ -50,6 +50,12 @@ pub struct TargetPolicy {
     pub binary: bool,
     /// Interval method; `exact` only for binary targets.
     pub method: Method,
+    /// The number of classes whose counts a query of this target needs (per-class and
+    /// balanced error, AUC): the counts are then released once, as a coded symbol of their
+    /// own, before the first such answer (DESIGN 4.8, [`super::codes::composition_nats`]).
+    /// `None` (and absent from the recorded policy) for metrics that need no counts.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub class_counts: Option<u32>,
 }
 
 /// The accounting policy of one holdout.
@@ -165,6 +171,12 @@ impl Policy {
                 return Err(bad(
                     "targets",
                     format!("target '{}' is listed twice", t.name),
+                ));
+            }
+            if t.class_counts.is_some_and(|c| c < 2) {
+                return Err(bad(
+                    "targets",
+                    format!("target '{}': class counts need at least two classes", t.name),
                 ));
             }
             if t.method == Method::Exact && !t.binary {

@@ -149,6 +149,9 @@ impl Accountant {
         batch: u32,
     ) -> TargetStatus {
         let reference = self.reference_mean(view);
+        // Class counts still to be released for this target come before its next answer.
+        let due = self.counts_due(view.transcript, target);
+        let next_level = next_level.map(|l| l + due);
         let next_half_width = next_level.map(|l| self.judged_half_width(target, reference, l));
         let past = Past {
             threshold: view.transcript.kt(target),
@@ -166,7 +169,7 @@ impl Accountant {
                 let cost =
                     self.code()
                         .worst_case_nats(&self.policy.rule, self.policy.rows, &past, j);
-                Some(base + frac + view.transcript.nats + cost)
+                Some(base + frac + view.transcript.nats + due + cost)
             },
             |level| match self.fit_level.get(target) {
                 Some(max) if reference == 0.5 => level <= *max,
@@ -181,8 +184,8 @@ impl Accountant {
     }
 
     /// The most nats the next answer to `req` could add to the transcript, whatever its
-    /// symbol: what a dry run shows and what `--max-cost` is compared with. Decided from public
-    /// facts only.
+    /// symbol, with the class counts it would release first where they are due: what a dry run
+    /// shows and what `--max-cost` is compared with. Decided from public facts only.
     pub fn worst_code_nats(&self, req: &QueryRequest) -> Result<f64, Refusal> {
         if req.target >= self.policy.targets.len() {
             return Err(Refusal::BadRequest(format!(
@@ -200,7 +203,8 @@ impl Accountant {
         };
         Ok(self
             .code()
-            .worst_case_nats(&self.policy.rule, self.policy.rows, &past, 1))
+            .worst_case_nats(&self.policy.rule, self.policy.rows, &past, 1)
+            + self.counts_due(view.transcript, req.target))
     }
 }
 

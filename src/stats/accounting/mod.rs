@@ -36,9 +36,9 @@
 //! assert!(ans.interval.contains(0.1234));
 //! ```
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
 
-use super::codes::Code;
+use super::codes::{Code, composition_nats};
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
 use super::interval::{
     Rounding, errors_interval_with, mean_interval_with, reference_half_width_with,
@@ -52,7 +52,7 @@ mod types;
 
 pub(crate) use forecast::{count_fitting, ln_inv_mean_share};
 pub use types::{
-    AccountingError, Answer, Charge, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
+    AccountingError, Answer, Charge, CountsRelease, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
     TargetStatus,
 };
 
@@ -61,6 +61,8 @@ struct Transcript {
     nats: f64,
     answers: u64,
     threshold: Vec<KtCounts>,
+    /// Class counts released in this transcript, by (target, slice; `""` for every row).
+    counts: BTreeSet<(usize, String)>,
 }
 
 impl Transcript {
@@ -439,7 +441,9 @@ impl Accountant {
                     },
                 )?;
         }
-        let transcript_nats = view.transcript.nats;
+        // Class counts not yet released in this transcript are released just before this
+        // answer (Accountant::release_counts), so its level already includes their code.
+        let transcript_nats = view.transcript.nats + self.counts_due(view.transcript, req.target);
         let level_nats = ln_inv_last + transcript_nats;
         let reference = self.reference_mean(&view);
         let h = self.judged_half_width(req.target, reference, level_nats);
@@ -564,6 +568,12 @@ impl Accountant {
         let view = self
             .view(&req.analyst, req.target)
             .map_err(|_| AccountingError::StaleCharge)?;
+        if self.counts_due(view.transcript, req.target) > 0.0 {
+            return Err(AccountingError::BadOutcome(format!(
+                "the class counts of target '{}' must be released before its first answer",
+                self.policy.targets[req.target].name
+            )));
+        }
         let past = Past {
             threshold: view.transcript.kt(req.target),
             ladder: view.past_ladder,
@@ -611,6 +621,82 @@ impl Accountant {
             _ => {}
         }
         Ok(self.finish(req, charge, symbol, released, interval, code, level))
+    }
+
+    /// The code a release of class counts of `target` would add to `transcript` now: 0 when
+    /// the target needs no counts or they were released in it already.
+    fn counts_due(&self, transcript: &Transcript, target: usize) -> f64 {
+        match self.policy.targets.get(target).and_then(|t| t.class_counts) {
+            Some(classes) if !transcript.counts.contains(&(target, String::new())) => {
+                composition_nats(self.policy.rows, classes)
+            }
+            _ => 0.0,
+        }
+    }
+
+    /// The nats a release of `target`'s class counts would cost before `analyst`'s next answer
+    /// on it (DESIGN 4.8): `None` when the target needs no counts, when they were released in
+    /// the analyst's transcript already (the holdout's under `shared`, the analyst's own under
+    /// `isolated`), or when the analyst has no share. Public facts only: the cost is
+    /// `ln C(n + C - 1, C - 1)`, whatever the counts.
+    pub fn counts_pending(&self, analyst: &str, target: usize) -> Option<f64> {
+        let view = self.view(analyst, target).ok()?;
+        let due = self.counts_due(view.transcript, target);
+        (due > 0.0).then_some(due)
+    }
+
+    /// Releases the class counts of `target` (one per declared class, summing to the rows) to
+    /// `analyst`'s transcript: the symbol is the count vector, coded uniformly over the
+    /// compositions ([`composition_nats`]), and its code is added to the transcript like any
+    /// answer's, so every later level pays for it. Takes no share of delta (the counts are
+    /// exact facts, not an estimate with a failure event). Made once per transcript, at the
+    /// first query that needs the counts and is not refused; the quote of that query already
+    /// includes the code, and [`Accountant::answer`] refuses to answer it before the release.
+    pub fn release_counts(
+        &mut self,
+        analyst: &str,
+        target: usize,
+        counts: &[u64],
+    ) -> Result<CountsRelease, AccountingError> {
+        let Some(classes) = self.policy.targets.get(target).and_then(|t| t.class_counts) else {
+            return Err(AccountingError::BadOutcome(format!(
+                "target {target} needs no class counts"
+            )));
+        };
+        if counts.len() != classes as usize
+            || counts.iter().try_fold(0u64, |a, c| a.checked_add(*c)) != Some(self.policy.rows)
+        {
+            return Err(AccountingError::BadOutcome(format!(
+                "{} class counts summing to {:?} do not fit {classes} classes over {} rows",
+                counts.len(),
+                counts.iter().try_fold(0u64, |a, c| a.checked_add(*c)),
+                self.policy.rows
+            )));
+        }
+        let due = self.counts_pending(analyst, target).ok_or_else(|| {
+            AccountingError::BadOutcome(format!(
+                "the class counts of target {target} are not due for '{analyst}' (released \
+                 already, or no share)"
+            ))
+        })?;
+        self.changed();
+        self.sequence += 1;
+        let transcript = if self.policy.sharing == Sharing::Isolated {
+            self.register(analyst);
+            &mut self
+                .analysts
+                .get_mut(analyst)
+                .expect("registered above")
+                .transcript
+        } else {
+            &mut self.transcript
+        };
+        transcript.nats += due;
+        transcript.counts.insert((target, String::new()));
+        Ok(CountsRelease {
+            code_nats: due,
+            transcript_nats: transcript.nats,
+        })
     }
 
     /// Core 2, ladder under `shared`: whether a file already answered for another team with
@@ -939,6 +1025,7 @@ static EMPTY_TRANSCRIPT: Transcript = Transcript {
     nats: 0.0,
     answers: 0,
     threshold: Vec::new(),
+    counts: BTreeSet::new(),
 };
 
 /// The largest level an analyst's adopted ladder files were answered at (0: none).

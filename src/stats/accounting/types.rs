@@ -90,12 +90,22 @@ pub struct Charge {
     pub ln_inv_delta_i: f64,
     /// `ln(1/d_i) = ln(1/delta_i) + L_{i-1}`: the level of the reported interval.
     pub level_nats: f64,
-    /// Transcript cost `L_{i-1}` the level includes.
+    /// Transcript cost `L_{i-1}` the level includes (with the code of class counts the query
+    /// releases first, where they are due).
     pub transcript_nats: f64,
     /// Sum of `delta_i` over the shares taken: what the budget is charged.
     pub delta_charged: f64,
     /// Half-width at the public reference score, compared with the tolerance.
     pub reference_half_width: f64,
+}
+
+/// A release of class counts ([`Accountant::release_counts`](super::Accountant::release_counts)).
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct CountsRelease {
+    /// `-ln p(counts)`, added to the transcript: `ln C(n + C - 1, C - 1)`.
+    pub code_nats: f64,
+    /// Transcript cost `L` after the release.
+    pub transcript_nats: f64,
 }
 
 /// What an answer reports (DESIGN 4.4).
