@@ -58,6 +58,9 @@ pub enum Kind {
     /// The custodian shredded a closed holdout's labels (and its kept prediction files); the
     /// labels digest stays in the genesis entry. Moves no accounting state.
     LabelsShredded,
+    /// The release of a target's class counts: a coded, charged symbol of its own, made once
+    /// per transcript before the first answer that needs them (DESIGN 4.8).
+    ClassCounts,
     /// Identity chain: a user was added (with roles and team).
     UserAdded,
     /// Identity chain: a user and its tokens were revoked.
@@ -68,7 +71,7 @@ pub enum Kind {
 
 impl Kind {
     /// Every kind, in a fixed order (reports list counts in this order).
-    pub const ALL: [Kind; 16] = [
+    pub const ALL: [Kind; 17] = [
         Kind::Genesis,
         Kind::Answer,
         Kind::Refusal,
@@ -82,6 +85,7 @@ impl Kind {
         Kind::Backup,
         Kind::PredictionsDropped,
         Kind::LabelsShredded,
+        Kind::ClassCounts,
         Kind::UserAdded,
         Kind::UserRevoked,
         Kind::TokenRotated,
@@ -103,6 +107,7 @@ impl Kind {
             Kind::Backup => "backup",
             Kind::PredictionsDropped => "predictions-dropped",
             Kind::LabelsShredded => "labels-shredded",
+            Kind::ClassCounts => "class-counts",
             Kind::UserAdded => "user-added",
             Kind::UserRevoked => "user-revoked",
             Kind::TokenRotated => "token-rotated",

@@ -45,12 +45,12 @@ fn req(analyst: &str) -> QueryRequest {
 
 /// ln C(n + C - 1, C - 1) by Python 3's exact `math.comb` then `math.log`:
 /// `math.log(math.comb(189, 9))` = 34.18049824224726 (180 rows, 10 classes; the issue's "about
-/// 34"), `math.log(math.comb(601, 2))` = 12.102377409191408 (600 rows, 3 classes).
+/// 34"), `math.log(math.comb(602, 2))` = 12.105705199284083 (600 rows, 3 classes).
 #[test]
 fn the_code_of_a_release_is_the_log_number_of_compositions() {
     let close = |a: f64, b: f64, tol: f64| (a - b).abs() <= tol * b.max(1.0);
     assert!(close(composition_nats(180, 10), 34.18049824224726, 1e-11));
-    assert!(close(composition_nats(600, 3), 12.102377409191408, 1e-11));
+    assert!(close(composition_nats(600, 3), 12.105705199284083, 1e-11));
     // Two classes: ln(n + 1).
     assert!(close(composition_nats(999, 2), 1000f64.ln(), 1e-11));
     // One class reveals nothing.
@@ -112,7 +112,9 @@ fn the_first_answer_pays_for_the_counts_and_only_after_their_release() {
     assert!(acc.release_counts("a", 0, &[100, 200, 301]).is_err());
     assert!(plain.release_counts("a", 0, &[100, 200, 300]).is_err());
 
+    assert_eq!(acc.released_counts("a", 0), None);
     let r = acc.release_counts("a", 0, &[100, 200, 300]).unwrap();
+    assert_eq!(acc.released_counts("b", 0), Some(&[100, 200, 300][..]));
     assert_eq!(r.code_nats, due);
     assert_eq!(r.transcript_nats, due);
     // Once per transcript: under `shared` nobody pays again.
@@ -127,7 +129,9 @@ fn the_first_answer_pays_for_the_counts_and_only_after_their_release() {
     );
     let after = acc.quote(&req("a")).unwrap();
     assert_eq!(after.level_nats.to_bits(), before.level_nats.to_bits());
-    let ans = acc.answer(&req("a"), &after, &[Outcome::Errors(60)]).unwrap();
+    let ans = acc
+        .answer(&req("a"), &after, &[Outcome::Errors(60)])
+        .unwrap();
     let ans_plain = plain
         .answer(&req("a"), &without, &[Outcome::Errors(60)])
         .unwrap();
@@ -148,6 +152,8 @@ fn under_isolated_each_team_pays_in_its_own_transcript() {
     // Team b's view is untouched by a's release: it still has the counts due.
     assert_eq!(acc.counts_pending("a", 0), None);
     assert_eq!(acc.counts_pending("b", 0), Some(due));
+    assert_eq!(acc.released_counts("a", 0), Some(&[150, 150, 150, 150][..]));
+    assert_eq!(acc.released_counts("b", 0), None);
     assert_eq!(acc.status(Some("b")).transcript_nats, 0.0);
     let r = acc.release_counts("b", 0, &[150, 150, 150, 150]).unwrap();
     assert_eq!(r.transcript_nats, due);

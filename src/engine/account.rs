@@ -16,7 +16,9 @@ use super::records::{AnswerRecord, BudgetView, CoreJson};
 use crate::error::{Error, Result};
 use crate::ledger::{Entry, Kind};
 use crate::metric::Loss;
-use crate::stats::accounting::{Accountant, Answer, Charge, Outcome, QueryRequest, Refusal};
+use crate::stats::accounting::{
+    Accountant, Answer, Charge, CountsRelease, Outcome, QueryRequest, Refusal,
+};
 use crate::stats::policy::{Policy, Sharing, TargetPolicy, ToleranceReference, guarantee_text};
 use crate::stats::rules::{Rule, Symbol};
 use crate::stats::schedule::{Schedule, Shares};
@@ -546,6 +548,24 @@ impl Book {
             half_width: half,
             worst_code_nats: worst,
         }
+    }
+
+    /// The nats a release of `target`'s class counts costs before `team`'s next answer on it,
+    /// if they are due (public facts only).
+    pub(crate) fn counts_pending(&self, team: &str, target: usize) -> Option<f64> {
+        self.acct.counts_pending(team, target)
+    }
+
+    /// Releases `target`'s class counts to `team`'s transcript (the holdout's under `shared`).
+    pub(crate) fn release_counts(
+        &mut self,
+        team: &str,
+        target: usize,
+        counts: &[u64],
+    ) -> Result<CountsRelease> {
+        self.acct
+            .release_counts(team, target, counts)
+            .map_err(|e| Error::Internal(format!("accounting: {e}")))
     }
 
     /// Answers a quoted query from the exact losses; advances the transcript.

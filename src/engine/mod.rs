@@ -59,8 +59,8 @@ pub use worker::{BatchStats, DEFAULT_MAX_BATCH, Db};
 pub(crate) use account::Book;
 pub use ops::LOCAL_OPERATOR;
 pub use replay::{
-    BackupRecord, CloseRecord, DropRecord, ReadRecord, Record, ShredRecord, WithdrawRecord,
-    WithdrawRequestRecord,
+    BackupRecord, ClassCountsRecord, CloseRecord, DropRecord, ReadRecord, Record, ShredRecord,
+    WithdrawRecord, WithdrawRequestRecord,
 };
 pub(crate) use replay::{BudgetCheck, Problem, Replayer};
 pub use retention::{MAX_KEEP_DAYS, Retention, Shredded, kept_files};

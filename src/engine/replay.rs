@@ -19,6 +19,31 @@ use crate::error::{Error, Result};
 use crate::ledger::{Entry, Kind};
 use crate::stats::interval::Rounding;
 
+/// The body of a `class-counts` entry: a target's class counts released as a coded symbol of
+/// their own (DESIGN 4.8), to the whole holdout under `shared` and to `team` under `isolated`,
+/// just before the first answer that needs them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ClassCountsRecord {
+    /// Holdout.
+    pub holdout: String,
+    /// Target name.
+    pub target: String,
+    /// Target index in the policy.
+    pub target_index: usize,
+    /// The team whose query needed them (their transcript pays under `isolated`).
+    pub team: String,
+    /// The declared classes, in order.
+    pub classes: Vec<String>,
+    /// Rows of each class, in the order of `classes`: the released symbol.
+    pub counts: Vec<u64>,
+    /// `-ln p(counts)` = `ln C(n + C - 1, C - 1)`, added to the transcript.
+    pub code_nats: f64,
+    /// The transcript's cost after the release.
+    pub transcript_nats: f64,
+    /// When, RFC 3339 UTC.
+    pub at: String,
+}
+
 /// The body of a `close` entry (an open holdout closed by an organizer).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CloseRecord {
@@ -168,6 +193,8 @@ pub enum Record {
     PredictionsDropped(Box<DropRecord>),
     /// A closed holdout's labels shredded by its custodian.
     LabelsShredded(Box<ShredRecord>),
+    /// A target's class counts released (a coded, charged symbol).
+    ClassCounts(Box<ClassCountsRecord>),
     /// An identity event (these belong to the `@users` chain, never to a holdout's).
     Identity(Kind, Box<Value>),
 }
@@ -210,6 +237,7 @@ impl Record {
             Kind::LabelsShredded => {
                 Record::LabelsShredded(Box::new(body(e, "a labels-shredded record")?))
             }
+            Kind::ClassCounts => Record::ClassCounts(Box::new(body(e, "a class-counts record")?)),
             k if k.is_identity() => Record::Identity(k, Box::new(body(e, "an identity event")?)),
             k => return Err(format!("entry kind {k} has no record parser")),
         })
@@ -237,6 +265,7 @@ impl Record {
             Record::Backup(_) => Kind::Backup,
             Record::PredictionsDropped(_) => Kind::PredictionsDropped,
             Record::LabelsShredded(_) => Kind::LabelsShredded,
+            Record::ClassCounts(_) => Kind::ClassCounts,
             Record::Identity(k, _) => *k,
         }
     }
@@ -561,6 +590,11 @@ impl<'p> Replayer<'p> {
             Record::Backup(b) => cmp.time(&b.at),
             Record::PredictionsDropped(d) => self.dropped(entries, e.seq, d, &mut cmp),
             Record::LabelsShredded(r) => self.shredded(entries, e.seq, r, &mut cmp),
+            Record::ClassCounts(r) => {
+                after_close(&mut cmp, self.closed_at, "class counts released");
+                self.class_counts(r, &mut cmp);
+                self.memo.generation += 1;
+            }
             Record::WithdrawRequest(r) => self.withdraw_request(e.seq, r, &mut cmp),
             Record::Withdraw(w) => self.withdraw(e.seq, w, &mut cmp),
             Record::Identity(k, _) => cmp.push(
@@ -757,6 +791,28 @@ impl<'p> Replayer<'p> {
             );
         }
         self.book.count_quota(team, &day_of(at));
+    }
+
+    /// A release of class counts: the same release on the book, and the recorded code and
+    /// transcript compared with what it computes.
+    fn class_counts(&mut self, r: &ClassCountsRecord, cmp: &mut Cmp) {
+        cmp.time(&r.at);
+        let Some(t) = self.policy.targets.get(r.target_index) else {
+            cmp.push(
+                "target_index",
+                format!("{} is not a target of the policy", r.target_index),
+            );
+            return;
+        };
+        cmp.eq("target", r.target.as_str(), t.name.as_str());
+        cmp.eq("classes", r.classes.join(","), t.classes.join(","));
+        match self.book.release_counts(&r.team, r.target_index, &r.counts) {
+            Ok(rel) => {
+                cmp.f("code_nats", r.code_nats, rel.code_nats);
+                cmp.f("transcript_nats", r.transcript_nats, rel.transcript_nats);
+            }
+            Err(err) => cmp.push("replay", err.to_string()),
+        }
     }
 
     fn answer(&mut self, r: &AnswerRecord, cmp: &mut Cmp) -> bool {
@@ -1178,5 +1234,109 @@ impl Book {
             }
         }
         Ok(rp.into_book())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::account::PolicyInput;
+    use crate::engine::create::TargetDecl;
+    use crate::metric::Metric;
+
+    /// A two-target policy (600 rows) whose first target needs the counts of its 3 classes.
+    fn policy(sharing: &str, shares: &str) -> HoldoutPolicy {
+        let decl = |name: &str| TargetDecl {
+            name: name.into(),
+            column: name.into(),
+            metric: Metric::Error,
+            method: "exact".into(),
+            classes: vec!["a".into(), "b".into(), "c".into()],
+        };
+        let input = PolicyInput {
+            sharing: sharing.into(),
+            shares: shares.into(),
+            ..PolicyInput::default()
+        };
+        let mut p = HoldoutPolicy::build(&input, vec![decl("y"), decl("z")], 600).unwrap();
+        p.core.targets[0].class_counts = Some(3);
+        p
+    }
+
+    fn entry(seq: u64, rec: &ClassCountsRecord) -> Entry {
+        Entry {
+            chain: rec.holdout.clone(),
+            seq,
+            kind: Kind::ClassCounts.as_str().into(),
+            body: serde_json::to_string(rec).unwrap(),
+            salt: String::new(),
+            prev_hash: String::new(),
+            hash: String::new(),
+        }
+    }
+
+    fn release(team: &str, counts: Vec<u64>, code: f64, transcript: f64) -> ClassCountsRecord {
+        ClassCountsRecord {
+            holdout: "h".into(),
+            target: "y".into(),
+            target_index: 0,
+            team: team.into(),
+            classes: vec!["a".into(), "b".into(), "c".into()],
+            counts,
+            code_nats: code,
+            transcript_nats: transcript,
+            at: "2026-01-01T00:00:00Z".into(),
+        }
+    }
+
+    /// Replays `recs` as entries 1.. of a chain; the problems found.
+    fn replay(policy: &HoldoutPolicy, recs: &[ClassCountsRecord]) -> Vec<Problem> {
+        let entries: Vec<Entry> = recs
+            .iter()
+            .enumerate()
+            .map(|(i, r)| entry(i as u64 + 1, r))
+            .collect();
+        let mut rp = Replayer::new(policy, true).unwrap();
+        let mut out = Vec::new();
+        for (i, e) in entries.iter().enumerate() {
+            let rec = Record::parse(e).unwrap();
+            assert_eq!(rec.kind(), Kind::ClassCounts);
+            rp.step(&entries, i, &rec, &mut out, &mut |_| {});
+        }
+        out
+    }
+
+    #[test]
+    fn a_release_replays_and_a_changed_one_is_found() {
+        let shared = policy("shared", "none");
+        let due = crate::stats::codes::composition_nats(600, 3);
+        let good = release("t1", vec![100, 200, 300], due, due);
+        assert!(replay(&shared, std::slice::from_ref(&good)).is_empty());
+        // A cheaper recorded code, or a transcript that leaves it out, is found.
+        let cheap = release("t1", vec![100, 200, 300], due - 1.0, due);
+        assert!(replay(&shared, &[cheap])[0].field == "code_nats");
+        let left_out = release("t1", vec![100, 200, 300], due, 0.0);
+        assert!(replay(&shared, &[left_out])[0].field == "transcript_nats");
+        // Counts that do not add up to the rows, or that name other classes, are found.
+        let bad_sum = release("t1", vec![100, 200, 200], due, due);
+        assert!(replay(&shared, &[bad_sum])[0].field == "replay");
+        let mut other = good.clone();
+        other.classes = vec!["a".into(), "b".into(), "x".into()];
+        assert!(replay(&shared, &[other])[0].field == "classes");
+        // A target that needs no counts has none to release.
+        let mut z = good.clone();
+        (z.target, z.target_index) = ("z".into(), 1);
+        assert!(replay(&shared, &[z])[0].field == "replay");
+        // Under shared, once: a second release (any team) is found.
+        let again = release("t2", vec![100, 200, 300], due, 2.0 * due);
+        let found = replay(&shared, &[good.clone(), again]);
+        assert_eq!(found.len(), 1, "{found:?}");
+        assert_eq!((found[0].entry, found[0].field.as_str()), (2, "replay"));
+        // Under isolated, once per team, each in its own transcript.
+        let isolated = policy("isolated", "on-arrival");
+        let t2 = release("t2", vec![100, 200, 300], due, due);
+        assert!(replay(&isolated, &[good.clone(), t2]).is_empty());
+        let twice = replay(&isolated, &[good.clone(), good]);
+        assert_eq!(twice.len(), 1, "{twice:?}");
     }
 }

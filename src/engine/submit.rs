@@ -365,6 +365,19 @@ impl Engine {
                     None,
                 ));
             }
+            // A target whose metric needs class counts releases them first, once per
+            // transcript: a coded, charged entry of its own (DESIGN 4.8). The quote above
+            // already included their code and decided from public facts alone that the query
+            // is answered; nothing before this point shows the counts.
+            let quote = if book.counts_pending(&team, target_index).is_some() {
+                self.release_counts(loaded, &mut book, &team, target_index, &at)?;
+                book.quote(&loaded.policy, &team, target_index, models)
+                    .map_err(|r| {
+                        Error::Internal(format!("the quote changed with the class counts: {r}"))
+                    })?
+            } else {
+                quote
+            };
             // Only now, with the charge decided from public facts, is anything scored.
             let target = &loaded.policy.targets[target_index];
             let losses: Vec<Loss> = preds
@@ -430,6 +443,39 @@ impl Engine {
             ))
         })();
         self.finish_write(&loaded.name, outcome)
+    }
+
+    /// Releases `target_index`'s class counts to `team`'s transcript (the holdout's under
+    /// `shared`) and records the release (entry kind `class-counts`), inside the open write.
+    pub(super) fn release_counts(
+        &mut self,
+        loaded: &Loaded,
+        book: &mut super::account::Book,
+        team: &str,
+        target_index: usize,
+        at: &str,
+    ) -> Result<()> {
+        let target = &loaded.policy.targets[target_index];
+        let labels = loaded.labels.get(target_index).ok_or_else(|| {
+            Error::FailedPrecondition(format!("the labels of holdout {} are gone", loaded.name))
+        })?;
+        let counts = metric::class_counts(labels, &target.classes);
+        let rel = book.release_counts(team, target_index, &counts)?;
+        let record = super::replay::ClassCountsRecord {
+            holdout: loaded.name.clone(),
+            target: target.name.clone(),
+            target_index,
+            team: team.to_string(),
+            classes: target.classes.clone(),
+            counts,
+            code_nats: rel.code_nats,
+            transcript_nats: rel.transcript_nats,
+            at: at.to_string(),
+        };
+        let body = serde_json::to_value(&record)
+            .map_err(|e| Error::Internal(format!("class counts encoding: {e}")))?;
+        self.append(&loaded.name, ledger::Kind::ClassCounts, &body, None)?;
+        Ok(())
     }
 
     /// What an identical prediction vector, already answered at entry `seq`, gets. Core 1,

@@ -176,7 +176,10 @@ impl Policy {
             if t.class_counts.is_some_and(|c| c < 2) {
                 return Err(bad(
                     "targets",
-                    format!("target '{}': class counts need at least two classes", t.name),
+                    format!(
+                        "target '{}': class counts need at least two classes",
+                        t.name
+                    ),
                 ));
             }
             if t.method == Method::Exact && !t.binary {

@@ -36,7 +36,7 @@
 //! assert!(ans.interval.contains(0.1234));
 //! ```
 
-use std::collections::{BTreeMap, BTreeSet};
+use std::collections::BTreeMap;
 
 use super::codes::{Code, composition_nats};
 use super::interval::{Interval, Method, Sides, errors_interval, mean_interval};
@@ -52,8 +52,8 @@ mod types;
 
 pub(crate) use forecast::{count_fitting, ln_inv_mean_share};
 pub use types::{
-    AccountingError, Answer, Charge, CountsRelease, Cutoff, Outcome, QueryRequest, Refusal, SealedReceipt, Status,
-    TargetStatus,
+    AccountingError, Answer, Charge, CountsRelease, Cutoff, Outcome, QueryRequest, Refusal,
+    SealedReceipt, Status, TargetStatus,
 };
 
 #[derive(Debug, Clone, Default)]
@@ -61,8 +61,9 @@ struct Transcript {
     nats: f64,
     answers: u64,
     threshold: Vec<KtCounts>,
-    /// Class counts released in this transcript, by (target, slice; `""` for every row).
-    counts: BTreeSet<(usize, String)>,
+    /// Class counts released in this transcript, by (target, slice; `""` for every row): public
+    /// to whoever sees the transcript from their release on.
+    counts: BTreeMap<(usize, String), Vec<u64>>,
 }
 
 impl Transcript {
@@ -627,7 +628,7 @@ impl Accountant {
     /// the target needs no counts or they were released in it already.
     fn counts_due(&self, transcript: &Transcript, target: usize) -> f64 {
         match self.policy.targets.get(target).and_then(|t| t.class_counts) {
-            Some(classes) if !transcript.counts.contains(&(target, String::new())) => {
+            Some(classes) if !transcript.counts.contains_key(&(target, String::new())) => {
                 composition_nats(self.policy.rows, classes)
             }
             _ => 0.0,
@@ -643,6 +644,21 @@ impl Accountant {
         let view = self.view(analyst, target).ok()?;
         let due = self.counts_due(view.transcript, target);
         (due > 0.0).then_some(due)
+    }
+
+    /// The class counts of `target` released in `analyst`'s transcript (the holdout's under
+    /// `shared`), once they are: the per-class metrics' intervals and refusals may use them from
+    /// then on, and nothing may before (DESIGN 4.2 rule 7).
+    pub fn released_counts(&self, analyst: &str, target: usize) -> Option<&[u64]> {
+        let transcript = if self.policy.sharing == Sharing::Isolated {
+            &self.analysts.get(analyst)?.transcript
+        } else {
+            &self.transcript
+        };
+        transcript
+            .counts
+            .get(&(target, String::new()))
+            .map(Vec::as_slice)
     }
 
     /// Releases the class counts of `target` (one per declared class, summing to the rows) to
@@ -692,7 +708,9 @@ impl Accountant {
             &mut self.transcript
         };
         transcript.nats += due;
-        transcript.counts.insert((target, String::new()));
+        transcript
+            .counts
+            .insert((target, String::new()), counts.to_vec());
         Ok(CountsRelease {
             code_nats: due,
             transcript_nats: transcript.nats,
@@ -1025,7 +1043,7 @@ static EMPTY_TRANSCRIPT: Transcript = Transcript {
     nats: 0.0,
     answers: 0,
     threshold: Vec::new(),
-    counts: BTreeSet::new(),
+    counts: BTreeMap::new(),
 };
 
 /// The largest level an analyst's adopted ladder files were answered at (0: none).
