@@ -235,6 +235,21 @@ pub fn class_counts(labels: &Labels, declared: &[String]) -> Vec<u64> {
     counts
 }
 
+/// Errors among the rows of each declared class (`classes` of them): the per-class counts of
+/// rows whose prediction differs from the label, in declaration order.
+pub fn class_errors(labels: &Labels, predictions: &[u32], classes: usize) -> Vec<u64> {
+    let mut errors = vec![0u64; classes];
+    for (i, &p) in predictions.iter().enumerate() {
+        if let Some(y) = labels.class(i)
+            && y != p
+            && let Some(e) = errors.get_mut(y as usize)
+        {
+            *e += 1;
+        }
+    }
+    errors
+}
+
 /// Rows where a packed class label and a predicted class index differ. Written as a plain
 /// counting loop over equal-length slices so the compiler vectorises it (`benches/score.rs`
 /// compares it with numpy and a C loop).

@@ -15,6 +15,7 @@
 
 pub mod accounting;
 pub mod beta;
+pub mod classes;
 pub mod codes;
 pub mod fair;
 pub mod interval;
