@@ -428,7 +428,7 @@ pub(crate) struct Replayer<'p> {
     /// Entry that closed the holdout (a `close`, a `round` or a `withdraw`), if any.
     closed_at: Option<u64>,
     /// The first entry that released something learned from the labels (an answer, an
-    /// adoption, a sealed entry, a round), and its kind: a withdrawal after it is invalid.
+    /// adoption, a sealed entry, a round, class counts), and its kind: a withdrawal after it is invalid.
     released_at: Option<(u64, Kind)>,
     /// The pending withdrawal request, if any, and its entry.
     withdraw_request: Option<(u64, WithdrawRequestRecord)>,
@@ -494,7 +494,11 @@ impl<'p> Replayer<'p> {
         };
         if matches!(
             rec,
-            Record::Answer(_) | Record::Adopt(_) | Record::Sealed(_) | Record::Round(_)
+            Record::Answer(_)
+                | Record::Adopt(_)
+                | Record::Sealed(_)
+                | Record::Round(_)
+                | Record::ClassCounts(_)
         ) && self.released_at.is_none()
         {
             self.released_at = Some((e.seq, rec.kind()));
@@ -1338,5 +1342,39 @@ mod tests {
         assert!(replay(&isolated, &[good.clone(), t2]).is_empty());
         let twice = replay(&isolated, &[good.clone(), good]);
         assert_eq!(twice.len(), 1, "{twice:?}");
+    }
+
+    #[test]
+    fn a_withdrawal_after_a_release_of_counts_is_found() {
+        let shared = policy("shared", "none");
+        let due = crate::stats::codes::composition_nats(600, 3);
+        let counts = entry(1, &release("t1", vec![100, 200, 300], due, due));
+        let w = WithdrawRecord {
+            requested_by: "c".into(),
+            requested_roles: vec!["custodian".into(), "organizer".into()],
+            requested_at: "2026-01-01T00:00:01Z".into(),
+            by: "c".into(),
+            roles: vec!["custodian".into(), "organizer".into()],
+            reason: "wrong settings".into(),
+            at: "2026-01-01T00:00:01Z".into(),
+        };
+        let withdraw = Entry {
+            kind: Kind::Withdraw.as_str().into(),
+            body: serde_json::to_string(&w).unwrap(),
+            seq: 2,
+            ..counts.clone()
+        };
+        let entries = vec![counts, withdraw];
+        let mut rp = Replayer::new(&shared, true).unwrap();
+        let mut out = Vec::new();
+        for (i, e) in entries.iter().enumerate() {
+            let rec = Record::parse(e).unwrap();
+            rp.step(&entries, i, &rec, &mut out, &mut |_| {});
+        }
+        assert!(
+            out.iter()
+                .any(|p| p.entry == 2 && p.problem.contains("class-counts")),
+            "{out:?}"
+        );
     }
 }

@@ -5,7 +5,7 @@
 //! rounds): the first of them to call records a `withdraw-request` entry, the other completes it
 //! with a `withdraw` entry (one call when the caller holds both roles). It is refused, and
 //! nothing is recorded, once the holdout released anything learned from its labels: an answer,
-//! an adoption, a sealed entry or a round. Refusals, reads and a close reveal nothing about the
+//! an adoption, a sealed entry, a round or a release of class counts. Refusals, reads and a close reveal nothing about the
 //! labels when nothing was scored (refusals are decided from public facts before scoring; a
 //! read of exact scores of a holdout without answers reads none), so they do not block it.
 //!
@@ -106,7 +106,8 @@ impl Engine {
                     rec @ (Record::Answer(_)
                     | Record::Adopt(_)
                     | Record::Sealed(_)
-                    | Record::Round(_)) => {
+                    | Record::Round(_)
+                    | Record::ClassCounts(_)) => {
                         return Err(Error::FailedPrecondition(format!(
                             "holdout {name} cannot be withdrawn: entry {} ({}) released what \
                              its labels gave, so its rows stay spent; nothing was recorded. \
