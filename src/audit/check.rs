@@ -293,15 +293,20 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
         ));
     }
     let versions = body["versions"].clone();
-    if versions["encoding"].as_str() != Some(ledger::ENCODING) {
+    if versions["encoding"]
+        .as_str()
+        .and_then(ledger::Encoding::parse)
+        .is_none()
+    {
         out.push(at(
             chain,
             g.seq,
             "versions.encoding",
             format!(
-                "{}; this binary verifies {}",
+                "{}; this binary verifies {} and {}",
                 versions["encoding"],
-                ledger::ENCODING
+                ledger::ENCODING_V1,
+                ledger::ENCODING_V2
             ),
         ));
     }
@@ -509,8 +514,8 @@ fn check_receipts(export: &Export, opts: &AuditOptions<'_>, report: &mut Report)
             report.receipts.push(format!("{file}: not found"));
             continue;
         };
-        let again = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
-        if again != r.entry_hash {
+        let again = ledger::Encoding::of_chain(&export.entries).hash(e);
+        if again.as_deref() != Some(r.entry_hash.as_str()) {
             f(
                 "entry_hash",
                 "does not match the entry's contents as exported".into(),
