@@ -35,3 +35,6 @@ CREATE TABLE chain_encodings (
 
 INSERT INTO chain_encodings (chain, encoding)
     SELECT DISTINCT chain, 'holdout-ledger-entry/1' FROM ledger;
+
+-- `rpc Prove` finds the entry a receipt names by its hash.
+CREATE INDEX ledger_by_hash ON ledger (hash);

@@ -122,7 +122,7 @@ fn export_checkpoint_audit_receipts_find_certify_and_db() {
         .json();
     let receipt = d.write("receipt.json", &answer.to_string());
     let early = d.path("early.json").display().to_string();
-    d.run(&s.analyst, &["checkpoint", "qc", "--out", &early])
+    d.run(&s.analyst, &["checkpoint", "qc", "--json", "--out", &early])
         .ok();
     let c1 = d.write("c1.csv", &cost_predictions(1.5, false));
     d.run(
@@ -137,7 +137,7 @@ fn export_checkpoint_audit_receipts_find_certify_and_db() {
     )
     .ok();
     let late = d.path("late.json").display().to_string();
-    d.run(&s.analyst, &["checkpoint", "qc", "--out", &late])
+    d.run(&s.analyst, &["checkpoint", "qc", "--json", "--out", &late])
         .ok();
 
     // Exporting needs the auditor role.
@@ -421,6 +421,7 @@ fn serve_signs_the_last_heads_at_shutdown() {
         &[
             "checkpoint",
             "@users",
+            "--json",
             "--out",
             &users_cp,
             "--server",

@@ -453,6 +453,11 @@ pub struct ConsistencyProof {
 }
 
 impl InclusionProof {
+    /// The proof as a file holds it: one JSON object, these three keys only.
+    pub fn text(&self) -> String {
+        serde_json::to_string(self).expect("a proof always serialises")
+    }
+
     /// Verifies this proof for the entry whose hash (hex) is `entry_hash` against a
     /// checkpoint's tree `size` and `root`. The proof's size must be the checkpoint's: the
     /// root authenticates the size only through the signed checkpoint.
@@ -475,6 +480,11 @@ impl InclusionProof {
 }
 
 impl ConsistencyProof {
+    /// The proof as a file holds it: one JSON object, these three keys only.
+    pub fn text(&self) -> String {
+        serde_json::to_string(self).expect("a proof always serialises")
+    }
+
     /// Verifies this proof from the tree (`first_size`, `first_root`) of an older checkpoint
     /// to the tree (`second_size`, `second_root`) of a newer one; the proof's sizes must be
     /// the checkpoints'.
