@@ -60,6 +60,7 @@ fn a_clean_export_verifies_with_labels_checkpoint_and_receipts() {
         AuditOptions {
             labels: Some(g.label_columns()),
             checkpoints: vec![("cp".into(), cp.clone())],
+            notes: Vec::new(),
             receipts: vec![("r".into(), receipt)],
             trusted_key: Some(cp.public_key.clone()),
             progress: None,

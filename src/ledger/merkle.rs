@@ -295,7 +295,7 @@ impl Tree {
             }
             self.levels[level].push(h);
             let idx = self.levels[level].len() - 1;
-            if idx % 2 == 0 {
+            if idx.is_multiple_of(2) {
                 break;
             }
             h = node_hash(&self.levels[level][idx - 1], &h);
@@ -841,6 +841,131 @@ mod tests {
         assert_eq!(v["roots"].as_array().unwrap().len(), 5);
         assert_eq!(v["inclusion"].as_array().unwrap().len(), 15);
         assert_eq!(v["consistency"].as_array().unwrap().len(), 15);
+        Ok(())
+    }
+
+    /// Figures for a 1,000,000-entry chain, run once by hand (not a timed test):
+    /// `cargo test --lib -- --ignored --nocapture measure_a_million_entry_chain`.
+    /// Appends go through `ledger::append` into a file database (WAL), 1,000 per transaction;
+    /// the tree's share is `append_leaf` alone for another 1,000,000 leaves the same way.
+    #[test]
+    #[ignore = "measurement, run by hand; prints figures"]
+    fn measure_a_million_entry_chain() -> Result<()> {
+        use std::time::Instant;
+        const N: u64 = 1_000_000;
+        const BATCH: u64 = 1_000;
+        let dir = tempfile::tempdir().map_err(|e| Error::Internal(e.to_string()))?;
+        let mut store = crate::store::Store::open(&dir.path().join("m.db"))?;
+        let body = serde_json::json!({"query": 12, "team": "blue", "target": "defect",
+            "exact": 0.123456789, "interval": [0.1, 0.15], "budget": {"spent": 0.01}});
+        let t = Instant::now();
+        for b in 0..N / BATCH {
+            let tx = store.conn().transaction()?;
+            for i in 0..BATCH {
+                let kind = if b == 0 && i == 0 {
+                    crate::ledger::Kind::Genesis
+                } else {
+                    crate::ledger::Kind::Answer
+                };
+                crate::ledger::append(&tx, "big", kind, &body)?;
+            }
+            tx.commit()?;
+        }
+        let append_s = t.elapsed().as_secs_f64();
+        let leaves: Vec<Hash> = (0..N)
+            .map(|i| Sha256::digest(format!("leaf {i}").as_bytes()).into())
+            .collect();
+        let t = Instant::now();
+        for b in 0..N / BATCH {
+            let tx = store.conn().transaction()?;
+            for i in b * BATCH..(b + 1) * BATCH {
+                append_leaf(&tx, "tree-only", i, &leaves[i as usize])?;
+            }
+            tx.commit()?;
+        }
+        let tree_s = t.elapsed().as_secs_f64();
+        println!(
+            "append: {N} entries in {append_s:.1} s = {:.1} us/entry (ledger::append, tree included)",
+            append_s * 1e6 / N as f64
+        );
+        println!(
+            "tree alone: {N} leaves in {tree_s:.1} s = {:.1} us/leaf = {:.0}% of an append",
+            tree_s * 1e6 / N as f64,
+            100.0 * tree_s / append_s
+        );
+        let conn = store.conn();
+        let rows: i64 = conn.query_row(
+            "SELECT count(*) FROM merkle_nodes WHERE chain = 'big'",
+            [],
+            |r| r.get(0),
+        )?;
+        println!("tree rows for {N} entries: {rows}");
+        let t = Instant::now();
+        let mem = Tree::new(leaves.iter().copied());
+        println!(
+            "in-memory tree of {N} leaves (migration's hashing): {:.2} s",
+            t.elapsed().as_secs_f64()
+        );
+        assert_eq!(mem.size(), N);
+        let stored = Stored::new(conn, "big");
+        let t = Instant::now();
+        let root_n = root(&stored, N)?;
+        println!(
+            "root from stored nodes: {:.3} ms",
+            t.elapsed().as_secs_f64() * 1e3
+        );
+        let entries = crate::ledger::read_chain(conn, "big")?;
+        for index in [0, 1, 499_999, 524_288, N - 2, N - 1] {
+            let t = Instant::now();
+            let path = inclusion_proof(&stored, index, N)?;
+            let gen_ms = t.elapsed().as_secs_f64() * 1e3;
+            let file = InclusionProof {
+                leaf_index: index,
+                tree_size: N,
+                inclusion_path: encode_path(&path),
+            };
+            let bytes = file.text().len();
+            let leaf = leaf_input(&entries[index as usize].hash)?;
+            let reps = 10_000;
+            let t = Instant::now();
+            for _ in 0..reps {
+                verify_inclusion(&leaf, index, N, std::hint::black_box(&path), &root_n)
+                    .map_err(Error::Internal)?;
+            }
+            let us = t.elapsed().as_secs_f64() * 1e6 / reps as f64;
+            println!(
+                "inclusion of {index} in {N}: {} hashes, {bytes} bytes JSON, generated in \
+                 {gen_ms:.2} ms from stored nodes, verified in {us:.1} us",
+                path.len()
+            );
+        }
+        for first in [1, 2, 499_999, 524_288, 999_000, N - 1] {
+            let first_root = root(&stored, first)?;
+            let t = Instant::now();
+            let path = consistency_proof(&stored, first, N)?;
+            let gen_ms = t.elapsed().as_secs_f64() * 1e3;
+            let file = ConsistencyProof {
+                first_size: first,
+                second_size: N,
+                consistency_path: encode_path(&path),
+            };
+            let bytes = file.text().len();
+            let reps = 10_000;
+            let t = Instant::now();
+            for _ in 0..reps {
+                verify_consistency(first, N, std::hint::black_box(&path), &first_root, &root_n)
+                    .map_err(Error::Internal)?;
+            }
+            let us = t.elapsed().as_secs_f64() * 1e6 / reps as f64;
+            println!(
+                "consistency {first} -> {N}: {} hashes, {bytes} bytes JSON, generated in \
+                 {gen_ms:.2} ms, verified in {us:.1} us",
+                path.len()
+            );
+        }
+        let (_, note) =
+            crate::audit::anchor::note_checkpoint(conn, "big", "2026-12-03T20:00:00Z", false)?;
+        println!("format-3 checkpoint: {} bytes", note.len());
         Ok(())
     }
 }
