@@ -68,7 +68,7 @@ pub trait Nodes {
     fn perfect(&self, level: u32, index: u64) -> Result<Hash>;
 }
 
-/// MTH(D[start:end]) for a subtree the RFC 9162 recursion names (start aligned as described
+/// `MTH(D[start:end])` for a subtree the RFC 9162 recursion names (start aligned as described
 /// in the module documentation).
 pub fn subtree(nodes: &impl Nodes, start: u64, end: u64) -> Result<Hash> {
     let size = end - start;
