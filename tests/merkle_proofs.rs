@@ -13,10 +13,26 @@ use common::{Daemon, Parts, holdout, run};
 use serde_json::Value;
 
 fn create(d: &Daemon) {
-    let labels = d.write("labels.csv", &Parts::new(400).labels_csv());
-    d.admin(&[
+    create_named(d, "shelf", &[]);
+}
+
+/// Rows of holdout `name`: its own ids (one set of rows gets one budget).
+fn parts_of(name: &str) -> Parts {
+    let mut parts = Parts::new(400);
+    let shift = name.len();
+    let defects: Vec<String> = parts.rows.iter().map(|r| r.1.clone()).collect();
+    for (i, r) in parts.rows.iter_mut().enumerate() {
+        r.0 = format!("{name}-{}", r.0);
+        r.1 = defects[(i + shift) % defects.len()].clone();
+    }
+    parts
+}
+
+fn create_named(d: &Daemon, name: &str, extra: &[&str]) {
+    let labels = d.write(&format!("{name}-labels.csv"), &parts_of(name).labels_csv());
+    let mut args = vec![
         "create",
-        "shelf",
+        name,
         "--labels",
         &labels,
         "--target",
@@ -28,14 +44,15 @@ fn create(d: &Daemon) {
         "--description",
         "invented inspection data",
         "--json",
-    ])
-    .ok();
+    ];
+    args.extend_from_slice(extra);
+    d.admin(&args).ok();
 }
 
 fn submit(d: &Daemon, token: &str, i: usize) -> Value {
     let f = d.write(
         &format!("p{i}.csv"),
-        &Parts::new(400).defect_predictions(3 + i, 0),
+        &parts_of("shelf").defect_predictions(3 + i, 0),
     );
     d.run(token, &["submit", "shelf", "--predictions", &f, "--json"])
         .ok()
@@ -379,6 +396,96 @@ fn a_team_proves_its_receipt_with_only_receipt_proof_checkpoint_and_key() {
     .json();
     assert!(out.to_string().contains("truncated"), "{out}");
     assert!(Path::new(&early).exists());
+}
+
+/// Who may ask for proofs: the same callers as for a checkpoint (an isolated holdout's tree size
+/// counts every team's entries; the identity chain's only for the roles that manage it); an
+/// entry of another chain, or a size past the tree, is refused.
+#[test]
+fn proofs_follow_the_checkpoint_rules() {
+    let d = Daemon::start();
+    create_named(
+        &d,
+        "bench",
+        &["--sharing", "isolated", "--shares", "roster:blue,red"],
+    );
+    let alice = d.add_user("alice", &["analyst"], Some("blue"));
+    let auditor = d.add_user("audrey", &["auditor"], None);
+    let f = d.write("b.csv", &parts_of("bench").defect_predictions(5, 0));
+    let answer = d
+        .run(&alice, &["submit", "bench", "--predictions", &f, "--json"])
+        .ok()
+        .json();
+    let receipt = d.write("receipt.json", &answer.to_string());
+    let dir = d.path("p").display().to_string();
+
+    let out = d
+        .run(
+            &alice,
+            &[
+                "prove",
+                "--holdout",
+                "shelf",
+                "--receipt",
+                &receipt,
+                "--out-dir",
+                &dir,
+            ],
+        )
+        .code(2);
+    assert!(
+        out.stderr.contains("the receipt is of bench"),
+        "{}",
+        out.stderr
+    );
+    let out = d
+        .run(&alice, &["prove", "--receipt", &receipt, "--out-dir", &dir])
+        .code(4);
+    assert!(out.stderr.contains("isolated"), "{}", out.stderr);
+    // The auditor may, and gets the identity tree in the checkpoint.
+    let proved = d
+        .run(
+            &auditor,
+            &["prove", "--receipt", &receipt, "--out-dir", &dir],
+        )
+        .ok();
+    let cp_file = written(&proved.stdout, ".checkpoint");
+    let cp = std::fs::read_to_string(&cp_file).unwrap();
+    assert!(
+        cp.starts_with("holdout-ledger/bench\n") && cp.contains("\nusers "),
+        "{cp}"
+    );
+    // The identity chain: not for analysts.
+    d.run(
+        &alice,
+        &[
+            "prove",
+            "--holdout",
+            "@users",
+            "--since",
+            &cp_file,
+            "--out-dir",
+            &dir,
+        ],
+    )
+    .code(4);
+    // A hash the chain does not hold: not found.
+    let hash = answer["receipt"]["entry_hash"].as_str().unwrap();
+    let forged = d.write(
+        "forged.json",
+        &answer.to_string().replace(hash, &"ab".repeat(32)),
+    );
+    let out = d
+        .run(
+            &auditor,
+            &["prove", "--receipt", &forged, "--out-dir", &dir],
+        )
+        .code(5);
+    assert!(
+        out.stderr.contains("not found") || out.stderr.contains("no entry"),
+        "{}",
+        out.stderr
+    );
 }
 
 #[test]
