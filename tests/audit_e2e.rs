@@ -352,6 +352,21 @@ fn serve_writes_periodic_checkpoints() {
             .starts_with("@users-")),
         "{files:?}"
     );
+    // And the trees, in format 3 (the holdout's with the identity tree).
+    let tree = files
+        .iter()
+        .find(|f| {
+            f.file_name()
+                .unwrap()
+                .to_string_lossy()
+                .starts_with("tree-qc-")
+        })
+        .unwrap_or_else(|| panic!("no tree-qc- file in {files:?}"));
+    let note = std::fs::read_to_string(tree).unwrap();
+    assert!(
+        note.starts_with("holdout-ledger/qc\n") && note.contains("\nusers "),
+        "{note}"
+    );
     files.retain(|f| f.file_name().unwrap().to_string_lossy().starts_with("qc-"));
     assert_eq!(files.len(), 1, "{files:?}");
     let name = files[0].file_name().unwrap().to_string_lossy().to_string();

@@ -390,7 +390,8 @@ pub fn write(path: &Path, cp: &Checkpoint) -> Result<()> {
 
 /// Signs the head of every holdout (with the identity chain's head, format `/2`), and of the
 /// identity chain itself (`@users-SEQ`, format `/1`), into `dir` as `NAME-SEQ.checkpoint.json`,
-/// skipping heads already written; returns the files written. Every head is read in one read
+/// and the tree of each in format 3 (with the identity chain's tree for holdouts) as
+/// `tree-NAME-SIZE.checkpoint`, skipping those already written; returns the files written. Every head is read in one read
 /// transaction, so the files of one call describe one moment. The daemon calls this
 /// periodically (`serve --checkpoint-dir`), so the operator can ship the files elsewhere.
 pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std::path::PathBuf>> {
@@ -406,6 +407,18 @@ pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std
     if let Some(u) = &users {
         signed.push(sign(&key, ledger::USERS_CHAIN, u, None, at));
     }
+    // Format 3, read in the same read transaction.
+    let time = chrono::DateTime::parse_from_rfc3339(at)
+        .map(|t| note_time(t.with_timezone(&chrono::Utc)))
+        .map_err(|e| Error::Internal(format!("checkpoint time {at:?}: {e}")))?;
+    let mut notes = Vec::new();
+    for cp in &signed {
+        let (note, text) = note_checkpoint(conn, &cp.holdout, &time, true)?;
+        notes.push((
+            format!("tree-{}-{}.checkpoint", note.chain, note.size),
+            text,
+        ));
+    }
     if let Some(tx) = tx {
         tx.commit()?;
     }
@@ -416,6 +429,16 @@ pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std
             continue;
         }
         write(&path, &cp)?;
+        written.push(path);
+    }
+    for (name, text) in notes {
+        let path = dir.join(name);
+        if path.exists() {
+            continue;
+        }
+        std::fs::write(&path, text).map_err(|e| {
+            Error::invalid(path.display().to_string(), format!("cannot write: {e}"))
+        })?;
         written.push(path);
     }
     Ok(written)
