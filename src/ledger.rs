@@ -1,10 +1,17 @@
 //! The hash-chained ledger: canonical encoding of entries, salts, hashes, appending inside a
 //! caller's transaction, and chain verification.
 //!
-//! An entry's hash is SHA-256 over `ENCODING`, the previous hash, the entry's number, kind, salt
-//! and canonical JSON body, each on its own line. The body is JSON with keys sorted (serde_json's
-//! default map) and floats in shortest round-trip form, so the same entry always hashes the same
-//! bytes. Every entry carries 16 random bytes of salt: exact scores have only n+1 possible values,
+//! Two entry encodings exist; a chain keeps the one it started with ([`Encoding`]):
+//! - `holdout-ledger-entry/2` (chains started by 0.5.0 on): the hash is SHA-256 over the RFC
+//!   8785 (JCS) serialization of `{"encoding","chain","seq","kind","salt","prev","body"}`, the
+//!   body as a JSON value, so any language's JCS library recomputes it.
+//! - `holdout-ledger-entry/1` (older chains): SHA-256 over the encoding tag, the previous hash,
+//!   the entry's number, kind, salt and canonical JSON body, each on its own line.
+//!
+//! The stored body is JSON with keys sorted (serde_json's default map) and floats in shortest
+//! round-trip form, so the same entry always hashes the same bytes. Beside the hash chain,
+//! every chain is the list of leaves of a Merkle tree ([`merkle`]), appended in the same
+//! transaction. Every entry carries 16 random bytes of salt: exact scores have only n+1 possible values,
 //! and without the salt a published hash would let anyone test guesses (DESIGN 4.2 rule 6).
 
 use rusqlite::{Connection, OptionalExtension, params};
@@ -14,8 +21,91 @@ use sha2::{Digest, Sha256};
 
 use crate::error::{Error, Result};
 
-/// Version of the canonical encoding; recorded in every genesis entry.
-pub const ENCODING: &str = "holdout-ledger-entry/1";
+pub mod merkle;
+
+/// The entry encoding of chains started by this version; recorded in every genesis entry.
+pub const ENCODING: &str = ENCODING_V2;
+
+/// The line-based encoding of chains started before 0.5.0.
+pub const ENCODING_V1: &str = "holdout-ledger-entry/1";
+
+/// The RFC 8785 (JCS) encoding of chains started by 0.5.0 on.
+pub const ENCODING_V2: &str = "holdout-ledger-entry/2";
+
+/// A chain's entry encoding, fixed by its first entry (see the module documentation).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Encoding {
+    /// `holdout-ledger-entry/1`.
+    V1,
+    /// `holdout-ledger-entry/2`.
+    V2,
+}
+
+impl Encoding {
+    /// The encoding's tag.
+    pub fn name(self) -> &'static str {
+        match self {
+            Encoding::V1 => ENCODING_V1,
+            Encoding::V2 => ENCODING_V2,
+        }
+    }
+
+    /// The encoding a tag names, if any.
+    pub fn parse(tag: &str) -> Option<Encoding> {
+        match tag {
+            ENCODING_V1 => Some(Encoding::V1),
+            ENCODING_V2 => Some(Encoding::V2),
+            _ => None,
+        }
+    }
+
+    /// The hash of an entry's fields under this encoding, or `None` when the body is not JSON
+    /// (encoding /2 hashes the body as a JSON value).
+    pub fn hash(self, e: &Entry) -> Option<String> {
+        match self {
+            Encoding::V1 => Some(entry_hash_v1(
+                &e.prev_hash,
+                e.seq,
+                &e.kind,
+                &e.salt,
+                &e.body,
+            )),
+            Encoding::V2 => {
+                let body: Value = serde_json::from_str(&e.body).ok()?;
+                Some(entry_hash_v2(
+                    &e.chain,
+                    e.seq,
+                    &e.kind,
+                    &e.salt,
+                    &e.prev_hash,
+                    &body,
+                ))
+            }
+        }
+    }
+
+    /// The encoding of a chain given its entries: the `versions.encoding` its first entry (a
+    /// genesis) names, or, for a chain whose first entry names none (the identity chain), the
+    /// encoding under which its first entries' hashes verify (/2 when neither does).
+    pub fn of_chain(entries: &[Entry]) -> Encoding {
+        let Some(first) = entries.first() else {
+            return Encoding::V2;
+        };
+        if let Ok(body) = serde_json::from_str::<Value>(&first.body)
+            && let Some(enc) = body["versions"]["encoding"].as_str().and_then(Self::parse)
+        {
+            return enc;
+        }
+        for e in entries.iter().take(2) {
+            for enc in [Encoding::V2, Encoding::V1] {
+                if enc.hash(e).as_deref() == Some(e.hash.as_str()) {
+                    return enc;
+                }
+            }
+        }
+        Encoding::V2
+    }
+}
 
 /// Hash that precedes the first entry of a chain.
 pub const ZERO_HASH: &str = "0000000000000000000000000000000000000000000000000000000000000000";
@@ -167,14 +257,52 @@ pub fn canonical_json(value: &Value) -> String {
     serde_json::to_string(value).expect("a serde_json::Value always serialises")
 }
 
-/// The hash of an entry given its fields.
-pub fn entry_hash(prev_hash: &str, seq: u64, kind: &str, salt: &str, body: &str) -> String {
+/// The hash of an entry given its fields, encoding `holdout-ledger-entry/1`.
+pub fn entry_hash_v1(prev_hash: &str, seq: u64, kind: &str, salt: &str, body: &str) -> String {
     let mut h = Sha256::new();
-    for part in [ENCODING, prev_hash, &seq.to_string(), kind, salt, body] {
+    for part in [ENCODING_V1, prev_hash, &seq.to_string(), kind, salt, body] {
         h.update(part.as_bytes());
         h.update(b"\n");
     }
     hex::encode(h.finalize())
+}
+
+/// The hash of an entry given its fields, encoding `holdout-ledger-entry/2`: SHA-256 over the
+/// RFC 8785 serialization of the entry as one JSON object.
+pub fn entry_hash_v2(
+    chain: &str,
+    seq: u64,
+    kind: &str,
+    salt: &str,
+    prev_hash: &str,
+    body: &Value,
+) -> String {
+    let object = serde_json::json!({
+        "encoding": ENCODING_V2,
+        "chain": chain,
+        "seq": seq,
+        "kind": kind,
+        "salt": salt,
+        "prev": prev_hash,
+        "body": body,
+    });
+    let bytes =
+        serde_json_canonicalizer::to_vec(&object).expect("a serde_json::Value always serialises");
+    hex::encode(Sha256::digest(&bytes))
+}
+
+/// The encoding of a stored chain (table `chain_encodings`); a chain with no row yet is new
+/// and takes [`ENCODING`].
+pub fn stored_encoding(conn: &Connection, chain: &str) -> Result<Encoding> {
+    let tag: Option<String> = conn
+        .prepare_cached("SELECT encoding FROM chain_encodings WHERE chain = ?1")?
+        .query_row([chain], |r| r.get(0))
+        .optional()?;
+    match tag {
+        None => Ok(Encoding::V2),
+        Some(t) => Encoding::parse(&t)
+            .ok_or_else(|| Error::Internal(format!("chain {chain} has unknown encoding {t:?}"))),
+    }
 }
 
 /// Fresh random salt, hex.
@@ -205,13 +333,32 @@ pub(crate) fn append(tx: &Connection, chain: &str, kind: Kind, body: &Value) -> 
         None => (0, ZERO_HASH.to_string()),
     };
     let salt = fresh_salt()?;
-    let body = canonical_json(body);
-    let hash = entry_hash(&prev_hash, seq, kind, &salt, &body);
-    tx.execute(
+    let encoding = if seq == 0 {
+        tx.prepare_cached("INSERT INTO chain_encodings (chain, encoding) VALUES (?1, ?2)")?
+            .execute(params![chain, ENCODING])?;
+        Encoding::V2
+    } else {
+        stored_encoding(tx, chain)?
+    };
+    let body_text = canonical_json(body);
+    let hash = match encoding {
+        Encoding::V1 => entry_hash_v1(&prev_hash, seq, kind, &salt, &body_text),
+        // Hashed from the stored text read back, exactly as a verifier will.
+        Encoding::V2 => {
+            let stored: Value = serde_json::from_str(&body_text)
+                .map_err(|e| Error::Internal(format!("stored body does not parse: {e}")))?;
+            entry_hash_v2(chain, seq, kind, &salt, &prev_hash, &stored)
+        }
+    };
+    let body = body_text;
+    tx.prepare_cached(
         "INSERT INTO ledger (chain, seq, kind, body, salt, prev_hash, hash)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
-        params![chain, seq as i64, kind, body, salt, prev_hash, hash],
-    )?;
+    )?
+    .execute(params![
+        chain, seq as i64, kind, body, salt, prev_hash, hash
+    ])?;
+    merkle::append_leaf(tx, chain, seq, &merkle::leaf_input(&hash)?)?;
     Ok(Entry {
         chain: chain.to_string(),
         seq,
@@ -274,6 +421,7 @@ pub struct ChainFault {
 
 /// Verifies links and hashes of a chain; returns every fault found (empty when intact).
 pub fn verify_chain(entries: &[Entry]) -> Vec<ChainFault> {
+    let encoding = Encoding::of_chain(entries);
     let mut faults = Vec::new();
     let mut prev = ZERO_HASH.to_string();
     for (pos, e) in entries.iter().enumerate() {
@@ -290,11 +438,29 @@ pub fn verify_chain(entries: &[Entry]) -> Vec<ChainFault> {
                 problem: "prev_hash does not match the previous entry's hash".into(),
             });
         }
-        let recomputed = entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
-        if recomputed != e.hash {
+        match encoding.hash(e) {
+            Some(h) if h == e.hash => {}
+            Some(_) => faults.push(ChainFault {
+                seq: pos,
+                problem: format!(
+                    "hash does not match the entry's contents ({})",
+                    encoding.name()
+                ),
+            }),
+            None => faults.push(ChainFault {
+                seq: pos,
+                problem: "the body is not JSON".into(),
+            }),
+        }
+        // Encoding /2 hashes the body's JSON value, not its text: the text must still be the
+        // one form the daemon stores, so an export cannot differ from the ledger silently.
+        if encoding == Encoding::V2
+            && let Ok(v) = serde_json::from_str::<Value>(&e.body)
+            && canonical_json(&v) != e.body
+        {
             faults.push(ChainFault {
                 seq: pos,
-                problem: "hash does not match the entry's contents".into(),
+                problem: "the body is not in the canonical form the daemon stores".into(),
             });
         }
         prev = e.hash.clone();
@@ -352,6 +518,55 @@ mod tests {
     fn canonical_json_sorts_keys() {
         let v = json!({"b": 1, "a": {"d": 2.5, "c": null}});
         assert_eq!(canonical_json(&v), r#"{"a":{"c":null,"d":2.5},"b":1}"#);
+    }
+
+    /// Encoding /2 is SHA-256 of the RFC 8785 text, written out by hand here (keys sorted by
+    /// UTF-16 code units, numbers as ECMAScript prints them: 1e21 is `1e+21`, 1.0 is `1`).
+    #[test]
+    fn v2_hash_is_sha256_of_the_jcs_text() {
+        let e = Entry {
+            chain: "h".into(),
+            seq: 1,
+            kind: "answer".into(),
+            body: r#"{"b":1e21,"a":[1.0,"\u00e9"],"c":0.1}"#.into(),
+            salt: "ab".repeat(16),
+            prev_hash: ZERO_HASH.into(),
+            hash: String::new(),
+        };
+        let jcs = format!(
+            "{{\"body\":{{\"a\":[1,\"\u{e9}\"],\"b\":1e+21,\"c\":0.1}},\"chain\":\"h\",\
+             \"encoding\":\"holdout-ledger-entry/2\",\"kind\":\"answer\",\"prev\":\"{ZERO_HASH}\",\
+             \"salt\":\"{}\",\"seq\":1}}",
+            "ab".repeat(16)
+        );
+        assert_eq!(
+            Encoding::V2.hash(&e).unwrap(),
+            hex::encode(Sha256::digest(jcs.as_bytes()))
+        );
+        // /1 hashes other bytes; a chain says which it uses.
+        assert_ne!(Encoding::V1.hash(&e), Encoding::V2.hash(&e));
+    }
+
+    #[test]
+    fn new_chains_use_v2_and_every_entry_adds_its_leaf() -> Result<()> {
+        let entries = chain_of(6)?;
+        assert_eq!(Encoding::of_chain(&entries), Encoding::V2);
+        for e in &entries {
+            assert_eq!(Encoding::V2.hash(e).as_deref(), Some(e.hash.as_str()));
+        }
+        let mut store = Store::open_in_memory()?;
+        let tx = store.conn().transaction()?;
+        let mut leaves = Vec::new();
+        for i in 0..6 {
+            leaves.push(merkle::leaf_input(
+                &append(&tx, "h", Kind::Answer, &json!({"i": i}))?.hash,
+            )?);
+        }
+        assert_eq!(
+            merkle::root(&merkle::Stored::new(&tx, "h"), 6)?,
+            merkle::Tree::new(leaves).root()
+        );
+        Ok(())
     }
 
     #[test]

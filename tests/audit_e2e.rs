@@ -122,7 +122,7 @@ fn export_checkpoint_audit_receipts_find_certify_and_db() {
         .json();
     let receipt = d.write("receipt.json", &answer.to_string());
     let early = d.path("early.json").display().to_string();
-    d.run(&s.analyst, &["checkpoint", "qc", "--out", &early])
+    d.run(&s.analyst, &["checkpoint", "qc", "--json", "--out", &early])
         .ok();
     let c1 = d.write("c1.csv", &cost_predictions(1.5, false));
     d.run(
@@ -137,7 +137,7 @@ fn export_checkpoint_audit_receipts_find_certify_and_db() {
     )
     .ok();
     let late = d.path("late.json").display().to_string();
-    d.run(&s.analyst, &["checkpoint", "qc", "--out", &late])
+    d.run(&s.analyst, &["checkpoint", "qc", "--json", "--out", &late])
         .ok();
 
     // Exporting needs the auditor role.
@@ -352,6 +352,21 @@ fn serve_writes_periodic_checkpoints() {
             .starts_with("@users-")),
         "{files:?}"
     );
+    // And the trees, in format 3 (the holdout's with the identity tree).
+    let tree = files
+        .iter()
+        .find(|f| {
+            f.file_name()
+                .unwrap()
+                .to_string_lossy()
+                .starts_with("tree-qc-")
+        })
+        .unwrap_or_else(|| panic!("no tree-qc- file in {files:?}"));
+    let note = std::fs::read_to_string(tree).unwrap();
+    assert!(
+        note.starts_with("holdout-ledger/qc\n") && note.contains("\nusers "),
+        "{note}"
+    );
     files.retain(|f| f.file_name().unwrap().to_string_lossy().starts_with("qc-"));
     assert_eq!(files.len(), 1, "{files:?}");
     let name = files[0].file_name().unwrap().to_string_lossy().to_string();
@@ -421,6 +436,7 @@ fn serve_signs_the_last_heads_at_shutdown() {
         &[
             "checkpoint",
             "@users",
+            "--json",
             "--out",
             &users_cp,
             "--server",

@@ -35,7 +35,7 @@ fn rehash(entries: &mut [Entry], from: usize) {
         let e = &mut entries[i];
         e.seq = i as u64;
         e.prev_hash = prev;
-        e.hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+        e.hash = ledger::Encoding::V2.hash(e).unwrap();
     }
 }
 
@@ -60,6 +60,7 @@ fn a_clean_export_verifies_with_labels_checkpoint_and_receipts() {
         AuditOptions {
             labels: Some(g.label_columns()),
             checkpoints: vec![("cp".into(), cp.clone())],
+            notes: Vec::new(),
             receipts: vec![("r".into(), receipt)],
             trusted_key: Some(cp.public_key.clone()),
             progress: None,
@@ -449,7 +450,9 @@ fn receipts_verify_and_forgeries_do_not() {
     };
     assert!(check(good.clone()).clean());
     let mut forged = good.clone();
-    forged.entry_hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, "{}");
+    let mut emptied = e.clone();
+    emptied.body = "{}".into();
+    forged.entry_hash = ledger::Encoding::V2.hash(&emptied).unwrap();
     assert!(!check(forged).clean());
     let mut other_query = good.clone();
     other_query.query += 1;

@@ -379,18 +379,23 @@ fn truncated_and_corrupted_backups_are_refused_by_restore() {
     code(&r, 2);
     assert!(!target.exists());
 
-    // Corrupted ledger content: one character of an entry's hash changed in place (the
-    // file stays a sound SQLite file; the chain no longer verifies).
+    // Corrupted ledger content: one character of an entry's salt changed in place (the
+    // file stays a sound SQLite file; the chain no longer verifies). Not its hash: since
+    // schema 8 the hash is also in the `ledger_by_hash` index, so a changed hash fails SQLite's
+    // integrity check before the chain is read (refused too, checked below).
     let users = chain_of(&out, ledger::USERS_CHAIN);
-    let hash = users[0].hash.as_bytes();
-    let at = good
-        .windows(hash.len())
-        .position(|w| w == hash)
-        .expect("the hash is stored in the file");
-    let mut bad = good.clone();
-    bad[at] = if bad[at] == b'0' { b'1' } else { b'0' };
+    let flip_at = |text: &str| {
+        let bytes = text.as_bytes();
+        let at = good
+            .windows(bytes.len())
+            .position(|w| w == bytes)
+            .expect("the text is stored in the file");
+        let mut bad = good.clone();
+        bad[at] = if bad[at] == b'0' { b'1' } else { b'0' };
+        bad
+    };
     let flipped = dir.path().join("flipped.backup");
-    std::fs::write(&flipped, &bad).unwrap();
+    std::fs::write(&flipped, flip_at(&users[0].salt)).unwrap();
     let r = holdout(&["restore", &p(&flipped), "--db", &p(&target)], &[]);
     code(&r, 2);
     assert!(
@@ -398,6 +403,10 @@ fn truncated_and_corrupted_backups_are_refused_by_restore() {
         "{}",
         String::from_utf8_lossy(&r.stderr)
     );
+    assert!(!target.exists());
+    std::fs::write(&flipped, flip_at(&users[0].hash)).unwrap();
+    let r = holdout(&["restore", &p(&flipped), "--db", &p(&target)], &[]);
+    code(&r, 2);
     assert!(!target.exists());
 
     // Corrupted structure: a page of the file overwritten with garbage.

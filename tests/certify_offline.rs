@@ -761,7 +761,7 @@ fn find_and_predictions_name_and_rescore_sealed_entries() {
         let prev = crafted.entries[i - 1].hash.clone();
         let e = &mut crafted.entries[i];
         e.prev_hash = prev;
-        e.hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+        e.hash = ledger::Encoding::V2.hash(e).unwrap();
     }
     let crafted_file = write_export(d, "crafted.jsonl", &crafted);
     let r = offline(&[

@@ -511,15 +511,20 @@ fn the_daemon_signs_the_identity_head_for_auditors_and_not_for_analysts() {
             .ok();
     }
 
-    let analyst_cp = d.run(&alice, &["checkpoint", "shelf", "--out", "-"]).ok();
+    let analyst_cp = d
+        .run(&alice, &["checkpoint", "shelf", "--json", "--out", "-"])
+        .ok();
     let analyst_cp: Value = serde_json::from_str(&analyst_cp.stdout).unwrap();
     assert_eq!(analyst_cp["format"], CHECKPOINT_FORMAT_V1, "{analyst_cp}");
     assert!(analyst_cp.get("users_seq").is_none(), "{analyst_cp}");
     assert!(analyst_cp.get("users_head_hash").is_none(), "{analyst_cp}");
 
     let cp_path = d.path("auditor.checkpoint.json").display().to_string();
-    d.run(&audrey, &["checkpoint", "shelf", "--out", &cp_path])
-        .ok();
+    d.run(
+        &audrey,
+        &["checkpoint", "shelf", "--json", "--out", &cp_path],
+    )
+    .ok();
     let cp = Checkpoint::read(std::path::Path::new(&cp_path)).unwrap();
     assert_eq!(cp.format, CHECKPOINT_FORMAT);
     assert_eq!(cp.verify_signature(), Ok(()));

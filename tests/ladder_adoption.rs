@@ -337,6 +337,6 @@ fn rehash(entries: &mut [ledger::Entry], from: usize) {
         };
         let e = &mut entries[i];
         e.prev_hash = prev;
-        e.hash = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
+        e.hash = ledger::Encoding::V2.hash(e).unwrap();
     }
 }

@@ -12,8 +12,9 @@ use ed25519_dalek::{Signature, Signer, SigningKey, VerifyingKey};
 use rusqlite::{Connection, OptionalExtension, params};
 use serde::{Deserialize, Serialize};
 
+use super::note::{self, Note};
 use crate::error::{Error, Result};
-use crate::ledger;
+use crate::ledger::{self, merkle, merkle::Hash};
 
 /// Version tag of the checkpoints this binary writes for a holdout: the holdout's head and the
 /// identity chain's head, both in the signed text.
@@ -242,6 +243,134 @@ pub fn sign(
     cp
 }
 
+/// The tree of `chain` now: (size, root); size 0 and the empty root for a chain with no entry.
+pub fn tree_head(conn: &Connection, chain: &str) -> Result<(u64, Hash)> {
+    match ledger::head(conn, chain)? {
+        None => Ok((0, merkle::empty_root())),
+        Some((seq, _)) => {
+            let size = seq + 1;
+            Ok((size, merkle::root(&merkle::Stored::new(conn, chain), size)?))
+        }
+    }
+}
+
+/// A format-3 checkpoint (signed note) of `chain`'s tree and, when `with_users` and `chain` is
+/// a holdout, of the identity chain's tree read in the same read transaction. Returns the
+/// note and its signed text.
+pub fn note_checkpoint(
+    conn: &Connection,
+    chain: &str,
+    at: &str,
+    with_users: bool,
+) -> Result<(Note, String)> {
+    let key = signing_key(conn)?;
+    let tx = snapshot(conn)?;
+    let (size, root) = tree_head(conn, chain)?;
+    let users = if with_users && chain != ledger::USERS_CHAIN {
+        Some(tree_head(conn, ledger::USERS_CHAIN)?)
+    } else {
+        None
+    };
+    if let Some(tx) = tx {
+        tx.commit()?;
+    }
+    if size == 0 {
+        return Err(Error::not_found("holdout", chain));
+    }
+    let note = Note {
+        chain: chain.to_string(),
+        size,
+        root,
+        time: at.to_string(),
+        users,
+    };
+    let text = note.sign(&key);
+    Ok((note, text))
+}
+
+/// What `rpc Prove` returns: a format-3 checkpoint of the newest tree and proofs against it.
+#[derive(Debug, Clone)]
+pub struct Proofs {
+    /// The signed note.
+    pub checkpoint: String,
+    /// Inclusion proof of the entry asked for.
+    pub inclusion: Option<merkle::InclusionProof>,
+    /// Consistency proof from the size asked for.
+    pub consistency: Option<merkle::ConsistencyProof>,
+    /// The daemon's verifier key string.
+    pub verifier_key: String,
+}
+
+/// Proofs against the newest tree of `chain`, all read in one read transaction: an inclusion
+/// proof of the entry with hash `entry_hash` (which must be in `chain`), and a consistency
+/// proof from the tree of `first_size` entries (when > 0).
+pub fn prove(
+    conn: &Connection,
+    chain: &str,
+    entry_hash: Option<&str>,
+    first_size: u64,
+    at: &str,
+    with_users: bool,
+) -> Result<Proofs> {
+    let tx = snapshot(conn)?;
+    let (note, text) = note_checkpoint(conn, chain, at, with_users)?;
+    let nodes = merkle::Stored::new(conn, chain);
+    let inclusion = match entry_hash {
+        None => None,
+        Some(h) => {
+            let h = h.trim().to_ascii_lowercase();
+            merkle::leaf_input(&h)?;
+            let seq: Option<i64> = conn
+                .query_row(
+                    "SELECT seq FROM ledger WHERE hash = ?1 AND chain = ?2",
+                    params![h, chain],
+                    |r| r.get(0),
+                )
+                .optional()?;
+            let seq = seq.ok_or_else(|| {
+                Error::not_found("entry", format!("with hash {h} in the ledger of {chain}"))
+            })? as u64;
+            Some(merkle::InclusionProof {
+                leaf_index: seq,
+                tree_size: note.size,
+                inclusion_path: merkle::encode_path(&merkle::inclusion_proof(
+                    &nodes, seq, note.size,
+                )?),
+            })
+        }
+    };
+    let consistency = match first_size {
+        0 => None,
+        m => Some(merkle::ConsistencyProof {
+            first_size: m,
+            second_size: note.size,
+            consistency_path: merkle::encode_path(&merkle::consistency_proof(
+                &nodes, m, note.size,
+            )?),
+        }),
+    };
+    let verifier_key = verifier_key(conn)?;
+    if let Some(tx) = tx {
+        tx.commit()?;
+    }
+    Ok(Proofs {
+        checkpoint: text,
+        inclusion,
+        consistency,
+        verifier_key,
+    })
+}
+
+/// A checkpoint's time: RFC 3339 UTC to the second (`2026-12-03T20:00:00Z`).
+pub fn note_time(t: chrono::DateTime<chrono::Utc>) -> String {
+    t.to_rfc3339_opts(chrono::SecondsFormat::Secs, true)
+}
+
+/// The daemon's verifier key string (checkpoint format 3).
+pub fn verifier_key(conn: &Connection) -> Result<String> {
+    Ok(note::verifier_key(&signing_key(conn)?.verifying_key()))
+}
+
 /// Names of every holdout with a chain.
 pub fn holdout_names(conn: &Connection) -> Result<Vec<String>> {
     let mut stmt = conn.prepare("SELECT name FROM holdouts ORDER BY name")?;
@@ -261,7 +390,8 @@ pub fn write(path: &Path, cp: &Checkpoint) -> Result<()> {
 
 /// Signs the head of every holdout (with the identity chain's head, format `/2`), and of the
 /// identity chain itself (`@users-SEQ`, format `/1`), into `dir` as `NAME-SEQ.checkpoint.json`,
-/// skipping heads already written; returns the files written. Every head is read in one read
+/// and the tree of each in format 3 (with the identity chain's tree for holdouts) as
+/// `tree-NAME-SIZE.checkpoint`, skipping those already written; returns the files written. Every head is read in one read
 /// transaction, so the files of one call describe one moment. The daemon calls this
 /// periodically (`serve --checkpoint-dir`), so the operator can ship the files elsewhere.
 pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std::path::PathBuf>> {
@@ -277,6 +407,18 @@ pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std
     if let Some(u) = &users {
         signed.push(sign(&key, ledger::USERS_CHAIN, u, None, at));
     }
+    // Format 3, read in the same read transaction.
+    let time = chrono::DateTime::parse_from_rfc3339(at)
+        .map(|t| note_time(t.with_timezone(&chrono::Utc)))
+        .map_err(|e| Error::Internal(format!("checkpoint time {at:?}: {e}")))?;
+    let mut notes = Vec::new();
+    for cp in &signed {
+        let (note, text) = note_checkpoint(conn, &cp.holdout, &time, true)?;
+        notes.push((
+            format!("tree-{}-{}.checkpoint", note.chain, note.size),
+            text,
+        ));
+    }
     if let Some(tx) = tx {
         tx.commit()?;
     }
@@ -287,6 +429,16 @@ pub fn checkpoint_all(conn: &Connection, dir: &Path, at: &str) -> Result<Vec<std
             continue;
         }
         write(&path, &cp)?;
+        written.push(path);
+    }
+    for (name, text) in notes {
+        let path = dir.join(name);
+        if path.exists() {
+            continue;
+        }
+        std::fs::write(&path, text).map_err(|e| {
+            Error::invalid(path.display().to_string(), format!("cannot write: {e}"))
+        })?;
         written.push(path);
     }
     Ok(written)

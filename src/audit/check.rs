@@ -95,9 +95,13 @@ pub struct AuditOptions<'a> {
     pub labels: Option<LabelColumns>,
     /// Checkpoints (with the file each came from).
     pub checkpoints: Vec<(String, Checkpoint)>,
+    /// Format-3 checkpoints (signed notes; with the file each came from), checked against the
+    /// tree rebuilt from the export; they need `trusted_key`.
+    pub notes: Vec<(String, String)>,
     /// Receipts (with the file each came from).
     pub receipts: Vec<(String, Receipt)>,
-    /// Hex public key the checkpoints must be signed with, when the auditor knows it.
+    /// Public key the checkpoints must be signed with, when the auditor knows it: 64 hex
+    /// digits or a verifier key string (`holdout-ledger+KEYID+BASE64`).
     pub trusted_key: Option<String>,
     /// Called with entries done, for a progress bar.
     pub progress: Option<&'a mut dyn FnMut(u64)>,
@@ -293,15 +297,20 @@ pub fn genesis_policy(export: &Export, out: &mut Vec<Finding>) -> Option<(Holdou
         ));
     }
     let versions = body["versions"].clone();
-    if versions["encoding"].as_str() != Some(ledger::ENCODING) {
+    if versions["encoding"]
+        .as_str()
+        .and_then(ledger::Encoding::parse)
+        .is_none()
+    {
         out.push(at(
             chain,
             g.seq,
             "versions.encoding",
             format!(
-                "{}; this binary verifies {}",
+                "{}; this binary verifies {} and {}",
                 versions["encoding"],
-                ledger::ENCODING
+                ledger::ENCODING_V1,
+                ledger::ENCODING_V2
             ),
         ));
     }
@@ -351,7 +360,8 @@ pub fn checkpoint_problems(
         out.push(("signature", why));
     }
     if let Some(k) = trusted_key
-        && !k.eq_ignore_ascii_case(&cp.public_key)
+        && super::note::parse_public_key(k).map(|k| hex::encode(k.to_bytes()))
+            != Ok(cp.public_key.to_ascii_lowercase())
     {
         out.push((
             "public_key",
@@ -392,6 +402,51 @@ pub fn checkpoint_problems(
         Some(_) => {}
     }
     out
+}
+
+/// Format-3 checkpoints: each against the tree rebuilt from the export, root at its size.
+fn check_notes(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
+    let key = opts
+        .trusted_key
+        .as_deref()
+        .map(super::note::parse_public_key);
+    for (file, text) in &opts.notes {
+        let key = match &key {
+            Some(Err(why)) => {
+                report.findings.push(whole(
+                    &export.header.holdout,
+                    &format!("checkpoint {file}: public_key"),
+                    why.clone(),
+                ));
+                continue;
+            }
+            Some(Ok(k)) => Some(k),
+            None => None,
+        };
+        let (note, problems) = super::proofs::note_problems(export, text, key);
+        for (chain, field, problem) in problems {
+            report.findings.push(Finding {
+                chain,
+                entry: None,
+                field: format!("checkpoint {file}: {field}"),
+                problem,
+            });
+        }
+        if let Some(n) = note {
+            report.checkpoints.push(match n.users {
+                Some((u, _)) => format!(
+                    "{file}: tree of {} entries and {} tree of {u} at {} (format 3)",
+                    n.size,
+                    ledger::USERS_CHAIN,
+                    n.time
+                ),
+                None => format!(
+                    "{file}: tree of {} entries at {} (format 3)",
+                    n.size, n.time
+                ),
+            });
+        }
+    }
 }
 
 fn check_checkpoints(export: &Export, opts: &AuditOptions<'_>, report: &mut Report) {
@@ -509,8 +564,8 @@ fn check_receipts(export: &Export, opts: &AuditOptions<'_>, report: &mut Report)
             report.receipts.push(format!("{file}: not found"));
             continue;
         };
-        let again = ledger::entry_hash(&e.prev_hash, e.seq, &e.kind, &e.salt, &e.body);
-        if again != r.entry_hash {
+        let again = ledger::Encoding::of_chain(&export.entries).hash(e);
+        if again.as_deref() != Some(r.entry_hash.as_str()) {
             f(
                 "entry_hash",
                 "does not match the entry's contents as exported".into(),
@@ -829,6 +884,7 @@ fn audit_in_order(
         }
     }
     check_checkpoints(export, opts, report);
+    check_notes(export, opts, report);
     check_receipts(export, opts, report);
     let mid = std::mem::take(&mut report.findings);
     let Some((policy, genesis)) = genesis_policy(export, &mut report.findings) else {

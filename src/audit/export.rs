@@ -33,7 +33,7 @@ pub struct Header {
     pub holdout: String,
     /// Time of export, RFC 3339 UTC.
     pub exported_at: String,
-    /// Canonical entry encoding ([`ledger::ENCODING`]).
+    /// The holdout chain's entry encoding ([`ledger::Encoding`]).
     pub encoding: String,
     /// Version of the binary that wrote the export.
     pub binary: String,
@@ -76,7 +76,7 @@ impl Export {
                 format: EXPORT_FORMAT.into(),
                 holdout: holdout.into(),
                 exported_at: exported_at.into(),
-                encoding: ledger::ENCODING.into(),
+                encoding: ledger::Encoding::of_chain(&entries).name().into(),
                 binary: env!("CARGO_PKG_VERSION").into(),
                 chains,
                 kept: None,

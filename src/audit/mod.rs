@@ -5,6 +5,8 @@
 //! |---|---|
 //! | the export file (JSON Lines, versioned header) | [`export`] |
 //! | the daemon's key, signed checkpoints | [`anchor`] |
+//! | checkpoint format 3 (signed note of a chain's Merkle tree), verifier keys | [`note`] |
+//! | format-3 checkpoints against an export; offline receipt and consistency checks | [`proofs`] |
 //! | prediction digests shared with the daemon | `digest` ([`predictions_digest`]) |
 //! | chain, genesis, checkpoint, receipt and label checks; the report | `check` ([`audit`]) |
 //! | every entry's user and team against the identity chain | `identity` |
@@ -21,6 +23,8 @@ pub mod export;
 pub mod family;
 mod identity;
 pub mod kept;
+pub mod note;
+pub mod proofs;
 mod replay;
 mod retention;
 pub mod trace;

@@ -57,9 +57,44 @@ pub enum AuditCommand {
     /// (--export, --checkpoint; no daemon), or through the daemon (auditor role). Answers,
     /// free adoptions and sealed entries (with the round that answered them) are certified.
     Certify(CertifyArgs),
+    /// Ask the daemon for a proof that the entry a receipt names is in the holdout's newest
+    /// tree (and, with --since, that the newest checkpoint extends an older one); writes the
+    /// proof, the signed checkpoint and the daemon's verifier key, for `holdout audit --proof`.
+    Prove(ProveArgs),
     /// Audit a ledger export (or a database file with --db) offline. See --help.
     #[command(after_long_help = AUDIT_HELP)]
     Audit(Box<AuditArgs>),
+    /// Test vectors of the Merkle tree code for independent implementations (one JSON object).
+    #[command(hide = true)]
+    MerkleVectors(MerkleVectorsArgs),
+}
+
+/// `holdout prove`.
+#[derive(Debug, Args)]
+pub struct ProveArgs {
+    /// The receipt (or a whole `submit --json` answer) whose entry to prove.
+    #[arg(long, value_name = "FILE", required_unless_present = "since")]
+    pub receipt: Option<PathBuf>,
+    /// An older format-3 checkpoint of the holdout: also prove that the newest extends it.
+    #[arg(long, value_name = "CHECKPOINT")]
+    pub since: Option<PathBuf>,
+    /// Holdout name (when there is no --receipt to name it).
+    #[arg(long, required_unless_present = "receipt")]
+    pub holdout: Option<String>,
+    /// Directory to write the files in (created if missing); files never replace others.
+    #[arg(long, value_name = "DIR", default_value = ".")]
+    pub out_dir: PathBuf,
+    #[command(flatten)]
+    #[allow(missing_docs)]
+    pub server: ServerArgs,
+}
+
+/// `holdout merkle-vectors`.
+#[derive(Debug, Args)]
+pub struct MerkleVectorsArgs {
+    /// Largest tree size.
+    #[arg(long, default_value_t = 64)]
+    pub max_size: u64,
 }
 
 /// `holdout export`.
@@ -80,9 +115,14 @@ pub struct ExportArgs {
 pub struct CheckpointArgs {
     /// Holdout name.
     pub name: String,
-    /// Where to write the checkpoint (JSON); `-` for stdout.
+    /// Where to write the checkpoint; `-` for stdout. Format 3 (a signed note of the chain's
+    /// Merkle tree) unless --json.
     #[arg(long, value_name = "FILE")]
     pub out: PathBuf,
+    /// Write the older JSON checkpoint of the chain head (format /2 or /1), which `certify`
+    /// reads, instead of format 3.
+    #[arg(long)]
+    pub json: bool,
     #[command(flatten)]
     #[allow(missing_docs)]
     pub server: ServerArgs,
@@ -129,8 +169,18 @@ pub struct CertifyArgs {
 /// `holdout audit`.
 #[derive(Debug, Args)]
 pub struct AuditArgs {
-    /// The export (FILE.jsonl from `holdout export`), or with --db the holdout's NAME.
-    pub source: String,
+    /// The export (FILE.jsonl from `holdout export`), or with --db the holdout's NAME. Not
+    /// needed with --proof or --consistency, which verify with nothing but their files.
+    #[arg(required_unless_present_any = ["proof", "consistency"])]
+    pub source: Option<String>,
+    /// An inclusion proof (`holdout prove`): verify the one --receipt with it, one
+    /// format-3 --checkpoint and --public-key, and nothing else (no export, no daemon).
+    #[arg(long, value_name = "FILE", requires_all = ["public_key"], conflicts_with_all = ["source", "consistency"])]
+    pub proof: Option<PathBuf>,
+    /// A consistency proof (`holdout prove --since`): verify that the second --checkpoint
+    /// (newer) extends the first (older), both format 3, with --public-key and nothing else.
+    #[arg(long, value_name = "FILE", requires_all = ["public_key"], conflicts_with = "source")]
+    pub consistency: Option<PathBuf>,
     /// Audit a database file (live or copied) instead of an export; opened read-only.
     #[arg(long, value_name = "PATH")]
     pub db: Option<PathBuf>,
@@ -152,8 +202,10 @@ pub struct AuditArgs {
     /// A receipt (or a whole `submit --json` answer) the chain must hold (repeatable).
     #[arg(long = "receipt", value_name = "FILE")]
     pub receipts: Vec<PathBuf>,
-    /// Hex public key the checkpoints must be signed with.
-    #[arg(long, value_name = "HEX")]
+    /// The daemon's public key the checkpoints must be signed with: its verifier key string
+    /// (`holdout-ledger+KEYID+BASE64`, printed by `holdout checkpoint` and `holdout prove`) or
+    /// 64 hex digits. Format-3 checkpoints need it.
+    #[arg(long, value_name = "KEY")]
     pub public_key: Option<String>,
     /// Name the entries that scored this predictions file (repeatable); digests are over parsed
     /// values in row-id order, so float formatting and row order do not matter.
@@ -180,6 +232,10 @@ pub fn run(cmd: AuditCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         AuditCommand::Audit(args) => run_audit(&args),
         AuditCommand::Certify(args) if args.export.is_some() => certify_offline(&args),
+        AuditCommand::MerkleVectors(args) => {
+            println!("{}", ledger::merkle::vectors(args.max_size)?);
+            Ok(ExitCode::SUCCESS)
+        }
         other => {
             let rt = tokio::runtime::Builder::new_current_thread()
                 .enable_all()
@@ -189,7 +245,10 @@ pub fn run(cmd: AuditCommand) -> anyhow::Result<ExitCode> {
                     AuditCommand::Export(a) => export(&a).await,
                     AuditCommand::Checkpoint(a) => checkpoint(&a).await,
                     AuditCommand::Certify(a) => certify(&a).await,
-                    AuditCommand::Audit(_) => unreachable!("handled above"),
+                    AuditCommand::Prove(a) => prove(&a).await,
+                    AuditCommand::Audit(_) | AuditCommand::MerkleVectors(_) => {
+                        unreachable!("handled above")
+                    }
                 }
             });
             // Printed here, as the client commands do: a status's own message, its exit code.
@@ -316,7 +375,23 @@ async fn export(args: &ExportArgs) -> anyhow::Result<ExitCode> {
     Ok(ExitCode::SUCCESS)
 }
 
+/// Writes `text` to a new file; never replaces one.
+fn write_new(path: &Path, text: &str) -> anyhow::Result<()> {
+    use std::io::Write;
+    let mut f = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(path)
+        .map_err(|e| Error::invalid(path.display().to_string(), format!("cannot create: {e}")))?;
+    f.write_all(text.as_bytes())
+        .with_context(|| format!("writing {}", path.display()))?;
+    Ok(())
+}
+
 async fn checkpoint(args: &CheckpointArgs) -> anyhow::Result<ExitCode> {
+    if !args.json {
+        return checkpoint_note(args).await;
+    }
     let conn = Conn::open(&args.server).await?;
     let cp = fetch_checkpoint(&conn, &args.name).await?;
     cp.verify_signature().map_err(|why| {
@@ -333,6 +408,170 @@ async fn checkpoint(args: &CheckpointArgs) -> anyhow::Result<ExitCode> {
             args.out.display()
         );
     }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// `holdout checkpoint` (format 3): the signed note, checked with the key the daemon names.
+async fn checkpoint_note(args: &CheckpointArgs) -> anyhow::Result<ExitCode> {
+    let conn = Conn::open(&args.server).await?;
+    let c = conn
+        .ledger()
+        .checkpoint(CheckpointRequest {
+            holdout: args.name.clone(),
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    if c.note.is_empty() {
+        return Err(Error::FailedPrecondition(
+            "this daemon predates checkpoint format 3: use --json".into(),
+        )
+        .into());
+    }
+    let key = audit::note::parse_public_key(&c.verifier_key)
+        .map_err(|why| Error::Internal(format!("the daemon's verifier key: {why}")))?;
+    let note = audit::note::Note::verify(&c.note, &key).map_err(|why| {
+        Error::Internal(format!("the daemon's checkpoint does not verify: {why}"))
+    })?;
+    if args.out == Path::new("-") {
+        print!("{}", c.note);
+    } else {
+        write_new(&args.out, &c.note)?;
+        eprintln!(
+            "checkpoint of {} (tree of {} entries) written to {}",
+            note.chain,
+            note.size,
+            args.out.display()
+        );
+    }
+    eprintln!("verifier key: {}", c.verifier_key);
+    Ok(ExitCode::SUCCESS)
+}
+
+/// `holdout prove`: proofs through the daemon, checked here, written for the offline audit.
+async fn prove(args: &ProveArgs) -> anyhow::Result<ExitCode> {
+    let receipt = match &args.receipt {
+        None => None,
+        Some(p) => Some(
+            Receipt::from_json(&read_text(p)?)
+                .map_err(|why| Error::invalid(p.display().to_string(), why))?,
+        ),
+    };
+    let holdout = match (&receipt, &args.holdout) {
+        (Some(r), Some(h)) if r.holdout != *h => {
+            return Err(Error::invalid(
+                "--holdout",
+                format!("the receipt is of {}, not of {h}", r.holdout),
+            )
+            .into());
+        }
+        (Some(r), _) => r.holdout.clone(),
+        (None, Some(h)) => h.clone(),
+        (None, None) => {
+            return Err(Error::invalid("--receipt", "give --receipt or --holdout").into());
+        }
+    };
+    // The older checkpoint's size; its signature is checked once the daemon names its key.
+    let since = match &args.since {
+        None => None,
+        Some(p) => Some((p, read_text(p)?)),
+    };
+    let first_size = match &since {
+        None => 0,
+        Some((p, text)) => text
+            .lines()
+            .nth(1)
+            .and_then(|l| l.parse::<u64>().ok())
+            .filter(|n| *n > 0)
+            .ok_or_else(|| Error::invalid(p.display().to_string(), "not a format-3 checkpoint"))?,
+    };
+    let conn = Conn::open(&args.server).await?;
+    let reply = conn
+        .ledger()
+        .prove(crate::proto::v1::ProveRequest {
+            holdout: holdout.clone(),
+            entry_hash: receipt
+                .as_ref()
+                .map(|r| r.entry_hash.clone())
+                .unwrap_or_default(),
+            first_size,
+        })
+        .await
+        .map_err(|e| conn.fail(e))?
+        .into_inner();
+    let key = audit::note::parse_public_key(&reply.verifier_key)
+        .map_err(|why| Error::Internal(format!("the daemon's verifier key: {why}")))?;
+    let note = audit::note::Note::verify(&reply.checkpoint, &key).map_err(|why| {
+        Error::Internal(format!("the daemon's checkpoint does not verify: {why}"))
+    })?;
+    std::fs::create_dir_all(&args.out_dir)
+        .with_context(|| format!("creating {}", args.out_dir.display()))?;
+    let mut written = Vec::new();
+    let cp_path = args
+        .out_dir
+        .join(format!("{holdout}-{}.checkpoint", note.size));
+    let key_path = args.out_dir.join("verifier.key");
+    if let Some(r) = &receipt {
+        audit::proofs::verify_receipt(
+            &holdout,
+            &r.entry_hash,
+            &reply.inclusion_proof,
+            &reply.checkpoint,
+            &key,
+        )
+        .map_err(|why| Error::Internal(format!("the daemon's proof does not verify: {why}")))?;
+    }
+    if let Some((p, text)) = &since {
+        audit::proofs::verify_extension(&reply.consistency_proof, text, &reply.checkpoint, &key)
+            .map_err(|why| {
+                Error::invalid(
+                    p.display().to_string(),
+                    format!("the newest checkpoint is not shown to extend it: {why}"),
+                )
+            })?;
+    }
+    if !cp_path.exists() {
+        write_new(&cp_path, &reply.checkpoint)?;
+        written.push(cp_path.clone());
+    }
+    match std::fs::read_to_string(&key_path) {
+        Ok(k) if k.trim() == reply.verifier_key => {}
+        Ok(_) => {
+            return Err(Error::invalid(
+                key_path.display().to_string(),
+                "holds another key than the daemon's: use another --out-dir",
+            )
+            .into());
+        }
+        Err(_) => {
+            write_new(&key_path, &(reply.verifier_key.clone() + "\n"))?;
+            written.push(key_path.clone());
+        }
+    }
+    if let Some(r) = &receipt {
+        let p = args.out_dir.join(format!(
+            "{holdout}-{}-in-{}.proof.json",
+            &r.entry_hash[..r.entry_hash.len().min(16)],
+            note.size
+        ));
+        write_new(&p, &reply.inclusion_proof)?;
+        written.push(p);
+    }
+    if since.is_some() {
+        let p = args.out_dir.join(format!(
+            "{holdout}-{first_size}-to-{}.consistency.json",
+            note.size
+        ));
+        write_new(&p, &reply.consistency_proof)?;
+        written.push(p);
+    }
+    for p in &written {
+        println!("{}", p.display());
+    }
+    eprintln!(
+        "proved against the tree of {} entries of {holdout} signed at {}; verifier key: {}",
+        note.size, note.time, reply.verifier_key
+    );
     Ok(ExitCode::SUCCESS)
 }
 
@@ -715,11 +954,123 @@ fn predictions_table(path: &Path, args: &AuditArgs) -> crate::error::Result<file
     )
 }
 
+/// Reads a file for the offline proof checks; errors name it.
+fn read_text(path: &Path) -> crate::error::Result<String> {
+    std::fs::read_to_string(path)
+        .map_err(|e| Error::invalid(path.display().to_string(), format!("cannot read: {e}")))
+}
+
+/// `holdout audit --proof` and `--consistency`: verified with nothing but the files given.
+fn run_proof_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
+    let key_text = args
+        .public_key
+        .as_deref()
+        .ok_or_else(|| Error::invalid("--public-key", "proofs verify against the daemon's key"))?;
+    let key =
+        audit::proofs::public_key(key_text).map_err(|why| Error::invalid("--public-key", why))?;
+    let outcome = if let Some(proof) = &args.proof {
+        let [receipt] = args.receipts.as_slice() else {
+            return Err(
+                Error::invalid("--receipt", "give exactly one --receipt with --proof").into(),
+            );
+        };
+        let [checkpoint] = args.checkpoints.as_slice() else {
+            return Err(Error::invalid(
+                "--checkpoint",
+                "give exactly one --checkpoint with --proof",
+            )
+            .into());
+        };
+        let r = Receipt::from_json(&read_text(receipt)?)
+            .map_err(|why| Error::invalid(receipt.display().to_string(), why))?;
+        audit::proofs::verify_receipt(
+            &r.holdout,
+            &r.entry_hash,
+            &read_text(proof)?,
+            &read_text(checkpoint)?,
+            &key,
+        )
+        .map(|(cp, p)| {
+            json!({
+                "verified": "inclusion",
+                "holdout": cp.chain,
+                "entry_hash": r.entry_hash,
+                "leaf_index": p.leaf_index,
+                "tree_size": cp.size,
+                "checkpoint_time": cp.time,
+                "summary": format!(
+                    "receipt {} verified: entry {} of {} is in the tree of {} entries signed at {} \
+                     by {key_text}",
+                    receipt.display(), p.leaf_index, cp.chain, cp.size, cp.time
+                ),
+            })
+        })
+    } else {
+        let proof = args
+            .consistency
+            .as_ref()
+            .expect("clap requires --proof or --consistency");
+        let [old, new] = args.checkpoints.as_slice() else {
+            return Err(Error::invalid(
+                "--checkpoint",
+                "give two --checkpoint files with --consistency, the older first",
+            )
+            .into());
+        };
+        audit::proofs::verify_extension(
+            &read_text(proof)?,
+            &read_text(old)?,
+            &read_text(new)?,
+            &key,
+        )
+        .map(|(o, n)| {
+            json!({
+                "verified": "consistency",
+                "holdout": n.chain,
+                "first_size": o.size,
+                "second_size": n.size,
+                "summary": format!(
+                    "{} extends {}: the tree of {} entries of {} at {} is the first {} \
+                     entries of the tree at {}",
+                    new.display(), old.display(), n.size, n.chain, n.time, o.size, o.time
+                ),
+            })
+        })
+    };
+    match outcome {
+        Ok(v) => {
+            if args.json {
+                println!("{}", serde_json::to_string_pretty(&v)?);
+            } else {
+                println!("{}", v["summary"].as_str().unwrap_or_default());
+            }
+            Ok(ExitCode::SUCCESS)
+        }
+        Err(why) => {
+            if args.json {
+                println!(
+                    "{}",
+                    serde_json::to_string_pretty(&json!({"verified": false, "problem": why}))?
+                );
+            }
+            eprintln!("audit failed: {why}");
+            Ok(ExitCode::from(AUDIT_FAILED))
+        }
+    }
+}
+
 fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
+    if args.proof.is_some() || args.consistency.is_some() {
+        return run_proof_audit(args);
+    }
+    let source = args
+        .source
+        .clone()
+        .expect("clap requires the export without a proof");
     let mut label_problem = None;
     let (export, db_labels) = match &args.db {
         Some(db) => {
-            let (ex, labels) = from_db(db, &args.source)?;
+            let (ex, labels) = from_db(db, &source)?;
             match labels {
                 Ok(labels) => (ex, Some(labels)),
                 // Shredded labels: not a finding (the ledger records the shred).
@@ -730,15 +1081,21 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
                 }
             }
         }
-        None => (Export::read(Path::new(&args.source))?, None),
+        None => (Export::read(Path::new(&source))?, None),
     };
     let labels = match &args.labels {
         Some(p) => Some(read_labels(p, &args.id_column, &export)?),
         None => db_labels,
     };
     let mut checkpoints = Vec::new();
+    let mut notes = Vec::new();
     for p in &args.checkpoints {
-        checkpoints.push((p.display().to_string(), Checkpoint::read(p)?));
+        let text = read_text(p)?;
+        if audit::note::is_note(&text) {
+            notes.push((p.display().to_string(), text));
+        } else {
+            checkpoints.push((p.display().to_string(), Checkpoint::read(p)?));
+        }
     }
     let mut receipts = Vec::new();
     for p in &args.receipts {
@@ -769,6 +1126,7 @@ fn run_audit(args: &AuditArgs) -> anyhow::Result<ExitCode> {
         AuditOptions {
             labels: labels.clone(),
             checkpoints,
+            notes,
             receipts,
             trusted_key: args.public_key.clone(),
             progress: Some(&mut tick),

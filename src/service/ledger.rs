@@ -8,11 +8,35 @@ use tonic::{Request, Response, Status};
 use super::Daemon;
 use crate::audit::anchor;
 use crate::auth::{Role, rfc3339};
+use crate::engine::Engine;
+use crate::error::Result as HResult;
 use crate::ledger::{self, Entry};
 use crate::proto::v1::{
     BackupReply, BackupRequest, CheckpointRequest, ExportRequest, KeptPrediction, LedgerEntry,
-    SignedCheckpoint, ledger_server::Ledger,
+    ProveReply, ProveRequest, SignedCheckpoint, ledger_server::Ledger,
 };
+
+/// Whether the caller may learn the identity chain's head and tree (the roles that manage or
+/// audit identity events).
+fn sees_identity(caller: &crate::auth::Caller) -> bool {
+    caller.has(Role::Organizer) || caller.has(Role::Auditor) || caller.has(Role::Custodian)
+}
+
+/// Refuses a checkpoint (or proof, which names the tree size) of an isolated holdout to a
+/// caller who may not learn how many entries every team made.
+fn may_learn_size(engine: &mut Engine, caller: &crate::auth::Caller, name: &str) -> HResult<()> {
+    let loaded = engine.loaded(name)?;
+    // A checkpoint names the head's position, which counts every team's entries: under
+    // `isolated` a team must not learn how many queries the others made.
+    if loaded.policy.isolated() && !sees_identity(caller) {
+        return Err(crate::error::Error::PermissionDenied(format!(
+            "holdout {name} is isolated: its checkpoints and proofs count every team's \
+             entries, so only organizers, auditors and custodians may take one; your receipts \
+             name your entries by hash, which an auditor can check"
+        )));
+    }
+    Ok(())
+}
 
 fn to_proto(e: Entry) -> LedgerEntry {
     LedgerEntry {
@@ -23,6 +47,34 @@ fn to_proto(e: Entry) -> LedgerEntry {
         prev_hash: e.prev_hash,
         hash: e.hash,
         chain: e.chain,
+    }
+}
+
+/// The JSON checkpoint (format /1 or /2) of `name` for `caller`.
+fn checkpoint_of(
+    engine: &mut Engine,
+    caller: &crate::auth::Caller,
+    name: &str,
+) -> HResult<anchor::Checkpoint> {
+    if name == ledger::USERS_CHAIN {
+        // The identity chain: who belongs to which team. Its head counts identity events, so
+        // only the roles that manage or audit them get it.
+        caller.require(
+            "a checkpoint of the identity chain",
+            &[Role::Organizer, Role::Auditor, Role::Custodian],
+        )?;
+        let at = rfc3339(engine.now());
+        return anchor::checkpoint(engine.store().conn(), name, &at);
+    }
+    may_learn_size(engine, caller, name)?;
+    let at = rfc3339(engine.now());
+    // The identity chain's head is signed with the holdout's (format /2) for the roles that may
+    // take a checkpoint of @users; others get the holdout's head alone (/1), since the identity
+    // head counts every user and token event.
+    if sees_identity(caller) {
+        anchor::checkpoint(engine.store().conn(), name, &at)
+    } else {
+        anchor::checkpoint_without_identity(engine.store().conn(), name, &at)
     }
 }
 
@@ -62,45 +114,16 @@ impl Ledger for Daemon {
     ) -> Result<Response<SignedCheckpoint>, Status> {
         let caller = self.caller(&request).await?;
         let name = request.into_inner().holdout;
-        let cp = self
+        let (cp, note, verifier_key) = self
             .db
             .call(move |engine| {
-                if name == ledger::USERS_CHAIN {
-                    // The identity chain: who belongs to which team. Its head counts identity
-                    // events, so only the roles that manage or audit them get it.
-                    caller.require(
-                        "a checkpoint of the identity chain",
-                        &[Role::Organizer, Role::Auditor, Role::Custodian],
-                    )?;
-                    let at = rfc3339(engine.now());
-                    return anchor::checkpoint(engine.store().conn(), &name, &at);
-                }
-                let loaded = engine.loaded(&name)?;
-                // A checkpoint names the head's position, which counts every team's entries:
-                // under `isolated` a team must not learn how many queries the others made.
-                if loaded.policy.isolated()
-                    && !(caller.has(Role::Organizer)
-                        || caller.has(Role::Auditor)
-                        || caller.has(Role::Custodian))
-                {
-                    return Err(crate::error::Error::PermissionDenied(format!(
-                        "holdout {name} is isolated: its checkpoints count every team's \
-                         entries, so only organizers, auditors and custodians may take one; \
-                         your receipts name your entries by hash, which an auditor can check"
-                    )));
-                }
-                let at = rfc3339(engine.now());
-                // The identity chain's head is signed with the holdout's (format /2) for the
-                // roles that may take a checkpoint of @users; others get the holdout's head
-                // alone (/1), since the identity head counts every user and token event.
-                if caller.has(Role::Organizer)
-                    || caller.has(Role::Auditor)
-                    || caller.has(Role::Custodian)
-                {
-                    anchor::checkpoint(engine.store().conn(), &name, &at)
-                } else {
-                    anchor::checkpoint_without_identity(engine.store().conn(), &name, &at)
-                }
+                // One engine call: no write comes between the two forms.
+                let cp = checkpoint_of(engine, &caller, &name)?;
+                let with_users = name != ledger::USERS_CHAIN && sees_identity(&caller);
+                let at = anchor::note_time(engine.now());
+                let conn = engine.store().conn();
+                let (_, note) = anchor::note_checkpoint(conn, &name, &at, with_users)?;
+                Ok((cp, note, anchor::verifier_key(conn)?))
             })
             .await?;
         Ok(Response::new(SignedCheckpoint {
@@ -113,6 +136,55 @@ impl Ledger for Daemon {
             format: cp.format,
             users_seq: cp.users_seq.unwrap_or_default(),
             users_head_hash: cp.users_head_hash.unwrap_or_default(),
+            note,
+            verifier_key,
+        }))
+    }
+
+    async fn prove(&self, request: Request<ProveRequest>) -> Result<Response<ProveReply>, Status> {
+        let caller = self.caller(&request).await?;
+        let req = request.into_inner();
+        let proofs = self
+            .db
+            .call(move |engine| {
+                let name = req.holdout;
+                if name == ledger::USERS_CHAIN {
+                    caller.require(
+                        "proofs about the identity chain",
+                        &[Role::Organizer, Role::Auditor, Role::Custodian],
+                    )?;
+                } else {
+                    may_learn_size(engine, &caller, &name)?;
+                }
+                let at = anchor::note_time(engine.now());
+                let with_users = name != ledger::USERS_CHAIN && sees_identity(&caller);
+                let entry = (!req.entry_hash.is_empty()).then_some(req.entry_hash.as_str());
+                anchor::prove(
+                    engine.store().conn(),
+                    &name,
+                    entry,
+                    req.first_size,
+                    &at,
+                    with_users,
+                )
+            })
+            .await?;
+        let json = |v: Option<String>| v.map(|t| t + "\n").unwrap_or_default();
+        Ok(Response::new(ProveReply {
+            checkpoint: proofs.checkpoint,
+            inclusion_proof: json(
+                proofs
+                    .inclusion
+                    .as_ref()
+                    .map(ledger::merkle::InclusionProof::text),
+            ),
+            consistency_proof: json(
+                proofs
+                    .consistency
+                    .as_ref()
+                    .map(ledger::merkle::ConsistencyProof::text),
+            ),
+            verifier_key: proofs.verifier_key,
         }))
     }
 

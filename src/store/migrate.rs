@@ -35,6 +35,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0007_retention",
         include_str!("../../migrations/0007_retention.sql"),
     ),
+    (
+        "0008_merkle",
+        include_str!("../../migrations/0008_merkle.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.
@@ -65,6 +69,13 @@ pub fn migrate(conn: &mut Connection) -> Result<u32> {
             name: (*name).to_string(),
             detail: e.to_string(),
         })?;
+        // Trees need SHA-256, which SQL lacks: built here, in the migration's transaction.
+        if *name == "0008_merkle" {
+            crate::ledger::merkle::build_all(&tx).map_err(|e| Error::Migration {
+                name: (*name).to_string(),
+                detail: e.to_string(),
+            })?;
+        }
         tx.pragma_update(None, "user_version", version)?;
         tx.commit()?;
         tracing::info!(migration = name, version, "applied migration");
@@ -117,6 +128,65 @@ mod tests {
         )?;
         assert!(conn.execute("UPDATE ledger SET body = 'x'", []).is_err());
         assert!(conn.execute("DELETE FROM ledger", []).is_err());
+        Ok(())
+    }
+
+    /// A ledger written before trees existed (schema 7, encoding /1) gets its trees from
+    /// migration 0008, keeps /1 for the chains it has, and new chains take /2.
+    #[test]
+    fn migration_0008_builds_trees_and_keeps_old_encodings() -> Result<()> {
+        use crate::ledger::{self, Encoding, merkle};
+        let mut conn = Connection::open_in_memory()?;
+        for (_, sql) in &MIGRATIONS[..7] {
+            conn.execute_batch(sql)?;
+        }
+        conn.pragma_update(None, "user_version", 7)?;
+        let mut prev = ledger::ZERO_HASH.to_string();
+        for seq in 0..11u64 {
+            let body = format!("{{\"i\":{seq}}}");
+            let hash = ledger::entry_hash_v1(&prev, seq, "answer", "00", &body);
+            conn.execute(
+                "INSERT INTO ledger (chain, seq, kind, body, salt, prev_hash, hash)
+                 VALUES ('old', ?1, 'answer', ?2, '00', ?3, ?4)",
+                rusqlite::params![seq as i64, body, prev, hash],
+            )?;
+            prev = hash;
+        }
+        migrate(&mut conn)?;
+        let tx = conn.transaction()?;
+        ledger::append(
+            &tx,
+            "old",
+            ledger::Kind::Answer,
+            &serde_json::json!({"i": 11}),
+        )?;
+        ledger::append(
+            &tx,
+            "new",
+            ledger::Kind::Answer,
+            &serde_json::json!({"i": 0}),
+        )?;
+        tx.commit()?;
+        let old = ledger::read_chain(&conn, "old")?;
+        assert_eq!(old.len(), 12);
+        assert_eq!(Encoding::of_chain(&old), Encoding::V1);
+        assert!(ledger::verify_chain(&old).is_empty());
+        let new = ledger::read_chain(&conn, "new")?;
+        assert_eq!(Encoding::of_chain(&new), Encoding::V2);
+        assert!(ledger::verify_chain(&new).is_empty());
+        let leaves: Vec<merkle::Hash> = old
+            .iter()
+            .map(|e| merkle::leaf_input(&e.hash))
+            .collect::<Result<_>>()?;
+        let stored = merkle::Stored::new(&conn, "old");
+        for n in 1..=12 {
+            assert_eq!(
+                merkle::root(&stored, n)?,
+                merkle::Tree::new(leaves[..n as usize].iter().copied()).root()
+            );
+        }
+        assert_eq!(merkle::size(&conn, "old")?, 12);
+        assert!(conn.execute("DELETE FROM merkle_nodes", []).is_err());
         Ok(())
     }
 }
