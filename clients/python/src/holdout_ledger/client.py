@@ -17,6 +17,7 @@ from .types import (
     HistoryEntry,
     HoldoutInfo,
     Leaderboard,
+    Proof,
     Quote,
     Ranking,
     Refusal,
@@ -41,6 +42,8 @@ from .types import (
 
 from ._proto.holdout.v1 import holdouts_pb2 as _h  # generated at install time
 from ._proto.holdout.v1 import holdouts_pb2_grpc as _hg
+from ._proto.holdout.v1 import ledger_pb2 as _l
+from ._proto.holdout.v1 import ledger_pb2_grpc as _lg
 from ._proto.holdout.v1 import submissions_pb2 as _s
 from ._proto.holdout.v1 import submissions_pb2_grpc as _sg
 from ._proto.holdout.v1 import types_pb2 as _t
@@ -131,6 +134,7 @@ class Client:
         self._holdouts = _hg.HoldoutsStub(channel)
         self._submissions = _sg.SubmissionsStub(channel)
         self._users = _ug.UsersStub(channel)
+        self._ledger = _lg.LedgerStub(channel)
 
     # -- plumbing ---------------------------------------------------------------------------
 
@@ -486,6 +490,28 @@ class Client:
                 ))
 
         return _holdout_info(self._unary(self._holdouts.CreateHoldout, chunks()))
+
+    def prove(self, holdout: str, entry_hash: Optional[str] = None, *,
+              since: int = 0) -> Proof:
+        """The newest signed checkpoint of a holdout's ledger, with proofs to keep beside it.
+
+        ``entry_hash`` (a receipt's): an inclusion proof that the entry is in the signed tree.
+        ``since`` (the tree size of a checkpoint you kept): a consistency proof that the new
+        tree extends that one. The reply holds hashes, sizes and indices only; verify it
+        offline with :mod:`holdout_ledger.verify` (``verify_receipt``, ``verify_checkpoints``)
+        and the daemon's verifier key, which is returned too (compare it with the one your
+        organizer published: a key fetched from the same daemon proves nothing against it).
+        """
+        reply = self._unary(
+            self._ledger.Prove,
+            _l.ProveRequest(holdout=holdout, entry_hash=entry_hash or "", first_size=since),
+        )
+        return Proof(
+            checkpoint=reply.checkpoint,
+            inclusion_proof=reply.inclusion_proof or None,
+            consistency_proof=reply.consistency_proof or None,
+            verifier_key=reply.verifier_key,
+        )
 
     def withdraw(self, name: str, reason: str = "") -> dict:
         """Withdraws a holdout that released nothing (custodian and organizer: the first call

@@ -73,6 +73,26 @@ class Receipt:
 
 
 @dataclass(frozen=True)
+class Proof:
+    """A signed checkpoint of a holdout's ledger tree, and proofs against it.
+
+    ``checkpoint`` is the signed note (text); ``inclusion_proof`` and ``consistency_proof``
+    are JSON texts (or None when not asked); ``verifier_key`` names the daemon's Ed25519 key.
+    Check them offline with :mod:`holdout_ledger.verify`.
+    """
+
+    checkpoint: str
+    inclusion_proof: Optional[str]
+    consistency_proof: Optional[str]
+    verifier_key: str
+
+    @property
+    def checkpoint_size(self) -> int:
+        """The tree size the checkpoint signs (its second line)."""
+        return int(self.checkpoint.split("\n")[1])
+
+
+@dataclass(frozen=True)
 class Answer:
     """The released answer to one query.
 
