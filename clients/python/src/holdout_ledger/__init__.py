@@ -59,7 +59,7 @@ from .types import (
     Validation,
 )
 
-__version__ = "0.4.0"
+__version__ = "0.5.0"
 
 __all__ = [
     "connect", "Client", "DEFAULT_SERVER", "CHUNK_ROWS",
