@@ -387,8 +387,8 @@ fn plan_counts_the_class_counts_release() {
         let mut args = base.to_vec();
         args.push("--json");
         args.extend_from_slice(extra);
-        let out: serde_json::Value = serde_json::from_str(&run(holdout(), &args).ok().stdout)
-            .expect("plan --json");
+        let out: serde_json::Value =
+            serde_json::from_str(&run(holdout(), &args).ok().stdout).expect("plan --json");
         out.as_array()
             .expect("rows")
             .iter()
