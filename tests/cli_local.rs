@@ -375,3 +375,40 @@ fn plan_takes_the_metric_as_create_does() {
         refused.stderr
     );
 }
+
+/// `plan --classes C` counts the release of a target's class counts (issue 18): fewer queries
+/// fit than without it, the text names its code (34.180 nats for 180 rows and 10 classes,
+/// Python 3 `math.log(math.comb(189, 9))`), and it is refused with `--teams` (the fair table
+/// does not count it) and below two classes.
+#[test]
+fn plan_counts_the_class_counts_release() {
+    let base = ["plan", "--rows", "180", "--tolerance", "0.45"];
+    let json = |extra: &[&str]| {
+        let mut args = base.to_vec();
+        args.push("--json");
+        args.extend_from_slice(extra);
+        let out: serde_json::Value =
+            serde_json::from_str(&run(holdout(), &args).ok().stdout).expect("plan --json");
+        out.as_array()
+            .expect("rows")
+            .iter()
+            .map(|r| r["queries"].as_f64().expect("queries"))
+            .collect::<Vec<f64>>()
+    };
+    let (plain, counted) = (json(&[]), json(&["--classes", "10"]));
+    assert_eq!(plain.len(), counted.len());
+    assert!(
+        plain.iter().zip(&counted).all(|(p, c)| c < p),
+        "{plain:?} vs {counted:?}"
+    );
+    let mut text = base.to_vec();
+    text.extend_from_slice(&["--classes", "10"]);
+    let shown = run(holdout(), &text).ok().stdout;
+    assert!(shown.contains("34.180 for 180 rows"), "{shown}");
+    let mut fair = base.to_vec();
+    fair.extend_from_slice(&["--classes", "10", "--teams", "3", "--answers-each", "5"]);
+    run(holdout(), &fair).code(2);
+    let mut one = base.to_vec();
+    one.extend_from_slice(&["--classes", "1"]);
+    run(holdout(), &one).code(2);
+}

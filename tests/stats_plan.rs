@@ -15,6 +15,7 @@ fn spec(rows: u64, tolerance: f64) -> PlanSpec {
         schedule: "series".parse().unwrap(),
         method: Method::Hoeffding,
         batch: 1,
+        class_counts: None,
     }
 }
 
@@ -87,4 +88,43 @@ fn rows_needed_inverts_queries_that_fit() {
     // cell interval is half a grid step wider, so core 2 needs more rows for them.
     assert_eq!(fit(10_000, 0.05, "rounded:0.01"), 10.0);
     assert!(n > 10_000, "{n}");
+}
+
+/// The release of class counts (issue 18) is coded once, before the first answer, at
+/// `ln C(n + C - 1, C - 1)` nats: planning with it counts exactly what planning without it does
+/// at `delta` times `e^-code` (the code enters every level as a fixed part of `ln(1/delta)`).
+/// The code for 180 rows and 10 classes is 34.18 nats (Python 3 `math.log(math.comb(189, 9))`,
+/// as the issue's "about 34" says), enough to leave fewer queries for the same tolerance.
+#[test]
+fn class_counts_release_is_counted_once_in_every_level() {
+    use holdout_ledger::stats::codes::composition_nats;
+    let code = composition_nats(180, 10);
+    assert!((code - 34.180_498).abs() < 1e-5, "{code}");
+    for rule in ["rounded:0.01", "threshold:0.3", "ladder:0.01", "sealed"] {
+        let rule: Rule = rule.parse().unwrap();
+        let plain = spec(180, 0.45);
+        let counted = PlanSpec {
+            class_counts: Some(10),
+            ..plain.clone()
+        };
+        let shifted = PlanSpec {
+            delta: plain.delta * (-code).exp(),
+            ..plain.clone()
+        };
+        assert_eq!(counted.counts_nats(), code);
+        let (p, c, s) = (
+            queries_that_fit(&plain, &rule, 0.5),
+            queries_that_fit(&counted, &rule, 0.5),
+            queries_that_fit(&shifted, &rule, 0.5),
+        );
+        assert_eq!(c, s, "{rule}");
+        assert!(c < p, "{rule}: {c} with the counts, {p} without");
+        // More rows are needed for the same number of queries once the release is counted.
+        let wanted = (p as u64).max(1);
+        let (np, nc) = (
+            rows_needed(&plain, &rule, wanted).unwrap(),
+            rows_needed(&counted, &rule, wanted).unwrap(),
+        );
+        assert!(nc > np, "{rule}: {nc} rows with the counts, {np} without");
+    }
 }

@@ -89,6 +89,11 @@ pub struct PlanArgs {
     /// Models per best-of batch.
     #[arg(long, default_value_t = 10)]
     pub batch: u32,
+    /// Declared classes of a target whose metric needs the class counts (per-class or
+    /// balanced error, AUC): their release, ln C(n + C - 1, C - 1) nats (about 34 for 180 rows
+    /// and 10 classes), is coded once before the first answer and counted in every level.
+    #[arg(long, value_name = "C", conflicts_with = "teams", value_parser = clap::value_parser!(u32).range(2..))]
+    pub classes: Option<u32>,
     /// Fair service: teams that will share the holdout. With --answers-each, compares which
     /// policies (rules x schedules x shares) serve every team and how many rows each needs.
     #[arg(long, requires_all = ["answers_each", "rows"], value_parser = clap::value_parser!(u64).range(1..))]
@@ -258,6 +263,7 @@ pub fn plan_rows(args: &PlanArgs) -> anyhow::Result<Vec<PlanRow>> {
         schedule,
         method,
         batch: args.batch.max(1),
+        class_counts: args.classes,
     };
     Ok(match (args.rows, args.queries) {
         (Some(n), None) if n > 0 => plan_table(&spec(n), &rules, args.expected_error),
@@ -400,6 +406,16 @@ pub fn run_plan(args: &PlanArgs) -> anyhow::Result<ExitCode> {
         args.schedule,
         1.0 - args.delta
     );
+    if let Some(c) = args.classes {
+        println!(
+            "Counted first: the release of the {c} class counts, coded once before the first \
+             answer at ln C(n + {c} - 1, {c} - 1) nats{}, which every later level pays for.",
+            args.rows.map_or(String::new(), |n| format!(
+                " ({:.3} for {n} rows)",
+                crate::stats::codes::composition_nats(n, c)
+            ))
+        );
+    }
     Ok(ExitCode::SUCCESS)
 }
 

@@ -224,6 +224,7 @@ fn plan_spec(spec: &FairSpec, p: &FairPolicy, rows: u64) -> PlanSpec {
         schedule: p.schedule,
         method: spec.method,
         batch: 1,
+        class_counts: None,
     }
 }
 

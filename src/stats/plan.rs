@@ -31,7 +31,8 @@
 //! // with the one-count interval (core 1); the reported cell interval is 0.005 wider, so
 //! // fewer fit under core 2.
 //! let spec = PlanSpec { rows: 10_000, delta: 0.05, tolerance: 0.05,
-//!     schedule: "series".parse().unwrap(), method: Method::Hoeffding, batch: 1 };
+//!     schedule: "series".parse().unwrap(), method: Method::Hoeffding, batch: 1,
+//!     class_counts: None };
 //! let rule = "rounded:0.01".parse().unwrap();
 //! assert_eq!(queries_that_fit_core(&spec, &rule, 0.5, 1), 10.0);
 //! assert!(queries_that_fit(&spec, &rule, 0.5) < 10.0);
@@ -40,7 +41,7 @@
 use serde::{Deserialize, Serialize};
 
 use super::accounting::{count_fitting, ln_inv_mean_share};
-use super::codes::Code;
+use super::codes::{Code, composition_nats};
 use super::interval::{Method, Rounding, reference_half_width};
 use super::rules::{Past, Rule};
 use super::schedule::Schedule;
@@ -60,6 +61,20 @@ pub struct PlanSpec {
     pub method: Method,
     /// Models per `best-of` batch.
     pub batch: u32,
+    /// Declared classes `C` of a target whose metric needs the class counts (per-class and
+    /// balanced error, AUC): their release, `ln C(n + C - 1, C - 1)` nats
+    /// ([`composition_nats`]), enters the transcript before the first answer, so every planned
+    /// level pays for it (DESIGN 4.8). `None` (the default) for metrics that need no counts.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub class_counts: Option<u32>,
+}
+
+impl PlanSpec {
+    /// The nats the release of the class counts adds to every level (0 without one).
+    pub fn counts_nats(&self) -> f64 {
+        self.class_counts
+            .map_or(0.0, |c| composition_nats(self.rows, c))
+    }
 }
 
 /// One row of a plan table.
@@ -139,7 +154,9 @@ pub fn queries_that_fit_with(
     code: u32,
 ) -> f64 {
     let code = Code::for_version(code);
-    let ln_inv_delta = -spec.delta.ln();
+    // The class counts' release (if any) is coded once, before the first answer: it lengthens
+    // the transcript every level is taken on, like a fixed part of `ln(1/delta)`.
+    let ln_inv_delta = -spec.delta.ln() + spec.counts_nats();
     let b = models(rule, spec);
     let mut past = Past::start(rule, spec.rows);
     past.models = b as u32;

@@ -104,6 +104,8 @@ pub fn describe(
             schedule,
             method,
             batch: PLAN_BATCH,
+            // No metric `create` accepts needs the class counts yet (issue 18).
+            class_counts: None,
         };
         let first_level = schedule.ln_inv_fraction(1).map(|f| -plan_delta.ln() + f);
         let first_hw =
